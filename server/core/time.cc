@@ -1,3 +1,13 @@
 #include "server/core/time.h"
-// time.h is header-only; this file keeps tickmark::core a real library while
-// it has no other sources.
+
+#include <time.h>
+
+namespace tickmark {
+
+int64_t SystemMonotonic::NowNanos() const {
+  timespec ts{};
+  clock_gettime(CLOCK_MONOTONIC, &ts);
+  return static_cast<int64_t>(ts.tv_sec) * 1'000'000'000 + ts.tv_nsec;
+}
+
+}  // namespace tickmark

@@ -105,6 +105,13 @@ class FakeMonotonic final : public MonotonicSource {
   std::atomic<int64_t> now_;
 };
 
+// The process's CLOCK_MONOTONIC (declared here, defined in time.cc so that
+// core's headers stay free of system headers). Thread-safe.
+class SystemMonotonic final : public MonotonicSource {
+ public:
+  int64_t NowNanos() const override;
+};
+
 // Session time (design.md §4): anchored to UTC once, then advanced only by a
 // monotonic clock, so a step of the wall clock never moves it.
 // Thread-safe after construction.
@@ -115,11 +122,17 @@ class SessionClock {
       : utc_at_open_ns_(utc_at_open_ns),
         mono_at_open_ns_(mono->NowNanos()),
         mono_(mono) {}
+  // Continues a timeline anchored earlier: utc_anchor_ns was the session
+  // time when `mono` read mono_anchor_ns.
+  SessionClock(int64_t utc_anchor_ns, int64_t mono_anchor_ns, const MonotonicSource* mono)
+      : utc_at_open_ns_(utc_anchor_ns), mono_at_open_ns_(mono_anchor_ns), mono_(mono) {}
 
   SessionTime Now() const {
     return SessionTime::FromNanos(utc_at_open_ns_ +
                                   (mono_->NowNanos() - mono_at_open_ns_));
   }
+  int64_t utc_anchor_ns() const { return utc_at_open_ns_; }
+  int64_t mono_anchor_ns() const { return mono_at_open_ns_; }
 
  private:
   int64_t utc_at_open_ns_;   // wall clock when anchored

@@ -1,0 +1,142 @@
+// tickmark::ledger — the append-only, persisted record of every session
+// (design.md §6).
+//
+// The ledger owns two things that must never disagree with what is on disk:
+// each session's sequence numbers and its hash chain. Append() assigns
+// consecutive sequence numbers in call order and hands the records to a
+// single writer, which commits them in that order (group commit) and only
+// then reports them, so a caller that acknowledges on the commit callback
+// never acknowledges something a crash could lose.
+//
+// Hash chain: record.hash = SHA-256(previous record's hash || body), where
+// body is the deterministic serialisation of the record with its hash field
+// empty; the first record of a session chains from 32 zero bytes.
+//
+// Thread safety: every method may be called from any thread. Commit
+// callbacks run on the writer thread, in commit order; they must be quick
+// and must not call Append/Barrier/Flush for the same ledger synchronously
+// while holding locks the caller of Append holds.
+#ifndef TICKMARK_SERVER_LEDGER_LEDGER_H_
+#define TICKMARK_SERVER_LEDGER_LEDGER_H_
+
+#include <cstdint>
+#include <functional>
+#include <optional>
+#include <string>
+#include <string_view>
+#include <vector>
+
+#include "absl/status/status.h"
+#include "absl/status/statusor.h"
+#include "tickmark/v1/records.pb.h"
+
+namespace tickmark::ledger {
+
+// A session's row; the anchors let session time continue across restarts.
+struct SessionRow {
+  std::string id;
+  std::string title;
+  std::string study;
+  bool open = true;
+  int64_t opened_session_ns = 0;
+  int64_t closed_session_ns = 0;  // 0 while open
+  int64_t utc_anchor_ns = 0;      // session time at the monotonic anchor
+  int64_t mono_anchor_ns = 0;     // CLOCK_MONOTONIC reading at the anchor
+  std::string boot_id;            // kernel boot id the monotonic reading belongs to
+  uint64_t last_sequence = 0;     // highest committed sequence (filled on read)
+};
+
+// A token as stored: only the SHA-256 of the secret is kept.
+struct TokenRow {
+  std::string id;          // public id, e.g. "t-1a2b3c4d"
+  std::string session_id;  // empty: the server-wide operator token
+  tickmark::v1::Role role = tickmark::v1::ROLE_UNSPECIFIED;
+  std::string subject;     // trainer pseudonym / agent name
+  std::string hash;        // 32 raw bytes
+  int64_t issued_session_ns = 0;
+  bool revoked = false;
+};
+
+struct RecordCounts {
+  uint64_t feedback = 0;
+  uint64_t steps = 0;
+  uint64_t probes = 0;
+  uint64_t markers = 0;
+  uint64_t clients = 0;
+  uint64_t late = 0;
+  uint64_t unmatched = 0;
+};
+
+// Called on the writer thread once a batch is durable (status OK) or has
+// failed. `records` are the caller's records with sequence and hash filled.
+using CommitCallback =
+    std::function<void(const absl::Status& status, const std::vector<tickmark::v1::Record>& records)>;
+
+class Ledger {
+ public:
+  virtual ~Ledger() = default;
+
+  // Session and token changes are synchronous: durable when they return.
+  virtual absl::Status CreateSession(const SessionRow& row) = 0;
+  virtual absl::StatusOr<SessionRow> GetSession(std::string_view id) = 0;
+  virtual absl::StatusOr<std::vector<SessionRow>> ListSessions(bool include_closed) = 0;
+  virtual absl::Status CloseSession(std::string_view id, int64_t closed_session_ns) = 0;
+  // Moves a session's time anchor (after a reboot reset the monotonic clock).
+  virtual absl::Status ReanchorSession(std::string_view id, int64_t utc_anchor_ns,
+                                       int64_t mono_anchor_ns, std::string_view boot_id) = 0;
+
+  virtual absl::Status PutToken(const TokenRow& row) = 0;
+  // NOT_FOUND if no token has this hash.
+  virtual absl::StatusOr<TokenRow> FindTokenByHash(std::string_view hash) = 0;
+  virtual absl::StatusOr<std::vector<TokenRow>> ListTokens(std::string_view session_id) = 0;
+  virtual absl::StatusOr<TokenRow> RevokeToken(std::string_view session_id,
+                                               std::string_view token_id) = 0;
+
+  // Assigns the next sequence numbers of `session_id` to `records` (in
+  // order), queues them for the writer and returns the first one assigned.
+  // `done` runs after the commit. The records' session_id, sequence and hash
+  // are filled by the ledger; everything else is the caller's.
+  virtual absl::StatusOr<uint64_t> Append(std::string_view session_id,
+                                          std::vector<tickmark::v1::Record> records,
+                                          CommitCallback done) = 0;
+  // Runs `done` (on the writer thread) once everything appended before this
+  // call is committed.
+  virtual void Barrier(std::function<void()> done) = 0;
+  // Blocks until everything appended before this call is committed.
+  virtual absl::Status Flush() = 0;
+
+  // Committed records of a session with sequence >= from, in order, at most
+  // `max`. Reads never block the writer (WAL).
+  virtual absl::StatusOr<std::vector<tickmark::v1::Record>> Read(std::string_view session_id,
+                                                                 uint64_t from, size_t max) = 0;
+  // The session sequence of the committed record a client sent with this
+  // client sequence, if any.
+  virtual absl::StatusOr<std::optional<uint64_t>> FindClientSequence(std::string_view session_id,
+                                                                     std::string_view client_id,
+                                                                     uint64_t client_sequence) = 0;
+  // Highest committed client sequence of this client (0 if none).
+  virtual absl::StatusOr<uint64_t> LastClientSequence(std::string_view session_id,
+                                                      std::string_view client_id) = 0;
+  virtual absl::StatusOr<RecordCounts> Counts(std::string_view session_id) = 0;
+  // Highest committed sequence of a session (0 if none).
+  virtual uint64_t CommittedSequence(std::string_view session_id) = 0;
+
+  // Commits what is queued, stops the writer and closes the database.
+  // Appends after Close fail with UNAVAILABLE.
+  virtual void Close() = 0;
+};
+
+// Short lowercase name of a record's kind ("feedback", "step", ...); also
+// the `kind` column of the record table.
+std::string_view RecordKindName(const tickmark::v1::Record& record);
+tickmark::v1::RecordKind RecordKindOf(const tickmark::v1::Record& record);
+
+// The client id and client sequence a record carries (feedback, steps), if any.
+std::optional<std::pair<std::string, uint64_t>> ClientKeyOf(const tickmark::v1::Record& record);
+
+// SHA-256(prev_hash || deterministic body); see the header comment.
+std::string ChainHash(std::string_view prev_hash, const tickmark::v1::Record& record);
+
+}  // namespace tickmark::ledger
+
+#endif  // TICKMARK_SERVER_LEDGER_LEDGER_H_

@@ -1,0 +1,196 @@
+#include "server/ledger/sqlite/migrations.h"
+
+namespace tickmark::ledger {
+namespace {
+
+// Times are integer nanoseconds; the column name says the clock
+// (_session_ns, _source_ns, _agent_ns, _client_ns), as in the proto.
+constexpr Migration kMigrations[] = {
+    {1, "sessions, tokens, clients, the record journal and typed tables", R"sql(
+CREATE TABLE session (
+  id                TEXT PRIMARY KEY,
+  title             TEXT NOT NULL DEFAULT '',
+  study             TEXT NOT NULL DEFAULT '',
+  state             TEXT NOT NULL CHECK (state IN ('open', 'closed')),
+  opened_session_ns INTEGER NOT NULL,
+  closed_session_ns INTEGER,
+  utc_anchor_ns     INTEGER NOT NULL,
+  mono_anchor_ns    INTEGER NOT NULL,
+  boot_id           TEXT NOT NULL DEFAULT ''
+);
+
+CREATE TABLE token (
+  id                TEXT PRIMARY KEY,
+  session_id        TEXT REFERENCES session(id),
+  role              TEXT NOT NULL CHECK (role IN ('admin', 'trainer', 'agent', 'observer')),
+  subject           TEXT NOT NULL DEFAULT '',
+  secret_sha256     BLOB NOT NULL UNIQUE,
+  issued_session_ns INTEGER NOT NULL,
+  revoked           INTEGER NOT NULL DEFAULT 0
+);
+
+-- Every record of every session, in sequence order: the journal that
+-- subscribers replay and `audit verify` re-hashes. body is the protobuf
+-- tickmark.v1.Record (with its hash field empty); hash chains the records.
+CREATE TABLE record (
+  session_id         TEXT NOT NULL REFERENCES session(id),
+  seq                INTEGER NOT NULL,
+  kind               TEXT NOT NULL,
+  written_session_ns INTEGER NOT NULL,
+  client_id          TEXT,
+  client_seq         INTEGER,
+  body               BLOB NOT NULL,
+  hash               BLOB NOT NULL,
+  PRIMARY KEY (session_id, seq)
+) WITHOUT ROWID;
+CREATE UNIQUE INDEX record_by_client_seq ON record (session_id, client_id, client_seq)
+  WHERE client_seq IS NOT NULL;
+
+-- Typed tables: the same records, one column per field, for SQL readers.
+CREATE TABLE client (
+  session_id         TEXT NOT NULL,
+  client_id          TEXT NOT NULL,
+  role               TEXT NOT NULL,
+  subject            TEXT NOT NULL,
+  source_kind        TEXT NOT NULL,
+  source_description TEXT NOT NULL,
+  software           TEXT NOT NULL,
+  first_seq          INTEGER NOT NULL,
+  first_seen_session_ns INTEGER NOT NULL,
+  last_seen_session_ns  INTEGER NOT NULL,
+  PRIMARY KEY (session_id, client_id)
+) WITHOUT ROWID;
+
+CREATE TABLE client_event (
+  session_id TEXT NOT NULL, seq INTEGER NOT NULL,
+  client_id  TEXT NOT NULL,
+  event      TEXT NOT NULL,
+  detail     TEXT NOT NULL,
+  at_session_ns INTEGER NOT NULL,
+  PRIMARY KEY (session_id, seq)
+) WITHOUT ROWID;
+
+CREATE TABLE feedback (
+  session_id         TEXT NOT NULL, seq INTEGER NOT NULL,
+  client_id          TEXT NOT NULL,
+  client_seq         INTEGER NOT NULL,
+  trainer            TEXT NOT NULL,
+  value              REAL NOT NULL,
+  input              TEXT NOT NULL,
+  event_source_ns    INTEGER NOT NULL,
+  arrival_session_ns INTEGER NOT NULL,
+  event_session_ns   INTEGER NOT NULL,
+  uncertainty_ns     INTEGER NOT NULL,
+  late               INTEGER NOT NULL,
+  PRIMARY KEY (session_id, seq)
+) WITHOUT ROWID;
+
+CREATE TABLE step (
+  session_id         TEXT NOT NULL, seq INTEGER NOT NULL,
+  client_id          TEXT NOT NULL,
+  client_seq         INTEGER NOT NULL,
+  agent              TEXT NOT NULL,
+  step_id            INTEGER NOT NULL,
+  episode            INTEGER NOT NULL,
+  action             TEXT NOT NULL,
+  start_agent_ns     INTEGER NOT NULL,
+  end_agent_ns       INTEGER,
+  start_session_ns   INTEGER NOT NULL,
+  end_session_ns     INTEGER,
+  arrival_session_ns INTEGER NOT NULL,
+  uncertainty_ns     INTEGER NOT NULL,
+  state              BLOB NOT NULL,
+  feature_count      INTEGER NOT NULL,
+  late               INTEGER NOT NULL,
+  PRIMARY KEY (session_id, seq)
+) WITHOUT ROWID;
+
+CREATE TABLE probe (
+  session_id    TEXT NOT NULL, seq INTEGER NOT NULL,
+  client_id     TEXT NOT NULL,
+  probe_id      INTEGER NOT NULL,
+  t1_session_ns INTEGER NOT NULL,
+  t2_client_ns  INTEGER NOT NULL,
+  t3_client_ns  INTEGER NOT NULL,
+  t4_session_ns INTEGER NOT NULL,
+  offset_ns     INTEGER NOT NULL,
+  delay_ns      INTEGER NOT NULL,
+  accepted      INTEGER NOT NULL,
+  reject_reason TEXT NOT NULL,
+  PRIMARY KEY (session_id, seq)
+) WITHOUT ROWID;
+
+CREATE TABLE clock_model (
+  session_id          TEXT NOT NULL, seq INTEGER NOT NULL,
+  client_id           TEXT NOT NULL,
+  offset_ns           INTEGER NOT NULL,
+  drift_ppm           REAL NOT NULL,
+  reference_client_ns INTEGER NOT NULL,
+  uncertainty_ns      INTEGER NOT NULL,
+  min_delay_ns        INTEGER NOT NULL,
+  samples             INTEGER NOT NULL,
+  reason              TEXT NOT NULL,
+  PRIMARY KEY (session_id, seq)
+) WITHOUT ROWID;
+
+CREATE TABLE marker (
+  session_id    TEXT NOT NULL, seq INTEGER NOT NULL,
+  at_session_ns INTEGER NOT NULL,
+  text          TEXT NOT NULL,
+  author        TEXT NOT NULL,
+  PRIMARY KEY (session_id, seq)
+) WITHOUT ROWID;
+
+-- Derived records: credit of one feedback on one step, and settled labels.
+-- derived_set is 'live' for what the server computed while the session ran;
+-- replays with another kernel write under their own name.
+CREATE TABLE credit (
+  session_id    TEXT NOT NULL, seq INTEGER NOT NULL,
+  derived_set   TEXT NOT NULL DEFAULT 'live',
+  feedback_seq  INTEGER NOT NULL,
+  step_seq      INTEGER NOT NULL,
+  trainer       TEXT NOT NULL,
+  agent         TEXT NOT NULL,
+  step_id       INTEGER NOT NULL,
+  credit        REAL NOT NULL,
+  value         REAL NOT NULL,
+  weight        REAL NOT NULL,
+  kernel        TEXT NOT NULL,
+  PRIMARY KEY (session_id, derived_set, seq)
+) WITHOUT ROWID;
+
+CREATE TABLE label (
+  session_id  TEXT NOT NULL, seq INTEGER NOT NULL,
+  derived_set TEXT NOT NULL DEFAULT 'live',
+  step_seq    INTEGER NOT NULL,
+  agent       TEXT NOT NULL,
+  step_id     INTEGER NOT NULL,
+  value       REAL NOT NULL,
+  weight      REAL NOT NULL,
+  parts       TEXT NOT NULL,  -- JSON array of {trainer, value, weight}
+  PRIMARY KEY (session_id, derived_set, seq)
+) WITHOUT ROWID;
+
+CREATE TABLE unmatched (
+  session_id   TEXT NOT NULL, seq INTEGER NOT NULL,
+  feedback_seq INTEGER NOT NULL,
+  trainer      TEXT NOT NULL,
+  reason       TEXT NOT NULL,
+  PRIMARY KEY (session_id, seq)
+) WITHOUT ROWID;
+
+CREATE TABLE session_event (
+  session_id    TEXT NOT NULL, seq INTEGER NOT NULL,
+  event         TEXT NOT NULL,
+  detail        TEXT NOT NULL,
+  at_session_ns INTEGER NOT NULL,
+  PRIMARY KEY (session_id, seq)
+) WITHOUT ROWID;
+)sql"},
+};
+
+}  // namespace
+
+std::span<const Migration> SqliteMigrations() { return kMigrations; }
+
+}  // namespace tickmark::ledger
