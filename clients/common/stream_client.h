@@ -1,0 +1,251 @@
+// StreamClient: one reconnecting live stream to tickmarkd (stream.proto,
+// service tickmark.v1.Live) that delivers every message exactly once in
+// effect: at-least-once transport, deduplicated by the server on
+// (client_id, client_sequence) (design.md §6).
+//
+// One class template serves both stream kinds: StreamClient<TrainerStream>
+// (rpc Train, FeedbackMessage) and StreamClient<AgentStream> (rpc Act,
+// StepMessage). Both are compiled once, in stream_client.cc.
+//
+// Life of a connection: Hello (token, client id, source, software, client
+// clock) → Welcome → messages and Acks, with the server's ProbeRequests
+// answered at once (T2 stamped right after the read, T3 right before the
+// write, both on the injected client clock — the clock event times use).
+// On stream loss the client waits (exponential backoff, 100 ms doubling to
+// 5 s, ±20% jitter, reset after a Welcome), says Hello again and resends
+// every unacknowledged message in sequence order. An Ack with code 0 (stored
+// or duplicate) removes a message; an Ack with another code rejects it for
+// good: it is removed, reported through on_rejected, never resent.
+// UNAUTHENTICATED, PERMISSION_DENIED, NOT_FOUND, FAILED_PRECONDITION (at any
+// time) and INVALID_ARGUMENT (before the Welcome) are permanent: the client
+// stops, keeps its queue, and reports through status() and on_state.
+//
+// Client sequences. The server remembers the highest sequence it stored for a
+// client id (Welcome.last_client_sequence). A program restarted with the same
+// stable client id must continue above it, or its new messages would be
+// taken for duplicates of old ones. So messages given to Send() before the
+// first Welcome wait unnumbered and are numbered from last_client_sequence+1
+// when it arrives; later ones are numbered at once. If a later Welcome reports
+// a sequence above any this client assigned, another program is using the
+// same client id: that is a permanent FAILED_PRECONDITION error.
+//
+// Threads and ownership. Connect() starts one worker thread (connects, waits,
+// writes) and each connection has one reader thread (acks, probes). The
+// client owns both and joins them in Close() or the destructor.
+// Send, Flush, status and Close are thread-safe and may be called from any
+// thread. Callbacks run on the client's threads, without the client's lock
+// held: they may call Send and status, but must not call Close or destroy the
+// client (that would join the calling thread), and should return quickly
+// (a slow callback delays probe answers).
+#ifndef TICKMARK_CLIENTS_COMMON_STREAM_CLIENT_H_
+#define TICKMARK_CLIENTS_COMMON_STREAM_CLIENT_H_
+
+#include <chrono>
+#include <condition_variable>
+#include <cstddef>
+#include <cstdint>
+#include <deque>
+#include <functional>
+#include <map>
+#include <memory>
+#include <mutex>
+#include <optional>
+#include <string>
+#include <thread>
+#include <vector>
+
+#include "absl/status/status.h"
+#include "grpcpp/grpcpp.h"
+#include "server/core/time.h"
+#include "tickmark/v1/stream.grpc.pb.h"
+
+namespace tickmark::client {
+
+// Trainer streams: rpc Train, payload FeedbackMessage.
+struct TrainerStream {
+  using Request = tickmark::v1::TrainerMessage;
+  using Payload = tickmark::v1::FeedbackMessage;
+  static std::unique_ptr<
+      grpc::ClientReaderWriter<Request, tickmark::v1::ServerMessage>>
+  Open(tickmark::v1::Live::Stub* stub, grpc::ClientContext* ctx) {
+    return stub->Train(ctx);
+  }
+  static Payload* MutablePayload(Request* r) { return r->mutable_feedback(); }
+  static const Payload& GetPayload(const Request& r) { return r.feedback(); }
+};
+
+// Agent streams: rpc Act, payload StepMessage.
+struct AgentStream {
+  using Request = tickmark::v1::AgentMessage;
+  using Payload = tickmark::v1::StepMessage;
+  static std::unique_ptr<
+      grpc::ClientReaderWriter<Request, tickmark::v1::ServerMessage>>
+  Open(tickmark::v1::Live::Stub* stub, grpc::ClientContext* ctx) {
+    return stub->Act(ctx);
+  }
+  static Payload* MutablePayload(Request* r) { return r->mutable_step(); }
+  static const Payload& GetPayload(const Request& r) { return r.step(); }
+};
+
+// What the Hello says about the source and the program.
+struct SourceInfo {
+  tickmark::v1::SourceKind kind = tickmark::v1::SOURCE_KIND_UNSPECIFIED;
+  std::string description;  // "keys on /dev/pts/3"
+  std::string software;     // "tickmark-keys 0.1.0"
+};
+
+struct StreamOptions {
+  std::string target;    // "host:port"
+  std::string token;     // sent in the Hello; see token.h
+  std::string client_id; // stable; see client_id.h
+  SourceInfo source;
+  std::shared_ptr<grpc::ChannelCredentials> credentials;  // see channel.h
+  // Event times and probe answers are read from this clock. Not owned; must
+  // outlive the client. nullptr: CLOCK_MONOTONIC (SystemMonotonic).
+  const MonotonicSource* clock = nullptr;
+  Duration initial_backoff = Duration::Millis(100);
+  Duration max_backoff = Duration::Seconds(5);
+  double backoff_jitter = 0.2;  // ± fraction of each wait
+  // Send() fails with RESOURCE_EXHAUSTED beyond this many waiting messages.
+  size_t max_pending = 1'000'000;
+  // HTTP/2 keepalive ping interval, to notice a silently dead path; zero
+  // leaves it off (the server must permit pings this often, or it answers
+  // with GOAWAY "too_many_pings").
+  Duration keepalive = Duration::Zero();
+};
+
+// One acknowledgement, as the UI shows it.
+struct AckInfo {
+  uint64_t client_sequence = 0;
+  uint64_t sequence = 0;  // session sequence of the stored record
+  bool duplicate = false;
+  int64_t event_session_ns = 0;  // where the event landed on session time
+  int64_t uncertainty_ns = 0;    // half-width of that estimate
+};
+
+enum class StreamState {
+  kIdle,        // Connect() not called yet
+  kConnecting,  // Hello sent, waiting for the Welcome
+  kConnected,   // Welcome received; sending and acknowledging
+  kWaiting,     // stream lost; waiting out the backoff before reconnecting
+  kClosed,      // Close() finished
+  kFailed,      // permanent error; see last_error
+};
+
+const char* StreamStateName(StreamState s);
+
+// A snapshot for a UI.
+struct StreamStatus {
+  StreamState state = StreamState::kIdle;
+  bool connected() const { return state == StreamState::kConnected; }
+  uint64_t sent = 0;      // messages accepted by Send()
+  uint64_t acked = 0;     // acknowledged with code 0 (stored or duplicate)
+  uint64_t rejected = 0;  // acknowledged with a non-zero code
+  uint64_t pending = 0;   // accepted, not yet acknowledged
+  uint64_t connections = 0;  // Welcomes received
+  uint64_t reconnects = 0;   // connection attempts after the first
+  uint64_t probes_answered = 0;
+  std::optional<AckInfo> last_ack;
+  absl::Status last_error;  // latest stream error (OK if none yet)
+  std::string session_id;   // from the latest Welcome
+  std::string subject;      // trainer pseudonym or agent name (Welcome)
+};
+
+template <typename Kind>
+class StreamClient {
+ public:
+  using Request = typename Kind::Request;
+  using Payload = typename Kind::Payload;
+  using Deadline = std::chrono::steady_clock::time_point;
+
+  struct Callbacks {
+    // A message was acknowledged with code 0; called once per message.
+    std::function<void(const AckInfo&, const Payload&)> on_ack;
+    // A message was rejected (Ack code != 0); it will not be resent.
+    std::function<void(uint64_t client_sequence, const Payload&,
+                       const absl::Status&)>
+        on_rejected;
+    // The state changed (connected, waiting, failed, closed).
+    std::function<void(const StreamStatus&)> on_state;
+  };
+
+  StreamClient();
+  // Close()s with a short deadline, then cancels what is left.
+  ~StreamClient();
+  StreamClient(const StreamClient&) = delete;
+  StreamClient& operator=(const StreamClient&) = delete;
+
+  // Checks the options (INVALID_ARGUMENT for a bad client id, missing token
+  // or credentials; FAILED_PRECONDITION if called twice) and starts the
+  // worker thread, which connects in the background.
+  absl::Status Connect(StreamOptions options, Callbacks callbacks = {});
+
+  // Queues `payload` (its client_sequence is overwritten) and writes it when
+  // connected. FAILED_PRECONDITION after Close() or a permanent error;
+  // RESOURCE_EXHAUSTED when max_pending messages are waiting.
+  absl::Status Send(Payload payload);
+
+  // Waits until every message given to Send() is acknowledged or rejected.
+  // OK then; the permanent error if the client failed; DEADLINE_EXCEEDED
+  // (naming how many wait) at the deadline.
+  absl::Status Flush(Deadline deadline);
+
+  // Stops taking messages, writes what is queued, half-closes the stream and
+  // waits for the server to end it (it acknowledges what it got first). At
+  // the deadline, or when not connected, the stream is cancelled instead.
+  // Returns the final error, OK after a clean close. Idempotent.
+  absl::Status Close(Deadline deadline);
+
+  StreamStatus status() const;
+
+  // The client clock in use (for stamping events on the same clock).
+  const MonotonicSource* clock() const { return clock_; }
+
+ private:
+  struct Connection;
+  struct Entry {
+    std::shared_ptr<const Request> request;  // shared so writes need no copy
+  };
+
+  void Run();
+  // One connection attempt, from Hello to Finish. Sets *welcomed.
+  grpc::Status RunConnection(bool* welcomed);
+  void ReadLoop(Connection* conn);
+  // Applies a Welcome under mu_; a non-OK result is a permanent error.
+  absl::Status OnWelcomeLocked(const tickmark::v1::Welcome& w);
+  void EnqueueLocked(Payload payload);
+  void SetStateLocked(StreamState s);
+  void NotifyState();
+  bool HasUnwrittenLocked() const;
+  bool AllDoneLocked() const;
+
+  const MonotonicSource* clock_;
+  StreamOptions options_;
+  Callbacks callbacks_;
+  std::shared_ptr<grpc::Channel> channel_;
+  std::unique_ptr<tickmark::v1::Live::Stub> stub_;
+
+  mutable std::mutex mu_;
+  std::condition_variable cv_;  // any change of the state below
+  StreamStatus status_;                     // guarded by mu_
+  bool started_ = false;                    // guarded by mu_
+  bool closing_ = false;                    // Close() called; guarded by mu_
+  bool stop_ = false;                       // cancel everything; guarded by mu_
+  bool worker_done_ = false;                // guarded by mu_
+  bool numbering_known_ = false;            // first Welcome seen; guarded by mu_
+  uint64_t next_sequence_ = 1;              // guarded by mu_
+  std::vector<Payload> unnumbered_;         // sent before first Welcome; mu_
+  std::map<uint64_t, Entry> pending_;       // by client_sequence; mu_
+  uint64_t last_written_ = 0;  // highest sequence written on this connection
+  Connection* conn_ = nullptr;              // live attempt; guarded by mu_
+  std::thread worker_;
+};
+
+extern template class StreamClient<TrainerStream>;
+extern template class StreamClient<AgentStream>;
+using TrainerClient = StreamClient<TrainerStream>;
+using AgentClient = StreamClient<AgentStream>;
+
+}  // namespace tickmark::client
+
+#endif  // TICKMARK_CLIENTS_COMMON_STREAM_CLIENT_H_
