@@ -1,0 +1,177 @@
+// Clock models: mapping one client's clock to session time (design.md §4).
+//
+// The server starts every probe, so it plays the requester ("client") role of
+// RFC 5905 §8 and the device plays the responder ("server") role:
+//   T1  session time when the server sends the probe
+//   T2  client clock when the device receives it
+//   T3  client clock when the device sends the reply
+//   T4  session time when the server receives the reply
+// With these roles the §8 formulas give
+//   offset θ = ((T2 − T1) + (T3 − T4)) / 2   = client clock − session time
+//   delay  δ = (T4 − T1) − (T3 − T2)          = round trip minus the device's
+//   hold
+// and θ is exact when the two one-way delays are equal; otherwise it is off by
+// (forward − backward)/2, which no measurement can reveal, so every estimate
+// carries an uncertainty of at least δ/2.
+//
+// ClockModel keeps the accepted probes of one client, picks the minimum-delay
+// probe of the most recent ones (RFC 5905 §10 clock filter) for the offset,
+// fits the client's rate error (drift) from the lower envelopes of the two
+// one-way series (Moon, Skelly & Towsley, INFOCOM 1999), and detects clock
+// steps of the device ("jumps"), after which it starts again.
+// docs/time-model.md explains the model for newcomers.
+//
+// Pure logic, no I/O. ClockModel is a value type; thread-compatible (callers
+// serialise access to one instance, const methods may run concurrently).
+#ifndef TICKMARK_SERVER_CORE_CLOCK_MODEL_H_
+#define TICKMARK_SERVER_CORE_CLOCK_MODEL_H_
+
+#include <deque>
+#include <span>
+
+#include "server/core/time.h"
+
+namespace tickmark {
+
+// The four timestamps of one probe, roles as in the file comment.
+struct ProbeTimestamps {
+  SessionTime t1;  // server sends
+  ClientTime t2;   // client receives
+  ClientTime t3;   // client replies
+  SessionTime t4;  // server receives
+};
+
+// The RFC 5905 §8 result of one probe.
+struct OnWire {
+  Duration offset;  // client clock − session time
+  Duration delay;   // round-trip delay; may be negative before clamping
+};
+
+// RFC 5905 §8 on-wire formulas in 64-bit first-order differences. The delay is
+// returned as computed (not clamped); ClockModel applies the §8 clamp.
+// Requires the client clock and session time to be within ~146 years of each
+// other so that the differences fit in int64.
+OnWire ComputeOnWire(const ProbeTimestamps& p);
+
+enum class ProbeVerdict {
+  kAccepted,
+  kRejectedReversed,       // T3 < T2 or T4 < T1: timestamps cannot be right
+  kRejectedNegativeDelay,  // δ < −precision: clocks inconsistent within the
+                           // probe
+  kClockJump,  // accepted, but the client clock stepped; model restarted
+};
+
+// Stable lower-case name, e.g. "rejected_reversed", for logs and the ledger.
+const char* ProbeVerdictName(ProbeVerdict v);
+
+// Snapshot of a model, what the server writes to the ledger on every update.
+// Mapping: session(t) = (reference − offset) + (t − reference) / (1 + drift).
+struct ClockEstimate {
+  Duration offset;  // client clock − session time, at `reference`
+  double drift_ppm =
+      0;  // client rate error: (client rate / session rate − 1)·1e6
+  ClientTime reference;  // client time the offset refers to (midpoint of the
+                         // chosen probe)
+  Duration uncertainty;  // UncertaintyAt(reference)
+  Duration min_delay;    // delay of the chosen (minimum-delay) probe, clamped
+  int samples = 0;       // accepted probes held since the last (re)start
+
+  bool operator==(const ClockEstimate&) const = default;
+};
+
+class ClockModel {
+ public:
+  struct Options {
+    // Clamp δ to no less than this; reject probes with δ below −precision
+    // (RFC 5905 §8).
+    Duration precision = Duration::Micros(1);
+    // Clock filter length: the offset comes from the minimum-delay probe of
+    // the last filter_stages accepted probes (RFC 5905 §10).
+    int filter_stages = 8;
+    // A probe whose offset differs from the prediction by more than
+    // jump_threshold + its delay + the model's uncertainty there is a jump.
+    Duration jump_threshold = Duration::Millis(500);
+    // Probes older than this (by T4, relative to the newest) leave the drift
+    // fit; the last filter_stages probes are always kept.
+    Duration drift_window = Duration::Seconds(600);
+    // Drift estimates are clamped to ±max_drift_ppm; the true drift is assumed
+    // to be within this bound too.
+    double max_drift_ppm = 500;
+    // Until the held probes span this much session time the drift is taken as
+    // 0 ± max_drift_ppm: a fit over a shorter span is mostly delay jitter.
+    Duration min_drift_span = Duration::Seconds(10);
+  };
+
+  // RFC 5905 §9.2: dispersion grows at PHI = 15 ppm, the assumed frequency
+  // tolerance; our uncertainty grows at PHI plus the drift fit's error.
+  static constexpr double kPhiPpm = 15;
+
+  ClockModel() : ClockModel(Options{}) {}
+  explicit ClockModel(Options o);
+
+  // Judges one probe and, unless rejected, adds it. A rejected probe leaves
+  // the model unchanged. On kClockJump the model restarts from this probe.
+  ProbeVerdict AddProbe(const ProbeTimestamps& p);
+
+  // True once at least one probe was accepted.
+  bool ready() const { return !history_.empty(); }
+
+  // Best estimate of the session time of client reading t. Before ready()
+  // returns t's nanoseconds unchanged (offset 0).
+  SessionTime ToSession(ClientTime t) const;
+
+  // Half-width of the interval expected to hold the true session time of t:
+  //   δ_min/2 + |t − reference|·(PHI + drift error),
+  // δ_min the chosen probe's delay. Never below δ_min/2 of the current filter
+  // window. The drift error is the disagreement of the two one-way fits, or
+  // max_drift_ppm before the drift is fitted (capped at 2·max_drift_ppm).
+  // Duration::Max() before ready(); saturates at Duration::Max().
+  Duration UncertaintyAt(ClientTime t) const;
+
+  // Snapshot; all zero before ready().
+  ClockEstimate estimate() const;
+
+ private:
+  struct Sample {
+    ProbeTimestamps t;
+    OnWire w;  // delay already clamped to precision
+  };
+
+  // Recomputes the filter choice and the drift fit after history_ changed.
+  void Refit();
+
+  Options options_;
+  std::deque<Sample> history_;  // accepted probes, oldest first
+  // Cached by Refit(), valid when ready():
+  SessionTime ref_session_;  // session midpoint (T1+T4)/2 of the chosen probe
+  ClientTime ref_client_;    // client midpoint (T2+T3)/2 of the chosen probe
+  Duration offset_;  // the chosen probe's offset; ref_client_ − ref_session_
+  Duration min_delay_;      // the chosen probe's (clamped) delay
+  double drift_ = 0;        // rate error as a fraction (80 ppm -> 80e-6)
+  double drift_error_ = 0;  // as a fraction; see UncertaintyAt()
+};
+
+// RFC 5905 §10-style clock filter: the minimum-delay sample. Samples are
+// ordered oldest first; on a tie the most recent wins. Returns
+// {Zero, Duration::Max()} for an empty span.
+OnWire MinDelaySample(std::span<const OnWire> samples);
+
+struct Line {
+  double slope = 0;
+  double intercept = 0;
+};
+
+// Lower-envelope line fit (Moon, Skelly & Towsley, INFOCOM 1999): the line
+// y = slope·x + intercept lying on or below every (x[i], y[i]) that minimises
+// the summed vertical gaps. Solved exactly: the objective equals n times the
+// gap at the mean x, so the optimum is the lower convex hull's edge over the
+// mean x; if the mean x falls on a hull vertex both neighbouring edges are
+// optimal and the mean of their slopes (also optimal) is returned. With one
+// distinct x the result is the flat line through the lowest point. x and y
+// must have equal sizes (extra elements of the longer are ignored); returns
+// {0, 0} when empty. Callers should centre x and y first for precision.
+Line LowerEnvelopeFit(std::span<const double> x, std::span<const double> y);
+
+}  // namespace tickmark
+
+#endif  // TICKMARK_SERVER_CORE_CLOCK_MODEL_H_
