@@ -56,9 +56,8 @@ OnWire ComputeOnWire(const ProbeTimestamps& p);
 enum class ProbeVerdict {
   kAccepted,
   kRejectedReversed,       // T3 < T2 or T4 < T1: timestamps cannot be right
-  kRejectedNegativeDelay,  // δ < −precision: clocks inconsistent within the
-                           // probe
-  kClockJump,  // accepted, but the client clock stepped; model restarted
+  kRejectedNegativeDelay,  // δ < −precision: the timestamps contradict
+  kClockJump,              // accepted; the client clock stepped, so restarted
 };
 
 // Stable lower-case name, e.g. "rejected_reversed", for logs and the ledger.
@@ -67,11 +66,12 @@ const char* ProbeVerdictName(ProbeVerdict v);
 // Snapshot of a model, what the server writes to the ledger on every update.
 // Mapping: session(t) = (reference − offset) + (t − reference) / (1 + drift).
 struct ClockEstimate {
-  Duration offset;  // client clock − session time, at `reference`
-  double drift_ppm =
-      0;  // client rate error: (client rate / session rate − 1)·1e6
-  ClientTime reference;  // client time the offset refers to (midpoint of the
-                         // chosen probe)
+  // Client clock − session time, at `reference`.
+  Duration offset;
+  // Client rate error: (client rate / session rate − 1)·1e6.
+  double drift_ppm = 0;
+  // Client time the offset refers to: the chosen probe's (T2+T3)/2.
+  ClientTime reference;
   Duration uncertainty;  // UncertaintyAt(reference)
   Duration min_delay;    // delay of the chosen (minimum-delay) probe, clamped
   int samples = 0;       // accepted probes held since the last (re)start
@@ -145,10 +145,10 @@ class ClockModel {
   // Cached by Refit(), valid when ready():
   SessionTime ref_session_;  // session midpoint (T1+T4)/2 of the chosen probe
   ClientTime ref_client_;    // client midpoint (T2+T3)/2 of the chosen probe
-  Duration offset_;  // the chosen probe's offset; ref_client_ − ref_session_
-  Duration min_delay_;      // the chosen probe's (clamped) delay
-  double drift_ = 0;        // rate error as a fraction (80 ppm -> 80e-6)
-  double drift_error_ = 0;  // as a fraction; see UncertaintyAt()
+  Duration offset_;          // ref_client_ − ref_session_
+  Duration min_delay_;       // the chosen probe's (clamped) delay
+  double drift_ = 0;         // rate error as a fraction (80 ppm -> 80e-6)
+  double drift_error_ = 0;   // as a fraction; see UncertaintyAt()
 };
 
 // RFC 5905 §10-style clock filter: the minimum-delay sample. Samples are
