@@ -587,7 +587,9 @@ absl::Status SqliteLedger::InsertRecord(const Record& r) {
       const auto& e = r.session_event();
       return stmt("INSERT INTO session_event VALUES (?,?,?,?,?)")
           .Bind(sid).Bind(seq)
-          .Bind(e.kind() == tickmark::v1::SessionEvent::KIND_OPENED ? "opened" : "closed")
+          .Bind(e.kind() == tickmark::v1::SessionEvent::KIND_OPENED   ? "opened"
+                : e.kind() == tickmark::v1::SessionEvent::KIND_CLOSED ? "closed"
+                                                                       : "reanchored")
           .Bind(e.detail()).Bind(r.written_session_ns())
           .Run();
     }

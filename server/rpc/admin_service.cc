@@ -1,0 +1,267 @@
+#include "server/rpc/admin_service.h"
+
+#include <cmath>
+
+#include "server/base/log.h"
+#include "server/base/strings.h"
+#include "server/rpc/status.h"
+
+namespace tickmark::rpc {
+
+namespace v1 = tickmark::v1;
+
+absl::StatusOr<Principal> AuthenticateContext(const grpc::ServerContextBase& ctx,
+                                              const TokenAuthority& auth) {
+  const auto& md = ctx.client_metadata();
+  auto it = md.find("authorization");
+  if (it == md.end()) return auth.Authenticate("");
+  std::string_view value(it->second.data(), it->second.size());
+  return auth.Authenticate(BearerSecret(value));
+}
+
+absl::Status Authorize(const Principal& who, const std::string& session_id,
+                       std::initializer_list<v1::Role> roles) {
+  if (who.operator_token()) return absl::OkStatus();
+  if (who.session_id != session_id) {
+    // Never reveal whether another session exists.
+    return absl::PermissionDeniedError("this token belongs to another session");
+  }
+  for (v1::Role r : roles) {
+    if (who.role == r) return absl::OkStatus();
+  }
+  return absl::PermissionDeniedError(
+      Cat("a ", v1::Role_Name(who.role), " token may not do this"));
+}
+
+namespace {
+
+v1::Session ToProto(const ledger::SessionRow& row) {
+  v1::Session s;
+  s.set_id(row.id);
+  s.set_title(row.title);
+  s.set_study(row.study);
+  s.set_state(row.open ? v1::SESSION_STATE_OPEN : v1::SESSION_STATE_CLOSED);
+  s.set_opened_session_ns(row.opened_session_ns);
+  s.set_closed_session_ns(row.closed_session_ns);
+  s.set_last_sequence(row.last_sequence);
+  return s;
+}
+
+v1::TokenInfo ToProto(const ledger::TokenRow& row) {
+  v1::TokenInfo t;
+  t.set_token_id(row.id);
+  t.set_session_id(row.session_id);
+  t.set_role(row.role);
+  t.set_subject(row.subject);
+  t.set_revoked(row.revoked);
+  t.set_issued_session_ns(row.issued_session_ns);
+  return t;
+}
+
+absl::Status Summarize(SessionHub* hub, const ledger::SessionRow& row, v1::SessionSummary* out) {
+  *out->mutable_session() = ToProto(row);
+  auto counts = hub->ledger()->Counts(row.id);
+  if (!counts.ok()) return counts.status();
+  out->set_feedback_count(counts->feedback);
+  out->set_step_count(counts->steps);
+  out->set_probe_count(counts->probes);
+  out->set_marker_count(counts->markers);
+  out->set_client_count(counts->clients);
+  out->set_late_count(counts->late);
+  out->set_unmatched_count(counts->unmatched);
+  if (row.open) {
+    if (auto rt = hub->Get(row.id); rt.ok()) {
+      out->set_connected_clients(static_cast<uint32_t>((*rt)->StreamCount()));
+    }
+  }
+  return absl::OkStatus();
+}
+
+grpc::ServerUnaryReactor* Done(grpc::CallbackServerContext* ctx, const absl::Status& s) {
+  auto* reactor = ctx->DefaultReactor();
+  reactor->Finish(ToGrpc(s));
+  return reactor;
+}
+
+}  // namespace
+
+grpc::ServerUnaryReactor* AdminService::CreateSession(grpc::CallbackServerContext* ctx,
+                                                      const v1::CreateSessionRequest* req,
+                                                      v1::CreateSessionResponse* resp) {
+  auto who = AuthenticateContext(*ctx, *auth_);
+  if (!who.ok()) return Done(ctx, who.status());
+  if (!who->operator_token()) {
+    return Done(ctx, absl::PermissionDeniedError("creating a session needs the operator token"));
+  }
+  if (req->title().size() > 256 || req->study().size() > 128) {
+    return Done(ctx, absl::InvalidArgumentError("title (256) or study (128) too long"));
+  }
+  auto rt = hub_->Create(req->title(), req->study());
+  if (!rt.ok()) return Done(ctx, rt.status());
+  auto issued = auth_->Issue((*rt)->id(), v1::ROLE_ADMIN, "", (*rt)->Now().nanos());
+  if (!issued.ok()) return Done(ctx, issued.status());
+  auto row = hub_->ledger()->GetSession((*rt)->id());
+  if (!row.ok()) return Done(ctx, row.status());
+  *resp->mutable_session() = ToProto(*row);
+  *resp->mutable_admin_token() = ToProto(issued->first);
+  resp->set_admin_secret(issued->second);
+  TM_LOG(kInfo) << "session " << row->id << " opened (" << row->title << ")";
+  return Done(ctx, absl::OkStatus());
+}
+
+grpc::ServerUnaryReactor* AdminService::GetSession(grpc::CallbackServerContext* ctx,
+                                                   const v1::GetSessionRequest* req,
+                                                   v1::SessionSummary* resp) {
+  auto who = AuthenticateContext(*ctx, *auth_);
+  if (!who.ok()) return Done(ctx, who.status());
+  if (absl::Status s = Authorize(*who, req->session_id(),
+                                 {v1::ROLE_ADMIN, v1::ROLE_TRAINER, v1::ROLE_AGENT,
+                                  v1::ROLE_OBSERVER});
+      !s.ok()) {
+    return Done(ctx, s);
+  }
+  auto row = hub_->ledger()->GetSession(req->session_id());
+  if (!row.ok()) return Done(ctx, row.status());
+  return Done(ctx, Summarize(hub_, *row, resp));
+}
+
+grpc::ServerUnaryReactor* AdminService::ListSessions(grpc::CallbackServerContext* ctx,
+                                                     const v1::ListSessionsRequest* req,
+                                                     v1::ListSessionsResponse* resp) {
+  auto who = AuthenticateContext(*ctx, *auth_);
+  if (!who.ok()) return Done(ctx, who.status());
+  if (!who->operator_token()) {
+    return Done(ctx, absl::PermissionDeniedError("listing sessions needs the operator token"));
+  }
+  auto rows = hub_->ledger()->ListSessions(req->include_closed());
+  if (!rows.ok()) return Done(ctx, rows.status());
+  for (const auto& row : *rows) {
+    if (absl::Status s = Summarize(hub_, row, resp->add_sessions()); !s.ok()) return Done(ctx, s);
+  }
+  return Done(ctx, absl::OkStatus());
+}
+
+grpc::ServerUnaryReactor* AdminService::CloseSession(grpc::CallbackServerContext* ctx,
+                                                     const v1::CloseSessionRequest* req,
+                                                     v1::Session* resp) {
+  auto who = AuthenticateContext(*ctx, *auth_);
+  if (!who.ok()) return Done(ctx, who.status());
+  if (absl::Status s = Authorize(*who, req->session_id(), {v1::ROLE_ADMIN}); !s.ok()) {
+    return Done(ctx, s);
+  }
+  if (absl::Status s = hub_->Close(req->session_id()); !s.ok()) return Done(ctx, s);
+  auto row = hub_->ledger()->GetSession(req->session_id());
+  if (!row.ok()) return Done(ctx, row.status());
+  *resp = ToProto(*row);
+  TM_LOG(kInfo) << "session " << row->id << " closed";
+  return Done(ctx, absl::OkStatus());
+}
+
+grpc::ServerUnaryReactor* AdminService::IssueToken(grpc::CallbackServerContext* ctx,
+                                                   const v1::IssueTokenRequest* req,
+                                                   v1::IssueTokenResponse* resp) {
+  auto who = AuthenticateContext(*ctx, *auth_);
+  if (!who.ok()) return Done(ctx, who.status());
+  if (absl::Status s = Authorize(*who, req->session_id(), {v1::ROLE_ADMIN}); !s.ok()) {
+    return Done(ctx, s);
+  }
+  auto rt = hub_->Get(req->session_id());
+  if (!rt.ok()) return Done(ctx, rt.status());
+  if (!(*rt)->open()) {
+    return Done(ctx, absl::FailedPreconditionError("session is closed; no new tokens"));
+  }
+  switch (req->role()) {
+    case v1::ROLE_TRAINER:
+    case v1::ROLE_AGENT:
+      if (!IsValidName(req->subject())) {
+        return Done(ctx, absl::InvalidArgumentError(
+                             "trainer and agent tokens need a subject: 1-64 characters of "
+                             "letters, digits, '.', '_', ':' or '-' (a pseudonym, not a real name)"));
+      }
+      break;
+    case v1::ROLE_ADMIN:
+    case v1::ROLE_OBSERVER:
+      if (!req->subject().empty() && !IsValidName(req->subject())) {
+        return Done(ctx, absl::InvalidArgumentError("subject has characters outside [A-Za-z0-9._:-]"));
+      }
+      break;
+    default:
+      return Done(ctx, absl::InvalidArgumentError("role must be admin, trainer, agent or observer"));
+  }
+  auto issued = auth_->Issue(req->session_id(), req->role(), req->subject(), (*rt)->Now().nanos());
+  if (!issued.ok()) return Done(ctx, issued.status());
+  *resp->mutable_token() = ToProto(issued->first);
+  resp->set_secret(issued->second);
+  return Done(ctx, absl::OkStatus());
+}
+
+grpc::ServerUnaryReactor* AdminService::RevokeToken(grpc::CallbackServerContext* ctx,
+                                                    const v1::RevokeTokenRequest* req,
+                                                    v1::RevokeTokenResponse* resp) {
+  auto who = AuthenticateContext(*ctx, *auth_);
+  if (!who.ok()) return Done(ctx, who.status());
+  if (absl::Status s = Authorize(*who, req->session_id(), {v1::ROLE_ADMIN}); !s.ok()) {
+    return Done(ctx, s);
+  }
+  auto row = hub_->ledger()->RevokeToken(req->session_id(), req->token_id());
+  if (!row.ok()) return Done(ctx, row.status());
+  if (auto rt = hub_->Get(req->session_id()); rt.ok()) {
+    (*rt)->EndStreamsOf(row->id, grpc::Status(grpc::StatusCode::UNAUTHENTICATED,
+                                              "token " + row->id + " has been revoked"));
+  }
+  *resp->mutable_token() = ToProto(*row);
+  return Done(ctx, absl::OkStatus());
+}
+
+grpc::ServerUnaryReactor* AdminService::ListTokens(grpc::CallbackServerContext* ctx,
+                                                   const v1::ListTokensRequest* req,
+                                                   v1::ListTokensResponse* resp) {
+  auto who = AuthenticateContext(*ctx, *auth_);
+  if (!who.ok()) return Done(ctx, who.status());
+  if (absl::Status s = Authorize(*who, req->session_id(), {v1::ROLE_ADMIN}); !s.ok()) {
+    return Done(ctx, s);
+  }
+  auto rows = hub_->ledger()->ListTokens(req->session_id());
+  if (!rows.ok()) return Done(ctx, rows.status());
+  for (const auto& row : *rows) *resp->add_tokens() = ToProto(row);
+  return Done(ctx, absl::OkStatus());
+}
+
+grpc::ServerUnaryReactor* AdminService::AddMarker(grpc::CallbackServerContext* ctx,
+                                                  const v1::AddMarkerRequest* req,
+                                                  v1::AddMarkerResponse* resp) {
+  auto who = AuthenticateContext(*ctx, *auth_);
+  if (!who.ok()) return Done(ctx, who.status());
+  if (absl::Status s = Authorize(*who, req->session_id(), {v1::ROLE_ADMIN, v1::ROLE_AGENT});
+      !s.ok()) {
+    return Done(ctx, s);
+  }
+  if (req->text().empty() || req->text().size() > 1024) {
+    return Done(ctx, absl::InvalidArgumentError("marker text must be 1-1024 bytes"));
+  }
+  auto rt = hub_->Get(req->session_id());
+  if (!rt.ok()) return Done(ctx, rt.status());
+  if (!(*rt)->open()) return Done(ctx, absl::FailedPreconditionError("session is closed"));
+  const int64_t now = (*rt)->Now().nanos();
+  if (req->at_session_ns() != 0 && std::llabs(req->at_session_ns() - now) > 86'400'000'000'000LL) {
+    return Done(ctx, absl::InvalidArgumentError("marker time is more than a day from now"));
+  }
+  v1::Record r;
+  r.set_written_session_ns(now);
+  v1::Marker* m = r.mutable_marker();
+  m->set_at_session_ns(req->at_session_ns() ? req->at_session_ns() : now);
+  m->set_text(req->text());
+  m->set_author(who->subject.empty() ? who->token_id : who->subject);
+  *resp->mutable_marker() = *m;
+  auto* reactor = ctx->DefaultReactor();
+  auto seq = (*rt)->AppendRecord(std::move(r), [reactor, resp](const absl::Status& s,
+                                                               const v1::Record& rec) {
+    // Acknowledge only once committed.
+    resp->set_sequence(rec.sequence());
+    reactor->Finish(ToGrpc(s));
+  });
+  if (!seq.ok()) reactor->Finish(ToGrpc(seq.status()));
+  return reactor;
+}
+
+}  // namespace tickmark::rpc

@@ -1,0 +1,69 @@
+// The tickmarkd server assembled: ledger, sessions, token authority, the
+// gRPC services, and the operator token. main() only parses flags and calls
+// this (style.md: the binary is wiring only).
+//
+// Thread safety: Start/Shutdown from one thread; the rest is internal.
+#ifndef TICKMARK_SERVER_RPC_SERVER_H_
+#define TICKMARK_SERVER_RPC_SERVER_H_
+
+#include <grpcpp/server.h>
+
+#include <memory>
+#include <string>
+
+#include "server/ledger/ledger.h"
+#include "server/rpc/admin_service.h"
+#include "server/rpc/live_service.h"
+
+namespace tickmark::rpc {
+
+struct ServerOptions {
+  std::string listen = "127.0.0.1:7461";  // host:port; port 0 picks a free one
+  std::string data_dir;                   // holds tickmark.db and operator.token
+  std::string ledger_path;                // default: data_dir/tickmark.db
+  bool durable_power_loss = false;        // SQLite synchronous=FULL
+  // TLS: both set, or neither (then plaintext, allowed only on loopback
+  // unless allow_insecure_remote).
+  std::string tls_cert_file;
+  std::string tls_key_file;
+  bool allow_insecure_remote = false;
+  LiveService::Options live;
+};
+
+class TickmarkServer {
+ public:
+  // Opens the ledger, creates the operator token file if missing, binds.
+  static absl::StatusOr<std::unique_ptr<TickmarkServer>> Start(const ServerOptions& options);
+  ~TickmarkServer();
+
+  // The bound port (useful with port 0).
+  int port() const { return port_; }
+  const std::string& operator_token_path() const { return operator_token_path_; }
+  const std::string& ledger_path() const { return ledger_path_; }
+  // Stops accepting, ends streams (giving them `grace` to finish), commits
+  // the ledger and closes it. Idempotent.
+  void Shutdown(Duration grace = Duration::Seconds(5));
+  void Wait();
+
+ private:
+  TickmarkServer() = default;
+
+  std::unique_ptr<ledger::Ledger> ledger_;
+  SystemMonotonic mono_;
+  std::unique_ptr<SessionHub> hub_;
+  std::unique_ptr<TokenAuthority> auth_;
+  std::unique_ptr<AdminService> admin_;
+  std::unique_ptr<LiveService> live_;
+  std::unique_ptr<grpc::Server> server_;
+  int port_ = 0;
+  std::string operator_token_path_;
+  std::string ledger_path_;
+  bool shut_down_ = false;
+};
+
+// True if host:port names a loopback address (127.0.0.0/8, [::1], localhost).
+bool IsLoopbackAddress(const std::string& host_port);
+
+}  // namespace tickmark::rpc
+
+#endif  // TICKMARK_SERVER_RPC_SERVER_H_

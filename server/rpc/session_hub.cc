@@ -1,0 +1,266 @@
+#include "server/rpc/session_hub.h"
+
+#include <time.h>
+
+#include <fstream>
+
+#include "server/base/log.h"
+#include "server/base/strings.h"
+#include "server/rpc/auth.h"
+
+namespace tickmark::rpc {
+
+using tickmark::v1::Ack;
+using tickmark::v1::Record;
+
+std::string ReadBootId() {
+  std::ifstream in("/proc/sys/kernel/random/boot_id");
+  std::string id;
+  std::getline(in, id);
+  return id;
+}
+
+int64_t SystemUtcNowNanos() {
+  timespec ts{};
+  clock_gettime(CLOCK_REALTIME, &ts);
+  return static_cast<int64_t>(ts.tv_sec) * 1'000'000'000 + ts.tv_nsec;
+}
+
+SessionRuntime::SessionRuntime(const ledger::SessionRow& row, const MonotonicSource* mono,
+                               ledger::Ledger* ledger)
+    : id_(row.id),
+      clock_(row.utc_anchor_ns, row.mono_anchor_ns, mono),
+      ledger_(ledger),
+      open_(row.open) {}
+
+bool SessionRuntime::open() const {
+  std::lock_guard<std::mutex> lock(mu_);
+  return open_;
+}
+
+void SessionRuntime::AppendClientRecord(Record record, AckCallback done) {
+  auto key = ledger::ClientKeyOf(record);
+  const std::string client_id = key ? key->first : std::string();
+  const uint64_t cseq = key ? key->second : 0;
+  int64_t event_ns = 0, uncertainty_ns = 0;
+  if (record.has_feedback()) {
+    event_ns = record.feedback().event_session_ns();
+    uncertainty_ns = record.feedback().uncertainty_ns();
+  } else if (record.has_step()) {
+    event_ns = record.step().start_session_ns();
+    uncertainty_ns = record.step().uncertainty_ns();
+  }
+  auto reject = [&](const absl::Status& s) {
+    Ack ack;
+    ack.set_client_sequence(cseq);
+    ack.set_code(static_cast<int32_t>(s.code()));
+    ack.set_message(std::string(s.message()));
+    done(ack);
+  };
+
+  std::unique_lock<std::mutex> lock(mu_);
+  if (!open_) return reject(absl::FailedPreconditionError("session is closed"));
+  ClientSeqState& state = clients_[client_id];
+  if (!state.loaded) {
+    auto last = ledger_->LastClientSequence(id_, client_id);
+    if (!last.ok()) return reject(last.status());
+    state.highest = std::max(state.highest, *last);
+    state.loaded = true;
+  }
+  // A resend: either still in flight, or committed earlier.
+  std::optional<uint64_t> original;
+  if (auto it = state.in_flight.find(cseq); it != state.in_flight.end()) {
+    original = it->second;
+  } else if (cseq <= state.highest) {
+    auto found = ledger_->FindClientSequence(id_, client_id, cseq);
+    if (!found.ok()) return reject(found.status());
+    original = *found;
+  }
+  if (original) {
+    lock.unlock();
+    // Acknowledge once the original is durable: a barrier fires after
+    // everything appended before it has committed.
+    ledger_->Barrier([done, cseq, seq = *original] {
+      Ack ack;
+      ack.set_client_sequence(cseq);
+      ack.set_sequence(seq);
+      ack.set_duplicate(true);
+      ack.set_message("duplicate: already stored");
+      done(ack);
+    });
+    return;
+  }
+
+  std::vector<Record> batch;
+  batch.push_back(std::move(record));
+  auto first = ledger_->Append(
+      id_, std::move(batch),
+      [this, done, client_id, cseq, event_ns, uncertainty_ns](
+          const absl::Status& s, const std::vector<Record>& committed) {
+        {
+          std::lock_guard<std::mutex> l(mu_);
+          clients_[client_id].in_flight.erase(cseq);
+        }
+        Ack ack;
+        ack.set_client_sequence(cseq);
+        if (s.ok()) {
+          ack.set_sequence(committed.front().sequence());
+          ack.set_event_session_ns(event_ns);
+          ack.set_uncertainty_ns(uncertainty_ns);
+        } else {
+          ack.set_code(static_cast<int32_t>(s.code()));
+          ack.set_message(std::string(s.message()));
+        }
+        done(ack);
+        Fanout(s, committed);
+      });
+  if (!first.ok()) return reject(first.status());
+  state.in_flight[cseq] = *first;
+  state.highest = std::max(state.highest, cseq);
+}
+
+absl::StatusOr<uint64_t> SessionRuntime::AppendRecord(
+    Record record, std::function<void(const absl::Status&, const Record&)> done) {
+  std::vector<Record> batch;
+  batch.push_back(std::move(record));
+  return ledger_->Append(id_, std::move(batch),
+                         [this, done](const absl::Status& s, const std::vector<Record>& committed) {
+                           if (done) done(s, committed.front());
+                           Fanout(s, committed);
+                         });
+}
+
+absl::StatusOr<uint64_t> SessionRuntime::LastClientSequence(const std::string& client_id) {
+  std::lock_guard<std::mutex> lock(mu_);
+  ClientSeqState& state = clients_[client_id];
+  if (!state.loaded) {
+    auto last = ledger_->LastClientSequence(id_, client_id);
+    if (!last.ok()) return last.status();
+    state.highest = std::max(state.highest, *last);
+    state.loaded = true;
+  }
+  // Only committed ones count for the client's resend queue.
+  uint64_t committed = state.highest;
+  if (!state.in_flight.empty()) committed = std::min(committed, state.in_flight.begin()->first - 1);
+  return committed;
+}
+
+void SessionRuntime::Fanout(const absl::Status& status, const std::vector<Record>& records) {
+  if (!status.ok()) return;
+  std::lock_guard<std::mutex> lock(streams_mu_);
+  for (RecordSink* sink : sinks_) sink->OnCommitted(records);
+}
+
+void SessionRuntime::AddStream(StreamHandle* stream) {
+  std::lock_guard<std::mutex> lock(streams_mu_);
+  streams_.insert(stream);
+}
+void SessionRuntime::RemoveStream(StreamHandle* stream) {
+  std::lock_guard<std::mutex> lock(streams_mu_);
+  streams_.erase(stream);
+}
+size_t SessionRuntime::StreamCount() {
+  std::lock_guard<std::mutex> lock(streams_mu_);
+  return streams_.size();
+}
+void SessionRuntime::AddSink(RecordSink* sink) {
+  std::lock_guard<std::mutex> lock(streams_mu_);
+  sinks_.insert(sink);
+}
+void SessionRuntime::RemoveSink(RecordSink* sink) {
+  std::lock_guard<std::mutex> lock(streams_mu_);
+  sinks_.erase(sink);
+}
+
+void SessionRuntime::MarkClosed(const grpc::Status& why) {
+  {
+    std::lock_guard<std::mutex> lock(mu_);
+    open_ = false;
+  }
+  std::lock_guard<std::mutex> lock(streams_mu_);
+  for (StreamHandle* s : streams_) s->End(why);
+}
+
+void SessionRuntime::EndStreamsOf(const std::string& token_id, const grpc::Status& why) {
+  std::lock_guard<std::mutex> lock(streams_mu_);
+  for (StreamHandle* s : streams_) {
+    if (s->token_id() == token_id) s->End(why);
+  }
+}
+
+SessionHub::SessionHub(ledger::Ledger* ledger, const MonotonicSource* mono,
+                       int64_t (*utc_now_ns)())
+    : ledger_(ledger), mono_(mono), utc_now_ns_(utc_now_ns), boot_id_(ReadBootId()) {}
+
+absl::StatusOr<std::shared_ptr<SessionRuntime>> SessionHub::Get(const std::string& id) {
+  std::lock_guard<std::mutex> lock(mu_);
+  if (auto it = sessions_.find(id); it != sessions_.end()) return it->second;
+  auto row = ledger_->GetSession(id);
+  if (!row.ok()) return row.status();
+  bool reanchored = false;
+  if (row->boot_id != boot_id_) {
+    // The monotonic anchor belongs to an earlier boot: continue session time
+    // from UTC now (design.md §4: the wall clock is read only at anchoring).
+    row->utc_anchor_ns = utc_now_ns_();
+    row->mono_anchor_ns = mono_->NowNanos();
+    row->boot_id = boot_id_;
+    if (absl::Status s = ledger_->ReanchorSession(id, row->utc_anchor_ns, row->mono_anchor_ns,
+                                                  boot_id_);
+        !s.ok()) {
+      return s;
+    }
+    reanchored = true;
+  }
+  auto runtime = std::make_shared<SessionRuntime>(*row, mono_, ledger_);
+  sessions_[id] = runtime;
+  if (reanchored && row->open) {
+    Record r;
+    r.set_written_session_ns(runtime->Now().nanos());
+    r.mutable_session_event()->set_kind(tickmark::v1::SessionEvent::KIND_REANCHORED);
+    r.mutable_session_event()->set_detail("monotonic clock reset (reboot); re-anchored to UTC");
+    runtime->AppendRecord(std::move(r)).IgnoreError();
+    TM_LOG(kWarning) << "session " << id << " re-anchored to UTC after a reboot";
+  }
+  return runtime;
+}
+
+absl::StatusOr<std::shared_ptr<SessionRuntime>> SessionHub::Create(const std::string& title,
+                                                                   const std::string& study) {
+  ledger::SessionRow row;
+  row.id = "s-" + RandomHex(4);
+  row.title = title;
+  row.study = study;
+  row.utc_anchor_ns = utc_now_ns_();
+  row.mono_anchor_ns = mono_->NowNanos();
+  row.opened_session_ns = row.utc_anchor_ns;
+  row.boot_id = boot_id_;
+  if (absl::Status s = ledger_->CreateSession(row); !s.ok()) return s;
+  auto runtime = std::make_shared<SessionRuntime>(row, mono_, ledger_);
+  {
+    std::lock_guard<std::mutex> lock(mu_);
+    sessions_[row.id] = runtime;
+  }
+  Record r;
+  r.set_written_session_ns(row.opened_session_ns);
+  r.mutable_session_event()->set_kind(tickmark::v1::SessionEvent::KIND_OPENED);
+  r.mutable_session_event()->set_detail(title);
+  if (auto s = runtime->AppendRecord(std::move(r)); !s.ok()) return s.status();
+  return runtime;
+}
+
+absl::Status SessionHub::Close(const std::string& id) {
+  auto runtime = Get(id);
+  if (!runtime.ok()) return runtime.status();
+  if (!(*runtime)->open()) return absl::FailedPreconditionError(Cat("session ", id, " is already closed"));
+  const int64_t now = (*runtime)->Now().nanos();
+  (*runtime)->MarkClosed(grpc::Status(grpc::StatusCode::FAILED_PRECONDITION,
+                                      "session " + id + " was closed"));
+  Record r;
+  r.set_written_session_ns(now);
+  r.mutable_session_event()->set_kind(tickmark::v1::SessionEvent::KIND_CLOSED);
+  if (auto s = (*runtime)->AppendRecord(std::move(r)); !s.ok()) return s.status();
+  if (absl::Status s = ledger_->Flush(); !s.ok()) return s;
+  return ledger_->CloseSession(id, now);
+}
+
+}  // namespace tickmark::rpc

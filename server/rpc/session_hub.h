@@ -1,0 +1,149 @@
+// Live state of sessions: each open session's clock, deduplication of
+// resent messages, the streams attached to it and the sinks (subscribers)
+// that receive committed records.
+//
+// Data flow: a stream reactor validates a message, builds a Record and calls
+// SessionRuntime::AppendClientRecord. The ledger assigns the sequence and
+// commits; on commit (ledger writer thread) the runtime acknowledges to the
+// stream and hands the records, in sequence order, to every sink.
+//
+// Thread safety: everything here is thread-safe. Sinks and stream handles
+// are called with the runtime's sink/stream lock held; they must not call
+// back into the runtime from those calls.
+#ifndef TICKMARK_SERVER_RPC_SESSION_HUB_H_
+#define TICKMARK_SERVER_RPC_SESSION_HUB_H_
+
+#include <grpcpp/support/status.h>
+
+#include <functional>
+#include <map>
+#include <memory>
+#include <mutex>
+#include <set>
+#include <string>
+
+#include "server/core/time.h"
+#include "server/ledger/ledger.h"
+#include "tickmark/v1/stream.pb.h"
+
+namespace tickmark::rpc {
+
+// Bounds on what clients may send (design.md §7: validated at the edge).
+struct Limits {
+  uint32_t max_state_bytes = 64 * 1024;
+  uint32_t max_features = 4096;
+  double max_abs_value = 1000;
+  // Event times older than this before arrival are implausible.
+  Duration max_event_age = Duration::Seconds(600);
+  // Event times later than arrival by more than this (beyond the mapping's
+  // uncertainty) are implausible.
+  Duration max_event_future = Duration::Seconds(5);
+  Duration max_step_length = Duration::Seconds(3600);
+};
+
+// A live stream the session can end (session closed, token revoked).
+class StreamHandle {
+ public:
+  virtual ~StreamHandle() = default;
+  virtual const std::string& token_id() const = 0;
+  // Ends the stream with this status; may be called from any thread.
+  virtual void End(const grpc::Status& status) = 0;
+};
+
+// Receives committed records in sequence order (subscribers).
+class RecordSink {
+ public:
+  virtual ~RecordSink() = default;
+  // Called on the ledger writer thread; must not block.
+  virtual void OnCommitted(const std::vector<tickmark::v1::Record>& records) = 0;
+};
+
+class SessionRuntime {
+ public:
+  SessionRuntime(const ledger::SessionRow& row, const MonotonicSource* mono,
+                 ledger::Ledger* ledger);
+
+  const std::string& id() const { return id_; }
+  SessionTime Now() const { return clock_.Now(); }
+  bool open() const;
+
+  using AckCallback = std::function<void(const tickmark::v1::Ack&)>;
+  // Appends a feedback or step record; deduplicates by (client id, client
+  // sequence). `done` runs once the record (or, for a duplicate, the
+  // original) is committed, on the ledger thread.
+  void AppendClientRecord(tickmark::v1::Record record, AckCallback done);
+  // Appends any other record. `done` may be empty.
+  absl::StatusOr<uint64_t> AppendRecord(
+      tickmark::v1::Record record,
+      std::function<void(const absl::Status&, const tickmark::v1::Record&)> done = {});
+  // Highest client sequence stored (or in flight) for this client id.
+  absl::StatusOr<uint64_t> LastClientSequence(const std::string& client_id);
+
+  void AddStream(StreamHandle* stream);
+  void RemoveStream(StreamHandle* stream);
+  size_t StreamCount();
+  void AddSink(RecordSink* sink);
+  void RemoveSink(RecordSink* sink);
+
+  // Marks the session closed and ends every stream with `why`.
+  void MarkClosed(const grpc::Status& why);
+  // Ends the streams that use this token.
+  void EndStreamsOf(const std::string& token_id, const grpc::Status& why);
+
+ private:
+  // Per client id: what is known about its sequence numbers.
+  struct ClientSeqState {
+    bool loaded = false;        // highest was read from the ledger
+    uint64_t highest = 0;       // highest client sequence stored or in flight
+    std::map<uint64_t, uint64_t> in_flight;  // client seq -> session seq, not yet committed
+  };
+  void Fanout(const absl::Status& status, const std::vector<tickmark::v1::Record>& records);
+
+  const std::string id_;
+  const SessionClock clock_;
+  ledger::Ledger* const ledger_;  // not owned
+
+  mutable std::mutex mu_;
+  bool open_;                                      // GUARDED_BY(mu_)
+  std::map<std::string, ClientSeqState> clients_;  // GUARDED_BY(mu_)
+
+  std::mutex streams_mu_;
+  std::set<StreamHandle*> streams_;  // GUARDED_BY(streams_mu_)
+  std::set<RecordSink*> sinks_;      // GUARDED_BY(streams_mu_)
+};
+
+// All sessions of the server. Thread-safe.
+class SessionHub {
+ public:
+  SessionHub(ledger::Ledger* ledger, const MonotonicSource* mono, int64_t (*utc_now_ns)());
+
+  // The runtime of a session, loaded from the ledger on first use.
+  // NOT_FOUND for an unknown session.
+  absl::StatusOr<std::shared_ptr<SessionRuntime>> Get(const std::string& id);
+  // Creates and opens a session anchored to UTC now.
+  absl::StatusOr<std::shared_ptr<SessionRuntime>> Create(const std::string& title,
+                                                         const std::string& study);
+  // Closes a session: records the event, ends its streams.
+  absl::Status Close(const std::string& id);
+  // Time on the server's own timeline (for tokens of no session).
+  int64_t UtcNowNanos() const { return utc_now_ns_(); }
+  ledger::Ledger* ledger() const { return ledger_; }
+
+ private:
+  ledger::Ledger* const ledger_;
+  const MonotonicSource* const mono_;
+  int64_t (*const utc_now_ns_)();
+  const std::string boot_id_;  // this boot's kernel id
+
+  std::mutex mu_;
+  std::map<std::string, std::shared_ptr<SessionRuntime>> sessions_;  // GUARDED_BY(mu_)
+};
+
+// The kernel's boot id (/proc/sys/kernel/random/boot_id), or "" if unknown.
+std::string ReadBootId();
+// CLOCK_REALTIME in nanoseconds.
+int64_t SystemUtcNowNanos();
+
+}  // namespace tickmark::rpc
+
+#endif  // TICKMARK_SERVER_RPC_SESSION_HUB_H_
