@@ -98,6 +98,10 @@ class FakeLive final : public tickmark::v1::Live::Service {
   std::map<std::pair<std::string, uint64_t>, int> received() {
     std::lock_guard<std::mutex> l(mu_); return received_;
   }
+  // (client_id, sequence) → the stored message body, serialized.
+  std::map<std::pair<std::string, uint64_t>, std::string> bodies() {
+    std::lock_guard<std::mutex> l(mu_); return bodies_;
+  }
   // Sequences in the order they were stored.
   std::vector<uint64_t> store_order() {
     std::lock_guard<std::mutex> l(mu_); return store_order_;
@@ -198,6 +202,7 @@ class FakeLive final : public tickmark::v1::Live::Service {
           a->set_duplicate(true);
         } else {
           stored_[key] = 1;
+          bodies_[key] = in.SerializeAsString();
           store_order_.push_back(*seq);
           last_sequence_[client_id] = std::max(last_sequence_[client_id], *seq);
         }
@@ -230,6 +235,7 @@ class FakeLive final : public tickmark::v1::Live::Service {
   std::map<std::pair<std::string, uint64_t>, int> stored_;    // mu_
   std::map<std::pair<std::string, uint64_t>, int> received_;  // mu_
   std::map<std::string, uint64_t> last_sequence_;             // mu_
+  std::map<std::pair<std::string, uint64_t>, std::string> bodies_;  // mu_
   std::vector<uint64_t> store_order_;                          // mu_
   std::vector<ProbeSeen> probes_;                              // mu_
 };

@@ -1,0 +1,37 @@
+// Command-line flags of tickmark-keys, and its --help text.
+// Parsing only; no I/O. Thread-compatible.
+#ifndef TICKMARK_CLIENTS_KEYS_KEYS_FLAGS_H_
+#define TICKMARK_CLIENTS_KEYS_KEYS_FLAGS_H_
+
+#include <string>
+#include <vector>
+
+#include "absl/status/statusor.h"
+
+namespace tickmark::keys {
+
+inline constexpr char kDefaultServer[] = "127.0.0.1:7461";
+
+struct KeysFlags {
+  std::string server = kDefaultServer;
+  std::string token_file;
+  std::string token;  // --token: accepted with a warning
+  std::string client_id;
+  std::string profile;
+  bool stdin_lines = false;
+  double flush_timeout_s = 10.0;
+  bool insecure = false;
+  std::string ca_file;
+  bool quiet = false;
+  bool help = false;
+};
+
+// INVALID_ARGUMENT naming the flag for unknown flags, missing or bad values.
+absl::StatusOr<KeysFlags> ParseKeysFlags(const std::vector<std::string>& args);
+
+// The --help text; `legend` lists the default key bindings.
+std::string KeysUsage(const std::string& legend);
+
+}  // namespace tickmark::keys
+
+#endif  // TICKMARK_CLIENTS_KEYS_KEYS_FLAGS_H_
