@@ -8,6 +8,8 @@
 // all its state, and is deterministic: the same calls in the same order give
 // bit-identical outputs, so replaying a ledger reproduces its labels.
 // Single-threaded: not thread-safe; the owner serialises calls.
+// Precondition: ledger sequence numbers are unique across steps and feedback
+// (the ledger assigns them; duplicates are removed before they get there).
 //
 // Semantics:
 // - Timelines. Each agent has its own timeline of steps, ordered by start;

@@ -126,7 +126,7 @@ class IngestReactor final : public grpc::ServerBidiReactor<typename Side::In, v1
         r.set_written_session_ns(runtime->Now().nanos());
         auto* e = r.mutable_client_event();
         *e->mutable_client() = client_;
-        e->set_kind(v1::ClientEvent::KIND_DISCONNECTED);
+        e->set_event(v1::ClientEvent::KIND_DISCONNECTED);
         e->set_detail(end_reason_);
         runtime->AppendRecord(std::move(r)).IgnoreError();
       }
@@ -218,7 +218,7 @@ class IngestReactor final : public grpc::ServerBidiReactor<typename Side::In, v1
     r.set_written_session_ns(now.nanos());
     auto* e = r.mutable_client_event();
     *e->mutable_client() = client_;
-    e->set_kind(v1::ClientEvent::KIND_CONNECTED);
+    e->set_event(v1::ClientEvent::KIND_CONNECTED);
     e->set_detail(ctx_->peer());
     runtime_->AppendRecord(std::move(r)).IgnoreError();
 
@@ -658,7 +658,7 @@ class SubscribeReactor final : public grpc::ServerWriteReactor<v1::Record>,
       idle_.store(false);
       next_ = r->sequence() + 1;
       if (r->has_session_event() &&
-          r->session_event().kind() == v1::SessionEvent::KIND_CLOSED) {
+          r->session_event().event() == v1::SessionEvent::KIND_CLOSED) {
         stop_after_ = r->sequence();
       }
       if (!kinds_.empty() && !kinds_.count(ledger::RecordKindOf(*r))) continue;

@@ -216,7 +216,7 @@ absl::StatusOr<std::shared_ptr<SessionRuntime>> SessionHub::Get(const std::strin
   if (reanchored && row->open) {
     Record r;
     r.set_written_session_ns(runtime->Now().nanos());
-    r.mutable_session_event()->set_kind(tickmark::v1::SessionEvent::KIND_REANCHORED);
+    r.mutable_session_event()->set_event(tickmark::v1::SessionEvent::KIND_REANCHORED);
     r.mutable_session_event()->set_detail("monotonic clock reset (reboot); re-anchored to UTC");
     runtime->AppendRecord(std::move(r)).IgnoreError();
     TM_LOG(kWarning) << "session " << id << " re-anchored to UTC after a reboot";
@@ -242,7 +242,7 @@ absl::StatusOr<std::shared_ptr<SessionRuntime>> SessionHub::Create(const std::st
   }
   Record r;
   r.set_written_session_ns(row.opened_session_ns);
-  r.mutable_session_event()->set_kind(tickmark::v1::SessionEvent::KIND_OPENED);
+  r.mutable_session_event()->set_event(tickmark::v1::SessionEvent::KIND_OPENED);
   r.mutable_session_event()->set_detail(title);
   if (auto s = runtime->AppendRecord(std::move(r)); !s.ok()) return s.status();
   return runtime;
@@ -257,7 +257,7 @@ absl::Status SessionHub::Close(const std::string& id) {
                                       "session " + id + " was closed"));
   Record r;
   r.set_written_session_ns(now);
-  r.mutable_session_event()->set_kind(tickmark::v1::SessionEvent::KIND_CLOSED);
+  r.mutable_session_event()->set_event(tickmark::v1::SessionEvent::KIND_CLOSED);
   if (auto s = (*runtime)->AppendRecord(std::move(r)); !s.ok()) return s.status();
   if (absl::Status s = ledger_->Flush(); !s.ok()) return s;
   return ledger_->CloseSession(id, now);

@@ -539,7 +539,7 @@ absl::Status SqliteLedger::InsertRecord(const Record& r) {
       absl::Status s =
           stmt("INSERT INTO client_event VALUES (?,?,?,?,?,?)")
               .Bind(sid).Bind(seq).Bind(c.client_id())
-              .Bind(e.kind() == tickmark::v1::ClientEvent::KIND_CONNECTED ? "connected"
+              .Bind(e.event() == tickmark::v1::ClientEvent::KIND_CONNECTED ? "connected"
                                                                            : "disconnected")
               .Bind(e.detail()).Bind(r.written_session_ns())
               .Run();
@@ -587,8 +587,8 @@ absl::Status SqliteLedger::InsertRecord(const Record& r) {
       const auto& e = r.session_event();
       return stmt("INSERT INTO session_event VALUES (?,?,?,?,?)")
           .Bind(sid).Bind(seq)
-          .Bind(e.kind() == tickmark::v1::SessionEvent::KIND_OPENED   ? "opened"
-                : e.kind() == tickmark::v1::SessionEvent::KIND_CLOSED ? "closed"
+          .Bind(e.event() == tickmark::v1::SessionEvent::KIND_OPENED   ? "opened"
+                : e.event() == tickmark::v1::SessionEvent::KIND_CLOSED ? "closed"
                                                                        : "reanchored")
           .Bind(e.detail()).Bind(r.written_session_ns())
           .Run();
