@@ -301,12 +301,15 @@ int Main(int argc, char** argv) {
   for (const std::string& w : token->warnings) {
     std::cerr << kProgram << ": warning: " << w << "\n";
   }
-  auto channel = client::ChooseCredentials({flags->server, flags->insecure, flags->ca_file});
-  if (!channel.ok()) return Usage(std::string(channel.status().message()));
   const bool interactive = !flags->stdin_lines;
   if (interactive && isatty(STDIN_FILENO) == 0) {
     return Usage("stdin is not a terminal; use --stdin-lines to read feedback lines");
   }
+  // Before anything starts a thread (creating gRPC credentials starts gRPC's
+  // executor threads), so that only the SignalWatcher receives them.
+  if (interactive) BlockTerminalSignals();
+  auto channel = client::ChooseCredentials({flags->server, flags->insecure, flags->ca_file});
+  if (!channel.ok()) return Usage(std::string(channel.status().message()));
   const std::string source = interactive ? TtySource() : "stdin";
   const std::string client_id = flags->client_id.empty()
                                     ? client::DefaultClientId(kProgram, source)
@@ -326,8 +329,6 @@ int Main(int argc, char** argv) {
   options.credentials = channel->credentials;
   options.clock = client::SystemMonotonic::Get();
 
-  // Before Connect starts gRPC's threads, so only the watcher sees them.
-  if (interactive) BlockTerminalSignals();
   TrainerClient stream;
   return interactive
              ? RunInteractive(stream, std::move(options), std::move(keymap),

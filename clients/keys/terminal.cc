@@ -72,8 +72,10 @@ SignalWatcher::SignalWatcher(RawTerminal* terminal, std::function<void()> on_qui
         terminal->Restore();
         static constexpr char kNewline[] = "\r\n";
         (void)!write(STDOUT_FILENO, kNewline, sizeof kNewline - 1);
-        // SIGSTOP cannot be caught; the process stops here until SIGCONT.
-        kill(getpid(), SIGSTOP);
+        // SIGSTOP directed at this thread, so this thread stops before its
+        // next instruction: with kill(getpid()) another thread may take the
+        // signal while this one races on to Enter() before the stop.
+        raise(SIGSTOP);
         (void)terminal->Enter();
         on_resume();
       } else if (sig != SIGUSR1) {

@@ -37,8 +37,10 @@ std::string ReadAll(int fd) {
 // Runs tickmark-keys with `args`, writes `input` to its stdin and closes it.
 // Output is small, so reading stdout then stderr after the write cannot block.
 Result RunKeys(const std::vector<std::string>& args, const std::string& input) {
+  // Built next to this test (CMake passes its path); $TICKMARK_BIN overrides.
   const char* bin = std::getenv("TICKMARK_BIN");
-  const std::string path = std::string(bin != nullptr ? bin : ".") + "/tickmark-keys";
+  const std::string path =
+      bin != nullptr ? std::string(bin) + "/tickmark-keys" : TICKMARK_KEYS_PATH;
   int in[2], out[2], err[2];
   EXPECT_EQ(pipe(in), 0);
   EXPECT_EQ(pipe(out), 0);

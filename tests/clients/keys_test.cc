@@ -63,7 +63,7 @@ TEST(KeyMapTest, NonAsciiCharactersAreOneUnboundPress) {
 
 TEST(KeyMapTest, ShippedProfileEqualsDefaults) {
   const char* src = std::getenv("TICKMARK_SOURCE");
-  const std::string root = src != nullptr ? src : ".";
+  const std::string root = src != nullptr ? src : TICKMARK_SOURCE_DIR;
   auto m = KeyMap::FromTomlFile(root + "/clients/keys/profiles/terminal.toml");
   ASSERT_TRUE(m.ok()) << m.status();
   EXPECT_EQ(m->name(), "terminal");
