@@ -1,0 +1,299 @@
+// Durable ingest rate (design.md §9): feedback acknowledged per second
+// through trainer streams of an in-process tickmarkd on loopback, against a
+// raw SQLite baseline that inserts the same rows (the same schema — the
+// ledger's own migrations — and the same two rows per feedback: the record
+// journal and the feedback table; WAL, synchronous=NORMAL, foreign keys on)
+// in transactions of 100 and of 1000 rows. Both are measured in this run, on
+// this machine, so the ratio is what to read, not the absolute numbers.
+//
+// Every stream pipelines: it keeps up to --window feedback unacknowledged
+// and counts acks (an ack means the record is committed). Clients and the
+// server share the machine's cores, as they would on one host.
+//
+// Prints; never asserts. Runtime is bounded: about --seconds per row.
+#include <sqlite3.h>
+
+#include <atomic>
+#include <chrono>
+#include <cstdio>
+#include <cstdlib>
+#include <filesystem>
+#include <fstream>
+#include <memory>
+#include <string>
+#include <thread>
+#include <vector>
+
+#include "server/base/log.h"
+#include "server/ledger/sqlite/migrations.h"
+#include "server/rpc/server.h"
+#include "tests/e2e/live_stream.h"
+
+namespace tickmark::bench {
+namespace {
+
+using e2e::Clock;
+namespace v1 = tickmark::v1;
+
+struct Config {
+  double seconds = 3.0;            // measuring time per row of the table
+  std::vector<int> streams = {1, 4};
+  size_t window = 256;             // unacknowledged feedback per stream
+};
+
+struct Result {
+  std::string what;
+  uint64_t rows = 0;
+  double seconds = 0;
+  double rate() const { return seconds > 0 ? static_cast<double>(rows) / seconds : 0; }
+};
+
+double Since(Clock::time_point t0) {
+  return std::chrono::duration<double>(Clock::now() - t0).count();
+}
+
+bool Exec(sqlite3* db, const char* sql) {
+  char* err = nullptr;
+  if (sqlite3_exec(db, sql, nullptr, nullptr, &err) != SQLITE_OK) {
+    std::fprintf(stderr, "ingest_bench: sqlite: %s\n", err ? err : "?");
+    sqlite3_free(err);
+    return false;
+  }
+  return true;
+}
+
+// A feedback record body as the server stores it (protobuf Record, hash empty).
+std::string SampleBody(const std::string& session, uint64_t seq) {
+  v1::Record r;
+  r.set_session_id(session);
+  r.set_sequence(seq);
+  r.set_written_session_ns(1'700'000'000'000'000'000 + static_cast<int64_t>(seq) * 1'000'000);
+  v1::Feedback* f = r.mutable_feedback();
+  f->set_client_id("bench-trainer-0");
+  f->set_client_sequence(seq);
+  f->set_trainer("ava");
+  f->set_value(seq % 2 ? 1.0 : -1.0);
+  f->set_event_source_ns(123'456'789'000 + static_cast<int64_t>(seq) * 1'000'000);
+  f->set_arrival_session_ns(r.written_session_ns());
+  f->set_event_session_ns(r.written_session_ns() - 300'000'000);
+  f->set_uncertainty_ns(150'000);
+  f->set_input("script");
+  std::string out;
+  r.SerializeToString(&out);
+  return out;
+}
+
+// Raw SQLite: the same rows the ledger writes per feedback, `per_txn` per
+// transaction, for `seconds`.
+Result RawSqlite(const std::string& dir, int per_txn, double seconds) {
+  Result res;
+  res.what = "raw SQLite, " + std::to_string(per_txn) + " rows/txn";
+  const std::string path = dir + "/raw-" + std::to_string(per_txn) + ".db";
+  sqlite3* db = nullptr;
+  if (sqlite3_open(path.c_str(), &db) != SQLITE_OK) return res;
+  bool ok = Exec(db, "PRAGMA journal_mode=WAL; PRAGMA foreign_keys=ON; PRAGMA synchronous=NORMAL;");
+  for (const auto& m : ledger::SqliteMigrations()) ok = ok && Exec(db, m.sql);
+  ok = ok && Exec(db,
+                  "INSERT INTO session (id, title, state, opened_session_ns, utc_anchor_ns, "
+                  "mono_anchor_ns) VALUES ('s-bench', 'bench', 'open', 1, 1, 1)");
+  sqlite3_stmt* journal = nullptr;
+  sqlite3_stmt* typed = nullptr;
+  ok = ok &&
+       sqlite3_prepare_v2(db,
+                          "INSERT INTO record (session_id, seq, kind, written_session_ns, "
+                          "client_id, client_seq, body, hash) VALUES (?, ?, 'feedback', ?, ?, ?, "
+                          "?, ?)",
+                          -1, &journal, nullptr) == SQLITE_OK &&
+       sqlite3_prepare_v2(db, "INSERT INTO feedback VALUES (?,?,?,?,?,?,?,?,?,?,?,?)", -1, &typed,
+                          nullptr) == SQLITE_OK;
+  const std::string body = SampleBody("s-bench", 1);
+  const std::string hash(32, '\x5a');
+  uint64_t seq = 0;
+  const auto t0 = Clock::now();
+  while (ok && Since(t0) < seconds) {
+    ok = Exec(db, "BEGIN IMMEDIATE");
+    for (int i = 0; ok && i < per_txn; ++i) {
+      ++seq;
+      const auto s = static_cast<sqlite3_int64>(seq);
+      const sqlite3_int64 t = 1'700'000'000'000'000'000 + s * 1'000'000;
+      sqlite3_reset(journal);
+      sqlite3_bind_text(journal, 1, "s-bench", -1, SQLITE_STATIC);
+      sqlite3_bind_int64(journal, 2, s);
+      sqlite3_bind_int64(journal, 3, t);
+      sqlite3_bind_text(journal, 4, "bench-trainer-0", -1, SQLITE_STATIC);
+      sqlite3_bind_int64(journal, 5, s);
+      sqlite3_bind_blob(journal, 6, body.data(), static_cast<int>(body.size()), SQLITE_STATIC);
+      sqlite3_bind_blob(journal, 7, hash.data(), static_cast<int>(hash.size()), SQLITE_STATIC);
+      ok = sqlite3_step(journal) == SQLITE_DONE;
+      sqlite3_reset(typed);
+      sqlite3_bind_text(typed, 1, "s-bench", -1, SQLITE_STATIC);
+      sqlite3_bind_int64(typed, 2, s);
+      sqlite3_bind_text(typed, 3, "bench-trainer-0", -1, SQLITE_STATIC);
+      sqlite3_bind_int64(typed, 4, s);
+      sqlite3_bind_text(typed, 5, "ava", -1, SQLITE_STATIC);
+      sqlite3_bind_double(typed, 6, seq % 2 ? 1.0 : -1.0);
+      sqlite3_bind_text(typed, 7, "script", -1, SQLITE_STATIC);
+      sqlite3_bind_int64(typed, 8, 123'456'789'000 + s * 1'000'000);
+      sqlite3_bind_int64(typed, 9, t);
+      sqlite3_bind_int64(typed, 10, t - 300'000'000);
+      sqlite3_bind_int64(typed, 11, 150'000);
+      sqlite3_bind_int64(typed, 12, 0);
+      ok = ok && sqlite3_step(typed) == SQLITE_DONE;
+    }
+    if (!ok) std::fprintf(stderr, "ingest_bench: insert: %s\n", sqlite3_errmsg(db));
+    ok = ok && Exec(db, "COMMIT");
+    if (ok) res.rows = seq;
+  }
+  res.seconds = Since(t0);
+  sqlite3_finalize(journal);
+  sqlite3_finalize(typed);
+  sqlite3_close(db);
+  return res;
+}
+
+// tickmarkd: `streams` trainer streams, each on its own connection.
+Result ServerIngest(const std::string& dir, int streams, const Config& config) {
+  Result res;
+  res.what = "tickmarkd, " + std::to_string(streams) + " trainer stream" +
+             (streams > 1 ? "s" : "") + " (window " + std::to_string(config.window) + ")";
+  rpc::ServerOptions options;
+  options.listen = "127.0.0.1:0";
+  options.data_dir = dir + "/server-" + std::to_string(streams);
+  auto server = rpc::TickmarkServer::Start(options);
+  if (!server.ok()) {
+    std::fprintf(stderr, "ingest_bench: %s\n", std::string(server.status().message()).c_str());
+    return res;
+  }
+  const std::string target = "127.0.0.1:" + std::to_string((*server)->port());
+  std::string operator_token;
+  std::getline(std::ifstream((*server)->operator_token_path()), operator_token);
+  e2e::SessionWithToken session;
+  {
+    auto admin = v1::SessionAdmin::NewStub(
+        grpc::CreateChannel(target, grpc::InsecureChannelCredentials()));
+    grpc::Status s = e2e::CreateSessionWithToken(admin.get(), operator_token, "ingest bench",
+                                                 v1::ROLE_TRAINER, "ava", &session);
+    if (!s.ok()) {
+      std::fprintf(stderr, "ingest_bench: %s\n", s.error_message().c_str());
+      return res;
+    }
+  }
+
+  std::atomic<uint64_t> acked{0};
+  std::atomic<bool> stop{false};
+  std::vector<std::unique_ptr<e2e::TrainerStream>> open;
+  for (int i = 0; i < streams; ++i) {
+    // Distinct channel arguments keep gRPC from sharing one connection.
+    grpc::ChannelArguments args;
+    args.SetInt("tickmark.bench.stream", i);
+    auto channel =
+        grpc::CreateCustomChannel(target, grpc::InsecureChannelCredentials(), args);
+    auto stream = std::make_unique<e2e::TrainerStream>(
+        channel, [&acked](const v1::Ack& a) {
+          if (a.code() == 0) acked.fetch_add(1, std::memory_order_relaxed);
+        });
+    if (!stream->Hello(session.token, "bench-trainer-" + std::to_string(i),
+                       Clock::now() + std::chrono::seconds(10))) {
+      std::fprintf(stderr, "ingest_bench: no welcome on stream %d\n", i);
+      return res;
+    }
+    open.push_back(std::move(stream));
+  }
+  std::vector<std::thread> senders;
+  for (auto& stream : open) {
+    senders.emplace_back([&stop, &config, s = stream.get()] {
+      const auto deadline = Clock::now() + std::chrono::seconds(60);
+      for (uint64_t seq = 1; !stop.load(); ++seq) {
+        const bool room = s->WaitFor(
+            [&](const e2e::TrainerStream::State& st) {
+              return st.ended || stop.load() || seq - 1 - st.acks.size() < config.window;
+            },
+            deadline);
+        if (!room || stop.load() || !s->Send(e2e::Feedback(seq, seq % 2 ? 1.0 : -1.0))) break;
+      }
+    });
+  }
+  // Measure after a short warm-up (connections, first clock probes).
+  std::this_thread::sleep_for(std::chrono::milliseconds(300));
+  const uint64_t a0 = acked.load();
+  const auto t0 = Clock::now();
+  const auto end = t0 + std::chrono::duration_cast<Clock::duration>(
+                            std::chrono::duration<double>(config.seconds));
+  std::this_thread::sleep_until(end);
+  res.rows = acked.load() - a0;
+  res.seconds = Since(t0);
+  stop = true;
+  for (auto& stream : open) stream->Cancel();  // wakes a sender blocked in Write
+  for (auto& t : senders) t.join();
+  open.clear();
+  (*server)->Shutdown(Duration::Seconds(1));
+  return res;
+}
+
+void Usage() {
+  std::printf(
+      "ingest_bench [--seconds=S] [--streams=1,4] [--window=N]\n"
+      "  Durable feedback ingest through tickmarkd's trainer streams vs raw SQLite\n"
+      "  inserts of the same rows. Prints a table; asserts nothing.\n");
+}
+
+}  // namespace
+}  // namespace tickmark::bench
+
+int main(int argc, char** argv) {
+  using namespace tickmark::bench;
+  Config config;
+  for (int i = 1; i < argc; ++i) {
+    const std::string a = argv[i];
+    if (a.rfind("--seconds=", 0) == 0) {
+      config.seconds = std::atof(a.c_str() + 10);
+    } else if (a.rfind("--window=", 0) == 0) {
+      config.window = static_cast<size_t>(std::atol(a.c_str() + 9));
+    } else if (a.rfind("--streams=", 0) == 0) {
+      config.streams.clear();
+      std::string list = a.substr(10);
+      for (size_t p = 0; p <= list.size();) {
+        size_t q = list.find(',', p);
+        if (q == std::string::npos) q = list.size();
+        if (q > p) config.streams.push_back(std::atoi(list.substr(p, q - p).c_str()));
+        p = q + 1;
+      }
+    } else {
+      Usage();
+      return a == "--help" || a == "-h" ? 0 : 2;
+    }
+  }
+  if (config.seconds <= 0 || config.seconds > 60 || config.window == 0 || config.streams.empty()) {
+    Usage();
+    return 2;
+  }
+  tickmark::SetLogLevel(tickmark::LogLevel::kWarning);
+
+  std::string tmpl =
+      (std::filesystem::temp_directory_path() / "tickmark-ingest-bench-XXXXXX").string();
+  if (mkdtemp(tmpl.data()) == nullptr) return 1;
+  const std::string dir = tmpl;
+
+  std::printf("ingest_bench: durable feedback ingest, %.1f s per row, %u hardware threads\n",
+              config.seconds, std::thread::hardware_concurrency());
+  std::printf("  durability: WAL, synchronous=NORMAL (tickmarkd --durability=process)\n\n");
+  std::vector<Result> results;
+  results.push_back(RawSqlite(dir, 100, config.seconds));
+  results.push_back(RawSqlite(dir, 1000, config.seconds));
+  for (int n : config.streams) results.push_back(ServerIngest(dir, n, config));
+
+  const double base100 = results[0].rate();
+  const double base1000 = results[1].rate();
+  std::printf("%-44s %10s %8s %12s %9s %9s\n", "path", "rows", "seconds", "rows/s", "/raw100",
+              "/raw1000");
+  for (const Result& r : results) {
+    std::printf("%-44s %10llu %8.2f %12.0f %9.3f %9.3f\n", r.what.c_str(),
+                static_cast<unsigned long long>(r.rows), r.seconds, r.rate(),
+                base100 > 0 ? r.rate() / base100 : 0.0, base1000 > 0 ? r.rate() / base1000 : 0.0);
+  }
+  std::printf("\nrows/s for tickmarkd counts acknowledged (committed) feedback; each feedback\n"
+              "is one record-journal row plus one feedback row, as in the raw baseline.\n");
+  std::error_code ec;
+  std::filesystem::remove_all(dir, ec);
+  return 0;
+}
