@@ -500,6 +500,22 @@ int Export(int argc, char** argv) {
 
 int main(int argc, char** argv) {
   using namespace tickmark::cli;
+  // Shared flags may come before the command ("tickmark --server H:P session
+  // list"): move them behind it, where each command parses them.
+  std::vector<char*> args{argv[0]}, leading;
+  int i = 1;
+  while (i < argc && std::string(argv[i]).rfind("--", 0) == 0 && std::string(argv[i]) != "--help") {
+    std::string a = argv[i];
+    leading.push_back(argv[i++]);
+    if (a.find('=') == std::string::npos && a != "--insecure" && i < argc) leading.push_back(argv[i++]);
+  }
+  for (; i < argc; ++i) args.push_back(argv[i]);
+  // Flags go after "GROUP VERB" (or after "export").
+  size_t insert_at = std::min<size_t>(args.size(), args.size() > 1 && std::string(args[1]) == "export" ? 2 : 3);
+  args.insert(args.begin() + static_cast<long>(insert_at), leading.begin(), leading.end());
+  args.push_back(nullptr);
+  argc = static_cast<int>(args.size()) - 1;
+  argv = args.data();
   std::string group = argc > 1 ? argv[1] : "";
   std::string verb = argc > 2 ? argv[2] : "";
   if (group.empty() || group == "--help" || group == "-h" || group == "help") {
