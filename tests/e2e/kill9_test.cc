@@ -18,6 +18,7 @@
 
 #include <algorithm>
 #include <atomic>
+#include <cctype>
 #include <cstdlib>
 #include <cstring>
 #include <filesystem>
@@ -251,7 +252,76 @@ void ExpectLedgerSound(LedgerReader& db, const std::string& session) {
   EXPECT_EQ(both[0][0], both[0][1]);
 }
 
-class Kill9Test : public ::testing::TestWithParam<uint64_t> {
+std::vector<char> FromHex(const std::string& hex) {
+  std::vector<char> out;
+  for (size_t i = 0; i + 1 < hex.size(); i += 2) {
+    out.push_back(static_cast<char>(std::stoi(hex.substr(i, 2), nullptr, 16)));
+  }
+  return out;
+}
+
+// The hash chain across the crash and restart (ledger.h, design.md §6:
+// hash = SHA-256(previous hash || body), the first from 32 zero bytes),
+// recomputed with coreutils' sha256sum: one file per record under `scratch`.
+void ExpectChainVerifies(LedgerReader& db, const std::string& session,
+                         const std::string& scratch) {
+  const auto chain = db.Query(
+      "SELECT seq, hex(body), hex(hash) FROM record WHERE session_id = ? ORDER BY seq", {session});
+  ASSERT_FALSE(chain.empty());
+  std::filesystem::create_directories(scratch);
+  const std::string list = scratch + "/files";
+  std::ofstream names(list);
+  std::vector<char> prev(32, '\0');
+  for (size_t i = 0; i < chain.size(); ++i) {
+    const std::string path = scratch + "/" + chain[i][0];
+    std::ofstream out(path, std::ios::binary);
+    const std::vector<char> body = FromHex(chain[i][1]);
+    out.write(prev.data(), static_cast<std::streamsize>(prev.size()));
+    out.write(body.data(), static_cast<std::streamsize>(body.size()));
+    ASSERT_TRUE(out.good());
+    names << path << '\0';
+    prev = FromHex(chain[i][2]);
+  }
+  names.close();
+  // outside hash: coreutils sha256sum (FIPS 180-4 SHA-256)
+  const std::string cmd = "xargs -0 sha256sum < '" + list + "'";
+  FILE* p = popen(cmd.c_str(), "r");
+  ASSERT_NE(p, nullptr);
+  char line[512];
+  size_t n = 0;
+  while (fgets(line, sizeof line, p) != nullptr) {
+    ASSERT_LT(n, chain.size());
+    std::string digest(line, 64);
+    for (char& c : digest) c = static_cast<char>(std::toupper(static_cast<unsigned char>(c)));
+    EXPECT_EQ(digest, chain[n][2]) << "hash of record " << chain[n][0];
+    ++n;
+  }
+  EXPECT_EQ(pclose(p), 0);
+  EXPECT_EQ(n, chain.size());
+}
+
+// One trainer client of the test: its id, its stream of the first life and
+// what it saw.
+struct Trainer {
+  std::string client_id;
+  std::unique_ptr<TrainerStream> stream;
+  std::atomic<uint64_t> attempted{0};  // highest client sequence written (or tried)
+  std::map<uint64_t, uint64_t> acked;  // client seq -> session seq, first life
+  std::map<uint64_t, std::vector<uint64_t>> stored;  // after the restart
+  uint64_t committed_high = 0;         // highest client sequence the ledger kept
+};
+
+struct KillPoint {
+  uint64_t seed;
+  int trainers;  // concurrent trainer streams (own client ids, one token)
+};
+
+// For test names and listings (gtest would dump the struct's bytes).
+void PrintTo(const KillPoint& k, std::ostream* os) {
+  *os << "seed " << k.seed << ", " << k.trainers << " trainer(s)";
+}
+
+class Kill9Test : public ::testing::TestWithParam<KillPoint> {
  protected:
   void SetUp() override {
     std::string tmpl = (std::filesystem::temp_directory_path() / "tickmark-kill9-XXXXXX").string();
@@ -276,8 +346,12 @@ class Kill9Test : public ::testing::TestWithParam<uint64_t> {
     return p;
   }
 
-  std::shared_ptr<grpc::Channel> Connect(const ServerProcess& p) {
-    auto ch = grpc::CreateChannel(p.target(), grpc::InsecureChannelCredentials());
+  // A channel of its own (distinct arguments keep gRPC from sharing one
+  // connection between trainers).
+  std::shared_ptr<grpc::Channel> Connect(const ServerProcess& p, int n = 0) {
+    grpc::ChannelArguments args;
+    args.SetInt("tickmark.e2e.trainer", n);
+    auto ch = grpc::CreateCustomChannel(p.target(), grpc::InsecureChannelCredentials(), args);
     EXPECT_TRUE(ch->WaitForConnected(std::chrono::system_clock::now() + std::chrono::seconds(10)));
     return ch;
   }
@@ -288,14 +362,14 @@ class Kill9Test : public ::testing::TestWithParam<uint64_t> {
 };
 
 TEST_P(Kill9Test, AcknowledgedFeedbackSurvivesAndResendIsDeduplicated) {
-  uint64_t seed = GetParam();
+  uint64_t seed = GetParam().seed;
   if (const char* s = std::getenv("TICKMARK_E2E_SEED")) seed ^= std::stoull(s);
   std::mt19937_64 rng(seed);
   const size_t kill_after = std::uniform_int_distribution<size_t>(50, 400)(rng);
   RecordProperty("seed", std::to_string(seed));
   RecordProperty("kill_after_acks", std::to_string(kill_after));
-  SCOPED_TRACE("seed " + std::to_string(seed) + ", SIGKILL after " + std::to_string(kill_after) +
-               " acks");
+  SCOPED_TRACE("seed " + std::to_string(seed) + ", " + std::to_string(GetParam().trainers) +
+               " trainer(s), SIGKILL after " + std::to_string(kill_after) + " acks");
 
   // 1. First server: a session, a trainer token.
   server_ = StartServer(1);
@@ -314,102 +388,123 @@ TEST_P(Kill9Test, AcknowledgedFeedbackSurvivesAndResendIsDeduplicated) {
     ASSERT_TRUE(s.ok()) << s.error_message();
   }
 
-  // 2. Stream feedback, pipelined; SIGKILL from the ack callback once
-  // `kill_after` acks are in, while later feedback is still in flight.
+  // 2. Stream feedback, pipelined; SIGKILL from an ack callback once
+  // `kill_after` acks (over all trainers) are in, while later feedback is
+  // still in flight.
   const pid_t victim = server_->pid();
   std::atomic<size_t> acked_count{0};
-  std::atomic<uint64_t> attempted{0};  // highest client sequence written (or tried)
-  std::atomic<uint64_t> in_flight_at_kill{0};
-  std::map<uint64_t, uint64_t> acked;  // client seq -> session seq, from the first life
-  {
-    TrainerStream stream(Connect(*server_), [&](const v1::Ack& ack) {
-      if (acked_count.fetch_add(1) + 1 == kill_after) {
-        in_flight_at_kill = attempted.load() - ack.client_sequence();
-        kill(victim, SIGKILL);
-      }
+  std::vector<std::unique_ptr<Trainer>> trainers;
+  for (int t = 0; t < GetParam().trainers; ++t) {
+    auto tr = std::make_unique<Trainer>();
+    tr->client_id = std::string(kClientId) + ":" + std::to_string(t);
+    tr->stream = std::make_unique<TrainerStream>(Connect(*server_, t), [&](const v1::Ack&) {
+      if (acked_count.fetch_add(1) + 1 == kill_after) kill(victim, SIGKILL);
     });
-    auto welcome = stream.Hello(session.token, kClientId, Clock::now() + std::chrono::seconds(10));
-    ASSERT_TRUE(welcome.has_value()) << stream.Finish().error_message();
+    auto welcome =
+        tr->stream->Hello(session.token, tr->client_id, Clock::now() + std::chrono::seconds(10));
+    ASSERT_TRUE(welcome.has_value()) << tr->stream->Finish().error_message();
     EXPECT_EQ(welcome->last_client_sequence(), 0u);
+    trainers.push_back(std::move(tr));
+  }
+  {
     const auto deadline = Clock::now() + std::chrono::seconds(20);
-    const uint64_t cap = kill_after + 5000;  // the kill must come long before this
-    for (uint64_t seq = 1; seq <= cap; ++seq) {
-      const bool room = stream.WaitFor(
-          [&](const TrainerStream::State& st) {
-            return st.ended || attempted.load() - st.acks.size() < kWindow;
-          },
-          deadline);
-      ASSERT_TRUE(room) << "no ack progress before the deadline";
-      if (stream.Snapshot().ended) break;
-      attempted = seq;
-      if (!stream.Send(Feedback(seq, seq % 2 == 0 ? 1.0 : -1.0))) break;
+    std::vector<std::thread> senders;
+    for (auto& tr : trainers) {
+      senders.emplace_back([&, t = tr.get()] {
+        const uint64_t cap = kill_after + 5000;  // the kill must come long before this
+        for (uint64_t seq = 1; seq <= cap; ++seq) {
+          const bool room = t->stream->WaitFor(
+              [&](const TrainerStream::State& st) {
+                return st.ended || t->attempted.load() - st.acks.size() < kWindow;
+              },
+              deadline);
+          if (!room) {
+            ADD_FAILURE() << t->client_id << ": no ack progress before the deadline";
+            return;
+          }
+          if (t->stream->Snapshot().ended) return;
+          t->attempted = seq;
+          if (!t->stream->Send(Feedback(seq, seq % 2 == 0 ? 1.0 : -1.0))) return;
+        }
+      });
     }
-    ASSERT_TRUE(stream.WaitFor([](const TrainerStream::State& st) { return st.ended; }, deadline))
-        << "the stream outlived the kill";
-    const grpc::Status end = stream.Finish();
-    EXPECT_FALSE(end.ok());
-    for (const v1::Ack& a : stream.Snapshot().acks) {
-      ASSERT_EQ(a.code(), 0) << a.message();
-      EXPECT_FALSE(a.duplicate());
-      EXPECT_TRUE(acked.emplace(a.client_sequence(), a.sequence()).second)
-          << "client sequence " << a.client_sequence() << " acknowledged twice";
+    for (auto& th : senders) th.join();
+    for (auto& tr : trainers) {
+      ASSERT_TRUE(
+          tr->stream->WaitFor([](const TrainerStream::State& st) { return st.ended; }, deadline))
+          << "the stream outlived the kill";
+      EXPECT_FALSE(tr->stream->Finish().ok());
+      for (const v1::Ack& a : tr->stream->Snapshot().acks) {
+        ASSERT_EQ(a.code(), 0) << a.message();
+        EXPECT_FALSE(a.duplicate());
+        EXPECT_TRUE(tr->acked.emplace(a.client_sequence(), a.sequence()).second)
+            << "client sequence " << a.client_sequence() << " acknowledged twice";
+      }
+      tr->stream.reset();
     }
   }
   if (acked_count.load() < kill_after) {
-    FAIL() << "the stream ended after " << acked_count.load() << " acks, before the kill; "
+    FAIL() << "the streams ended after " << acked_count.load() << " acks, before the kill; "
            << "server log:\n" << server_->log();
   }
   const int status = server_->Reap();
   ASSERT_TRUE(WIFSIGNALED(status) && WTERMSIG(status) == SIGKILL) << "status " << status;
-  ASSERT_GE(acked.size(), kill_after);
-  RecordProperty("in_flight_at_kill", std::to_string(in_flight_at_kill.load()));
-  RecordProperty("attempted", std::to_string(attempted.load()));
+  size_t total_acked = 0;
+  for (const auto& tr : trainers) {
+    total_acked += tr->acked.size();
+    RecordProperty("attempted_" + tr->client_id, std::to_string(tr->attempted.load()));
+    RecordProperty("acked_" + tr->client_id, std::to_string(tr->acked.size()));
+  }
+  ASSERT_GE(total_acked, kill_after);
 
   // 3. Restart on the same data dir; read the ledger from outside.
   server_ = StartServer(2);
   ASSERT_NE(server_, nullptr);
   const std::string db_path = data_dir_ + "/tickmark.db";
-  uint64_t committed_high = 0;  // highest client sequence the ledger kept
-  std::map<uint64_t, std::vector<uint64_t>> stored;
   {
     LedgerReader db(db_path);
     ExpectLedgerSound(db, session.session_id);
-    stored = db.FeedbackOf(session.session_id, kClientId);
-    for (const auto& [cseq, seq] : acked) {
-      auto it = stored.find(cseq);
-      ASSERT_NE(it, stored.end()) << "acknowledged feedback " << cseq << " lost";
-      ASSERT_EQ(it->second.size(), 1u) << "feedback " << cseq << " stored more than once";
-      EXPECT_EQ(it->second[0], seq) << "feedback " << cseq << " at another sequence than acked";
+    ExpectChainVerifies(db, session.session_id, root_ + "/chain-1");
+    for (auto& tr : trainers) {
+      SCOPED_TRACE(tr->client_id);
+      tr->stored = db.FeedbackOf(session.session_id, tr->client_id);
+      for (const auto& [cseq, seq] : tr->acked) {
+        auto it = tr->stored.find(cseq);
+        ASSERT_NE(it, tr->stored.end()) << "acknowledged feedback " << cseq << " lost";
+        ASSERT_EQ(it->second.size(), 1u) << "feedback " << cseq << " stored more than once";
+        EXPECT_EQ(it->second[0], seq) << "feedback " << cseq << " at another sequence than acked";
+      }
+      // One stream, committed in order: what survived is a prefix 1..M.
+      tr->committed_high = tr->stored.empty() ? 0 : tr->stored.rbegin()->first;
+      EXPECT_EQ(tr->stored.size(), tr->committed_high);
+      EXPECT_LE(tr->committed_high, tr->attempted.load());
     }
-    // One stream, committed in order: what survived is a prefix 1..M.
-    committed_high = stored.empty() ? 0 : stored.rbegin()->first;
-    EXPECT_EQ(stored.size(), committed_high);
-    EXPECT_LE(committed_high, attempted.load());
-    const auto trainers = db.Query(
-        "SELECT DISTINCT trainer FROM feedback WHERE session_id = ?", {session.session_id});
-    ASSERT_EQ(trainers.size(), 1u);
-    EXPECT_EQ(trainers[0][0], kTrainer);
+    const auto names = db.Query("SELECT DISTINCT trainer FROM feedback WHERE session_id = ?",
+                                {session.session_id});
+    ASSERT_EQ(names.size(), 1u);
+    EXPECT_EQ(names[0][0], kTrainer);
   }
 
-  // 4. Reconnect with the same client id; resend everything unacknowledged
+  // 4. Reconnect with the same client ids; resend everything unacknowledged
   // and a few acknowledged ones.
-  std::vector<uint64_t> resend;
-  for (uint64_t cseq = 1; cseq <= attempted.load(); ++cseq) {
-    if (!acked.count(cseq)) resend.push_back(cseq);
-  }
-  {
+  for (auto& tr : trainers) {
+    SCOPED_TRACE(tr->client_id);
+    std::vector<uint64_t> resend;
+    for (uint64_t cseq = 1; cseq <= tr->attempted.load(); ++cseq) {
+      if (!tr->acked.count(cseq)) resend.push_back(cseq);
+    }
     std::vector<uint64_t> acked_keys;
-    for (const auto& [cseq, seq] : acked) acked_keys.push_back(cseq);
+    for (const auto& [cseq, seq] : tr->acked) acked_keys.push_back(cseq);
     std::shuffle(acked_keys.begin(), acked_keys.end(), rng);
     acked_keys.resize(std::min<size_t>(5, acked_keys.size()));
     resend.insert(resend.end(), acked_keys.begin(), acked_keys.end());
     std::sort(resend.begin(), resend.end());
-  }
-  {
+
     TrainerStream stream(Connect(*server_));
-    auto welcome = stream.Hello(session.token, kClientId, Clock::now() + std::chrono::seconds(10));
+    auto welcome =
+        stream.Hello(session.token, tr->client_id, Clock::now() + std::chrono::seconds(10));
     ASSERT_TRUE(welcome.has_value()) << stream.Finish().error_message();
-    EXPECT_EQ(welcome->last_client_sequence(), committed_high);  // stream.proto Welcome
+    EXPECT_EQ(welcome->last_client_sequence(), tr->committed_high);  // stream.proto Welcome
     for (uint64_t cseq : resend) {
       ASSERT_TRUE(stream.Send(Feedback(cseq, cseq % 2 == 0 ? 1.0 : -1.0)));
     }
@@ -426,31 +521,36 @@ TEST_P(Kill9Test, AcknowledgedFeedbackSurvivesAndResendIsDeduplicated) {
       const uint64_t cseq = a.client_sequence();
       ASSERT_EQ(a.code(), 0) << a.message();
       EXPECT_TRUE(seen.insert(cseq).second) << cseq << " acknowledged twice";
-      if (cseq <= committed_high) {
+      if (cseq <= tr->committed_high) {
         // Stored before the kill (acknowledged or not): a duplicate of the
         // original, named by its session sequence.
         EXPECT_TRUE(a.duplicate()) << cseq;
-        EXPECT_EQ(a.sequence(), stored.at(cseq).at(0)) << cseq;
+        EXPECT_EQ(a.sequence(), tr->stored.at(cseq).at(0)) << cseq;
       } else {
         EXPECT_FALSE(a.duplicate()) << cseq;
       }
-      if (auto it = acked.find(cseq); it != acked.end()) {
+      if (auto it = tr->acked.find(cseq); it != tr->acked.end()) {
         EXPECT_EQ(a.sequence(), it->second);
       }
     }
   }
 
-  // 5. Every distinct sequence sent is stored exactly once.
+  // 5. Every distinct sequence sent is stored exactly once; the chain still
+  // verifies across the crash.
   {
     LedgerReader db(db_path);
     ExpectLedgerSound(db, session.session_id);
-    const auto final_rows = db.FeedbackOf(session.session_id, kClientId);
-    EXPECT_EQ(final_rows.size(), attempted.load());
-    for (const auto& [cseq, seqs] : final_rows) {
-      EXPECT_EQ(seqs.size(), 1u) << "feedback " << cseq << " stored more than once";
-    }
-    if (!final_rows.empty()) {
-      EXPECT_EQ(final_rows.rbegin()->first, attempted.load());
+    ExpectChainVerifies(db, session.session_id, root_ + "/chain-2");
+    for (auto& tr : trainers) {
+      SCOPED_TRACE(tr->client_id);
+      const auto final_rows = db.FeedbackOf(session.session_id, tr->client_id);
+      EXPECT_EQ(final_rows.size(), tr->attempted.load());
+      for (const auto& [cseq, seqs] : final_rows) {
+        EXPECT_EQ(seqs.size(), 1u) << "feedback " << cseq << " stored more than once";
+      }
+      if (!final_rows.empty()) {
+        EXPECT_EQ(final_rows.rbegin()->first, tr->attempted.load());
+      }
     }
   }
 
@@ -460,8 +560,17 @@ TEST_P(Kill9Test, AcknowledgedFeedbackSurvivesAndResendIsDeduplicated) {
   EXPECT_TRUE(WIFEXITED(*exit_status) && WEXITSTATUS(*exit_status) == 0) << server_->log();
 }
 
+std::string KillPointName(const ::testing::TestParamInfo<KillPoint>& info) {
+  return "seed" + std::to_string(info.param.seed) + "_trainers" +
+         std::to_string(info.param.trainers);
+}
+
 // Seeds for the kill points; TICKMARK_E2E_SEED=N varies them all.
-INSTANTIATE_TEST_SUITE_P(KillPoints, Kill9Test, ::testing::Values(7u, 1009u, 65537u));
+INSTANTIATE_TEST_SUITE_P(KillPoints, Kill9Test,
+                         ::testing::Values(KillPoint{7, 1}, KillPoint{1009, 1},
+                                           KillPoint{65537, 1}, KillPoint{31337, 2},
+                                           KillPoint{4242, 3}, KillPoint{90001, 3}),
+                         KillPointName);
 
 }  // namespace
 }  // namespace tickmark::e2e
