@@ -23,8 +23,10 @@ failed=0
 for b in "${benches[@]}"; do
   name=$(basename "$b")
   printf '\n==== %s ====\n' "$name"
-  if ! "$b" "$@"; then
-    echo "bench.sh: $name exited with status $?" >&2
+  "$b" "$@"
+  rc=$?
+  if ((rc != 0)); then
+    echo "bench.sh: $name exited with status $rc" >&2
     failed=1
   fi
 done
