@@ -46,6 +46,9 @@ class FakeLive final : public tickmark::v1::Live::Service {
     std::set<uint64_t> reject;
     // ProbeRequests sent right after each Welcome.
     int probes_per_stream = 0;
+    // Added to Welcome.last_client_sequence: pretends another program with
+    // the same client id stored more.
+    uint64_t welcome_extra = 0;
     int64_t probe_t1_session_ns = 1'700'000'000'000'000'000;
   };
 
@@ -149,8 +152,6 @@ class FakeLive final : public tickmark::v1::Live::Service {
     const int64_t hello_ns = in.hello().sent_client_ns();
     tickmark::v1::ServerMessage out;
     int probes = 0;
-    int drop_after = 0;
-    bool store_before_drop = true;
     {
       std::lock_guard<std::mutex> lock(mu_);
       ++hellos_;
@@ -164,10 +165,8 @@ class FakeLive final : public tickmark::v1::Live::Service {
       w->set_session_id("s-fake");
       w->set_subject("trainer-fake");
       w->set_role(tickmark::v1::ROLE_TRAINER);
-      w->set_last_client_sequence(last_sequence_[client_id]);
+      w->set_last_client_sequence(last_sequence_[client_id] + script_.welcome_extra);
       probes = script_.probes_per_stream;
-      if (drops_ < script_.max_drops) drop_after = script_.drop_after;
-      store_before_drop = script_.store_before_drop;
     }
     if (!stream->Write(out)) return grpc::Status::OK;
     for (int i = 0; i < probes; ++i) {
@@ -190,7 +189,9 @@ class FakeLive final : public tickmark::v1::Live::Service {
       const auto key = std::make_pair(client_id, *seq);
       ++received_[key];
       ++count;
+      const int drop_after = drops_ < script_.max_drops ? script_.drop_after : 0;
       const bool drop = drop_after > 0 && count >= drop_after;
+      const bool store_before_drop = script_.store_before_drop;
       tickmark::v1::ServerMessage ack;
       auto* a = ack.mutable_ack();
       a->set_client_sequence(*seq);

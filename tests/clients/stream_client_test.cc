@@ -258,6 +258,30 @@ TEST(StreamClientTest, RestartContinuesAboveServerSequence) {
   EXPECT_EQ(seen.acks.count(5), 1u);
 }
 
+// Two programs sharing one client id would each take the other's messages
+// for duplicates; a Welcome above anything this client numbered shows it.
+TEST(StreamClientTest, ForeignWriterOfSameClientIdStopsClient) {
+  FakeLive fake;
+  const std::string target = fake.Start();
+  TrainerClient client;
+  ASSERT_TRUE(client.Connect(Options(target, "host:test:shared")).ok());
+  ASSERT_TRUE(client.Send(Feedback(1.0, 1)).ok());
+  ASSERT_TRUE(client.Send(Feedback(1.0, 2)).ok());
+  ASSERT_TRUE(client.Flush(In(seconds(30))).ok());
+  fake.Edit([](FakeLive::Script& s) {
+    s.welcome_extra = 100;
+    s.drop_after = 1;  // the next message ends the stream unstored
+    s.max_drops = 1;
+    s.store_before_drop = false;
+  });
+  ASSERT_TRUE(client.Send(Feedback(1.0, 3)).ok());
+  const absl::Status flushed = client.Flush(In(seconds(30)));
+  EXPECT_EQ(flushed.code(), absl::StatusCode::kFailedPrecondition) << flushed;
+  EXPECT_EQ(client.status().state, StreamState::kFailed);
+  EXPECT_EQ(client.status().pending, 1u);
+  EXPECT_EQ(fake.stored().size(), 2u);
+}
+
 TEST(StreamClientTest, CloseHalfClosesAfterWritingQueue) {
   FakeLive fake;
   const std::string target = fake.Start();
