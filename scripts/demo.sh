@@ -51,6 +51,9 @@ tail -n 3 "$DIR/trainer.out" | sed 's/^/  trainer: /'
 wait "$AGENT_PID"
 "$BIN/tickmark" --token-file "$DIR/admin.token" marker add --session "$SESSION" "demo ends"
 
+say "Closing the session: every step settles and gets its final label"
+"$BIN/tickmark" --token-file "$DIR/admin.token" session close "$SESSION"
+
 say "What the session holds (tickmark session show)"
 "$BIN/tickmark" --token-file "$DIR/admin.token" session show "$SESSION"
 
@@ -58,6 +61,8 @@ say "A few records (tickmark export, JSON Lines)"
 "$BIN/tickmark" --token-file "$DIR/admin.token" export --session "$SESSION" --kinds feedback \
   | head -n 2 | cut -c1-300 || true
 "$BIN/tickmark" --token-file "$DIR/admin.token" export --session "$SESSION" --kinds step \
+  | head -n 1 | cut -c1-300 || true
+"$BIN/tickmark" --token-file "$DIR/admin.token" export --session "$SESSION" --kinds label \
   | head -n 1 | cut -c1-300 || true
 
 say "Read the ledger with any SQLite reader"
@@ -69,6 +74,9 @@ if command -v sqlite3 >/dev/null; then
   echo
   sqlite3 -header -column "$LEDGER" \
     "SELECT seq, trainer, value, event_source_ns, arrival_session_ns - event_session_ns AS lag_ns, uncertainty_ns FROM feedback LIMIT 5;"
+  echo
+  sqlite3 -header -column "$LEDGER" \
+    "SELECT l.step_id, s.action, printf('%.4f', l.value) AS label, printf('%.4f', l.weight) AS credit_mass FROM label l JOIN step s ON s.session_id = l.session_id AND s.seq = l.step_seq WHERE l.derived_set = 'live' ORDER BY l.step_id LIMIT 12;"
 fi
 echo
 echo "Ledger: $LEDGER   (try: sqlite3 $LEDGER .tables)"

@@ -19,7 +19,8 @@ constexpr char kSafety[] =
 
 // Applies a TOML config file to options; command-line flags win.
 bool ApplyConfig(const std::string& path, const tickmark::FlagSet& flags,
-                 tickmark::rpc::ServerOptions* o, std::string* log_level, std::string* durability) {
+                 tickmark::rpc::ServerOptions* o, std::string* log_level, std::string* durability,
+                 std::string* default_kernel) {
   toml::table t;
   try {
     t = toml::parse_file(path);
@@ -38,6 +39,7 @@ bool ApplyConfig(const std::string& path, const tickmark::FlagSet& flags,
   str("durability", "durability", durability);
   str("tls_cert", "tls-cert", &o->tls_cert_file);
   str("tls_key", "tls-key", &o->tls_key_file);
+  str("default_kernel", "default-kernel", default_kernel);
   if (auto v = t["probes"]["burst"].value<int64_t>(); v && !flags.WasSet("probe-burst")) {
     o->live.probe_burst = static_cast<int>(*v);
   }
@@ -64,6 +66,8 @@ int main(int argc, char** argv) {
   int64_t max_state_bytes = options.live.limits.max_state_bytes;
   int64_t max_event_age_s = options.live.limits.max_event_age.nanos() / 1'000'000'000;
   bool allow_insecure_remote = false;
+  std::string default_kernel = "uniform:0.2,4.0";
+  int64_t allowed_lateness_ms = options.sessions.allowed_lateness.nanos() / 1'000'000;
 
   tickmark::FlagSet flags(
       "tickmarkd",
@@ -86,6 +90,11 @@ int main(int argc, char** argv) {
   flags.Int("max-state-bytes", &max_state_bytes, "largest step state payload accepted");
   flags.Int("max-event-age-s", &max_event_age_s,
             "oldest event time accepted, in seconds before arrival");
+  flags.String("default-kernel", &default_kernel,
+               "delay kernel of sessions that name none (uniform:MIN,MAX, gamma:SHAPE,SCALE[,SHIFT], "
+               "exponential:RATE[,SHIFT]; seconds)");
+  flags.Int("allowed-lateness-ms", &allowed_lateness_ms,
+            "how late a record may arrive and still be credited; fixed per session at creation");
   flags.Epilog(std::string("The operator token (for the tickmark CLI) is written to\n"
                            "DATA_DIR/operator.token on first start.\n\n") +
                kSafety);
@@ -96,7 +105,7 @@ int main(int argc, char** argv) {
     std::cerr << "tickmarkd: unexpected argument '" << flags.args()[0] << "' (see --help)\n";
     return 2;
   }
-  if (!config.empty() && !ApplyConfig(config, flags, &options, &log_level, &durability)) return 2;
+  if (!config.empty() && !ApplyConfig(config, flags, &options, &log_level, &durability, &default_kernel)) return 2;
   if (flags.WasSet("probe-burst")) options.live.probe_burst = static_cast<int>(probe_burst);
   if (flags.WasSet("probe-interval-ms")) {
     options.live.probe_interval = tickmark::Duration::Millis(probe_interval_ms);
@@ -108,6 +117,20 @@ int main(int argc, char** argv) {
     options.live.limits.max_event_age = tickmark::Duration::Seconds(max_event_age_s);
   }
   options.allow_insecure_remote = allow_insecure_remote;
+  {
+    std::string error;
+    auto kernel = tickmark::DelayKernel::Parse(default_kernel, &error);
+    if (!kernel) {
+      std::cerr << "tickmarkd: --default-kernel: " << error << "\n";
+      return 2;
+    }
+    options.sessions.default_kernel = *kernel;
+  }
+  if (allowed_lateness_ms < 0 || allowed_lateness_ms > 3'600'000) {
+    std::cerr << "tickmarkd: --allowed-lateness-ms must be 0..3600000\n";
+    return 2;
+  }
+  options.sessions.allowed_lateness = tickmark::Duration::Millis(allowed_lateness_ms);
   auto level = tickmark::ParseLogLevel(log_level);
   if (!level) {
     std::cerr << "tickmarkd: --log-level must be debug, info, warning or error\n";

@@ -44,7 +44,8 @@ constexpr char kOverview[] =
     "The operator's tool for a tickmark server.\n"
     "\n"
     "commands:\n"
-    "  session create --title T [--study S]   open a session; prints its id and admin token\n"
+    "  session create --title T [--study S] [--kernel K]\n"
+    "                                         open a session; prints its id and admin token\n"
     "  session list [--all]                   sessions with their counts\n"
     "  session show ID                        one session in detail\n"
     "  session close ID                       end a session (streams end, nothing more is taken)\n"
@@ -53,6 +54,10 @@ constexpr char kOverview[] =
     "  token list --session ID                the session's tokens (never their secrets)\n"
     "  token revoke --session ID TOKEN_ID     revoke a token; its streams end\n"
     "  marker add --session ID TEXT           put a marker on the session timeline now\n"
+    "  kernel set --session ID --trainer T KERNEL [--weight W]\n"
+    "                                         a trainer's delay kernel (gamma:2,0.28, ...)\n"
+    "  replay --session ID --name N [--kernel K]\n"
+    "                                         recompute labels with other kernels; compare\n"
     "  export --session ID [--out FILE] [--kinds K,..]\n"
     "                                         the session's records as JSON Lines\n"
     "\n"
@@ -217,11 +222,14 @@ int ParseOrExit(FlagSet& flags, int argc, char** argv, int first, size_t want_ar
 
 int SessionCreate(int argc, char** argv) {
   Common c;
-  std::string title, study, token_out;
+  std::string title, study, token_out, kernel;
   FlagSet flags("tickmark session create", "Opens a session and prints its admin token.");
   c.Register(flags);
   flags.String("title", &title, "what the session is (\"dock rover, pilot 3\")");
   flags.String("study", &study, "study the session belongs to");
+  flags.String("kernel", &kernel,
+               "default delay kernel, e.g. uniform:0.2,4.0 or gamma:2,0.28 (seconds); "
+               "default: the server's");
   flags.String("token-out", &token_out, "write the session's admin token to this file (0600)");
   if (int e = ParseOrExit(flags, argc, argv, 3, 0); e >= 0) return e;
   auto conn = Connection::Open(c);
@@ -229,6 +237,7 @@ int SessionCreate(int argc, char** argv) {
   v1::CreateSessionRequest req;
   req.set_title(title);
   req.set_study(study);
+  req.set_default_kernel(kernel);
   v1::CreateSessionResponse resp;
   auto ctx = conn->Context();
   if (auto s = conn->Admin().CreateSession(ctx.get(), req, &resp); !s.ok()) return Fail(*conn, s);
@@ -424,6 +433,109 @@ int MarkerAdd(int argc, char** argv) {
   return kExitOk;
 }
 
+int KernelSet(int argc, char** argv) {
+  Common c;
+  std::string session, trainer;
+  double weight = 1.0;
+  FlagSet flags("tickmark kernel set KERNEL",
+                "Sets a trainer's delay kernel and weight from now on (recorded in the ledger).\n"
+                "KERNEL: uniform:MIN,MAX  gamma:SHAPE,SCALE[,SHIFT]  exponential:RATE[,SHIFT]\n"
+                "        empirical:EDGE,WIDTH,C0,C1,...   (times in seconds)");
+  c.Register(flags);
+  flags.String("session", &session, "session id");
+  flags.String("trainer", &trainer, "trainer pseudonym");
+  flags.Double("weight", &weight, "the trainer's weight in labels");
+  if (int e = ParseOrExit(flags, argc, argv, 3, 1); e >= 0) return e;
+  auto conn = Connection::Open(c);
+  if (!conn) return kExitError;
+  v1::SetKernelRequest req;
+  req.set_session_id(session);
+  req.set_trainer(trainer);
+  req.set_kernel(flags.args()[0]);
+  req.set_weight(weight);
+  v1::SetKernelResponse resp;
+  auto ctx = conn->Context();
+  if (auto s = conn->Admin().SetKernel(ctx.get(), req, &resp); !s.ok()) return Fail(*conn, s);
+  std::cout << "trainer " << resp.setting().trainer() << ": " << resp.setting().description()
+            << ", weight " << resp.setting().weight() << " (record #" << resp.sequence() << ")\n";
+  return kExitOk;
+}
+
+int Replay(int argc, char** argv) {
+  Common c;
+  std::string session, name, kernel, trainer_kernels;
+  bool overwrite = false;
+  FlagSet flags("tickmark replay",
+                "Recomputes a session's credit and labels with other delay kernels, stores them\n"
+                "as a named derived set (the session's records stay as they are) and compares\n"
+                "the labels with the live ones.");
+  c.Register(flags);
+  flags.String("session", &session, "session id");
+  flags.String("name", &name, "name of the derived set to store (e.g. gamma-2-0.28)");
+  flags.String("kernel", &kernel, "kernel for every trainer (e.g. gamma:2,0.28); default: as recorded");
+  flags.String("trainer-kernels", &trainer_kernels,
+               "per-trainer kernels: NAME=KERNEL;NAME=KERNEL");
+  flags.Bool("overwrite", &overwrite, "replace a derived set of the same name");
+  if (int e = ParseOrExit(flags, argc, argv, 2, 0); e >= 0) return e;
+  if (session.empty() || name.empty()) {
+    std::cerr << "tickmark: --session and --name are required\n";
+    return kExitUsage;
+  }
+  v1::ReplayRequest req;
+  req.set_session_id(session);
+  req.set_name(name);
+  req.set_kernel(kernel);
+  req.set_overwrite(overwrite);
+  std::stringstream list(trainer_kernels);
+  for (std::string item; std::getline(list, item, ';');) {
+    if (item.empty()) continue;
+    auto eq = item.find('=');
+    if (eq == std::string::npos) {
+      std::cerr << "tickmark: --trainer-kernels wants NAME=KERNEL;NAME=KERNEL\n";
+      return kExitUsage;
+    }
+    (*req.mutable_trainer_kernels())[item.substr(0, eq)] = item.substr(eq + 1);
+  }
+  auto conn = Connection::Open(c);
+  if (!conn) return kExitError;
+  auto ctx = conn->StreamContext();
+  auto reader = conn->Admin().Replay(ctx.get(), req);
+  v1::ReplayProgress p;
+  v1::ReplayComparison result;
+  bool finished = false;
+  const bool tty = isatty(2);
+  while (reader->Read(&p)) {
+    if (p.finished()) {
+      result = p.result();
+      finished = true;
+    }
+    if (tty && p.total() > 0) {
+      const int width = 30;
+      const int filled = static_cast<int>(width * p.done() / p.total());
+      std::cerr << "\rreplaying [" << std::string(filled, '#') << std::string(width - filled, ' ')
+                << "] " << p.done() << "/" << p.total() << " records" << std::flush;
+    }
+  }
+  if (tty) std::cerr << "\n";
+  grpc::Status s = reader->Finish();
+  if (!s.ok()) return Fail(*conn, s);
+  if (!finished) {
+    std::cerr << "tickmark: the server ended the replay without a result\n";
+    return kExitError;
+  }
+  std::cout << "derived set '" << name << "' stored for " << session << "\n"
+            << "labels compared     " << result.labels() << "\n"
+            << "labels changed      " << result.changed() << "\n"
+            << "mean |difference|   " << result.mean_abs_difference() << "\n"
+            << "max |difference|    " << result.max_abs_difference() << "\n"
+            << "sign flips          " << result.sign_flips() << "\n"
+            << "credits             " << result.credits() << "\n"
+            << "unmatched           " << result.unmatched() << "\n"
+            << "only in live set    " << result.only_live() << "\n"
+            << "only in replay      " << result.only_replay() << "\n";
+  return kExitOk;
+}
+
 int Export(int argc, char** argv) {
   Common c;
   std::string session, out_path, kinds;
@@ -511,7 +623,9 @@ int main(int argc, char** argv) {
   }
   for (; i < argc; ++i) args.push_back(argv[i]);
   // Flags go after "GROUP VERB" (or after "export").
-  size_t insert_at = std::min<size_t>(args.size(), args.size() > 1 && std::string(args[1]) == "export" ? 2 : 3);
+  const bool one_word = args.size() > 1 && (std::string(args[1]) == "export" ||
+                                           std::string(args[1]) == "replay");
+  size_t insert_at = std::min<size_t>(args.size(), one_word ? 2 : 3);
   args.insert(args.begin() + static_cast<long>(insert_at), leading.begin(), leading.end());
   args.push_back(nullptr);
   argc = static_cast<int>(args.size()) - 1;
@@ -527,8 +641,10 @@ int main(int argc, char** argv) {
       {"session show", SessionShow},     {"session close", SessionClose},
       {"token issue", TokenIssue},       {"token list", TokenList},
       {"token revoke", TokenRevoke},     {"marker add", MarkerAdd},
+      {"kernel set", KernelSet},
   };
   if (group == "export") return Export(argc, argv);
+  if (group == "replay") return Replay(argc, argv);
   auto it = kCommands.find(group + " " + verb);
   if (it == kCommands.end()) {
     std::cerr << "tickmark: unknown command '" << group << (verb.empty() ? "" : " " + verb)

@@ -21,6 +21,7 @@ std::string_view RecordKindName(const Record& record) {
     case Record::kCredit: return "credit";
     case Record::kLabel: return "label";
     case Record::kUnmatched: return "unmatched";
+    case Record::kKernel: return "kernel";
     case Record::BODY_NOT_SET: break;
   }
   return "unknown";
@@ -39,6 +40,7 @@ tickmark::v1::RecordKind RecordKindOf(const Record& record) {
     case Record::kCredit: return RECORD_KIND_CREDIT;
     case Record::kLabel: return RECORD_KIND_LABEL;
     case Record::kUnmatched: return RECORD_KIND_UNMATCHED;
+    case Record::kKernel: return RECORD_KIND_KERNEL;
     case Record::BODY_NOT_SET: break;
   }
   return RECORD_KIND_UNSPECIFIED;
@@ -54,17 +56,22 @@ std::optional<std::pair<std::string, uint64_t>> ClientKeyOf(const Record& record
   return std::nullopt;
 }
 
-std::string ChainHash(std::string_view prev_hash, const Record& record) {
+std::string CanonicalBody(const Record& record) {
   Record body = record;
   body.clear_hash();
   std::string bytes;
   {
     google::protobuf::io::StringOutputStream raw(&bytes);
     google::protobuf::io::CodedOutputStream out(&raw);
-    // Deterministic so that the same record always hashes the same.
+    // Deterministic so that the same record always has the same bytes.
     out.SetSerializationDeterministic(true);
     body.SerializeToCodedStream(&out);
   }
+  return bytes;
+}
+
+std::string ChainHash(std::string_view prev_hash, const Record& record) {
+  const std::string bytes = CanonicalBody(record);
   unsigned char digest[EVP_MAX_MD_SIZE];
   unsigned int len = 0;
   EVP_MD_CTX* ctx = EVP_MD_CTX_new();

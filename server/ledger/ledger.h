@@ -121,6 +121,14 @@ class Ledger {
   // Highest committed sequence of a session (0 if none).
   virtual uint64_t CommittedSequence(std::string_view session_id) = 0;
 
+  // Stores a derived set (credit, label and unmatched records computed by a
+  // replay) under `name`, with `spec` describing how it was made. The
+  // session's records are not touched. ALREADY_EXISTS unless overwrite.
+  virtual absl::Status PutDerivedSet(std::string_view session_id, std::string_view name,
+                                     std::string_view spec,
+                                     const std::vector<tickmark::v1::Record>& records,
+                                     bool overwrite) = 0;
+
   // Commits what is queued, stops the writer and closes the database.
   // Appends after Close fail with UNAVAILABLE.
   virtual void Close() = 0;
@@ -134,7 +142,11 @@ tickmark::v1::RecordKind RecordKindOf(const tickmark::v1::Record& record);
 // The client id and client sequence a record carries (feedback, steps), if any.
 std::optional<std::pair<std::string, uint64_t>> ClientKeyOf(const tickmark::v1::Record& record);
 
-// SHA-256(prev_hash || deterministic body); see the header comment.
+// The bytes stored as a record's body and hashed: its deterministic
+// serialisation with the hash field empty.
+std::string CanonicalBody(const tickmark::v1::Record& record);
+
+// SHA-256(prev_hash || CanonicalBody(record)); see the header comment.
 std::string ChainHash(std::string_view prev_hash, const tickmark::v1::Record& record);
 
 }  // namespace tickmark::ledger

@@ -1,9 +1,12 @@
 #include "server/rpc/admin_service.h"
 
 #include <cmath>
+#include <deque>
+#include <thread>
 
 #include "server/base/log.h"
 #include "server/base/strings.h"
+#include "server/rpc/credit_driver.h"
 #include "server/rpc/status.h"
 
 namespace tickmark::rpc {
@@ -96,7 +99,7 @@ grpc::ServerUnaryReactor* AdminService::CreateSession(grpc::CallbackServerContex
   if (req->title().size() > 256 || req->study().size() > 128) {
     return Done(ctx, absl::InvalidArgumentError("title (256) or study (128) too long"));
   }
-  auto rt = hub_->Create(req->title(), req->study());
+  auto rt = hub_->Create(req->title(), req->study(), req->default_kernel());
   if (!rt.ok()) return Done(ctx, rt.status());
   auto issued = auth_->Issue((*rt)->id(), v1::ROLE_ADMIN, "", (*rt)->Now().nanos());
   if (!issued.ok()) return Done(ctx, issued.status());
@@ -261,6 +264,226 @@ grpc::ServerUnaryReactor* AdminService::AddMarker(grpc::CallbackServerContext* c
     reactor->Finish(ToGrpc(s));
   });
   if (!seq.ok()) reactor->Finish(ToGrpc(seq.status()));
+  return reactor;
+}
+
+}  // namespace tickmark::rpc
+
+namespace tickmark::rpc {
+
+grpc::ServerUnaryReactor* AdminService::SetKernel(grpc::CallbackServerContext* ctx,
+                                                  const v1::SetKernelRequest* req,
+                                                  v1::SetKernelResponse* resp) {
+  auto who = AuthenticateContext(*ctx, *auth_);
+  if (!who.ok()) return Done(ctx, who.status());
+  if (absl::Status s = Authorize(*who, req->session_id(), {v1::ROLE_ADMIN}); !s.ok()) {
+    return Done(ctx, s);
+  }
+  if (req->trainer().empty()) {
+    return Done(ctx, absl::FailedPreconditionError(
+                         "the session's default kernel is fixed when the session is created; "
+                         "set a kernel per trainer instead"));
+  }
+  if (!IsValidName(req->trainer())) {
+    return Done(ctx, absl::InvalidArgumentError("trainer must be 1-64 of [A-Za-z0-9._:-]"));
+  }
+  if (!std::isfinite(req->weight()) || req->weight() < 0 || req->weight() > 1e6) {
+    return Done(ctx, absl::InvalidArgumentError("weight must be finite and in [0, 1e6]"));
+  }
+  auto kernel = ParseKernel(req->kernel());
+  if (!kernel.ok()) return Done(ctx, kernel.status());
+  auto rt = hub_->Get(req->session_id());
+  if (!rt.ok()) return Done(ctx, rt.status());
+  if (!(*rt)->open()) return Done(ctx, absl::FailedPreconditionError("session is closed"));
+  v1::Record r;
+  r.set_written_session_ns((*rt)->Now().nanos());
+  v1::KernelSetting* ks = r.mutable_kernel();
+  ks->set_trainer(req->trainer());
+  *ks->mutable_kernel() = KernelToProto(*kernel);
+  ks->set_weight(req->weight() == 0 ? 1.0 : req->weight());
+  ks->set_description(kernel->Describe());
+  ks->set_author(who->subject.empty() ? who->token_id : who->subject);
+  *resp->mutable_setting() = *ks;
+  auto* reactor = ctx->DefaultReactor();
+  auto seq = (*rt)->AppendRecord(std::move(r), [reactor, resp](const absl::Status& s,
+                                                               const v1::Record& rec) {
+    resp->set_sequence(rec.sequence());
+    reactor->Finish(ToGrpc(s));
+  });
+  if (!seq.ok()) reactor->Finish(ToGrpc(seq.status()));
+  return reactor;
+}
+
+namespace {
+
+// Streams messages produced by a worker thread. The worker calls Push() and
+// then End(); the reactor writes one message at a time.
+class ReplayReactor final : public grpc::ServerWriteReactor<v1::ReplayProgress> {
+ public:
+  void Push(v1::ReplayProgress m) {
+    std::lock_guard<std::mutex> lock(mu_);
+    queue_.push_back(std::move(m));
+    PumpLocked();
+  }
+  void End(grpc::Status status) {
+    std::lock_guard<std::mutex> lock(mu_);
+    end_ = std::move(status);
+    PumpLocked();
+  }
+  bool cancelled() const { return cancelled_.load(); }
+  // The worker thread; joined in OnDone.
+  std::thread worker;
+
+  void OnWriteDone(bool ok) override {
+    std::lock_guard<std::mutex> lock(mu_);
+    writing_ = false;
+    if (!ok) cancelled_ = true;
+    PumpLocked();
+  }
+  void OnCancel() override { cancelled_ = true; }
+  void OnDone() override {
+    if (worker.joinable()) worker.join();
+    delete this;
+  }
+
+ private:
+  void PumpLocked() {
+    if (writing_ || finished_) return;
+    if (!queue_.empty() && !cancelled_) {
+      current_ = std::move(queue_.front());
+      queue_.pop_front();
+      writing_ = true;
+      StartWrite(&current_);
+      return;
+    }
+    if (end_) {
+      finished_ = true;
+      Finish(cancelled_ ? grpc::Status::CANCELLED : *end_);
+    }
+  }
+
+  std::mutex mu_;
+  std::deque<v1::ReplayProgress> queue_;  // GUARDED_BY(mu_)
+  v1::ReplayProgress current_;            // being written
+  bool writing_ = false;
+  bool finished_ = false;
+  std::optional<grpc::Status> end_;
+  std::atomic<bool> cancelled_{false};
+};
+
+bool ValidSetName(const std::string& name) {
+  if (name.empty() || name.size() > 64 || name == "live") return false;
+  for (char c : name) {
+    if (!(std::isalnum(static_cast<unsigned char>(c)) || c == '-' || c == '_' || c == '.')) {
+      return false;
+    }
+  }
+  return true;
+}
+
+// The replay itself: recompute, compare, store. Runs on the worker thread.
+absl::Status RunReplay(SessionHub* hub, const v1::ReplayRequest& req, ReplayReactor* out) {
+  CreditDriver::Overrides overrides;
+  if (!req.kernel().empty()) {
+    auto k = ParseKernel(req.kernel());
+    if (!k.ok()) return k.status();
+    overrides.all = *k;
+  }
+  for (const auto& [trainer, text] : req.trainer_kernels()) {
+    auto k = ParseKernel(text);
+    if (!k.ok()) return k.status();
+    overrides.trainers.insert_or_assign(trainer, *k);
+  }
+  ledger::Ledger* ledger = hub->ledger();
+  const uint64_t total = ledger->CommittedSequence(req.session_id());
+  CreditDriver driver(std::move(overrides));
+  std::vector<v1::Record> derived;
+  std::map<uint64_t, double> live;  // step sequence -> live label value
+  auto last_report = std::chrono::steady_clock::now();
+  for (uint64_t next = 1; next <= total;) {
+    if (out->cancelled()) return absl::CancelledError("replay cancelled");
+    auto chunk = ledger->Read(req.session_id(), next, 4096);
+    if (!chunk.ok()) return chunk.status();
+    if (chunk->empty()) break;
+    for (const v1::Record& r : *chunk) {
+      if (r.sequence() > total) break;
+      if (r.has_label()) live[r.label().step_sequence()] = r.label().value();
+      driver.Feed(r, &derived);
+    }
+    next = chunk->back().sequence() + 1;
+    if (std::chrono::steady_clock::now() - last_report > std::chrono::milliseconds(200)) {
+      v1::ReplayProgress p;
+      p.set_done(std::min(next - 1, total));
+      p.set_total(total);
+      out->Push(std::move(p));
+      last_report = std::chrono::steady_clock::now();
+    }
+  }
+  v1::ReplayComparison cmp;
+  std::map<uint64_t, double> replayed;
+  for (const v1::Record& r : derived) {
+    if (r.has_label()) replayed[r.label().step_sequence()] = r.label().value();
+    if (r.has_credit()) cmp.set_credits(cmp.credits() + 1);
+    if (r.has_unmatched()) cmp.set_unmatched(cmp.unmatched() + 1);
+  }
+  double sum_abs = 0;
+  for (const auto& [step, value] : replayed) {
+    auto it = live.find(step);
+    if (it == live.end()) {
+      cmp.set_only_replay(cmp.only_replay() + 1);
+      continue;
+    }
+    cmp.set_labels(cmp.labels() + 1);
+    const double d = std::fabs(value - it->second);
+    sum_abs += d;
+    cmp.set_max_abs_difference(std::max(cmp.max_abs_difference(), d));
+    if (d > 1e-12) cmp.set_changed(cmp.changed() + 1);
+    if ((value > 0 && it->second < 0) || (value < 0 && it->second > 0)) {
+      cmp.set_sign_flips(cmp.sign_flips() + 1);
+    }
+  }
+  for (const auto& [step, value] : live) {
+    if (!replayed.count(step)) cmp.set_only_live(cmp.only_live() + 1);
+  }
+  if (cmp.labels() > 0) cmp.set_mean_abs_difference(sum_abs / static_cast<double>(cmp.labels()));
+  const std::string spec = Cat("replay of sequences 1..", total, " with ", driver.Describe());
+  if (absl::Status s =
+          ledger->PutDerivedSet(req.session_id(), req.name(), spec, derived, req.overwrite());
+      !s.ok()) {
+    return s;
+  }
+  v1::ReplayProgress last;
+  last.set_done(total);
+  last.set_total(total);
+  last.set_finished(true);
+  *last.mutable_result() = cmp;
+  out->Push(std::move(last));
+  TM_LOG(kInfo) << "replay '" << req.name() << "' of " << req.session_id() << ": "
+                << cmp.changed() << " of " << cmp.labels() << " labels changed";
+  return absl::OkStatus();
+}
+
+}  // namespace
+
+grpc::ServerWriteReactor<v1::ReplayProgress>* AdminService::Replay(
+    grpc::CallbackServerContext* ctx, const v1::ReplayRequest* req) {
+  auto* reactor = new ReplayReactor();
+  auto who = AuthenticateContext(*ctx, *auth_);
+  absl::Status s = who.status();
+  if (s.ok()) s = Authorize(*who, req->session_id(), {v1::ROLE_ADMIN});
+  if (s.ok() && !ValidSetName(req->name())) {
+    s = absl::InvalidArgumentError(
+        "name the derived set: 1-64 of [A-Za-z0-9._-], not 'live'");
+  }
+  if (s.ok()) s = hub_->Get(req->session_id()).status();
+  if (!s.ok()) {
+    reactor->End(ToGrpc(s));
+    return reactor;
+  }
+  reactor->worker = std::thread([hub = hub_, request = *req, reactor] {
+    absl::Status st = RunReplay(hub, request, reactor);
+    reactor->End(ToGrpc(st));
+  });
   return reactor;
 }
 

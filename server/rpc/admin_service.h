@@ -38,6 +38,11 @@ class AdminService final : public tickmark::v1::SessionAdmin::CallbackService {
   grpc::ServerUnaryReactor* AddMarker(grpc::CallbackServerContext* ctx,
                                       const tickmark::v1::AddMarkerRequest* req,
                                       tickmark::v1::AddMarkerResponse* resp) override;
+  grpc::ServerUnaryReactor* SetKernel(grpc::CallbackServerContext* ctx,
+                                      const tickmark::v1::SetKernelRequest* req,
+                                      tickmark::v1::SetKernelResponse* resp) override;
+  grpc::ServerWriteReactor<tickmark::v1::ReplayProgress>* Replay(
+      grpc::CallbackServerContext* ctx, const tickmark::v1::ReplayRequest* req) override;
 
  private:
   SessionHub* hub_;         // not owned

@@ -421,6 +421,7 @@ class IngestReactor final : public grpc::ServerBidiReactor<typename Side::In, v1
   int64_t outstanding_since_mono_ = 0;
   std::map<uint64_t, SessionTime> sent_probes_;  // probe id -> T1
   uint64_t rejected_probes_ = 0;
+  int64_t last_step_start_ns_ = 0;   // agent clock; steps must move forward
 };
 
 template <>
@@ -457,6 +458,8 @@ void IngestReactor<TrainerSide>::HandlePayloadLocked(const In& message, SessionT
   fb->set_event_session_ns(event.nanos());
   fb->set_uncertainty_ns(uncertainty.nanos());
   fb->set_input(f.input());
+  // Kept either way; a late one may find its steps already settled.
+  fb->set_late(arrival - event > runtime_->allowed_lateness());
   AppendLocked(std::move(r));
 }
 
@@ -495,10 +498,15 @@ void IngestReactor<AgentSide>::HandlePayloadLocked(const In& message, SessionTim
   if (s.action().size() > 128) {
     return Reject(cseq, absl::InvalidArgumentError("action name over 128 bytes"));
   }
+  if (s.start_agent_ns() <= last_step_start_ns_) {
+    return Reject(cseq, absl::InvalidArgumentError(
+                            "a step must start after the previous step of this agent"));
+  }
   auto [start, uncertainty] = MapLocked(s.start_agent_ns());
   if (absl::Status st = CheckPlausibleLocked(start, uncertainty, arrival); !st.ok()) {
     return Reject(cseq, st);
   }
+  last_step_start_ns_ = s.start_agent_ns();
   v1::Record r;
   r.set_written_session_ns(arrival.nanos());
   v1::Step* step = r.mutable_step();
@@ -510,7 +518,12 @@ void IngestReactor<AgentSide>::HandlePayloadLocked(const In& message, SessionTim
   step->set_start_agent_ns(s.start_agent_ns());
   step->set_end_agent_ns(s.end_agent_ns());
   step->set_start_session_ns(start.nanos());
-  if (s.end_agent_ns() != 0) step->set_end_session_ns(MapLocked(s.end_agent_ns()).first.nanos());
+  SessionTime last_known = start;
+  if (s.end_agent_ns() != 0) {
+    last_known = MapLocked(s.end_agent_ns()).first;
+    step->set_end_session_ns(last_known.nanos());
+  }
+  step->set_late(arrival - last_known > runtime_->allowed_lateness());
   step->set_arrival_session_ns(arrival.nanos());
   step->set_uncertainty_ns(uncertainty.nanos());
   step->set_action(s.action());

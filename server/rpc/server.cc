@@ -107,7 +107,8 @@ absl::StatusOr<std::unique_ptr<TickmarkServer>> TickmarkServer::Start(
   auto ledger = ledger::SqliteLedger::Open(lo);
   if (!ledger.ok()) return ledger.status();
   s->ledger_ = std::move(*ledger);
-  s->hub_ = std::make_unique<SessionHub>(s->ledger_.get(), &s->mono_, &SystemUtcNowNanos);
+  s->hub_ = std::make_unique<SessionHub>(s->ledger_.get(), &s->mono_, &SystemUtcNowNanos,
+                                         options.sessions);
   s->auth_ = std::make_unique<TokenAuthority>(s->ledger_.get());
   if (absl::Status st = EnsureOperatorToken(s->auth_.get(), s->operator_token_path_,
                                             SystemUtcNowNanos());

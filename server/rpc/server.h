@@ -28,6 +28,7 @@ struct ServerOptions {
   std::string tls_key_file;
   bool allow_insecure_remote = false;
   LiveService::Options live;
+  SessionHub::Options sessions;
 };
 
 class TickmarkServer {

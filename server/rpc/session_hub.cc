@@ -12,6 +12,7 @@ namespace tickmark::rpc {
 
 using tickmark::v1::Ack;
 using tickmark::v1::Record;
+namespace v1 = tickmark::v1;
 
 std::string ReadBootId() {
   std::ifstream in("/proc/sys/kernel/random/boot_id");
@@ -147,8 +148,77 @@ absl::StatusOr<uint64_t> SessionRuntime::LastClientSequence(const std::string& c
 
 void SessionRuntime::Fanout(const absl::Status& status, const std::vector<Record>& records) {
   if (!status.ok()) return;
-  std::lock_guard<std::mutex> lock(streams_mu_);
-  for (RecordSink* sink : sinks_) sink->OnCommitted(records);
+  {
+    std::lock_guard<std::mutex> lock(streams_mu_);
+    for (RecordSink* sink : sinks_) sink->OnCommitted(records);
+  }
+  Credit(records);
+}
+
+Duration SessionRuntime::allowed_lateness() const {
+  return Duration::Nanos(lateness_ns_.load());
+}
+
+void SessionRuntime::NoteKernel(const Record& r) {
+  if (r.has_kernel() && r.kernel().trainer().empty()) {
+    lateness_ns_.store(r.kernel().allowed_lateness_ns());
+  }
+}
+
+void SessionRuntime::Credit(const std::vector<Record>& records) {
+  std::vector<Record> derived;
+  {
+    std::lock_guard<std::mutex> lock(credit_mu_);
+    for (const Record& r : records) {
+      NoteKernel(r);
+      credit_.Feed(r, &derived);
+    }
+  }
+  if (derived.empty()) return;
+  // Derived records get their own sequences after what is queued; their
+  // commit comes back through Fanout (to subscribers; the engine skips them).
+  auto s = ledger_->Append(id_, std::move(derived),
+                           [this](const absl::Status& st, const std::vector<Record>& committed) {
+                             Fanout(st, committed);
+                           });
+  if (!s.ok()) {
+    TM_LOG(kError) << "session " << id_ << ": credit not written: " << s.status().message();
+  }
+}
+
+absl::Status SessionRuntime::Rebuild() {
+  std::lock_guard<std::mutex> lock(credit_mu_);
+  std::vector<Record> derived;
+  std::set<std::tuple<int, uint64_t, uint64_t>> stored;
+  for (uint64_t next = 1;;) {
+    auto chunk = ledger_->Read(id_, next, 4096);
+    if (!chunk.ok()) return chunk.status();
+    if (chunk->empty()) break;
+    for (const Record& r : *chunk) {
+      NoteKernel(r);
+      if (CreditDriver::IsInput(r)) {
+        credit_.Feed(r, &derived);
+      } else {
+        stored.insert(CreditDriver::DerivedKey(r));
+      }
+    }
+    next = chunk->back().sequence() + 1;
+  }
+  std::vector<Record> missing;
+  for (Record& r : derived) {
+    if (!stored.count(CreditDriver::DerivedKey(r))) missing.push_back(std::move(r));
+  }
+  if (missing.empty()) return absl::OkStatus();
+  TM_LOG(kInfo) << "session " << id_ << ": writing " << missing.size()
+                << " derived records lost in a stop";
+  auto s = ledger_->Append(id_, std::move(missing),
+                           [this](const absl::Status& st, const std::vector<Record>& committed) {
+                             std::lock_guard<std::mutex> l(streams_mu_);
+                             if (st.ok()) {
+                               for (RecordSink* sink : sinks_) sink->OnCommitted(committed);
+                             }
+                           });
+  return s.ok() ? absl::OkStatus() : s.status();
 }
 
 void SessionRuntime::AddStream(StreamHandle* stream) {
@@ -189,8 +259,12 @@ void SessionRuntime::EndStreamsOf(const std::string& token_id, const grpc::Statu
 }
 
 SessionHub::SessionHub(ledger::Ledger* ledger, const MonotonicSource* mono,
-                       int64_t (*utc_now_ns)())
-    : ledger_(ledger), mono_(mono), utc_now_ns_(utc_now_ns), boot_id_(ReadBootId()) {}
+                       int64_t (*utc_now_ns)(), Options options)
+    : ledger_(ledger),
+      mono_(mono),
+      utc_now_ns_(utc_now_ns),
+      boot_id_(ReadBootId()),
+      options_(std::move(options)) {}
 
 absl::StatusOr<std::shared_ptr<SessionRuntime>> SessionHub::Get(const std::string& id) {
   std::lock_guard<std::mutex> lock(mu_);
@@ -212,6 +286,7 @@ absl::StatusOr<std::shared_ptr<SessionRuntime>> SessionHub::Get(const std::strin
     reanchored = true;
   }
   auto runtime = std::make_shared<SessionRuntime>(*row, mono_, ledger_);
+  if (absl::Status s = runtime->Rebuild(); !s.ok()) return s;
   sessions_[id] = runtime;
   if (reanchored && row->open) {
     Record r;
@@ -225,7 +300,14 @@ absl::StatusOr<std::shared_ptr<SessionRuntime>> SessionHub::Get(const std::strin
 }
 
 absl::StatusOr<std::shared_ptr<SessionRuntime>> SessionHub::Create(const std::string& title,
-                                                                   const std::string& study) {
+                                                                   const std::string& study,
+                                                                   const std::string& kernel) {
+  DelayKernel k = options_.default_kernel;
+  if (!kernel.empty()) {
+    auto parsed = ParseKernel(kernel);
+    if (!parsed.ok()) return parsed.status();
+    k = *parsed;
+  }
   ledger::SessionRow row;
   row.id = "s-" + RandomHex(4);
   row.title = title;
@@ -245,6 +327,16 @@ absl::StatusOr<std::shared_ptr<SessionRuntime>> SessionHub::Create(const std::st
   r.mutable_session_event()->set_event(tickmark::v1::SessionEvent::KIND_OPENED);
   r.mutable_session_event()->set_detail(title);
   if (auto s = runtime->AppendRecord(std::move(r)); !s.ok()) return s.status();
+  // The session default kernel: the first thing the credit engine reads.
+  Record ks;
+  ks.set_written_session_ns(row.opened_session_ns);
+  v1::KernelSetting* setting = ks.mutable_kernel();
+  *setting->mutable_kernel() = KernelToProto(k);
+  setting->set_weight(1.0);
+  setting->set_description(k.Describe());
+  setting->set_author("session default");
+  setting->set_allowed_lateness_ns(options_.allowed_lateness.nanos());
+  if (auto s = runtime->AppendRecord(std::move(ks)); !s.ok()) return s.status();
   return runtime;
 }
 

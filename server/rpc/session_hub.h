@@ -19,11 +19,14 @@
 #include <map>
 #include <memory>
 #include <mutex>
+#include <atomic>
 #include <set>
 #include <string>
 
+#include "server/core/delay_kernel.h"
 #include "server/core/time.h"
 #include "server/ledger/ledger.h"
+#include "server/rpc/credit_driver.h"
 #include "tickmark/v1/stream.pb.h"
 
 namespace tickmark::rpc {
@@ -85,6 +88,14 @@ class SessionRuntime {
   void AddSink(RecordSink* sink);
   void RemoveSink(RecordSink* sink);
 
+  // How late a record may arrive and still be credited (fixed at creation).
+  Duration allowed_lateness() const;
+
+  // Feeds the credit engine with everything the ledger holds for this
+  // session and writes the derived records that are missing (after a
+  // restart). Call once, before the runtime is shared.
+  absl::Status Rebuild();
+
   // Marks the session closed and ends every stream with `why`.
   void MarkClosed(const grpc::Status& why);
   // Ends the streams that use this token.
@@ -98,6 +109,10 @@ class SessionRuntime {
     std::map<uint64_t, uint64_t> in_flight;  // client seq -> session seq, not yet committed
   };
   void Fanout(const absl::Status& status, const std::vector<tickmark::v1::Record>& records);
+  // Feeds committed input records to the credit engine and appends what it
+  // derives. Runs on the ledger thread, in sequence order.
+  void Credit(const std::vector<tickmark::v1::Record>& records);
+  void NoteKernel(const tickmark::v1::Record& r);
 
   const std::string id_;
   const SessionClock clock_;
@@ -107,6 +122,10 @@ class SessionRuntime {
   bool open_;                                      // GUARDED_BY(mu_)
   std::map<std::string, ClientSeqState> clients_;  // GUARDED_BY(mu_)
 
+  std::mutex credit_mu_;
+  CreditDriver credit_;             // GUARDED_BY(credit_mu_)
+  std::atomic<int64_t> lateness_ns_{0};  // from the session's default kernel record
+
   std::mutex streams_mu_;
   std::set<StreamHandle*> streams_;  // GUARDED_BY(streams_mu_)
   std::set<RecordSink*> sinks_;      // GUARDED_BY(streams_mu_)
@@ -115,14 +134,22 @@ class SessionRuntime {
 // All sessions of the server. Thread-safe.
 class SessionHub {
  public:
-  SessionHub(ledger::Ledger* ledger, const MonotonicSource* mono, int64_t (*utc_now_ns)());
+  struct Options {
+    // Kernel of new sessions that name none.
+    DelayKernel default_kernel = *DelayKernel::Uniform(Duration::Millis(200), Duration::Millis(4000));
+    Duration allowed_lateness = Duration::Seconds(2);
+  };
+  SessionHub(ledger::Ledger* ledger, const MonotonicSource* mono, int64_t (*utc_now_ns)(),
+             Options options);
 
   // The runtime of a session, loaded from the ledger on first use.
   // NOT_FOUND for an unknown session.
   absl::StatusOr<std::shared_ptr<SessionRuntime>> Get(const std::string& id);
-  // Creates and opens a session anchored to UTC now.
+  // Creates and opens a session anchored to UTC now, with `kernel` (text
+  // form; empty: the server default) as its default delay kernel.
   absl::StatusOr<std::shared_ptr<SessionRuntime>> Create(const std::string& title,
-                                                         const std::string& study);
+                                                         const std::string& study,
+                                                         const std::string& kernel = "");
   // Closes a session: records the event, ends its streams.
   absl::Status Close(const std::string& id);
   // Time on the server's own timeline (for tokens of no session).
@@ -134,6 +161,7 @@ class SessionHub {
   const MonotonicSource* const mono_;
   int64_t (*const utc_now_ns_)();
   const std::string boot_id_;  // this boot's kernel id
+  const Options options_;
 
   std::mutex mu_;
   std::map<std::string, std::shared_ptr<SessionRuntime>> sessions_;  // GUARDED_BY(mu_)

@@ -171,11 +171,36 @@ CREATE TABLE label (
   PRIMARY KEY (session_id, derived_set, seq)
 ) WITHOUT ROWID;
 
+-- A feedback (or a step, step_seq set) that got no credit, and why.
 CREATE TABLE unmatched (
   session_id   TEXT NOT NULL, seq INTEGER NOT NULL,
-  feedback_seq INTEGER NOT NULL,
+  derived_set  TEXT NOT NULL DEFAULT 'live',
+  feedback_seq INTEGER,
   trainer      TEXT NOT NULL,
+  step_seq     INTEGER,
+  agent        TEXT NOT NULL,
   reason       TEXT NOT NULL,
+  PRIMARY KEY (session_id, derived_set, seq)
+) WITHOUT ROWID;
+
+-- Derived sets made by replays: the kernels they used. In credit, label and
+-- unmatched rows of a derived set, seq numbers the rows within the set.
+CREATE TABLE derived_set (
+  session_id   TEXT NOT NULL,
+  name         TEXT NOT NULL,
+  created_utc  TEXT NOT NULL DEFAULT (strftime('%Y-%m-%dT%H:%M:%SZ','now')),
+  spec         TEXT NOT NULL,
+  PRIMARY KEY (session_id, name)
+) WITHOUT ROWID;
+
+-- The delay kernel and weight in force for a trainer from this record on
+-- (trainer '' is the session default).
+CREATE TABLE kernel_setting (
+  session_id  TEXT NOT NULL, seq INTEGER NOT NULL,
+  trainer     TEXT NOT NULL,
+  description TEXT NOT NULL,
+  weight      REAL NOT NULL,
+  author      TEXT NOT NULL,
   PRIMARY KEY (session_id, seq)
 ) WITHOUT ROWID;
 

@@ -25,6 +25,8 @@ absl::Status SqlError(sqlite3* db, std::string_view what) {
   return absl::InternalError(msg);
 }
 
+}  // namespace
+
 // A prepared statement, finalised on destruction. Bind indexes start at 1.
 class Stmt {
  public:
@@ -106,6 +108,8 @@ class Stmt {
   absl::Status status_;
   int next_ = 1;
 };
+
+namespace {
 
 absl::Status Exec(sqlite3* db, const char* sql) {
   char* err = nullptr;
@@ -221,14 +225,6 @@ std::string JsonEscape(std::string_view s) {
   return out;
 }
 
-std::string Serialize(const Record& r) {
-  Record body = r;
-  body.clear_hash();
-  std::string bytes;
-  body.SerializeToString(&bytes);
-  return bytes;
-}
-
 SessionRow SessionFromRow(const Stmt& q) {
   SessionRow row;
   row.id = q.Text(0);
@@ -316,6 +312,7 @@ void SqliteLedger::Close() {
   }
   work_cv_.notify_all();
   if (writer_.joinable()) writer_.join();
+  statements_.reset();  // finalise before closing the connection
   std::lock_guard<std::mutex> lock(read_mu_);
   if (reader_db_ != nullptr) sqlite3_close(reader_db_);
   if (writer_db_ != nullptr) {
@@ -469,14 +466,62 @@ void SqliteLedger::WriterLoop() {
   }
 }
 
+// Statements are prepared once per writer connection; only the writer
+// thread uses them.
+struct SqliteLedger::Statements {
+  std::map<std::string, std::unique_ptr<Stmt>> cache;
+};
+
+Stmt& SqliteLedger::Prepared(const char* sql) {
+  if (!statements_) statements_ = std::make_unique<Statements>();
+  auto& s = statements_->cache[sql];
+  if (!s) s = std::make_unique<Stmt>(writer_db_, sql);
+  return s->Reset();
+}
+
+absl::Status SqliteLedger::InsertDerivedRow(std::string_view set, uint64_t seq, const Record& r) {
+  const std::string& sid = r.session_id();
+  switch (r.body_case()) {
+    case Record::kCredit: {
+      const auto& c = r.credit();
+      return Prepared("INSERT INTO credit VALUES (?,?,?,?,?,?,?,?,?,?,?,?)")
+          .Bind(sid).Bind(seq).Bind(set).Bind(c.feedback_sequence()).Bind(c.step_sequence())
+          .Bind(c.trainer()).Bind(c.agent()).Bind(c.step_id()).Bind(c.credit()).Bind(c.value())
+          .Bind(c.weight()).Bind(c.kernel())
+          .Run();
+    }
+    case Record::kLabel: {
+      const auto& l = r.label();
+      std::ostringstream parts;
+      parts.precision(17);
+      parts << "[";
+      for (int i = 0; i < l.parts_size(); ++i) {
+        const auto& p = l.parts(i);
+        parts << (i ? "," : "") << "{\"trainer\":\"" << JsonEscape(p.trainer())
+              << "\",\"value\":" << p.value() << ",\"weight\":" << p.weight() << "}";
+      }
+      parts << "]";
+      return Prepared("INSERT INTO label VALUES (?,?,?,?,?,?,?,?,?)")
+          .Bind(sid).Bind(seq).Bind(set).Bind(l.step_sequence()).Bind(l.agent())
+          .Bind(l.step_id()).Bind(l.value()).Bind(l.weight()).Bind(parts.str())
+          .Run();
+    }
+    case Record::kUnmatched: {
+      const auto& u = r.unmatched();
+      return Prepared("INSERT INTO unmatched VALUES (?,?,?,?,?,?,?,?)")
+          .Bind(sid).Bind(seq).Bind(set)
+          .BindOptional(static_cast<int64_t>(u.feedback_sequence()))
+          .Bind(u.trainer()).BindOptional(static_cast<int64_t>(u.step_sequence()))
+          .Bind(u.agent()).Bind(u.reason())
+          .Run();
+    }
+    default:
+      return absl::InvalidArgumentError("a derived set holds credit, label and unmatched records");
+  }
+}
+
 absl::Status SqliteLedger::InsertRecord(const Record& r) {
-  // Statements are prepared once per writer; the writer is the only user.
-  static thread_local std::map<std::string, std::unique_ptr<Stmt>> cache;
-  auto stmt = [&](const char* sql) -> Stmt& {
-    auto& s = cache[sql];
-    if (!s) s = std::make_unique<Stmt>(writer_db_, sql);
-    return s->Reset();
-  };
+  auto stmt = [this](const char* sql) -> Stmt& { return Prepared(sql); };
   const std::string& sid = r.session_id();
   const auto seq = r.sequence();
   auto key = ClientKeyOf(r);
@@ -490,7 +535,7 @@ absl::Status SqliteLedger::InsertRecord(const Record& r) {
   } else {
     journal.BindNull().BindNull();
   }
-  if (absl::Status s = journal.BindBlob(Serialize(r)).BindBlob(r.hash()).Run(); !s.ok()) return s;
+  if (absl::Status s = journal.BindBlob(CanonicalBody(r)).BindBlob(r.hash()).Run(); !s.ok()) return s;
 
   switch (r.body_case()) {
     case Record::kFeedback: {
@@ -553,34 +598,15 @@ absl::Status SqliteLedger::InsertRecord(const Record& r) {
           .Bind(seq).Bind(r.written_session_ns()).Bind(r.written_session_ns())
           .Run();
     }
-    case Record::kCredit: {
-      const auto& c = r.credit();
-      return stmt("INSERT INTO credit VALUES (?,?,'live',?,?,?,?,?,?,?,?,?)")
-          .Bind(sid).Bind(seq).Bind(c.feedback_sequence()).Bind(c.step_sequence())
-          .Bind(c.trainer()).Bind(c.agent()).Bind(c.step_id()).Bind(c.credit()).Bind(c.value())
-          .Bind(c.weight()).Bind(c.kernel())
-          .Run();
-    }
-    case Record::kLabel: {
-      const auto& l = r.label();
-      std::ostringstream parts;
-      parts.precision(17);
-      parts << "[";
-      for (int i = 0; i < l.parts_size(); ++i) {
-        const auto& p = l.parts(i);
-        parts << (i ? "," : "") << "{\"trainer\":\"" << JsonEscape(p.trainer())
-              << "\",\"value\":" << p.value() << ",\"weight\":" << p.weight() << "}";
-      }
-      parts << "]";
-      return stmt("INSERT INTO label VALUES (?,?,'live',?,?,?,?,?,?)")
-          .Bind(sid).Bind(seq).Bind(l.step_sequence()).Bind(l.agent()).Bind(l.step_id())
-          .Bind(l.value()).Bind(l.weight()).Bind(parts.str())
-          .Run();
-    }
-    case Record::kUnmatched: {
-      const auto& u = r.unmatched();
-      return stmt("INSERT INTO unmatched VALUES (?,?,?,?,?)")
-          .Bind(sid).Bind(seq).Bind(u.feedback_sequence()).Bind(u.trainer()).Bind(u.reason())
+    case Record::kCredit:
+    case Record::kLabel:
+    case Record::kUnmatched:
+      return InsertDerivedRow("live", seq, r);
+    case Record::kKernel: {
+      const auto& k = r.kernel();
+      return stmt("INSERT INTO kernel_setting VALUES (?,?,?,?,?,?)")
+          .Bind(sid).Bind(seq).Bind(k.trainer()).Bind(k.description()).Bind(k.weight())
+          .Bind(k.author())
           .Run();
     }
     case Record::kSessionEvent: {
@@ -781,7 +807,7 @@ absl::StatusOr<RecordCounts> SqliteLedger::Counts(std::string_view session_id) {
          " (SELECT COUNT(*) FROM client WHERE session_id = ?1),"
          " (SELECT COUNT(*) FROM feedback WHERE session_id = ?1 AND late)"
          "  + (SELECT COUNT(*) FROM step WHERE session_id = ?1 AND late),"
-         " (SELECT COUNT(*) FROM unmatched WHERE session_id = ?1)");
+         " (SELECT COUNT(*) FROM unmatched WHERE session_id = ?1 AND derived_set = 'live')");
   if (!q.status().ok()) return q.status();
   auto row = q.Bind(session_id).Step();
   if (!row.ok()) return row.status();
@@ -794,6 +820,38 @@ absl::StatusOr<RecordCounts> SqliteLedger::Counts(std::string_view session_id) {
   c.late = static_cast<uint64_t>(q.Int(5));
   c.unmatched = static_cast<uint64_t>(q.Int(6));
   return c;
+}
+
+absl::Status SqliteLedger::PutDerivedSet(std::string_view session_id, std::string_view name,
+                                         std::string_view spec, const std::vector<Record>& records,
+                                         bool overwrite) {
+  return RunSync([&, this](sqlite3* db) -> absl::Status {
+    {
+      Stmt q(db, "SELECT COUNT(*) FROM derived_set WHERE session_id = ? AND name = ?");
+      auto row = q.Bind(session_id).Bind(name).Step();
+      if (!row.ok()) return row.status();
+      if (q.Int(0) > 0 && !overwrite) {
+        return absl::AlreadyExistsError(Cat("derived set '", name, "' exists in session ",
+                                            session_id, " (ask to overwrite it)"));
+      }
+    }
+    for (const char* sql : {"DELETE FROM credit WHERE session_id = ? AND derived_set = ?",
+                            "DELETE FROM label WHERE session_id = ? AND derived_set = ?",
+                            "DELETE FROM unmatched WHERE session_id = ? AND derived_set = ?",
+                            "DELETE FROM derived_set WHERE session_id = ? AND name = ?"}) {
+      Stmt d(db, sql);
+      if (absl::Status st = d.Bind(session_id).Bind(name).Run(); !st.ok()) return st;
+    }
+    Stmt ins(db, "INSERT INTO derived_set (session_id, name, spec) VALUES (?, ?, ?)");
+    if (absl::Status st = ins.Bind(session_id).Bind(name).Bind(spec).Run(); !st.ok()) return st;
+    uint64_t seq = 0;
+    for (const Record& r : records) {
+      Record copy = r;
+      copy.set_session_id(std::string(session_id));
+      if (absl::Status st = InsertDerivedRow(name, ++seq, copy); !st.ok()) return st;
+    }
+    return absl::OkStatus();
+  });
 }
 
 uint64_t SqliteLedger::CommittedSequence(std::string_view session_id) {

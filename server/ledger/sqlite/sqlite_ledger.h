@@ -29,6 +29,8 @@ struct sqlite3;
 
 namespace tickmark::ledger {
 
+class Stmt;
+
 class SqliteLedger final : public Ledger {
  public:
   struct Options {
@@ -66,6 +68,10 @@ class SqliteLedger final : public Ledger {
                                               std::string_view client_id) override;
   absl::StatusOr<RecordCounts> Counts(std::string_view session_id) override;
   uint64_t CommittedSequence(std::string_view session_id) override;
+  absl::Status PutDerivedSet(std::string_view session_id, std::string_view name,
+                             std::string_view spec,
+                             const std::vector<tickmark::v1::Record>& records,
+                             bool overwrite) override;
   void Close() override;
 
  private:
@@ -90,6 +96,12 @@ class SqliteLedger final : public Ledger {
   void WriterLoop();
   absl::Status RunSync(std::function<absl::Status(sqlite3*)> op);
   absl::Status InsertRecord(const tickmark::v1::Record& record);
+  // Inserts a credit, label or unmatched row of derived set `set`.
+  absl::Status InsertDerivedRow(std::string_view set, uint64_t seq,
+                                const tickmark::v1::Record& record);
+  struct Statements;
+  // A cached prepared statement on the writer connection (writer thread only).
+  Stmt& Prepared(const char* sql);
 
   const Options options_;
   sqlite3* const writer_db_;  // used only on the writer thread (and in Open/Close)
@@ -104,6 +116,7 @@ class SqliteLedger final : public Ledger {
   bool closing_ = false;                        // GUARDED_BY(mu_)
   absl::Status failed_;                         // GUARDED_BY(mu_): sticky write failure
   std::thread writer_;                          // runs WriterLoop
+  std::unique_ptr<Statements> statements_;      // writer thread only
 };
 
 }  // namespace tickmark::ledger
