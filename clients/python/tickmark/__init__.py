@@ -1,0 +1,17 @@
+"""tickmark for Python agents: publish steps, receive credit and labels.
+
+    import tickmark
+    with tickmark.Agent("127.0.0.1:7461", token_file="agent.token") as agent:
+        agent.step("north", state=b"3,4")
+        for label in agent.labels():
+            print(label.step_id, label.value, label.weight)
+
+Needs Debian's python3-grpcio and python3-protobuf; numpy is optional.
+"""
+
+from tickmark._stream import Rejected, StreamError
+from tickmark.agent import Agent, run_episode
+from tickmark.subscription import KINDS, Subscription
+
+__all__ = ["Agent", "KINDS", "Rejected", "StreamError", "Subscription", "run_episode"]
+__version__ = "0.1.0"

@@ -1,0 +1,211 @@
+"""A reconnecting trainer or agent stream (not part of the API; see Agent).
+
+Every message is delivered exactly once in effect: it stays in an
+unacknowledged queue until the server acknowledges it, is resent in order
+after a reconnect, and the server deduplicates by (client id, client
+sequence). The server's clock probes are answered at once from the same
+clock that stamps the messages.
+"""
+
+from __future__ import annotations
+
+import collections
+import queue
+import random
+import threading
+import time
+from typing import Callable, Dict, Optional
+
+import grpc
+
+from tickmark.v1 import records_pb2, stream_pb2, stream_pb2_grpc
+
+# Codes after which reconnecting cannot help.
+_PERMANENT = {
+    grpc.StatusCode.UNAUTHENTICATED,
+    grpc.StatusCode.PERMISSION_DENIED,
+    grpc.StatusCode.NOT_FOUND,
+    grpc.StatusCode.FAILED_PRECONDITION,
+    grpc.StatusCode.INVALID_ARGUMENT,
+}
+
+
+class StreamError(RuntimeError):
+    """The stream stopped for good (bad token, closed session, ...)."""
+
+    def __init__(self, code: grpc.StatusCode, details: str):
+        super().__init__(f"{code.name}: {details}")
+        self.code = code
+        self.details = details
+
+
+class Rejected(RuntimeError):
+    """The server refused one message (its Ack carried an error code)."""
+
+
+class ReconnectingStream:
+    """One Train or Act stream, kept up in a background thread."""
+
+    def __init__(self, channel: grpc.Channel, kind: str, token: str, client_id: str,
+                 source_kind: int, description: str, software: str,
+                 clock: Callable[[], int] = time.monotonic_ns,
+                 on_ack: Optional[Callable[[stream_pb2.Ack], None]] = None):
+        stub = stream_pb2_grpc.LiveStub(channel)
+        self._call = stub.Train if kind == "train" else stub.Act
+        self._message = stream_pb2.TrainerMessage if kind == "train" else stream_pb2.AgentMessage
+        self._field = "feedback" if kind == "train" else "step"
+        self._hello = stream_pb2.Hello(token=token, client_id=client_id, source_kind=source_kind,
+                                       source_description=description, software=software)
+        self._clock = clock
+        self._on_ack = on_ack
+        self._lock = threading.Condition()
+        self._pending: "collections.OrderedDict[int, object]" = collections.OrderedDict()
+        self._unnumbered: collections.deque = collections.deque()
+        self._next_seq: Optional[int] = None  # known after the first Welcome
+        self._outbox: Optional[queue.Queue] = None
+        self._closing = False
+        self._error: Optional[StreamError] = None
+        self.session_id = ""
+        self.subject = ""
+        self.acked = 0
+        self.rejected: Dict[int, str] = {}
+        self.reconnects = 0
+        self._thread = threading.Thread(target=self._run, name=f"tickmark-{kind}", daemon=True)
+        self._connected = threading.Event()
+        self._thread.start()
+
+    # -- public -----------------------------------------------------------
+    def send(self, payload) -> None:
+        """Queues a FeedbackMessage or StepMessage; its client_sequence is set here."""
+        with self._lock:
+            if self._error:
+                raise self._error
+            if self._closing:
+                raise RuntimeError("stream is closed")
+            if self._next_seq is None:
+                self._unnumbered.append(payload)
+                return
+            self._number_and_queue(payload)
+
+    def flush(self, timeout: Optional[float] = None) -> bool:
+        """Waits until everything sent is acknowledged (or rejected)."""
+        deadline = None if timeout is None else time.monotonic() + timeout
+        with self._lock:
+            while self._pending or self._unnumbered:
+                if self._error:
+                    raise self._error
+                left = None if deadline is None else deadline - time.monotonic()
+                if left is not None and left <= 0:
+                    return False
+                self._lock.wait(left if left is not None else 0.5)
+            return True
+
+    def wait_connected(self, timeout: Optional[float] = None) -> bool:
+        return self._connected.wait(timeout)
+
+    @property
+    def pending(self) -> int:
+        with self._lock:
+            return len(self._pending) + len(self._unnumbered)
+
+    def close(self, timeout: float = 10.0) -> None:
+        try:
+            self.flush(timeout)
+        finally:
+            with self._lock:
+                self._closing = True
+                if self._outbox is not None:
+                    self._outbox.put(None)
+                self._lock.notify_all()
+            self._thread.join(timeout)
+
+    # -- internals --------------------------------------------------------
+    def _number_and_queue(self, payload) -> None:
+        payload.client_sequence = self._next_seq
+        self._next_seq += 1
+        self._pending[payload.client_sequence] = payload
+        if self._outbox is not None:
+            self._outbox.put(self._message(**{self._field: payload}))
+
+    def _requests(self, outbox: queue.Queue):
+        hello = stream_pb2.Hello()
+        hello.CopyFrom(self._hello)
+        hello.sent_client_ns = self._clock()
+        yield self._message(hello=hello)
+        while True:
+            item = outbox.get()
+            if item is None:
+                return
+            if isinstance(item, tuple):  # a probe answer: stamp T3 as late as possible
+                probe_id, t1, t2 = item
+                yield self._message(probe_reply=stream_pb2.ProbeReply(
+                    probe_id=probe_id, t1_session_ns=t1, t2_client_ns=t2,
+                    t3_client_ns=self._clock()))
+            else:
+                yield item
+
+    def _run(self) -> None:
+        backoff = 0.1
+        while True:
+            with self._lock:
+                if self._closing or self._error:
+                    return
+            outbox: queue.Queue = queue.Queue()
+            call = self._call(self._requests(outbox))
+            welcomed = False
+            try:
+                for reply in call:
+                    if reply.HasField("probe"):
+                        outbox.put((reply.probe.probe_id, reply.probe.t1_session_ns, self._clock()))
+                    elif reply.HasField("welcome"):
+                        welcomed = True
+                        backoff = 0.1
+                        self._on_welcome(reply.welcome, outbox)
+                    elif reply.HasField("ack"):
+                        self._on_ack_message(reply.ack)
+                with self._lock:
+                    if self._closing:
+                        return
+            except grpc.RpcError as e:
+                code = e.code()
+                with self._lock:
+                    if self._closing and code == grpc.StatusCode.CANCELLED:
+                        return
+                    if code in _PERMANENT and (code != grpc.StatusCode.INVALID_ARGUMENT or not welcomed):
+                        self._error = StreamError(code, e.details() or "")
+                        self._lock.notify_all()
+                        return
+            finally:
+                with self._lock:
+                    self._outbox = None
+                outbox.put(None)  # ends this connection's request generator
+                self._connected.clear()
+            self.reconnects += 1
+            time.sleep(backoff * random.uniform(0.8, 1.2))  # backoff before reconnecting
+            backoff = min(backoff * 2, 5.0)
+
+    def _on_welcome(self, welcome: stream_pb2.Welcome, outbox: queue.Queue) -> None:
+        with self._lock:
+            self.session_id = welcome.session_id
+            self.subject = welcome.subject
+            if self._next_seq is None:
+                self._next_seq = welcome.last_client_sequence + 1
+            for payload in self._pending.values():  # resend in order
+                outbox.put(self._message(**{self._field: payload}))
+            self._outbox = outbox
+            while self._unnumbered:
+                self._number_and_queue(self._unnumbered.popleft())
+        self._connected.set()
+
+    def _on_ack_message(self, ack: stream_pb2.Ack) -> None:
+        with self._lock:
+            payload = self._pending.pop(ack.client_sequence, None)
+            if payload is None:
+                return
+            if ack.code == 0:
+                self.acked += 1
+            else:
+                self.rejected[ack.client_sequence] = ack.message
+            self._lock.notify_all()
+        if self._on_ack is not None:
+            self._on_ack(ack)

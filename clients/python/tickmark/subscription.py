@@ -1,0 +1,85 @@
+"""Reading a session's records in sequence order, resuming after failures."""
+
+from __future__ import annotations
+
+import random
+import threading
+import time
+from typing import Iterable, Iterator, Optional
+
+import grpc
+
+from tickmark.v1 import records_pb2, stream_pb2, stream_pb2_grpc
+
+_RETRY = {grpc.StatusCode.UNAVAILABLE, grpc.StatusCode.INTERNAL, grpc.StatusCode.UNKNOWN,
+          grpc.StatusCode.DEADLINE_EXCEEDED, grpc.StatusCode.RESOURCE_EXHAUSTED}
+
+# Record kinds by name, for filters: "feedback", "step", "credit", "label", ...
+KINDS = {
+    name[len("RECORD_KIND_"):].lower(): value
+    for name, value in records_pb2.RecordKind.items()
+    if name != "RECORD_KIND_UNSPECIFIED"
+}
+
+
+class Subscription:
+    """Iterates over a session's records from `from_sequence` on.
+
+    Replays what the server's ledger holds, then follows live records (unless
+    follow=False). If the connection breaks it reconnects and resumes right
+    after the last record it yielded, so the caller sees every record exactly
+    once, in order. `position` is the sequence of the last record yielded:
+    persist it and pass position + 1 as from_sequence to resume later.
+    """
+
+    def __init__(self, channel: grpc.Channel, token: str, session_id: str,
+                 from_sequence: int = 1, kinds: Iterable[str] = (), follow: bool = True):
+        self._stub = stream_pb2_grpc.LiveStub(channel)
+        self._token = token
+        self._session_id = session_id
+        self._kinds = []
+        for k in kinds:
+            if k not in KINDS:
+                raise ValueError(f"unknown record kind {k!r}; one of {sorted(KINDS)}")
+            self._kinds.append(KINDS[k])
+        self._follow = follow
+        self.position = max(0, from_sequence - 1)
+        self._call = None
+        self._closed = threading.Event()
+
+    def close(self) -> None:
+        """Ends the iteration (from any thread)."""
+        self._closed.set()
+        call = self._call
+        if call is not None:
+            call.cancel()
+
+    def __enter__(self) -> "Subscription":
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self.close()
+
+    def __iter__(self) -> Iterator[records_pb2.Record]:
+        backoff = 0.1
+        while not self._closed.is_set():
+            request = stream_pb2.SubscribeRequest(
+                session_id=self._session_id, from_sequence=self.position + 1,
+                kinds=self._kinds, stop_at_end=not self._follow)
+            self._call = self._stub.Subscribe(
+                request, metadata=(("authorization", "Bearer " + self._token),))
+            try:
+                for record in self._call:
+                    if record.sequence <= self.position:
+                        continue  # never twice, even across a resume
+                    self.position = record.sequence
+                    backoff = 0.1
+                    yield record
+                return  # the server ended the stream: nothing more to come
+            except grpc.RpcError as e:
+                if self._closed.is_set() or e.code() == grpc.StatusCode.CANCELLED:
+                    return
+                if e.code() not in _RETRY:
+                    raise
+            time.sleep(backoff * random.uniform(0.8, 1.2))
+            backoff = min(backoff * 2, 5.0)
