@@ -152,19 +152,23 @@ void CreditDriver::Feed(const v1::Record& r, std::vector<v1::Record>* out) {
     Emit(engine_->AddFeedback(in), t, out);
   } else if (r.has_session_event() &&
              r.session_event().event() == v1::SessionEvent::KIND_CLOSED) {
-    // Nothing comes after: end every open step here and settle everything.
-    for (const std::string& agent : agents_) {
-      Emit(engine_->CloseAgent(agent, SessionTime::FromNanos(t)), t, out);
-    }
-    Emit(engine_->AdvanceWatermark(
-             SessionTime::FromNanos(std::numeric_limits<int64_t>::max() / 2)),
-         t, out);
+    Finish(t, out);
     return;
   }
   if (t > watermark_ns_) {
     watermark_ns_ = t;
     Emit(engine_->AdvanceWatermark(SessionTime::FromNanos(t)), t, out);
   }
+}
+
+void CreditDriver::Finish(int64_t end_ns, std::vector<v1::Record>* out) {
+  if (!engine_) return;
+  // Nothing comes after: end every open step here and settle everything.
+  for (const std::string& agent : agents_) {
+    Emit(engine_->CloseAgent(agent, SessionTime::FromNanos(end_ns)), end_ns, out);
+  }
+  Emit(engine_->AdvanceWatermark(SessionTime::FromNanos(std::numeric_limits<int64_t>::max() / 2)),
+       end_ns, out);
 }
 
 void CreditDriver::Emit(const EngineOutput& o, int64_t written_ns, std::vector<v1::Record>* out) {

@@ -54,6 +54,12 @@ class CreditDriver {
   // Feeds one record; appends what it causes to `out`.
   void Feed(const tickmark::v1::Record& r, std::vector<tickmark::v1::Record>* out);
 
+  // Ends every open step at `end_ns` and settles everything: what the
+  // session's "closed" record does. The server calls it just before writing
+  // that record (so the final labels precede it); feeding the record after
+  // that adds nothing.
+  void Finish(int64_t end_ns, std::vector<tickmark::v1::Record>* out);
+
   // Kernel descriptions in force (for replay specs).
   std::string Describe() const;
 

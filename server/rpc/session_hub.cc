@@ -186,6 +186,20 @@ void SessionRuntime::Credit(const std::vector<Record>& records) {
   }
 }
 
+absl::Status SessionRuntime::FinishCredit(int64_t end_ns) {
+  std::vector<Record> derived;
+  {
+    std::lock_guard<std::mutex> lock(credit_mu_);
+    credit_.Finish(end_ns, &derived);
+  }
+  if (derived.empty()) return absl::OkStatus();
+  auto s = ledger_->Append(id_, std::move(derived),
+                           [this](const absl::Status& st, const std::vector<Record>& committed) {
+                             Fanout(st, committed);
+                           });
+  return s.ok() ? absl::OkStatus() : s.status();
+}
+
 absl::Status SessionRuntime::Rebuild() {
   std::lock_guard<std::mutex> lock(credit_mu_);
   std::vector<Record> derived;
@@ -347,6 +361,10 @@ absl::Status SessionHub::Close(const std::string& id) {
   const int64_t now = (*runtime)->Now().nanos();
   (*runtime)->MarkClosed(grpc::Status(grpc::StatusCode::FAILED_PRECONDITION,
                                       "session " + id + " was closed"));
+  // Everything accepted so far is committed and credited; then the final
+  // labels, then the "closed" record, so followers that stop at it miss none.
+  if (absl::Status s = ledger_->Flush(); !s.ok()) return s;
+  if (absl::Status s = (*runtime)->FinishCredit(now); !s.ok()) return s;
   Record r;
   r.set_written_session_ns(now);
   r.mutable_session_event()->set_event(tickmark::v1::SessionEvent::KIND_CLOSED);

@@ -96,6 +96,10 @@ class SessionRuntime {
   // restart). Call once, before the runtime is shared.
   absl::Status Rebuild();
 
+  // Settles every step as of `end_ns` and appends the final derived records
+  // (call after MarkClosed and a ledger flush, before the "closed" record).
+  absl::Status FinishCredit(int64_t end_ns);
+
   // Marks the session closed and ends every stream with `why`.
   void MarkClosed(const grpc::Status& why);
   // Ends the streams that use this token.
