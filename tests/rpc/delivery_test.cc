@@ -1,0 +1,193 @@
+// Delivery to subscribers (design.md §6) over real gRPC on 127.0.0.1:0,
+// while an agent and a trainer stream at the same time so that every kind
+// of record is in flight (steps, feedback, probes, clock models, client
+// events, credit, unmatched): a subscriber killed and resumed from its last
+// processed sequence + 1 at seeded-random points gets every sequence exactly
+// once and in order; a subscriber that never reads holds up neither ingest
+// nor another subscriber. Completeness and order only: no timing assertions.
+#include <atomic>
+#include <random>
+#include <set>
+#include <thread>
+
+#include "tests/rpc/test_server.h"
+
+namespace tickmark::testing {
+namespace {
+
+constexpr int64_t kMs = 1'000'000;
+
+class DeliveryTest : public ::testing::Test {
+ protected:
+  static rpc::LiveService::Options SmallBuffers() {
+    rpc::LiveService::Options o;
+    o.subscriber_buffer = 16;  // overflow into ledger catch-up often
+    return o;
+  }
+
+  void SetUp() override {
+    std::tie(session_, admin_) = server_.CreateSession("dock rover, delivery");
+    trainer_token_ = server_.IssueToken(session_, v1::ROLE_TRAINER, "ava", admin_);
+    agent_token_ = server_.IssueToken(session_, v1::ROLE_AGENT, "rover-1", admin_);
+    observer_token_ = server_.IssueToken(session_, v1::ROLE_OBSERVER, "", admin_);
+  }
+
+  // Publishes `n` open steps (each ends when the next starts) `spacing_ms`
+  // apart with a `state_bytes` payload, as fast as acks come back. They
+  // begin 3 s in the past, so that feedback sent while they stream has
+  // steps in reach at once.
+  void RunAgent(int n, size_t state_bytes, int64_t spacing_ms) {
+    auto a = OpenAgent(server_);
+    if (!a->SendHello(agent_token_, "rover-1") || !a->Welcome()) {
+      ADD_FAILURE() << "agent hello failed";
+      return;
+    }
+    const int64_t base = a->Now() - 3000 * kMs;
+    for (int i = 1; i <= n; ++i) {
+      const int64_t start = base + i * spacing_ms * kMs;
+      const auto id = static_cast<uint64_t>(i);
+      auto m = StepMsg(id, id, start, 0, i % 5 == 0 ? "wait" : "north");
+      m.mutable_step()->set_state(std::string(state_bytes, static_cast<char>('a' + i % 26)));
+      if (!a->Write(m)) break;
+      auto ack = a->NextAck();
+      if (!ack || ack->code() != 0) {
+        ADD_FAILURE() << "step " << i << " not acknowledged";
+        break;
+      }
+    }
+    EXPECT_TRUE(a->Close().ok());
+  }
+
+  // Sends `n` feedback, judged 300 ms before they are sent; every tenth is
+  // 30 s old (nothing in reach yet: reported unmatched).
+  void RunTrainer(int n) {
+    auto t = OpenTrainer(server_);
+    if (!t->SendHello(trainer_token_, "ava-pad") || !t->Welcome()) {
+      ADD_FAILURE() << "trainer hello failed";
+      return;
+    }
+    for (int i = 1; i <= n; ++i) {
+      const int64_t age = i % 10 == 0 ? 30'000 * kMs : 300 * kMs;
+      auto m = Feedback(static_cast<uint64_t>(i), i % 3 ? 1.0 : -1.0, t->Now() - age);
+      m.mutable_feedback()->set_input("key:" + std::string(40, 'g'));
+      if (!t->Write(m)) break;
+      auto ack = t->NextAck();
+      if (!ack || ack->code() != 0) {
+        ADD_FAILURE() << "feedback " << i << " not acknowledged";
+        break;
+      }
+    }
+    EXPECT_TRUE(t->Close().ok());
+  }
+
+  void CloseSession() {
+    v1::CloseSessionRequest req;
+    req.set_session_id(session_);
+    v1::Session closed;
+    auto ctx = server_.Context(admin_);
+    EXPECT_TRUE(server_.admin().CloseSession(ctx.get(), req, &closed).ok());
+  }
+
+  // Runs the agent and the trainer on their own threads, then closes the
+  // session (its "closed" record is the last one a subscriber receives).
+  std::thread Produce(int steps, int64_t spacing_ms, size_t state_bytes, int feedback) {
+    return std::thread([this, steps, spacing_ms, state_bytes, feedback] {
+      std::thread agent([&] { RunAgent(steps, state_bytes, spacing_ms); });
+      std::thread trainer([&] { RunTrainer(feedback); });
+      agent.join();
+      trainer.join();
+      CloseSession();
+    });
+  }
+
+  TempDir dir_;
+  TestServer server_{dir_.path(), SmallBuffers()};
+  std::string session_, admin_, trainer_token_, agent_token_, observer_token_;
+};
+
+bool IsClosed(const v1::Record& r) {
+  return r.has_session_event() && r.session_event().event() == v1::SessionEvent::KIND_CLOSED;
+}
+
+TEST_F(DeliveryTest, KilledAndResumedAtRandomPointsGetsEverySequenceOnceInOrder) {
+  std::thread producer = Produce(/*steps=*/120, /*spacing_ms=*/50, /*state_bytes=*/256,
+                                 /*feedback=*/150);
+  std::mt19937 rng(20261202);  // seeded: the kill points repeat
+  std::uniform_int_distribution<int> records_before_kill(0, 40);
+  std::vector<uint64_t> received;
+  std::set<int> kinds_seen;
+  uint64_t next = 1;
+  int connections = 0;
+  bool saw_closed = false;
+  const auto deadline = std::chrono::steady_clock::now() + std::chrono::seconds(60);
+  while (!saw_closed && std::chrono::steady_clock::now() < deadline) {
+    ++connections;
+    v1::SubscribeRequest req;
+    req.set_session_id(session_);
+    req.set_from_sequence(next);
+    auto ctx = server_.Context(observer_token_);
+    auto reader = server_.live().Subscribe(ctx.get(), req);
+    const int budget = records_before_kill(rng);  // 0: killed before reading any
+    v1::Record r;
+    for (int i = 0; i < budget && reader->Read(&r); ++i) {
+      received.push_back(r.sequence());
+      kinds_seen.insert(r.body_case());
+      next = r.sequence() + 1;  // the last processed sequence + 1
+      if (IsClosed(r)) {
+        saw_closed = true;
+        break;
+      }
+    }
+    ctx->TryCancel();  // killed: whatever was in flight is lost to it
+    while (reader->Read(&r)) {
+    }
+    reader->Finish();
+  }
+  producer.join();
+  ASSERT_TRUE(saw_closed) << "the subscriber never reached the session's end";
+  ASSERT_FALSE(received.empty());
+  for (size_t i = 0; i < received.size(); ++i) {
+    ASSERT_EQ(received[i], i + 1) << "after " << connections << " connections";
+  }
+  EXPECT_GT(connections, 20);
+  // Mixed kinds went through the resumes.
+  for (int kind : {v1::Record::kStep, v1::Record::kFeedback, v1::Record::kProbe,
+                   v1::Record::kClockModel, v1::Record::kCredit, v1::Record::kUnmatched}) {
+    EXPECT_TRUE(kinds_seen.count(kind)) << "no record of body kind " << kind;
+  }
+}
+
+TEST_F(DeliveryTest, AStalledSubscriberDelaysNeitherIngestNorAnother) {
+  v1::SubscribeRequest req;
+  req.set_session_id(session_);
+  auto stalled_ctx = server_.Context(observer_token_);
+  auto stalled = server_.live().Subscribe(stalled_ctx.get(), req);  // not read until the end
+  auto ctx = server_.Context(observer_token_);
+  auto reader = server_.live().Subscribe(ctx.get(), req);
+
+  // 1500 steps of 4 KiB: several MB, far past the stalled stream's transport
+  // window and its 16-record inbox.
+  std::thread producer = Produce(/*steps=*/1500, /*spacing_ms=*/5, /*state_bytes=*/4096,
+                                 /*feedback=*/40);
+  std::vector<uint64_t> got;
+  v1::Record r;
+  while (reader->Read(&r)) {
+    got.push_back(r.sequence());
+    if (IsClosed(r)) break;
+  }
+  // Ingest finished and the session closed while one subscriber read nothing.
+  producer.join();
+  ASSERT_FALSE(got.empty());
+  ASSERT_TRUE(IsClosed(r));
+  for (size_t i = 0; i < got.size(); ++i) ASSERT_EQ(got[i], i + 1);
+  EXPECT_TRUE(reader->Finish().ok());
+
+  // The stalled one reads now: the same sequences, once, in order.
+  std::vector<uint64_t> late;
+  while (stalled->Read(&r)) late.push_back(r.sequence());
+  EXPECT_TRUE(stalled->Finish().ok());
+  EXPECT_EQ(late, got);
+}
+
+}  // namespace
+}  // namespace tickmark::testing
