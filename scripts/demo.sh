@@ -2,7 +2,7 @@
 # The dock-rover demo (design.md §8), called by ./run demo: a real tickmarkd
 # on a temporary ledger; a rover agent that learns from settled labels; a
 # simulated trainer whose clock is offset and drifting and whose feedback
-# crosses an emulated link (20 ms ± 5 ms). Prints a live progress line, then
+# crosses an emulated link (150 ms ± 75 ms). Prints a live progress line, then
 # a summary, the ledger path and a plot.
 set -euo pipefail
 BUILD=${1:?usage: demo.sh BUILD_DIR [SECONDS]}
@@ -54,9 +54,9 @@ ADMIN=("$BIN/tickmark" --token-file "$DIR/admin.token")
 "${ADMIN[@]}" token issue --session "$SESSION" --role trainer --subject trainer-sim --out "$DIR/trainer.token"
 "${ADMIN[@]}" token issue --session "$SESSION" --role observer --out "$DIR/observer.token"
 
-say "Emulated link for the trainer: 20 ms ± 5 ms each way"
-"$BIN/tickmark-linkemu" --target "127.0.0.1:$PORT" --forward-delay-ms 20 --backward-delay-ms 20 \
-  --jitter-ms 5 >"$DIR/link.out" 2>&1 &
+say "Emulated link for a remote trainer: 150 ms ± 75 ms each way"
+"$BIN/tickmark-linkemu" --target "127.0.0.1:$PORT" --forward-delay-ms 150 --backward-delay-ms 150 \
+  --jitter-ms 75 >"$DIR/link.out" 2>&1 &
 PIDS+=($!)
 wait_for_line "$DIR/link.out" '^listening'
 LINK=$(sed -n 's/^listening \([0-9.:]*\).*/\1/p' "$DIR/link.out")

@@ -1,13 +1,14 @@
 """The demo agent: a dock rover that learns what its trainer approves of.
 
 It drives episodes on the dock-rover floor, publishing every step to
-tickmarkd, and reads the session's records back: settled labels (credit the
-server assigned with the trainer's delay kernel) train its approval model;
-it acts greedily on that model (with a little exploration). Beside it, and
-only for comparison, it keeps the same model fed *naive* credit: each
-feedback's whole value on the latest step that started before the feedback
-arrived, with no clock correction. Both models are evaluated on seeded
-offline episodes as feedback accumulates.
+tickmarkd, and reads the session's records back. Once a feedback's steps
+have settled (their labels are final), the credit the server gave it
+(shares from the trainer's delay kernel, on clock-corrected event time)
+trains the rover's approval model; it acts greedily on that model, with some
+exploration. Beside it, only for comparison, it trains the same model on
+*naive* credit: each feedback wholly on the latest step that started before
+the feedback arrived, with no clock correction. Both models are evaluated on
+seeded offline episodes as feedback accumulates.
 
     python3 -m tickmark.demo.learner --server 127.0.0.1:7461 --token-file agent.token
 """
@@ -36,6 +37,10 @@ class Observer:
         self.steps = {}          # step record sequence -> (position, action, step id, start, end)
         self.step_starts = []    # (start_session_ns, sequence), sorted
         self.feedback = {}       # feedback sequence -> (judged step id, value, event, arrival)
+        self.naive_step = {}     # feedback sequence -> step sequence (naive credit)
+        self.shares = {}         # feedback sequence -> [(step sequence, credit)]
+        self.labelled = set()    # step sequences whose labels are final
+        self.used = set()        # feedback already given to the model
         self.credit_total = 0.0
         self.credit_on_target = 0.0
         self.credits = []        # (feedback seq, step seq, credit) for the plot
@@ -65,7 +70,7 @@ class Observer:
             i = bisect.bisect_right(self.step_starts, (f.arrival_session_ns, 1 << 63)) - 1
             if i >= 0:
                 position, action, _, _ = self.steps[self.step_starts[i][1]]
-                self.naive.add(position, action, f.value, 1.0)
+                self.naive.add(f.value, [(model.key_of(position, action), 1.0)])
         elif r.HasField("credit"):
             c = r.credit
             self.credit_total += c.credit
@@ -73,14 +78,25 @@ class Observer:
             if c.step_id == judged:
                 self.credit_on_target += c.credit
             self.credits.append((c.feedback_sequence, c.step_sequence, c.credit))
+            self.shares.setdefault(c.feedback_sequence, []).append((c.step_sequence, c.credit))
         elif r.HasField("label"):
             l = r.label
             self.labels += 1
-            if l.weight > 0 and l.step_sequence in self.steps:
-                position, action, _, _ = self.steps[l.step_sequence]
-                self.learned.add(position, action, l.value, l.weight)
+            self.labelled.add(l.step_sequence)
         elif r.HasField("unmatched"):
             self.unmatched += 1
+
+    def learn(self) -> None:
+        """Gives the model every feedback whose credited steps have all settled."""
+        for fseq, shares in self.shares.items():
+            if fseq in self.used or not all(s in self.labelled for s, _ in shares):
+                continue
+            self.used.add(fseq)
+            value = self.feedback[fseq][1]
+            keys = [(model.key_of(*self.steps[s][:2]), c) for s, c in shares if s in self.steps]
+            self.learned.add(value, keys)
+        self.learned.fit()
+        self.naive.fit()
 
     def precision(self) -> float:
         return self.credit_on_target / self.credit_total if self.credit_total > 0 else float("nan")
@@ -131,6 +147,7 @@ def main(argv=None) -> int:
                 time.sleep(max(0.0, next_step - time.monotonic()))  # paced for the trainer
             history.append(bool(info.get("docked")))
             with observer.lock:
+                observer.learn()
                 learned = model.evaluate(lambda s, r: observer.learned.greedy(s, r))
                 naive = model.evaluate(lambda s, r: observer.naive.greedy(s, r))
                 nfb, precision, labels = len(observer.feedback), observer.precision(), observer.labels
@@ -147,6 +164,7 @@ def main(argv=None) -> int:
         for sub in agent._subscriptions:
             sub.close()
     with observer.lock:
+        observer.learn()
         learned = model.evaluate(lambda s, r: observer.learned.greedy(s, r))
         naive = model.evaluate(lambda s, r: observer.naive.greedy(s, r))
         summary = {
