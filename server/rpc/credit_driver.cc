@@ -141,8 +141,23 @@ void CreditDriver::Feed(const v1::Record& r, std::vector<v1::Record>* out) {
     in.sequence = r.sequence();
     in.agent = s.agent();
     in.step_id = s.step_id();
-    in.start = SessionTime::FromNanos(s.start_session_ns());
-    if (s.end_session_ns() != 0) in.end = SessionTime::FromNanos(s.end_session_ns());
+    int64_t start = s.start_session_ns();
+    // A step that starts where the previous one ended on the agent's clock
+    // may map a hair earlier (the two times went through different clock
+    // model updates, or connections); within the mapping's uncertainty that
+    // is the same instant, not an overlap.
+    if (auto it = last_end_.find(s.agent()); it != last_end_.end() && start < it->second &&
+                                             it->second - start <= std::max<int64_t>(
+                                                 s.uncertainty_ns(), 1'000'000)) {
+      start = it->second;
+    }
+    in.start = SessionTime::FromNanos(start);
+    if (s.end_session_ns() != 0) {
+      in.end = SessionTime::FromNanos(std::max(s.end_session_ns(), start + 1));
+      last_end_[s.agent()] = in.end->nanos();
+    } else {
+      last_end_.erase(s.agent());
+    }
     agents_.insert(s.agent());
     Emit(engine_->AddStep(in), t, out);
   } else if (r.has_feedback()) {

@@ -422,6 +422,8 @@ class IngestReactor final : public grpc::ServerBidiReactor<typename Side::In, v1
   std::map<uint64_t, SessionTime> sent_probes_;  // probe id -> T1
   uint64_t rejected_probes_ = 0;
   int64_t last_step_start_ns_ = 0;   // agent clock; steps must move forward
+  int64_t last_step_end_agent_ns_ = -1;  // explicit end of the last step (agent clock)
+  SessionTime last_step_end_session_;    // ... and where it was mapped
 };
 
 template <>
@@ -503,6 +505,9 @@ void IngestReactor<AgentSide>::HandlePayloadLocked(const In& message, SessionTim
                             "a step must start after the previous step of this agent"));
   }
   auto [start, uncertainty] = MapLocked(s.start_agent_ns());
+  if (s.start_agent_ns() == last_step_end_agent_ns_) {
+    start = last_step_end_session_;  // the same instant maps to the same time
+  }
   if (absl::Status st = CheckPlausibleLocked(start, uncertainty, arrival); !st.ok()) {
     return Reject(cseq, st);
   }
@@ -522,6 +527,8 @@ void IngestReactor<AgentSide>::HandlePayloadLocked(const In& message, SessionTim
   if (s.end_agent_ns() != 0) {
     last_known = MapLocked(s.end_agent_ns()).first;
     step->set_end_session_ns(last_known.nanos());
+    last_step_end_agent_ns_ = s.end_agent_ns();
+    last_step_end_session_ = last_known;
   }
   step->set_late(arrival - last_known > runtime_->allowed_lateness());
   step->set_arrival_session_ns(arrival.nanos());

@@ -606,7 +606,7 @@ TEST_F(CreditTest, RestartMidSessionRebuildsTheEngine) {
     ASSERT_TRUE(a->Welcome());
     // 50 ms after the last step before the restart: the new connection's
     // clock model maps the agent's clock a little differently (see
-    // DISABLED_ContiguousStepsAcrossAReconnectAreAllPlaced).
+    // ContiguousStepsAcrossAReconnectAreAllPlaced).
     PublishSteps(*a, 21, 20, agent_base + 3050 * kMs, 100 * kMs);
     auto t = OpenTrainer(*server_);
     ASSERT_TRUE(t->SendHello(ava_, "ava-pad"));
@@ -653,20 +653,14 @@ TEST_F(CreditTest, RestartMidSessionRebuildsTheEngine) {
   }
 }
 
-// Found while writing the restart test: a step that starts exactly where the
-// agent's previous step ended (on the agent's clock) is rejected by the
-// credit engine ("step starts before the agent's previous step ended") when
-// the two were mapped to session time by different clock models — after a
-// reconnect, and likewise whenever a probe updates the model between two
-// steps of one stream. The end of step i is mapped when step i arrives, the
-// start of step i+1 when it arrives, and the two mappings differ by
-// microseconds, in either direction. The step then gets no credit and no
-// label (it is reported as Unmatched with step_sequence set). Agents that
-// give every step's end (as design.md §2 allows) lose steps at random.
-// Reproduce: publish contiguous 100 ms steps with explicit ends, one per new
-// agent connection; within ten reconnects one is usually rejected (seen in
-// about a third of the reconnects on loopback).
-TEST_F(CreditTest, DISABLED_ContiguousStepsAcrossAReconnectAreAllPlaced) {
+// Regression: a step that starts exactly where the agent's previous step
+// ended (on the agent's clock) was rejected by the credit engine ("step
+// starts before the agent's previous step ended") when the two times were
+// mapped to session time by different clock models — after a reconnect, or
+// when a probe updated the model between two steps of one stream. Now the
+// same instant maps to the same time on one stream, and across connections a
+// start within the mapping's uncertainty of the previous end is that end.
+TEST_F(CreditTest, ContiguousStepsAcrossAReconnectAreAllPlaced) {
   ASSERT_NO_FATAL_FAILURE(CreateSession("gamma:2,0.28"));
   int64_t next_start = 0;
   for (uint64_t i = 1; i <= 10; ++i) {
