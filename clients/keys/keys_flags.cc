@@ -12,11 +12,13 @@ absl::StatusOr<KeysFlags> ParseKeysFlags(const std::vector<std::string>& args) {
   const std::map<std::string, std::string*> strings = {
       {"--server", &f.server},       {"--token-file", &f.token_file},
       {"--token", &f.token},         {"--client-id", &f.client_id},
-      {"--profile", &f.profile},     {"--ca-file", &f.ca_file}};
+      {"--profile", &f.profile},     {"--ca-file", &f.ca_file},
+      {"--device", &f.device},       {"--input-dir", &f.input_dir}};
   const std::map<std::string, bool*> bools = {
       {"--stdin-lines", &f.stdin_lines}, {"--insecure", &f.insecure},
       {"--quiet", &f.quiet},             {"--help", &f.help},
-      {"-h", &f.help}};
+      {"-h", &f.help},                   {"--list-devices", &f.list_devices},
+      {"--grab", &f.grab},               {"--verbose", &f.verbose}};
   for (size_t i = 0; i < args.size(); ++i) {
     std::string name = args[i];
     std::string value;
@@ -54,6 +56,12 @@ absl::StatusOr<KeysFlags> ParseKeysFlags(const std::vector<std::string>& args) {
       return absl::InvalidArgumentError("unknown argument \"" + args[i] + "\" (see --help)");
     }
   }
+  if (f.grab && f.device.empty()) {
+    return absl::InvalidArgumentError("--grab needs --device");
+  }
+  if (f.stdin_lines && !f.device.empty()) {
+    return absl::InvalidArgumentError("--stdin-lines and --device exclude each other");
+  }
   return f;
 }
 
@@ -89,6 +97,23 @@ Input
   --flush-timeout S    seconds to wait for acknowledgements at exit
                        (default 10).
   --quiet              no per-acknowledgement lines with --stdin-lines.
+
+Input devices (Linux evdev: clickers, foot pedals, keypads, gamepads)
+  --list-devices       list /dev/input/event* with name, vendor:product id
+                       and the keys each can send, then exit.
+  --device D           read device D instead of the terminal: a path
+                       (/dev/input/event5), a vendor:product id in hex
+                       (046d:c52b) or a name (exact, or a unique part).
+                       Needs read access (the input group, or a udev rule).
+                       Presses are stamped with the kernel's timestamp on
+                       CLOCK_MONOTONIC. Unplugging is survived: the same
+                       device is reopened when it comes back. Use a device
+                       profile: clients/keys/profiles/{clicker,foot-pedal,
+                       gamepad,numpad}.toml (buttons = kernel key names).
+  --grab               exclusive access: presses do not also reach the desktop.
+  --input-dir DIR      where names and ids are looked up (default /dev/input).
+  --verbose            more detail; at exit, the timing report (event time
+                       vs the time the program read the event).
   --help               this text.
 
 Default keys: )usage" + legend + R"usage(

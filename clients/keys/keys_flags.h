@@ -24,6 +24,12 @@ struct KeysFlags {
   std::string ca_file;
   bool quiet = false;
   bool help = false;
+  // Input devices (evdev).
+  std::string device;             // --device PATH|NAME|VENDOR:PRODUCT
+  std::string input_dir = "/dev/input";  // --input-dir: where names are looked up
+  bool list_devices = false;
+  bool grab = false;
+  bool verbose = false;
 };
 
 // INVALID_ARGUMENT naming the flag for unknown flags, missing or bad values.

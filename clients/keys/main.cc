@@ -7,9 +7,12 @@
 // earliest moment the program can know of it; the delay from the press to
 // here (terminal, scheduler) is not measured. Sources that need better timing
 // use an input device, whose kernel timestamps can be put on the same clock
-// (EVIOCSCLOCKID) — that source comes separately.
+// (EVIOCSCLOCKID): with --device, the event time is the kernel's timestamp of
+// the press (see evdev.h), and --verbose reports how much earlier it is than
+// the read.
 #include <fcntl.h>
 #include <poll.h>
+#include <signal.h>
 #include <unistd.h>
 
 #include <atomic>
@@ -21,6 +24,7 @@
 #include <mutex>
 #include <optional>
 #include <string>
+#include <thread>
 #include <vector>
 
 #include "clients/common/channel.h"
@@ -28,6 +32,9 @@
 #include "clients/common/monotonic_clock.h"
 #include "clients/common/stream_client.h"
 #include "clients/common/token.h"
+#include "clients/keys/button_map.h"
+#include "clients/keys/device_pump.h"
+#include "clients/keys/evdev.h"
 #include "clients/keys/key_map.h"
 #include "clients/keys/keys_flags.h"
 #include "clients/keys/line_input.h"
@@ -276,6 +283,92 @@ int RunInteractive(TrainerClient& client, client::StreamOptions options,
   return code;
 }
 
+
+constexpr char kTerminalReport[] =
+    "timing report (terminal):\n"
+    "  event time = CLOCK_MONOTONIC read right after read() returned the key's\n"
+    "  byte(s): read time - event time is 0 by construction. The delay from the\n"
+    "  press to the read (keyboard polling, terminal, scheduling) is unknown and\n"
+    "  not corrected; an input device (--device) gives the kernel's timestamp.\n";
+
+int RunDevice(TrainerClient& client, client::StreamOptions options, const KeysFlags& flags,
+              const ButtonMap& map) {
+  int wake[2];
+  if (pipe2(wake, O_NONBLOCK | O_CLOEXEC) != 0) return Usage("pipe2 failed");
+  std::atomic<bool> quit{false};
+  // The signals were blocked before any thread started; this thread alone
+  // takes them, so nothing runs in an asynchronous handler.
+  sigset_t set;
+  sigemptyset(&set);
+  for (int sig : {SIGINT, SIGTERM, SIGHUP, SIGUSR1}) sigaddset(&set, sig);
+  std::thread watcher([&] {
+    int sig = 0;
+    while (sigwait(&set, &sig) == 0) {
+      if (sig == SIGUSR1) return;  // our own stop request
+      quit = true;
+      (void)!write(wake[1], "x", 1);
+    }
+  });
+  std::mutex mu;
+  std::optional<LastFeedback> last;  // guarded by mu
+  TrainerClient::Callbacks cb;
+  cb.on_ack = [&](const client::AckInfo& a, const tickmark::v1::FeedbackMessage& f) {
+    std::lock_guard<std::mutex> l(mu);
+    last = LastFeedback{f.value(), a.event_session_ns, a.uncertainty_ns};
+  };
+  cb.on_rejected = [&](uint64_t seq, const tickmark::v1::FeedbackMessage& f,
+                       const absl::Status& s) {
+    std::fprintf(stderr, "\r\033[K%s: rejected #%llu (%+g): %s\n", kProgram,
+                 static_cast<unsigned long long>(seq), f.value(), s.ToString().c_str());
+  };
+  auto stop_watcher = [&] {
+    pthread_kill(watcher.native_handle(), SIGUSR1);
+    watcher.join();
+  };
+  if (absl::Status s = client.Connect(std::move(options), std::move(cb)); !s.ok()) {
+    stop_watcher();
+    return Usage(s.ToString());
+  }
+  EvdevDevice device({DeviceSelector{flags.device}, flags.input_dir, flags.grab});
+  if (absl::Status s = device.Open(); !s.ok()) {
+    std::fprintf(stderr, "%s: %s; waiting for the device\n", kProgram, s.ToString().c_str());
+  } else if (!flags.quiet) {
+    std::fprintf(stderr, "%s: reading %s \"%s\"%s\n", kProgram, device.info().path.c_str(),
+                 device.info().name.c_str(),
+                 device.info().is_device && !device.monotonic_clock()
+                     ? " (warning: EVIOCSCLOCKID failed; timestamps not on CLOCK_MONOTONIC)"
+                     : "");
+  }
+  DevicePump pump(&device, &map, &client);
+  const bool tty = isatty(STDERR_FILENO) != 0;
+  const std::string legend = map.Legend();
+  while (!quit) {
+    DevicePump::StepResult r = pump.Step(500, wake[0]);
+    if (r.quit) quit = true;
+    std::optional<LastFeedback> shown;
+    {
+      std::lock_guard<std::mutex> l(mu);
+      shown = last;
+    }
+    std::string out;
+    for (const std::string& n : r.notes) out += (tty ? "\r\033[K" : "") + std::string(kProgram) + ": " + n + "\n";
+    if (tty && !flags.quiet) {
+      const std::string prefix =
+          std::string(device.is_open() ? "device ok" : "device gone") +
+          (pump.last_sent().empty() ? "" : "  sent " + pump.last_sent()) + " | ";
+      out += "\r\033[K" + FormatStatusLine(client.status(), shown, prefix + legend, 0);
+    }
+    if (!out.empty()) (void)!write(STDERR_FILENO, out.data(), out.size());
+  }
+  if (tty) (void)!write(STDERR_FILENO, "\n", 1);
+  stop_watcher();
+  const int code = Finish(client, flags.flush_timeout_s, 0);
+  if (flags.verbose) std::fprintf(stderr, "%s", pump.Report().c_str());
+  close(wake[0]);
+  close(wake[1]);
+  return code;
+}
+
 std::string TtySource() {
   const char* name = ttyname(STDIN_FILENO);
   std::string s = name != nullptr ? name : "tty";
@@ -291,7 +384,20 @@ int Main(int argc, char** argv) {
     std::cout << KeysUsage(keymap.Legend());
     return kExitOk;
   }
-  if (!flags->profile.empty()) {
+  if (flags->list_devices) {
+    std::cout << FormatDeviceList(ListDevices(flags->input_dir), flags->verbose);
+    return kExitOk;
+  }
+  const bool device_mode = !flags->device.empty();
+  ButtonMap buttons;
+  if (device_mode) {
+    if (flags->profile.empty()) {
+      return Usage("--device needs --profile (e.g. clients/keys/profiles/clicker.toml)");
+    }
+    auto loaded = ButtonMap::FromTomlFile(flags->profile, ButtonMap::EvdevNamer());
+    if (!loaded.ok()) return Usage(std::string(loaded.status().message()));
+    buttons = *std::move(loaded);
+  } else if (!flags->profile.empty()) {
     auto loaded = KeyMap::FromTomlFile(flags->profile);
     if (!loaded.ok()) return Usage(std::string(loaded.status().message()));
     keymap = *std::move(loaded);
@@ -301,7 +407,13 @@ int Main(int argc, char** argv) {
   for (const std::string& w : token->warnings) {
     std::cerr << kProgram << ": warning: " << w << "\n";
   }
-  const bool interactive = !flags->stdin_lines;
+  const bool interactive = !flags->stdin_lines && !device_mode;
+  if (device_mode) {
+    sigset_t set;
+    sigemptyset(&set);
+    for (int sig : {SIGINT, SIGTERM, SIGHUP, SIGUSR1}) sigaddset(&set, sig);
+    pthread_sigmask(SIG_BLOCK, &set, nullptr);
+  }
   if (interactive && isatty(STDIN_FILENO) == 0) {
     return Usage("stdin is not a terminal; use --stdin-lines to read feedback lines");
   }
@@ -310,7 +422,12 @@ int Main(int argc, char** argv) {
   if (interactive) BlockTerminalSignals();
   auto channel = client::ChooseCredentials({flags->server, flags->insecure, flags->ca_file});
   if (!channel.ok()) return Usage(std::string(channel.status().message()));
-  const std::string source = interactive ? TtySource() : "stdin";
+  std::string source = interactive ? TtySource() : "stdin";
+  if (device_mode) {
+    // Stable across re-plugging and event-number changes: the selector.
+    source = flags->device;
+    if (size_t slash = source.rfind('/'); slash != std::string::npos) source = source.substr(slash + 1);
+  }
   const std::string client_id = flags->client_id.empty()
                                     ? client::DefaultClientId(kProgram, source)
                                     : flags->client_id;
@@ -322,18 +439,24 @@ int Main(int argc, char** argv) {
   options.target = flags->server;
   options.token = token->value;
   options.client_id = client_id;
-  options.source.kind = interactive ? tickmark::v1::SOURCE_KIND_TERMINAL
-                                    : tickmark::v1::SOURCE_KIND_SCRIPT;
-  options.source.description = interactive ? "keys on /dev/" + source : "lines on stdin";
+  options.source.kind = device_mode   ? tickmark::v1::SOURCE_KIND_INPUT_DEVICE
+                        : interactive ? tickmark::v1::SOURCE_KIND_TERMINAL
+                                      : tickmark::v1::SOURCE_KIND_SCRIPT;
+  options.source.description = device_mode   ? "input device " + flags->device
+                               : interactive ? "keys on /dev/" + source
+                                             : "lines on stdin";
   options.source.software = std::string(kProgram) + " " + TICKMARK_VERSION;
   options.credentials = channel->credentials;
   options.clock = client::SystemMonotonic::Get();
 
   TrainerClient stream;
-  return interactive
+  if (device_mode) return RunDevice(stream, std::move(options), *flags, buttons);
+  const int code = interactive
              ? RunInteractive(stream, std::move(options), std::move(keymap),
                               flags->flush_timeout_s)
              : RunLines(stream, std::move(options), flags->quiet, flags->flush_timeout_s);
+  if (flags->verbose) std::fprintf(stderr, "%s", kTerminalReport);
+  return code;
 }
 
 }  // namespace
