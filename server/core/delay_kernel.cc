@@ -10,21 +10,12 @@
 #include <boost/math/policies/policy.hpp>
 #include <boost/math/special_functions/gamma.hpp>
 
+#include "server/core/internal/boost_policy.h"
+
 namespace tickmark {
 namespace {
 
-// Errors become NaN (checked by the caller) instead of exceptions, which
-// must not leave core. Double precision throughout: gamma_p is accurate to a
-// few ulps without promotion and several times faster, which matters on the
-// credit path.
-using BoostPolicy = boost::math::policies::policy<
-    boost::math::policies::domain_error<boost::math::policies::errno_on_error>,
-    boost::math::policies::pole_error<boost::math::policies::errno_on_error>,
-    boost::math::policies::overflow_error<
-        boost::math::policies::errno_on_error>,
-    boost::math::policies::evaluation_error<
-        boost::math::policies::errno_on_error>,
-    boost::math::policies::promote_double<false>>;
+using BoostPolicy = internal::FastNoThrowPolicy;
 
 bool Fail(std::string* error, std::string message) {
   if (error != nullptr) *error = std::move(message);

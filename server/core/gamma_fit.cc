@@ -6,16 +6,12 @@
 #include <boost/math/special_functions/digamma.hpp>
 #include <boost/math/special_functions/trigamma.hpp>
 
+#include "server/core/internal/boost_policy.h"
+
 namespace tickmark {
 namespace {
 
-using BoostPolicy = boost::math::policies::policy<
-    boost::math::policies::domain_error<boost::math::policies::errno_on_error>,
-    boost::math::policies::pole_error<boost::math::policies::errno_on_error>,
-    boost::math::policies::overflow_error<
-        boost::math::policies::errno_on_error>,
-    boost::math::policies::evaluation_error<
-        boost::math::policies::errno_on_error>>;
+using BoostPolicy = internal::NoThrowPolicy;
 
 constexpr int kMaxIterations = 100;
 // Newton steps end in a 1–2 ulp oscillation, so stop a little above that.

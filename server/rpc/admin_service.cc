@@ -86,6 +86,21 @@ grpc::ServerUnaryReactor* Done(grpc::CallbackServerContext* ctx, const absl::Sta
   return reactor;
 }
 
+// Appends `record` and finishes the call only once it is committed, after
+// `fill` has put its sequence into the response.
+grpc::ServerUnaryReactor* AppendThenFinish(grpc::CallbackServerContext* ctx,
+                                           SessionRuntime& runtime, v1::Record record,
+                                           std::function<void(uint64_t)> fill) {
+  auto* reactor = ctx->DefaultReactor();
+  auto seq = runtime.AppendRecord(
+      std::move(record), [reactor, fill](const absl::Status& s, const v1::Record& committed) {
+        if (s.ok()) fill(committed.sequence());
+        reactor->Finish(ToGrpc(s));
+      });
+  if (!seq.ok()) reactor->Finish(ToGrpc(seq.status()));
+  return reactor;
+}
+
 }  // namespace
 
 grpc::ServerUnaryReactor* AdminService::CreateSession(grpc::CallbackServerContext* ctx,
@@ -256,20 +271,9 @@ grpc::ServerUnaryReactor* AdminService::AddMarker(grpc::CallbackServerContext* c
   m->set_text(req->text());
   m->set_author(who->subject.empty() ? who->token_id : who->subject);
   *resp->mutable_marker() = *m;
-  auto* reactor = ctx->DefaultReactor();
-  auto seq = (*rt)->AppendRecord(std::move(r), [reactor, resp](const absl::Status& s,
-                                                               const v1::Record& rec) {
-    // Acknowledge only once committed.
-    resp->set_sequence(rec.sequence());
-    reactor->Finish(ToGrpc(s));
-  });
-  if (!seq.ok()) reactor->Finish(ToGrpc(seq.status()));
-  return reactor;
+  return AppendThenFinish(ctx, **rt, std::move(r),
+                          [resp](uint64_t sequence) { resp->set_sequence(sequence); });
 }
-
-}  // namespace tickmark::rpc
-
-namespace tickmark::rpc {
 
 grpc::ServerUnaryReactor* AdminService::SetKernel(grpc::CallbackServerContext* ctx,
                                                   const v1::SetKernelRequest* req,
@@ -304,14 +308,8 @@ grpc::ServerUnaryReactor* AdminService::SetKernel(grpc::CallbackServerContext* c
   ks->set_description(kernel->Describe());
   ks->set_author(who->subject.empty() ? who->token_id : who->subject);
   *resp->mutable_setting() = *ks;
-  auto* reactor = ctx->DefaultReactor();
-  auto seq = (*rt)->AppendRecord(std::move(r), [reactor, resp](const absl::Status& s,
-                                                               const v1::Record& rec) {
-    resp->set_sequence(rec.sequence());
-    reactor->Finish(ToGrpc(s));
-  });
-  if (!seq.ok()) reactor->Finish(ToGrpc(seq.status()));
-  return reactor;
+  return AppendThenFinish(ctx, **rt, std::move(r),
+                          [resp](uint64_t sequence) { resp->set_sequence(sequence); });
 }
 
 namespace {

@@ -51,4 +51,14 @@ boost::system::error_code ResolveAddress(const HostPort& hp,
   return {};
 }
 
+boost::system::error_code ResolveProxyAddresses(const ProxyConfig& config,
+                                                boost::asio::ip::address* listen,
+                                                boost::asio::ip::address* target) {
+  if (!config.profile.Valid()) {
+    return boost::system::errc::make_error_code(boost::system::errc::invalid_argument);
+  }
+  if (auto ec = ResolveAddress(config.listen, config.allow_non_loopback, listen)) return ec;
+  return ResolveAddress(config.target, config.allow_non_loopback, target);
+}
+
 }  // namespace tickmark::linkemu

@@ -46,6 +46,12 @@ struct ProxyConfig {
   bool allow_non_loopback = false;  // see the file comment
 };
 
+// Checks the profile and resolves both ends of `config` (loopback only unless
+// allowed): invalid_argument for a bad profile, else as ResolveAddress.
+boost::system::error_code ResolveProxyAddresses(const ProxyConfig& config,
+                                                boost::asio::ip::address* listen,
+                                                boost::asio::ip::address* target);
+
 }  // namespace tickmark::linkemu
 
 #endif  // TICKMARK_TOOLS_LINKEMU_PROXY_CONFIG_H_

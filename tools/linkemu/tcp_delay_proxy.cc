@@ -27,17 +27,9 @@ TcpDelayProxy::~TcpDelayProxy() { Stop(); }
 boost::system::error_code TcpDelayProxy::Start() {
   std::lock_guard<std::mutex> lock(mu_);
   if (started_ || stopped_) return asio::error::already_started;
-  if (!config_.profile.Valid()) return errc::make_error_code(errc::invalid_argument);
   asio::ip::address listen_address;
   asio::ip::address target_address;
-  if (auto ec = ResolveAddress(config_.listen, config_.allow_non_loopback,
-                               &listen_address)) {
-    return ec;
-  }
-  if (auto ec = ResolveAddress(config_.target, config_.allow_non_loopback,
-                               &target_address)) {
-    return ec;
-  }
+  if (auto ec = ResolveProxyAddresses(config_, &listen_address, &target_address)) return ec;
   target_ = tcp::endpoint(target_address, config_.target.port);
 
   const tcp::endpoint listen(listen_address, config_.listen.port);
