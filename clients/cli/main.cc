@@ -16,6 +16,7 @@
 #include <sstream>
 
 #include <grpcpp/grpcpp.h>
+#include <toml++/toml.h>
 
 #include "clients/cli/jsonl.h"
 #include "clients/common/channel.h"
@@ -56,6 +57,7 @@ constexpr char kOverview[] =
     "  marker add --session ID TEXT           put a marker on the session timeline now\n"
     "  kernel set --session ID --trainer T KERNEL [--weight W]\n"
     "                                         a trainer's delay kernel (gamma:2,0.28, ...)\n"
+    "  kernel load --session ID FILE          trainers' kernels and weights from a TOML file\n"
     "  replay --session ID --name N [--kernel K]\n"
     "                                         recompute labels with other kernels; compare\n"
     "  export --session ID [--out FILE] [--kinds K,..]\n"
@@ -461,6 +463,68 @@ int KernelSet(int argc, char** argv) {
   return kExitOk;
 }
 
+int KernelLoad(int argc, char** argv) {
+  Common c;
+  std::string session;
+  FlagSet flags("tickmark kernel load FILE",
+                "Sets trainers' delay kernels and weights from a TOML file:\n"
+                "  [trainers.trainer-07]\n"
+                "  kernel = \"gamma:2,0.3\"\n"
+                "  weight = 1.0\n"
+                "Each entry is recorded in the ledger as if set with 'kernel set'.");
+  c.Register(flags);
+  flags.String("session", &session, "session id");
+  if (int e = ParseOrExit(flags, argc, argv, 3, 1); e >= 0) return e;
+  toml::table file;
+  try {
+    file = toml::parse_file(flags.args()[0]);
+  } catch (const toml::parse_error& e) {
+    std::cerr << "tickmark: " << flags.args()[0] << ":" << e.source().begin.line << ": "
+              << e.description() << "\n";
+    return kExitUsage;
+  }
+  const toml::table* trainers = file["trainers"].as_table();
+  if (trainers == nullptr || trainers->empty()) {
+    std::cerr << "tickmark: " << flags.args()[0] << " has no [trainers.NAME] tables\n";
+    return kExitUsage;
+  }
+  std::vector<v1::SetKernelRequest> requests;
+  for (const auto& [name, node] : *trainers) {
+    const toml::table* t = node.as_table();
+    auto kernel = t ? (*t)["kernel"].value<std::string>() : std::nullopt;
+    if (!kernel) {
+      std::cerr << "tickmark: [trainers." << name.str() << "] needs kernel = \"...\"\n";
+      return kExitUsage;
+    }
+    for (const auto& [key, unused] : *t) {
+      if (key.str() != "kernel" && key.str() != "weight") {
+        std::cerr << "tickmark: [trainers." << name.str() << "]: unknown key '" << key.str()
+                  << "' (kernel, weight)\n";
+        return kExitUsage;
+      }
+    }
+    v1::SetKernelRequest req;
+    req.set_session_id(session);
+    req.set_trainer(std::string(name.str()));
+    req.set_kernel(*kernel);
+    req.set_weight((*t)["weight"].value<double>().value_or(1.0));
+    requests.push_back(std::move(req));
+  }
+  auto conn = Connection::Open(c);
+  if (!conn) return kExitError;
+  for (const auto& req : requests) {
+    v1::SetKernelResponse resp;
+    auto ctx = conn->Context();
+    if (auto s = conn->Admin().SetKernel(ctx.get(), req, &resp); !s.ok()) {
+      std::cerr << "tickmark: trainer " << req.trainer() << ": ";
+      return Fail(*conn, s);
+    }
+    std::cout << "trainer " << resp.setting().trainer() << ": " << resp.setting().description()
+              << ", weight " << resp.setting().weight() << "\n";
+  }
+  return kExitOk;
+}
+
 int Replay(int argc, char** argv) {
   Common c;
   std::string session, name, kernel, trainer_kernels;
@@ -641,7 +705,7 @@ int main(int argc, char** argv) {
       {"session show", SessionShow},     {"session close", SessionClose},
       {"token issue", TokenIssue},       {"token list", TokenList},
       {"token revoke", TokenRevoke},     {"marker add", MarkerAdd},
-      {"kernel set", KernelSet},
+      {"kernel set", KernelSet},         {"kernel load", KernelLoad},
   };
   if (group == "export") return Export(argc, argv);
   if (group == "replay") return Replay(argc, argv);
