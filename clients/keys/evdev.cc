@@ -188,6 +188,14 @@ void EvdevDecoder::Resync(const std::set<uint16_t>& down_now) {
   down_ = down_now;
 }
 
+void EvdevDecoder::Reset(const std::set<uint16_t>& down_now) {
+  partial_.clear();
+  frame_.clear();
+  dropping_ = false;
+  resync_wanted_ = false;
+  down_ = down_now;
+}
+
 bool EvdevDecoder::TakeResyncRequest() {
   if (!resync_wanted_ || dropping_) return false;
   resync_wanted_ = false;
@@ -309,6 +317,20 @@ absl::Status EvdevDevice::Open() {
   std::string path;
   if (options_.selector.is_path()) {
     path = options_.selector.text;
+    if (ever_opened_ && !first_name_.empty()) {
+      // Re-plugged devices may get another event number: prefer the one
+      // with the same name and id.
+      auto here = ProbeDevice(path);
+      if (!here.ok() || here->name != first_name_ || here->vendor != first_vendor_ ||
+          here->product != first_product_) {
+        for (const DeviceInfo& d : ListDevices(options_.dir)) {
+          if (d.name == first_name_ && d.vendor == first_vendor_ && d.product == first_product_) {
+            path = d.path;
+            break;
+          }
+        }
+      }
+    }
   } else {
     auto matched = options_.selector.Match(ListDevices(options_.dir));
     if (!matched.ok()) return matched.status();
@@ -337,6 +359,11 @@ absl::Status EvdevDevice::Open() {
   ino_ = st.st_ino;
   info_ = *std::move(info);
   if (ever_opened_) ++reopens_;
+  if (!ever_opened_ && info_.is_device) {
+    first_name_ = info_.name;
+    first_vendor_ = info_.vendor;
+    first_product_ = info_.product;
+  }
   ever_opened_ = true;
   // Whatever was held before a reopen is unknown now; start from the device.
   std::set<uint16_t> down;
@@ -348,7 +375,7 @@ absl::Status EvdevDevice::Open() {
       }
     }
   }
-  decoder_.Resync(down);
+  decoder_.Reset(down);
   return absl::OkStatus();
 }
 

@@ -82,6 +82,10 @@ class EvdevDecoder {
   // drop are forgotten quietly.
   void Resync(const std::set<uint16_t>& down_now);
 
+  // A fresh start on a newly opened device: no partial record, no pending
+  // frame, `down_now` held (not counted as lost).
+  void Reset(const std::set<uint16_t>& down_now);
+
   // True between a SYN_DROPPED and its SYN_REPORT, and after it until
   // TakeResyncRequest() is called.
   bool TakeResyncRequest();
@@ -182,6 +186,11 @@ class EvdevDevice {
   DeviceInfo info_;
   bool monotonic_ = false;
   bool ever_opened_ = false;
+  // Who the device was when first opened by path, so that a re-plug under
+  // another event number is found by name and id.
+  std::string first_name_;
+  uint16_t first_vendor_ = 0;
+  uint16_t first_product_ = 0;
   uint64_t reopens_ = 0;
   EvdevDecoder decoder_;
 };

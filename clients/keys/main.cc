@@ -285,7 +285,7 @@ int RunInteractive(TrainerClient& client, client::StreamOptions options,
 
 
 constexpr char kTerminalReport[] =
-    "timing report (terminal):\n"
+    "timing report (terminal or stdin lines):\n"
     "  event time = CLOCK_MONOTONIC read right after read() returned the key's\n"
     "  byte(s): read time - event time is 0 by construction. The delay from the\n"
     "  press to the read (keyboard polling, terminal, scheduling) is unknown and\n"

@@ -117,7 +117,7 @@ std::vector<BoxEvent> RawProtocol::Feed(std::string_view bytes, int64_t host_ns)
   return out;
 }
 
-int64_t BoxClock::ToHost(int64_t box_us, int64_t host_ns) {
+void BoxClock::Add(int64_t box_us, int64_t host_ns) {
   const int64_t box_ns = box_us * 1000;
   if (!samples_.empty() && box_ns < samples_.back().box_ns) {
     // The box's clock went back: it restarted (or its counter wrapped).
@@ -125,11 +125,18 @@ int64_t BoxClock::ToHost(int64_t box_us, int64_t host_ns) {
     ++resets_;
   }
   samples_.push_back({box_ns, host_ns - box_ns});
-  while (samples_.size() > window_) samples_.pop_front();
-  int64_t min_offset = samples_.front().offset_ns;
-  for (const Sample& s : samples_) min_offset = std::min(min_offset, s.offset_ns);
-  last_excess_ns_ = (host_ns - box_ns) - min_offset;
-  return box_ns + min_offset;
+  while (samples_.size() > max_samples_ || box_ns - samples_.front().box_ns > window_ns_) {
+    samples_.pop_front();
+  }
+  min_offset_ns_ = samples_.front().offset_ns;
+  for (const Sample& s : samples_) min_offset_ns_ = std::min(min_offset_ns_, s.offset_ns);
+}
+
+int64_t BoxClock::Map(int64_t box_us) const { return box_us * 1000 + min_offset_ns_; }
+
+int64_t BoxClock::ToHost(int64_t box_us, int64_t host_ns) {
+  Add(box_us, host_ns);
+  return Map(box_us);
 }
 
 }  // namespace tickmark::serial

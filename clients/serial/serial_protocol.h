@@ -17,7 +17,10 @@
 // host_receive − box_time = offset + transit delay; the smallest value over a
 // sliding window (a min filter) is the offset plus the smallest transit
 // (the line's own transmission time and USB latency), and a window of recent
-// samples follows a slow drift between the two crystals. Event time =
+// samples (the last 30 s of box time) follows a slow drift between the two
+// crystals: a drift of D ppm can bias the result by up to D ppm of the
+// window, 1.5 ms at 50 ppm (when presses are sparser than the window, the
+// model falls back to the receive time). Event time =
 // box_time + that minimum: the press's host time, late by the minimum transit
 // (unknown, stated in the report), but free of the varying part of the delay
 // (USB polling, the program's scheduling). A box whose clock jumps back (it
@@ -81,12 +84,20 @@ std::string RawButtonName(unsigned char byte);
 
 class BoxClock {
  public:
-  explicit BoxClock(size_t window = 64) : window_(window) {}
-  // Host time of a box timestamp received at host_ns.
+  explicit BoxClock(int64_t window_ns = 30'000'000'000, size_t max_samples = 256)
+      : window_ns_(window_ns), max_samples_(max_samples) {}
+  // Adds a sample: box timestamp received at host_ns.
+  void Add(int64_t box_us, int64_t host_ns);
+  // Host time of a box timestamp, with the samples added so far. Add every
+  // line of one read before mapping any of them: in a burst the last line
+  // bounds the offset best, and mapping early lines before seeing it would
+  // squash the burst onto one instant.
+  int64_t Map(int64_t box_us) const;
+  // Add then Map.
   int64_t ToHost(int64_t box_us, int64_t host_ns);
-  // How much later than the window's minimum this sample arrived (the
-  // varying part of the delay that the model removed), for the report.
-  int64_t last_excess_ns() const { return last_excess_ns_; }
+  // Receive − mapped time of a sample: the varying part of the delay that
+  // the model removed (for the report).
+  int64_t Excess(int64_t box_us, int64_t host_ns) const { return host_ns - Map(box_us); }
   uint64_t resets() const { return resets_; }
   size_t samples() const { return samples_.size(); }
 
@@ -95,9 +106,10 @@ class BoxClock {
     int64_t box_ns;
     int64_t offset_ns;  // host_receive − box time
   };
-  size_t window_;
+  int64_t window_ns_;
+  size_t max_samples_;
   std::deque<Sample> samples_;
-  int64_t last_excess_ns_ = 0;
+  int64_t min_offset_ns_ = 0;
   uint64_t resets_ = 0;
 };
 

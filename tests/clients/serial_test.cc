@@ -93,12 +93,24 @@ TEST(BoxClock, MinFilterRemovesTheVaryingDelay) {
   }
   EXPECT_EQ(mapped[0], min_transit + 6'000'000);  // only one sample yet
   for (size_t i = 1; i < mapped.size(); ++i) EXPECT_EQ(mapped[i], min_transit);
-  EXPECT_EQ(c.last_excess_ns(), 5'000'000);
+  EXPECT_EQ(c.Excess(box_us, box_us * 1000 + offset + min_transit + 5'000'000), 5'000'000);
   // Never later than the receive time: the current sample bounds the minimum.
   EXPECT_EQ(c.resets(), 0u);
   c.ToHost(10, 9'000'000'000);  // the box restarted: its clock went back
   EXPECT_EQ(c.resets(), 1u);
   EXPECT_EQ(c.samples(), 1u);
+}
+
+TEST(BoxClock, ABurstReadAtOnceKeepsTheBoxSpacing) {
+  // Three lines 100 ms apart on the box, delivered in one read (the port
+  // stalled): added first, mapped after, they keep their spacing and the
+  // last one lands on the receive time.
+  BoxClock c;
+  const int64_t host = 50'000'000'000;
+  for (int64_t us : {1'000'000, 1'100'000, 1'200'000}) c.Add(us, host);
+  EXPECT_EQ(c.Map(1'000'000), host - 200'000'000);
+  EXPECT_EQ(c.Map(1'100'000), host - 100'000'000);
+  EXPECT_EQ(c.Map(1'200'000), host);
 }
 
 TEST(SerialProfiles, ShippedProfilesLoad) {
