@@ -308,7 +308,8 @@ int SessionShow(int argc, char** argv) {
             << "records    " << ss.last_sequence() << "\n"
             << "feedback   " << resp.feedback_count() << "\n"
             << "steps      " << resp.step_count() << "\n"
-            << "probes     " << resp.probe_count() << "\n"
+            << "probes     " << resp.probe_count() << " (" << resp.rejected_probe_count()
+            << " rejected)\n"
             << "markers    " << resp.marker_count() << "\n"
             << "clients    " << resp.client_count() << " (" << resp.connected_clients()
             << " connected now)\n"

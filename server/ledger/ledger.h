@@ -65,6 +65,7 @@ struct RecordCounts {
   uint64_t clients = 0;
   uint64_t late = 0;
   uint64_t unmatched = 0;
+  uint64_t rejected_probes = 0;
 };
 
 // Called on the writer thread once a batch is durable (status OK) or has

@@ -394,5 +394,46 @@ TEST_F(LiveTest, StepsAreStoredWithTheirAgentAndMappedTimes) {
   EXPECT_EQ(s.end_session_ns() - s.start_session_ns(), 100'000'000);  // drift 0 before 10 s
 }
 
+TEST_F(LiveTest, ImpossibleProbeAnswersAreRejectedCountedAndKept) {
+  // A raw stream that answers the first probe with T3 before T2.
+  grpc::ClientContext ctx;
+  auto rw = server_->live().Train(&ctx);
+  v1::TrainerMessage hello;
+  hello.mutable_hello()->set_token(trainer_token_);
+  hello.mutable_hello()->set_client_id("pad-bad-clock");
+  hello.mutable_hello()->set_sent_client_ns(MonoNowNs());
+  ASSERT_TRUE(rw->Write(hello));
+  v1::ServerMessage m;
+  bool answered = false;
+  while (!answered && rw->Read(&m)) {
+    if (!m.has_probe()) continue;
+    v1::TrainerMessage reply;
+    auto* p = reply.mutable_probe_reply();
+    p->set_probe_id(m.probe().probe_id());
+    p->set_t1_session_ns(m.probe().t1_session_ns());
+    p->set_t2_client_ns(MonoNowNs());
+    p->set_t3_client_ns(MonoNowNs() - 5'000'000);  // T3 < T2: impossible
+    ASSERT_TRUE(rw->Write(reply));
+    answered = true;
+  }
+  ASSERT_TRUE(answered);
+  rw->WritesDone();
+  while (rw->Read(&m)) {
+  }
+  rw->Finish();
+  // The rejected probe is in the ledger, flagged and counted.
+  v1::SubscribeRequest req;
+  req.set_session_id(session_);
+  req.set_stop_at_end(true);
+  req.add_kinds(v1::RECORD_KIND_PROBE);
+  auto sctx = server_->Context(admin_);
+  auto reader = server_->live().Subscribe(sctx.get(), req);
+  auto probes = ReadN(reader.get(), 100);
+  ASSERT_FALSE(probes.empty());
+  EXPECT_FALSE(probes[0].probe().accepted());
+  EXPECT_EQ(probes[0].probe().reject_reason(), "rejected_reversed");
+  EXPECT_EQ(Summary().rejected_probe_count(), 1u);
+}
+
 }  // namespace
 }  // namespace tickmark::testing

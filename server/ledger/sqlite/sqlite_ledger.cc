@@ -807,7 +807,8 @@ absl::StatusOr<RecordCounts> SqliteLedger::Counts(std::string_view session_id) {
          " (SELECT COUNT(*) FROM client WHERE session_id = ?1),"
          " (SELECT COUNT(*) FROM feedback WHERE session_id = ?1 AND late)"
          "  + (SELECT COUNT(*) FROM step WHERE session_id = ?1 AND late),"
-         " (SELECT COUNT(*) FROM unmatched WHERE session_id = ?1 AND derived_set = 'live')");
+         " (SELECT COUNT(*) FROM unmatched WHERE session_id = ?1 AND derived_set = 'live'),"
+         " (SELECT COUNT(*) FROM probe WHERE session_id = ?1 AND NOT accepted)");
   if (!q.status().ok()) return q.status();
   auto row = q.Bind(session_id).Step();
   if (!row.ok()) return row.status();
@@ -819,6 +820,7 @@ absl::StatusOr<RecordCounts> SqliteLedger::Counts(std::string_view session_id) {
   c.clients = static_cast<uint64_t>(q.Int(4));
   c.late = static_cast<uint64_t>(q.Int(5));
   c.unmatched = static_cast<uint64_t>(q.Int(6));
+  c.rejected_probes = static_cast<uint64_t>(q.Int(7));
   return c;
 }
 
