@@ -72,6 +72,7 @@ absl::Status Summarize(SessionHub* hub, const ledger::SessionRow& row, v1::Sessi
   out->set_client_count(counts->clients);
   out->set_late_count(counts->late);
   out->set_unmatched_count(counts->unmatched);
+  out->set_rejected_probe_count(counts->rejected_probes);
   if (row.open) {
     if (auto rt = hub->Get(row.id); rt.ok()) {
       out->set_connected_clients(static_cast<uint32_t>((*rt)->StreamCount()));
