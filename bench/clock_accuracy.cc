@@ -288,9 +288,10 @@ int main(int argc, char** argv) {
     results.push_back(Measure(link, runs));
     PrintLink(link, results.back());
   }
-  std::printf("\n* envel: a candidate, not what the server does: the offset read from the two\n"
-              "  lower envelopes (Moon et al.'s lines, as ClockModel fits them for drift) at the\n"
-              "  event, instead of the minimum-delay probe of the last 8.\n");
+  std::printf("\n* envel: the offset read from the two lower envelopes (Moon et al.'s lines) at\n"
+              "  the event itself. ClockModel reads them at its newest probe once the drift is\n"
+              "  fitted (>= 10 s of probes) and projects with the drift; before that it uses the\n"
+              "  minimum-delay probe of the last 8.\n");
   PrintTargets(links, results);
   return 0;
 }

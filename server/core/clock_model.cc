@@ -196,14 +196,33 @@ void ClockModel::Refit() {
     bx[i] = static_cast<double>((t.t4 - first.t.t4).nanos());
     by[i] = static_cast<double>(-Diff(t.t3, t.t4) - b0);
   }
-  const double forward_slope = LowerEnvelopeFit(fx, fy).slope;
-  const double backward_slope = LowerEnvelopeFit(bx, by).slope;
+  const Line forward = LowerEnvelopeFit(fx, fy);
+  const Line backward = LowerEnvelopeFit(bx, by);
   drift_ =
-      std::clamp(0.5 * (forward_slope - backward_slope), -max_drift, max_drift);
+      std::clamp(0.5 * (forward.slope - backward.slope), -max_drift, max_drift);
   // Both slopes measure the same rate with opposite signs; what they fail to
   // share is fit error, so their disagreement is our drift error estimate.
   drift_error_ =
-      std::min(0.5 * std::abs(forward_slope + backward_slope), 2 * max_drift);
+      std::min(0.5 * std::abs(forward.slope + backward.slope), 2 * max_drift);
+
+  // With the drift known, the offset comes from the two envelopes rather
+  // than one probe: at session time x the forward envelope is θ + d_f,min
+  // and the backward one d_b,min − θ, so θ = (forward − backward) / 2 up to
+  // the unmeasurable asymmetry (d_b,min − d_f,min) / 2, bounded by half
+  // their sum. Every probe contributes, not only the luckiest recent one.
+  // Evaluated at the newest probe's midpoint.
+  const SessionTime mid = last.t.t1 + (last.t.t4 - last.t.t1) / 2;
+  const double xf = static_cast<double>((mid - first.t.t1).nanos());
+  const double xb = static_cast<double>((mid - first.t.t4).nanos());
+  const double fwd = static_cast<double>(f0) + forward.intercept + forward.slope * xf;
+  const double bwd = static_cast<double>(b0) + backward.intercept + backward.slope * xb;
+  const double envelope_delay = fwd + bwd;
+  if (!std::isfinite(envelope_delay) || envelope_delay > static_cast<double>(min_delay_.nanos())) {
+    return;  // the envelopes say nothing better than the chosen probe
+  }
+  offset_ = SaturatingNanos(0.5 * (fwd - bwd));
+  ref_session_ = mid;
+  ref_client_ = ClientTime::FromNanos(mid.nanos() + offset_.nanos());
 }
 
 SessionTime ClockModel::ToSession(ClientTime t) const {
