@@ -348,6 +348,13 @@ absl::Status EvdevDevice::Open() {
     // with; the default, CLOCK_REALTIME, can step.
     int clock_id = CLOCK_MONOTONIC;
     monotonic_ = ioctl(fd, EVIOCSCLOCKID, &clock_id) == 0;
+    // Changing the clock flushes the client's queue and queues a SYN_DROPPED
+    // (drivers/input/evdev.c); left there, it would discard the first real
+    // frame. Nothing in the queue predates this open by more than the two
+    // calls above, so drain it and take the key state from EVIOCGKEY below.
+    unsigned char drain[kInputEventSize * 64];
+    while (read(fd, drain, sizeof drain) > 0) {
+    }
     if (options_.grab && ioctl(fd, EVIOCGRAB, 1) != 0) {
       const int err = errno;
       close(fd);
