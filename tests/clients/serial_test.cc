@@ -6,6 +6,7 @@
 #include <unistd.h>
 
 #include <chrono>
+#include <memory>
 #include <string>
 #include <vector>
 
@@ -216,6 +217,35 @@ TEST(SerialPty, RawProtocolAtOtherSettings) {
   EXPECT_EQ(got[1].event.button, "0x32");
   EXPECT_EQ(got[2].event.button, "0xff");
   EXPECT_FALSE(got[0].from_box_clock);
+}
+
+TEST(SerialPty, UnpluggedPortIsReopenedWhenItReturns) {
+  // The port is reached through a link, as /dev/serial/by-id/... links are;
+  // "unplugging" closes the pty (reads fail), "re-plugging" links a new one.
+  char tmpl[] = "/tmp/tickmark-serial-XXXXXX";
+  const std::string dir = mkdtemp(tmpl);
+  const std::string link = dir + "/box";
+  auto first = std::make_unique<Pty>();
+  ASSERT_EQ(symlink(first->name().c_str(), link.c_str()), 0);
+  SerialSource src(link, PortSettings{});
+  ASSERT_TRUE(src.Open().ok());
+  first->Write("B1 down\n");
+  ASSERT_EQ(Collect(src, 1).size(), 1u);
+  first.reset();  // unplugged
+  bool gone = false;
+  const auto deadline = Clock::now() + std::chrono::seconds(20);
+  while (!gone && Clock::now() < deadline) gone = src.Poll(50).disconnected;
+  ASSERT_TRUE(gone);
+  EXPECT_FALSE(src.is_open());
+  Pty second;
+  unlink(link.c_str());
+  ASSERT_EQ(symlink(second.name().c_str(), link.c_str()), 0);
+  second.Write("B2 down\n");
+  std::vector<TimedPress> got = Collect(src, 1);  // Poll reopens, then reads
+  ASSERT_EQ(got.size(), 1u);
+  EXPECT_EQ(got[0].event.button, "B2");
+  unlink(link.c_str());
+  rmdir(dir.c_str());
 }
 
 TEST(SerialPty, MissingPortIsRetried) {
