@@ -13,6 +13,7 @@
 #include <fcntl.h>
 #include <poll.h>
 #include <signal.h>
+#include <sys/ioctl.h>
 #include <unistd.h>
 
 #include <atomic>
@@ -356,7 +357,10 @@ int RunDevice(TrainerClient& client, client::StreamOptions options, const KeysFl
       const std::string prefix =
           std::string(device.is_open() ? "device ok" : "device gone") +
           (pump.last_sent().empty() ? "" : "  sent " + pump.last_sent()) + " | ";
-      out += "\r\033[K" + FormatStatusLine(client.status(), shown, prefix + legend, 0);
+      winsize ws{};
+      const size_t cols = ioctl(STDERR_FILENO, TIOCGWINSZ, &ws) == 0 ? ws.ws_col : 0;
+      out += "\r\033[K" + FormatStatusLine(client.status(), shown, prefix + legend,
+                                           cols > 1 ? cols - 1 : 0);
     }
     if (!out.empty()) (void)!write(STDERR_FILENO, out.data(), out.size());
   }
