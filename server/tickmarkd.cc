@@ -20,7 +20,7 @@ constexpr char kSafety[] =
 // Applies a TOML config file to options; command-line flags win.
 bool ApplyConfig(const std::string& path, const tickmark::FlagSet& flags,
                  tickmark::rpc::ServerOptions* o, std::string* log_level, std::string* durability,
-                 std::string* default_kernel) {
+                 std::string* default_kernel, int64_t* udp_probe_port) {
   toml::table t;
   try {
     t = toml::parse_file(path);
@@ -46,6 +46,9 @@ bool ApplyConfig(const std::string& path, const tickmark::FlagSet& flags,
   if (auto v = t["probes"]["interval_ms"].value<int64_t>(); v && !flags.WasSet("probe-interval-ms")) {
     o->live.probe_interval = tickmark::Duration::Millis(*v);
   }
+  if (auto v = t["udp_probe_port"].value<int64_t>(); v && !flags.WasSet("udp-probe-port")) {
+    *udp_probe_port = *v;
+  }
   if (auto v = t["limits"]["max_state_bytes"].value<int64_t>(); v && !flags.WasSet("max-state-bytes")) {
     o->live.limits.max_state_bytes = static_cast<uint32_t>(*v);
   }
@@ -66,6 +69,7 @@ int main(int argc, char** argv) {
   int64_t max_state_bytes = options.live.limits.max_state_bytes;
   int64_t max_event_age_s = options.live.limits.max_event_age.nanos() / 1'000'000'000;
   bool allow_insecure_remote = false;
+  int64_t udp_probe_port = 0;
   std::string default_kernel = "uniform:0.2,4.0";
   int64_t allowed_lateness_ms = options.sessions.allowed_lateness.nanos() / 1'000'000;
 
@@ -87,6 +91,9 @@ int main(int argc, char** argv) {
              "allow plaintext on a non-loopback address (trusted networks only)");
   flags.Int("probe-burst", &probe_burst, "clock probes sent right after a client connects");
   flags.Int("probe-interval-ms", &probe_interval_ms, "clock probe period afterwards");
+  flags.Int("udp-probe-port", &udp_probe_port,
+            "UDP port on the --listen host where clients may start their own clock probes, "
+            "for LAN-grade timing (0: off; see DEVELOPERS.md, UDP probe port)");
   flags.Int("max-state-bytes", &max_state_bytes, "largest step state payload accepted");
   flags.Int("max-event-age-s", &max_event_age_s,
             "oldest event time accepted, in seconds before arrival");
@@ -105,7 +112,16 @@ int main(int argc, char** argv) {
     std::cerr << "tickmarkd: unexpected argument '" << flags.args()[0] << "' (see --help)\n";
     return 2;
   }
-  if (!config.empty() && !ApplyConfig(config, flags, &options, &log_level, &durability, &default_kernel)) return 2;
+  if (!config.empty() && !ApplyConfig(config, flags, &options, &log_level, &durability,
+                                      &default_kernel, &udp_probe_port)) {
+    return 2;
+  }
+  if (udp_probe_port < 0 || udp_probe_port > 65535) {
+    std::cerr << "tickmarkd: --udp-probe-port must be 0..65535\n";
+    return 2;
+  }
+  options.udp_probe = udp_probe_port != 0;
+  options.udp_probe_port = static_cast<uint16_t>(udp_probe_port);
   if (flags.WasSet("probe-burst")) options.live.probe_burst = static_cast<int>(probe_burst);
   if (flags.WasSet("probe-interval-ms")) {
     options.live.probe_interval = tickmark::Duration::Millis(probe_interval_ms);

@@ -1,6 +1,13 @@
 #include "clients/common/stream_client.h"
 
+#include <netdb.h>
+#include <poll.h>
+#include <sys/eventfd.h>
+#include <sys/socket.h>
+#include <unistd.h>
+
 #include <algorithm>
+#include <array>
 #include <cmath>
 #include <random>
 #include <utility>
@@ -8,6 +15,7 @@
 #include "absl/strings/str_cat.h"
 #include "clients/common/client_id.h"
 #include "clients/common/monotonic_clock.h"
+#include "server/net/probe_datagram.h"
 
 namespace tickmark::client {
 
@@ -45,7 +53,155 @@ bool IsPermanent(const grpc::Status& s, bool welcomed) {
   }
 }
 
+// The host part of a gRPC target ("host:port", "[v6]:port", with an optional
+// "dns:///", "ipv4:" or "ipv6:" scheme).
+std::string TargetHost(std::string target) {
+  for (const char* scheme : {"dns:///", "dns:", "ipv4:", "ipv6:"}) {
+    if (target.rfind(scheme, 0) == 0) {
+      target = target.substr(std::string(scheme).size());
+      break;
+    }
+  }
+  if (!target.empty() && target.front() == '[') return target.substr(1, target.find(']') - 1);
+  if (auto colon = target.rfind(':'); colon != std::string::npos) return target.substr(0, colon);
+  return target;
+}
+
 }  // namespace
+
+// The client's half of the UDP probe exchange (server/net/probe_datagram.h):
+// request, then on the challenge stamp T2, answer with T1, T2 and T3 (T3
+// right before the send). One thread; a connected UDP socket, so only the
+// server's datagrams arrive; an eventfd wakes it to stop.
+class UdpProber {
+ public:
+  // The first probes come this fast, so the model sharpens soon after the
+  // Welcome, as the server's own burst does.
+  static constexpr int kBurst = 8;
+  static constexpr Duration kBurstSpacing = Duration::Millis(50);
+  // A challenge later than this is given up; the next request has a new id.
+  static constexpr Duration kReplyTimeout = Duration::Millis(500);
+
+  // nullptr if the host does not resolve or no socket can be made: the
+  // stream's own probes still work, so this is not an error.
+  static std::unique_ptr<UdpProber> Start(const std::string& host, uint32_t port, uint64_t tag,
+                                          std::string key, const MonotonicSource* clock,
+                                          Duration interval, std::function<void()> on_exchange) {
+    addrinfo hints{};
+    hints.ai_socktype = SOCK_DGRAM;
+    addrinfo* found = nullptr;
+    if (getaddrinfo(host.c_str(), std::to_string(port).c_str(), &hints, &found) != 0) {
+      return nullptr;
+    }
+    int fd = -1;
+    for (addrinfo* a = found; a != nullptr && fd < 0; a = a->ai_next) {
+      fd = socket(a->ai_family, a->ai_socktype | SOCK_CLOEXEC, a->ai_protocol);
+      if (fd >= 0 && connect(fd, a->ai_addr, a->ai_addrlen) != 0) {
+        close(fd);
+        fd = -1;
+      }
+    }
+    freeaddrinfo(found);
+    if (fd < 0) return nullptr;
+    const int wake = eventfd(0, EFD_CLOEXEC);
+    if (wake < 0) {
+      close(fd);
+      return nullptr;
+    }
+    std::unique_ptr<UdpProber> p(new UdpProber(fd, wake, tag, std::move(key), clock, interval,
+                                               std::move(on_exchange)));
+    p->thread_ = std::thread([raw = p.get()] { raw->Run(); });
+    return p;
+  }
+
+  ~UdpProber() {
+    const uint64_t one = 1;
+    (void)!write(wake_, &one, sizeof one);
+    thread_.join();
+    close(fd_);
+    close(wake_);
+  }
+
+ private:
+  UdpProber(int fd, int wake, uint64_t tag, std::string key, const MonotonicSource* clock,
+            Duration interval, std::function<void()> on_exchange)
+      : fd_(fd), wake_(wake), tag_(tag), key_(std::move(key)), clock_(clock),
+        interval_(interval), on_exchange_(std::move(on_exchange)) {}
+
+  // Waits until the socket is readable (true) or the timeout passes or a
+  // stop is asked for (false; stopping_ tells which).
+  bool WaitReadable(Duration timeout) {
+    std::array<pollfd, 2> fds{pollfd{fd_, POLLIN, 0}, pollfd{wake_, POLLIN, 0}};
+    const int ms = static_cast<int>(std::max<int64_t>(0, timeout.nanos() / 1'000'000));
+    if (poll(fds.data(), fds.size(), ms) <= 0) return false;
+    if (fds[1].revents != 0) {
+      stopping_ = true;
+      return false;
+    }
+    return (fds[0].revents & POLLIN) != 0;
+  }
+
+  // Schedules run on the process's steady clock: the client clock (clock_)
+  // may be a test's hand-driven one and only stamps T2 and T3.
+  static int64_t SteadyNanos() {
+    return std::chrono::duration_cast<std::chrono::nanoseconds>(
+               std::chrono::steady_clock::now().time_since_epoch())
+        .count();
+  }
+
+  void Run() {
+    using net::ProbeDatagram;
+    using net::ProbeDatagramKind;
+    uint64_t id = 0;
+    int sent = 0;
+    std::array<char, net::kMaxProbeDatagramBytes + 1> buf{};
+    while (!stopping_) {
+      ProbeDatagram request{ProbeDatagramKind::kRequest, tag_, ++id};
+      const std::string out = net::EncodeProbeDatagram(request, key_);
+      if (send(fd_, out.data(), out.size(), 0) >= 0) {
+        const int64_t give_up = SteadyNanos() + kReplyTimeout.nanos();
+        while (!stopping_) {
+          const int64_t left = give_up - SteadyNanos();
+          if (left <= 0 || !WaitReadable(Duration::Nanos(left))) break;
+          const ssize_t n = recv(fd_, buf.data(), buf.size(), 0);
+          const int64_t t2 = clock_->NowNanos();  // as close to the read as we can
+          if (n <= 0) continue;  // e.g. ICMP port unreachable from an earlier send
+          ProbeDatagram c;
+          if (net::DecodeProbeDatagram(std::string_view(buf.data(), static_cast<size_t>(n)),
+                                       key_, &c) != net::ProbeDecodeResult::kOk ||
+              c.kind != ProbeDatagramKind::kChallenge || c.tag != tag_ || c.id != id) {
+            continue;  // stale or foreign; keep waiting for ours
+          }
+          ProbeDatagram answer{ProbeDatagramKind::kAnswer, tag_, id, c.t1_session_ns, t2, 0};
+          answer.t3_client_ns = clock_->NowNanos();
+          const std::string a = net::EncodeProbeDatagram(answer, key_);
+          if (send(fd_, a.data(), a.size(), 0) >= 0) on_exchange_();
+          break;
+        }
+      }
+      ++sent;
+      const Duration gap = sent < kBurst ? kBurstSpacing : interval_;
+      // Sleeps until the next probe unless asked to stop; datagrams that
+      // arrive meanwhile are late challenges, read and dropped.
+      const int64_t next = SteadyNanos() + gap.nanos();
+      while (!stopping_) {
+        const int64_t left = next - SteadyNanos();
+        if (left <= 0) break;
+        if (WaitReadable(Duration::Nanos(left))) (void)recv(fd_, buf.data(), buf.size(), 0);
+      }
+    }
+  }
+
+  const int fd_;     // connected UDP socket
+  const int wake_;   // eventfd: written to stop
+  const uint64_t tag_;
+  const std::string key_;
+  const MonotonicSource* const clock_;  // the client clock; T2 and T3
+  const Duration interval_;
+  const std::function<void()> on_exchange_;
+  bool stopping_ = false;  // only the thread touches it
+  std::thread thread_;
+};
 
 // One stream attempt. The worker thread owns it; the reader thread uses
 // `stream` for reads only; other threads touch only `ctx` (TryCancel is
@@ -60,6 +216,8 @@ struct StreamClient<Kind>::Connection {
   bool reader_done = false;  // Read() returned false; guarded by mu_
   bool writes_done = false;  // WritesDone() called; guarded by mu_
   std::deque<Request> probe_replies;  // T2 stamped, T3 not yet; guarded by mu_
+  // Declared last so it stops first: it reports to the client until then.
+  std::unique_ptr<UdpProber> udp;  // when the Welcome offered a probe port
 };
 
 template <typename Kind>
@@ -359,6 +517,16 @@ grpc::Status StreamClient<Kind>::RunConnection(bool* welcomed) {
     SetStateLocked(StreamState::kConnected);
   }
   NotifyState();
+  const tickmark::v1::Welcome& w = first.welcome();
+  if (options_.udp_probes && w.udp_probe_port() != 0 && w.udp_probe_port() <= 65535 &&
+      w.udp_probe_key().size() == net::kProbeKeyBytes) {
+    conn.udp = UdpProber::Start(TargetHost(options_.target), w.udp_probe_port(), w.udp_probe_tag(),
+                                w.udp_probe_key(), clock_, options_.udp_probe_interval, [this] {
+                                  std::lock_guard<std::mutex> lock(mu_);
+                                  ++status_.udp_probes;
+                                  cv_.notify_all();
+                                });
+  }
   conn.reader = std::thread([this, &conn] { ReadLoop(&conn); });
 
   // The writer: this thread is the only one that writes to the stream.
@@ -401,6 +569,7 @@ grpc::Status StreamClient<Kind>::RunConnection(bool* welcomed) {
   lock.unlock();
   // A failed write means the call is over, so the reader's Read fails too.
   conn.reader.join();
+  conn.udp.reset();
   grpc::Status s = conn.stream->Finish();
   forget();
   return s;

@@ -29,8 +29,16 @@
 // a sequence above any this client assigned, another program is using the
 // same client id: that is a permanent FAILED_PRECONDITION error.
 //
+// UDP probes. When the Welcome announces a UDP probe port (DEVELOPERS.md,
+// "UDP probe port") and StreamOptions::udp_probes is on, the connection also
+// starts clock probes itself over UDP to that port on the target's host: a
+// burst, then one per udp_probe_interval, each signed with the stream's key.
+// They feed the same clock model; a lost or blocked datagram costs nothing
+// but the sample, since the stream's own probes go on regardless.
+//
 // Threads and ownership. Connect() starts one worker thread (connects, waits,
-// writes) and each connection has one reader thread (acks, probes). The
+// writes) and each connection has one reader thread (acks, probes), plus
+// one UDP prober thread when the server offers a probe port. The
 // client owns both and joins them in Close() or the destructor.
 // Send, Flush, status and Close are thread-safe and may be called from any
 // thread. Callbacks run on the client's threads, without the client's lock
@@ -112,6 +120,9 @@ struct StreamOptions {
   // leaves it off (the server must permit pings this often, or it answers
   // with GOAWAY "too_many_pings").
   Duration keepalive = Duration::Zero();
+  // Start UDP probes when the server offers a probe port (see above).
+  bool udp_probes = true;
+  Duration udp_probe_interval = Duration::Seconds(1);
 };
 
 // One acknowledgement, as the UI shows it.
@@ -145,6 +156,7 @@ struct StreamStatus {
   uint64_t connections = 0;  // Welcomes received
   uint64_t reconnects = 0;   // connection attempts after the first
   uint64_t probes_answered = 0;
+  uint64_t udp_probes = 0;   // UDP probe exchanges completed (all connections)
   std::optional<AckInfo> last_ack;
   absl::Status last_error;  // latest stream error (OK if none yet)
   std::string session_id;   // from the latest Welcome

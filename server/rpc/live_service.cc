@@ -4,6 +4,8 @@
 #include <deque>
 #include <map>
 
+#include <openssl/rand.h>
+
 #include "server/base/log.h"
 #include "server/base/strings.h"
 #include "server/rpc/admin_service.h"
@@ -119,6 +121,7 @@ class IngestReactor final : public grpc::ServerBidiReactor<typename Side::In, v1
       runtime = runtime_;
     }
     service_->Unregister(this);
+    if (udp_tag_ != 0) service_->options().probe_port.remove_stream(udp_tag_);
     if (runtime && hello_done_) {
       runtime->RemoveStream(this);
       if (runtime->open()) {
@@ -230,6 +233,7 @@ class IngestReactor final : public grpc::ServerBidiReactor<typename Side::In, v1
     w->set_last_client_sequence(*last);
     w->set_max_state_bytes(service_->options().limits.max_state_bytes);
     w->set_max_features(service_->options().limits.max_features);
+    OpenProbePortLocked(w);
     out_.push_back(std::move(m));
     WriteNextLocked();
     TM_LOG(kInfo) << Side::kName << " '" << principal_.subject << "' connected to "
@@ -260,6 +264,60 @@ class IngestReactor final : public grpc::ServerBidiReactor<typename Side::In, v1
     ProbeTimestamps ts{sent->second, ClientTime::FromNanos(reply.t2_client_ns()),
                        ClientTime::FromNanos(reply.t3_client_ns()), t4};
     sent_probes_.erase(sent);
+    AddProbeLocked(ts, std::move(r));
+  }
+
+  // Admits this stream to the probe port, if there is one, and tells the
+  // client in the Welcome. A fresh tag and key per stream: a reconnect gets
+  // new ones, and the old ones die with the old stream.
+  void OpenProbePortLocked(v1::Welcome* w) {
+    const ProbePortHooks& port = service_->options().probe_port;
+    if (port.port == 0 || !port.add_stream) return;
+    uint64_t tag = 0;
+    std::string key(32, '\0');
+    auto* key_bytes = reinterpret_cast<unsigned char*>(key.data());
+    if (RAND_bytes(reinterpret_cast<unsigned char*>(&tag), sizeof tag) != 1 ||
+        RAND_bytes(key_bytes, static_cast<int>(key.size())) != 1) {
+      TM_LOG(kWarning) << "no random bytes for a UDP probe key; stream probes only";
+      return;
+    }
+    if (tag == 0) tag = 1;  // 0 means "none"
+    std::weak_ptr<IngestReactor> weak = this->shared_from_this();
+    std::shared_ptr<SessionRuntime> runtime = runtime_;
+    port.add_stream(
+        tag, key, [runtime] { return runtime->Now(); },
+        [weak](uint64_t probe_id, const ProbeTimestamps& ts) {
+          auto self = weak.lock();
+          if (!self) return;
+          std::lock_guard<std::mutex> lock(self->mu_);
+          self->HandleUdpSampleLocked(probe_id, ts);
+        });
+    udp_tag_ = tag;
+    w->set_udp_probe_port(port.port);
+    w->set_udp_probe_tag(tag);
+    w->set_udp_probe_key(key);
+  }
+
+  // A probe the client started over the UDP probe port (server/net/).
+  void HandleUdpSampleLocked(uint64_t probe_id, const ProbeTimestamps& ts) {
+    if (finished_ || !hello_done_) return;
+    v1::Record r;
+    r.set_written_session_ns(ts.t4.nanos());
+    v1::Probe* p = r.mutable_probe();
+    p->set_client_id(client_.client_id());
+    p->set_probe_id(probe_id);
+    p->set_t2_client_ns(ts.t2.nanos());
+    p->set_t3_client_ns(ts.t3.nanos());
+    p->set_t4_session_ns(ts.t4.nanos());
+    p->set_transport("udp");
+    AddProbeLocked(ts, std::move(r));
+  }
+
+  // Judges a complete probe, adds it to the model and writes the Probe
+  // record `r` (client id, id, T2–T4 already set) and the model update.
+  void AddProbeLocked(const ProbeTimestamps& ts, v1::Record r) {
+    const SessionTime t4 = ts.t4;
+    v1::Probe* p = r.mutable_probe();
     const OnWire w = ComputeOnWire(ts);
     p->set_t1_session_ns(ts.t1.nanos());
     p->set_offset_ns(w.offset.nanos());
@@ -421,6 +479,7 @@ class IngestReactor final : public grpc::ServerBidiReactor<typename Side::In, v1
   int64_t outstanding_since_mono_ = 0;
   std::map<uint64_t, SessionTime> sent_probes_;  // probe id -> T1
   uint64_t rejected_probes_ = 0;
+  uint64_t udp_tag_ = 0;  // this stream's tag at the probe port; 0: none
   int64_t last_step_start_ns_ = 0;   // agent clock; steps must move forward
   int64_t last_step_end_agent_ns_ = -1;  // explicit end of the last step (agent clock)
   SessionTime last_step_end_session_;    // ... and where it was mapped

@@ -14,17 +14,25 @@
 // buffer; when it overflows the subscriber falls back to reading the ledger,
 // so a stalled subscriber never slows ingest or other subscribers.
 //
+// With a probe port (Options::probe_port) each Welcome also carries a fresh
+// tag and key for client-started UDP probes, whose samples go to the same
+// clock model and ledger as the stream's own probes (Probe.transport "udp").
+//
 // Thread safety: gRPC drives the reactors from its threads; commits arrive
-// on the ledger thread; a ticker thread drives probes. Each reactor
-// serialises its state with its own mutex.
+// on the ledger thread; a ticker thread drives probes; UDP samples arrive
+// on the probe port's thread. Each reactor serialises its state with its
+// own mutex.
 #ifndef TICKMARK_SERVER_RPC_LIVE_SERVICE_H_
 #define TICKMARK_SERVER_RPC_LIVE_SERVICE_H_
 
 #include <atomic>
 #include <condition_variable>
+#include <functional>
+#include <map>
 #include <memory>
 #include <mutex>
 #include <set>
+#include <string>
 #include <thread>
 
 #include "server/core/clock_model.h"
@@ -41,6 +49,19 @@ class Tickable {
   virtual void OnTick() = 0;
 };
 
+// A side channel on which clients start clock probes themselves (the UDP
+// probe port, server/net/). rpc knows it only through these hooks, so rpc and
+// net stay independent; TickmarkServer connects them. Unset (port 0): none.
+struct ProbePortHooks {
+  uint16_t port = 0;  // announced in every Welcome; 0: no probe port
+  // Admits a stream: datagrams with `tag`, signed with `key`, are timed with
+  // `now` and their samples passed to `on_sample` (from the port's thread).
+  std::function<void(uint64_t tag, std::string key, std::function<SessionTime()> now,
+                     std::function<void(uint64_t probe_id, const ProbeTimestamps&)> on_sample)>
+      add_stream;
+  std::function<void(uint64_t tag)> remove_stream;
+};
+
 class LiveService final : public tickmark::v1::Live::CallbackService {
  public:
   struct Options {
@@ -52,6 +73,7 @@ class LiveService final : public tickmark::v1::Live::CallbackService {
     Duration clock_wait = Duration::Seconds(2);           // longest a message waits for a clock model
     size_t subscriber_buffer = 4096;                      // live records buffered per subscriber
     ClockModel::Options clock;
+    ProbePortHooks probe_port;                            // optional UDP probes
   };
 
   LiveService(SessionHub* hub, TokenAuthority* auth, const MonotonicSource* mono, Options options);

@@ -12,6 +12,7 @@
 #include "server/base/log.h"
 #include "server/base/strings.h"
 #include "server/ledger/sqlite/sqlite_ledger.h"
+#include "server/net/udp_probe_server.h"
 
 namespace tickmark::rpc {
 namespace {
@@ -52,13 +53,18 @@ absl::Status EnsureOperatorToken(TokenAuthority* auth, const std::string& path,
 
 }  // namespace
 
-bool IsLoopbackAddress(const std::string& host_port) {
+std::string ListenHost(const std::string& host_port) {
   std::string host = host_port;
   if (!host.empty() && host.front() == '[') {
     host = host.substr(1, host.find(']') - 1);
   } else if (auto colon = host.rfind(':'); colon != std::string::npos) {
     host = host.substr(0, colon);
   }
+  return host;
+}
+
+bool IsLoopbackAddress(const std::string& host_port) {
+  const std::string host = ListenHost(host_port);
   return host == "localhost" || host == "::1" || host.rfind("127.", 0) == 0;
 }
 
@@ -116,7 +122,26 @@ absl::StatusOr<std::unique_ptr<TickmarkServer>> TickmarkServer::Start(
     return st;
   }
   s->admin_ = std::make_unique<AdminService>(s->hub_.get(), s->auth_.get());
-  s->live_ = std::make_unique<LiveService>(s->hub_.get(), s->auth_.get(), &s->mono_, options.live);
+  LiveService::Options live = options.live;
+  if (options.udp_probe) {
+    auto udp = net::UdpProbeServer::Start(ListenHost(options.listen), options.udp_probe_port);
+    if (!udp.ok()) {
+      s->shut_down_ = true;  // nothing is serving yet; Shutdown() has nothing to stop
+      return udp.status();
+    }
+    s->udp_ = std::move(*udp);
+    net::UdpProbeTable* table = &s->udp_->table();
+    live.probe_port.port = s->udp_->port();
+    live.probe_port.add_stream =
+        [table](uint64_t tag, std::string key, std::function<SessionTime()> now,
+                std::function<void(uint64_t, const ProbeTimestamps&)> on_sample) {
+          table->Add(tag,
+                     net::UdpProbeStream{std::move(key), std::move(now), std::move(on_sample)});
+        };
+    live.probe_port.remove_stream = [table](uint64_t tag) { table->Remove(tag); };
+    TM_LOG(kInfo) << "UDP probe port " << s->udp_->port();
+  }
+  s->live_ = std::make_unique<LiveService>(s->hub_.get(), s->auth_.get(), &s->mono_, live);
 
   grpc::ServerBuilder builder;
   builder.AddListeningPort(options.listen, creds, &s->port_);
@@ -142,6 +167,8 @@ void TickmarkServer::Shutdown(Duration grace) {
   server_->Shutdown(std::chrono::system_clock::now() +
                     std::chrono::nanoseconds(grace.nanos()));
   live_->Stop();
+  // After the streams: their last UDP samples still found the port.
+  if (udp_) udp_->Stop();
   if (absl::Status st = ledger_->Flush(); !st.ok()) {
     TM_LOG(kError) << "ledger flush at shutdown: " << st.message();
   }
@@ -149,6 +176,8 @@ void TickmarkServer::Shutdown(Duration grace) {
 }
 
 void TickmarkServer::Wait() { server_->Wait(); }
+
+int TickmarkServer::udp_probe_port() const { return udp_ ? udp_->port() : 0; }
 
 TickmarkServer::~TickmarkServer() { Shutdown(Duration::Zero()); }
 

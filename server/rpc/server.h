@@ -15,6 +15,10 @@
 #include "server/rpc/admin_service.h"
 #include "server/rpc/live_service.h"
 
+namespace tickmark::net {
+class UdpProbeServer;
+}
+
 namespace tickmark::rpc {
 
 struct ServerOptions {
@@ -27,6 +31,11 @@ struct ServerOptions {
   std::string tls_cert_file;
   std::string tls_key_file;
   bool allow_insecure_remote = false;
+  // The UDP probe port (DEVELOPERS.md, "UDP probe port"): off unless
+  // udp_probe; bound on the gRPC listen host, udp_probe_port 0 picks a free
+  // port. Its hooks in live.probe_port are filled in by Start().
+  bool udp_probe = false;
+  uint16_t udp_probe_port = 0;
   LiveService::Options live;
   SessionHub::Options sessions;
 };
@@ -39,6 +48,8 @@ class TickmarkServer {
 
   // The bound port (useful with port 0).
   int port() const { return port_; }
+  // The bound UDP probe port; 0 when off.
+  int udp_probe_port() const;
   const std::string& operator_token_path() const { return operator_token_path_; }
   const std::string& ledger_path() const { return ledger_path_; }
   // Stops accepting, ends streams (giving them `grace` to finish), commits
@@ -54,6 +65,7 @@ class TickmarkServer {
   std::unique_ptr<SessionHub> hub_;
   std::unique_ptr<TokenAuthority> auth_;
   std::unique_ptr<AdminService> admin_;
+  std::unique_ptr<net::UdpProbeServer> udp_;  // the UDP probe port, if on
   std::unique_ptr<LiveService> live_;
   std::unique_ptr<grpc::Server> server_;
   int port_ = 0;
@@ -64,6 +76,8 @@ class TickmarkServer {
 
 // True if host:port names a loopback address (127.0.0.0/8, [::1], localhost).
 bool IsLoopbackAddress(const std::string& host_port);
+// The host part of host:port or [v6]:port, brackets removed.
+std::string ListenHost(const std::string& host_port);
 
 }  // namespace tickmark::rpc
 
