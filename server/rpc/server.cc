@@ -164,15 +164,20 @@ void TickmarkServer::Shutdown(Duration grace) {
   // Stop accepting; give open calls `grace`, then cancel them. Every
   // acknowledged record is already committed; what is in flight commits on
   // Close below.
-  server_->Shutdown(std::chrono::system_clock::now() +
-                    std::chrono::nanoseconds(grace.nanos()));
-  live_->Stop();
+  // Start() may have failed part way: stop only what was built.
+  if (server_) {
+    server_->Shutdown(std::chrono::system_clock::now() +
+                      std::chrono::nanoseconds(grace.nanos()));
+  }
+  if (live_) live_->Stop();
   // After the streams: their last UDP samples still found the port.
   if (udp_) udp_->Stop();
-  if (absl::Status st = ledger_->Flush(); !st.ok()) {
-    TM_LOG(kError) << "ledger flush at shutdown: " << st.message();
+  if (ledger_) {
+    if (absl::Status st = ledger_->Flush(); !st.ok()) {
+      TM_LOG(kError) << "ledger flush at shutdown: " << st.message();
+    }
+    ledger_->Close();
   }
-  ledger_->Close();
 }
 
 void TickmarkServer::Wait() { server_->Wait(); }

@@ -226,3 +226,25 @@ TEST_F(AdminTest, MarkerIsStoredAndAcknowledgedWithItsSequence) {
 
 }  // namespace
 }  // namespace tickmark::testing
+
+namespace tickmark::testing {
+namespace {
+
+// Regression: a failed start (here: a ledger path that cannot be opened)
+// crashed in the destructor, which shut down a server never built.
+TEST(ServerStartTest, AFailedStartReportsItsErrorAndCleansUp) {
+  TempDir dir;
+  rpc::ServerOptions o;
+  o.listen = "127.0.0.1:0";
+  o.data_dir = dir.path();
+  o.ledger_path = dir.path() + "/no-such-folder/x.db";
+  auto s = rpc::TickmarkServer::Start(o);
+  EXPECT_FALSE(s.ok());
+  o.ledger_path.clear();
+  o.listen = "192.0.2.1:0";  // RFC 5737 documentation address; plaintext refused
+  auto remote = rpc::TickmarkServer::Start(o);
+  EXPECT_EQ(remote.status().code(), absl::StatusCode::kInvalidArgument);
+}
+
+}  // namespace
+}  // namespace tickmark::testing
