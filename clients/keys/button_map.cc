@@ -10,23 +10,12 @@
 #include <toml++/toml.h>
 
 #include "clients/keys/evdev.h"
+#include "clients/keys/profile_toml.h"
 
 namespace tickmark::keys {
 namespace {
 
-absl::Status Error(std::string_view source, const toml::source_region& r,
-                   const std::string& what) {
-  std::ostringstream os;
-  os << source << ":" << r.begin.line << ":" << r.begin.column << ": " << what;
-  return absl::InvalidArgumentError(os.str());
-}
-
-std::string FormatValue(double v) {
-  std::ostringstream os;
-  if (v > 0) os << '+';
-  os << v;
-  return os.str();
-}
+using profile::Error;
 
 }  // namespace
 
@@ -76,48 +65,10 @@ absl::StatusOr<ButtonMap> ButtonMap::FromToml(std::string_view text,
     ++index;
     const toml::table& t = *entry.as_table();
     const std::string ctx = "binding " + std::to_string(index) + ": ";
-    for (const auto& [k, node] : t) {
-      const std::string field(k.str());
-      if (field != "buttons" && field != "value" && field != "label" && field != "action") {
-        return Error(source_name, k.source(),
-                     ctx + "unknown field \"" + field +
-                         "\" (expected buttons, value, label, action)");
-      }
-    }
-    Binding b;
-    const toml::node* action = t.get("action");
-    const toml::node* value = t.get("value");
-    if (action != nullptr) {
-      if (!action->is_string() || **action->as_string() != "quit") {
-        return Error(source_name, action->source(), ctx + "action must be \"quit\"");
-      }
-      if (value != nullptr) {
-        return Error(source_name, value->source(), ctx + "a quit binding takes no value");
-      }
-      b.action = Binding::Action::kQuit;
-      b.label = "quit";
-    } else {
-      if (value == nullptr) {
-        return Error(source_name, entry.source(), ctx + "needs a value (or action = \"quit\")");
-      }
-      if (value->is_integer()) {
-        b.value = static_cast<double>(**value->as_integer());
-      } else if (value->is_floating_point()) {
-        b.value = **value->as_floating_point();
-      } else {
-        return Error(source_name, value->source(), ctx + "value must be a number");
-      }
-      if (!std::isfinite(b.value) || std::fabs(b.value) > kMaxFeedbackMagnitude) {
-        return Error(source_name, value->source(),
-                     ctx + "value must be finite and within [-1000, 1000]");
-      }
-      b.label = FormatValue(b.value);
-      any_feedback = true;
-    }
-    if (const toml::node* label = t.get("label"); label != nullptr) {
-      if (!label->is_string()) return Error(source_name, label->source(), ctx + "label must be a string");
-      b.label = **label->as_string();
-    }
+    auto parsed = profile::ParseBinding(source_name, t, entry, ctx, "buttons");
+    if (!parsed.ok()) return parsed.status();
+    const Binding b = *parsed;
+    any_feedback |= b.action == Binding::Action::kFeedback;
     const toml::node* buttons = t.get("buttons");
     if (buttons == nullptr || !buttons->is_array() || buttons->as_array()->empty()) {
       return Error(source_name, (buttons != nullptr ? *buttons : entry).source(),

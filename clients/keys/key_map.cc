@@ -9,6 +9,8 @@
 
 #include <toml++/toml.h>
 
+#include "clients/keys/profile_toml.h"
+
 namespace tickmark::keys {
 namespace {
 
@@ -20,27 +22,14 @@ const std::set<std::string, std::less<>>& NamedKeys() {
   return *kNames;
 }
 
-std::string Where(std::string_view source, const toml::source_region& r) {
-  std::ostringstream os;
-  os << source << ":" << r.begin.line << ":" << r.begin.column;
-  return os.str();
-}
-
 absl::Status ProfileError(std::string_view source, const toml::source_region& at,
                           const std::string& what) {
-  return absl::InvalidArgumentError(Where(source, at) + ": " + what);
+  return profile::Error(source, at, what);
 }
 
 absl::Status ProfileError(std::string_view source, const toml::node& node,
                           const std::string& what) {
   return ProfileError(source, node.source(), what);
-}
-
-std::string FormatValue(double v) {
-  std::ostringstream os;
-  if (v > 0) os << '+';
-  os << v;
-  return os.str();
 }
 
 }  // namespace
@@ -69,8 +58,7 @@ absl::StatusOr<KeyMap> KeyMap::FromToml(std::string_view text,
   try {
     root = toml::parse(text, source_name);
   } catch (const toml::parse_error& e) {
-    return absl::InvalidArgumentError(Where(source_name, e.source()) + ": " +
-                                      std::string(e.description()));
+    return ProfileError(source_name, e.source(), std::string(e.description()));
   }
   KeyMap m;
   m.name_ = std::string(source_name);
@@ -98,48 +86,10 @@ absl::StatusOr<KeyMap> KeyMap::FromToml(std::string_view text,
     ++index;
     const toml::table& t = *entry.as_table();
     const std::string ctx = "binding " + std::to_string(index) + ": ";
-    for (const auto& [k, node] : t) {
-      const std::string field(k.str());
-      if (field != "keys" && field != "value" && field != "label" && field != "action") {
-        return ProfileError(source_name, k.source(),
-                            ctx + "unknown field \"" + field +
-                                "\" (expected keys, value, label, action)");
-      }
-    }
-    Binding b;
-    const toml::node* action = t.get("action");
-    const toml::node* value = t.get("value");
-    if (action != nullptr) {
-      if (!action->is_string() || **action->as_string() != "quit") {
-        return ProfileError(source_name, *action, ctx + "action must be \"quit\"");
-      }
-      if (value != nullptr) {
-        return ProfileError(source_name, *value, ctx + "a quit binding takes no value");
-      }
-      b.action = Binding::Action::kQuit;
-      b.label = "quit";
-    } else {
-      if (value == nullptr) {
-        return ProfileError(source_name, entry, ctx + "needs a value (or action = \"quit\")");
-      }
-      if (value->is_integer()) {
-        b.value = static_cast<double>(**value->as_integer());
-      } else if (value->is_floating_point()) {
-        b.value = **value->as_floating_point();
-      } else {
-        return ProfileError(source_name, *value, ctx + "value must be a number");
-      }
-      if (!std::isfinite(b.value) || std::fabs(b.value) > kMaxFeedbackMagnitude) {
-        return ProfileError(source_name, *value,
-                            ctx + "value must be finite and within [-1000, 1000]");
-      }
-      b.label = FormatValue(b.value);
-      any_feedback = true;
-    }
-    if (const toml::node* label = t.get("label"); label != nullptr) {
-      if (!label->is_string()) return ProfileError(source_name, *label, ctx + "label must be a string");
-      b.label = **label->as_string();
-    }
+    auto parsed = profile::ParseBinding(source_name, t, entry, ctx, "keys");
+    if (!parsed.ok()) return parsed.status();
+    const Binding b = *parsed;
+    any_feedback |= b.action == Binding::Action::kFeedback;
     const toml::node* keys = t.get("keys");
     if (keys == nullptr || !keys->is_array() || keys->as_array()->empty()) {
       return ProfileError(source_name, keys != nullptr ? *keys : entry,
