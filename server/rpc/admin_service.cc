@@ -73,10 +73,10 @@ absl::Status Summarize(SessionHub* hub, const ledger::SessionRow& row, v1::Sessi
   out->set_late_count(counts->late);
   out->set_unmatched_count(counts->unmatched);
   out->set_rejected_probe_count(counts->rejected_probes);
-  if (row.open) {
-    if (auto rt = hub->Get(row.id); rt.ok()) {
-      out->set_connected_clients(static_cast<uint32_t>((*rt)->StreamCount()));
-    }
+  // A session nobody has touched since the start has no streams; Find
+  // avoids loading it (and replaying its ledger) just to say so.
+  if (auto rt = hub->Find(row.id)) {
+    out->set_connected_clients(static_cast<uint32_t>(rt->StreamCount()));
   }
   return absl::OkStatus();
 }
@@ -224,8 +224,8 @@ grpc::ServerUnaryReactor* AdminService::RevokeToken(grpc::CallbackServerContext*
   }
   auto row = hub_->ledger()->RevokeToken(req->session_id(), req->token_id());
   if (!row.ok()) return Done(ctx, row.status());
-  if (auto rt = hub_->Get(req->session_id()); rt.ok()) {
-    (*rt)->EndStreamsOf(row->id, grpc::Status(grpc::StatusCode::UNAUTHENTICATED,
+  if (auto rt = hub_->Find(req->session_id())) {  // not loaded: no streams to end
+    rt->EndStreamsOf(row->id, grpc::Status(grpc::StatusCode::UNAUTHENTICATED,
                                               "token " + row->id + " has been revoked"));
   }
   *resp->mutable_token() = ToProto(*row);
@@ -474,7 +474,7 @@ grpc::ServerWriteReactor<v1::ReplayProgress>* AdminService::Replay(
     s = absl::InvalidArgumentError(
         "name the derived set: 1-64 of [A-Za-z0-9._-], not 'live'");
   }
-  if (s.ok()) s = hub_->Get(req->session_id()).status();
+  if (s.ok()) s = hub_->ledger()->GetSession(req->session_id()).status();
   if (!s.ok()) {
     reactor->End(ToGrpc(s));
     return reactor;

@@ -85,7 +85,7 @@ class IngestReactor final : public grpc::ServerBidiReactor<typename Side::In, v1
     } else if (Side::IsHello(in_)) {
       FinishLocked(Error(grpc::StatusCode::INVALID_ARGUMENT, "a second hello on one stream"));
     } else if (Side::IsProbeReply(in_)) {
-      HandleProbeReplyLocked(in_.probe_reply(), arrival_mono);
+      HandleProbeReplyLocked(in_.probe_reply());
     } else if (Side::IsPayload(in_)) {
       if (!model_.ready() && (held_.size() > 0 || arrival_mono - hello_mono_ns_ <
                                                      service_->options().clock_wait.nanos())) {
@@ -117,7 +117,6 @@ class IngestReactor final : public grpc::ServerBidiReactor<typename Side::In, v1
     std::shared_ptr<SessionRuntime> runtime;
     {
       std::lock_guard<std::mutex> lock(mu_);
-      done_ = true;
       runtime = runtime_;
     }
     service_->Unregister(this);
@@ -241,8 +240,7 @@ class IngestReactor final : public grpc::ServerBidiReactor<typename Side::In, v1
                   << ctx_->peer();
   }
 
-  void HandleProbeReplyLocked(const v1::ProbeReply& reply, int64_t arrival_mono) {
-    (void)arrival_mono;
+  void HandleProbeReplyLocked(const v1::ProbeReply& reply) {
     const SessionTime t4 = runtime_->Now();
     auto sent = sent_probes_.find(reply.probe_id());
     v1::Record r;
@@ -328,8 +326,7 @@ class IngestReactor final : public grpc::ServerBidiReactor<typename Side::In, v1
     p->set_accepted(accepted);
     if (!accepted) p->set_reject_reason(ProbeVerdictName(verdict));
     runtime_->AppendRecord(std::move(r)).IgnoreError();
-    if (!accepted) {
-      ++rejected_probes_;
+    if (!accepted) {  // kept in the ledger and counted there
       TM_LOG(kDebug) << "probe from " << client_.client_id()
                      << " rejected: " << ProbeVerdictName(verdict);
       return;
@@ -460,7 +457,6 @@ class IngestReactor final : public grpc::ServerBidiReactor<typename Side::In, v1
   bool writing_ = false;
   bool read_closed_ = false;
   bool finished_ = false;
-  bool done_ = false;
   bool hello_done_ = false;
   std::string end_reason_;
   Principal principal_;
@@ -478,7 +474,6 @@ class IngestReactor final : public grpc::ServerBidiReactor<typename Side::In, v1
   bool outstanding_probe_ = false;
   int64_t outstanding_since_mono_ = 0;
   std::map<uint64_t, SessionTime> sent_probes_;  // probe id -> T1
-  uint64_t rejected_probes_ = 0;
   uint64_t udp_tag_ = 0;  // this stream's tag at the probe port; 0: none
   int64_t last_step_start_ns_ = 0;   // agent clock; steps must move forward
   int64_t last_step_end_agent_ns_ = -1;  // explicit end of the last step (agent clock)
@@ -651,9 +646,7 @@ class SubscribeReactor final : public grpc::ServerWriteReactor<v1::Record>,
       std::lock_guard<std::mutex> lock(inbox_mu_);
       if (inbox_.size() + records.size() <= service_->options().subscriber_buffer) {
         inbox_.insert(inbox_.end(), records.begin(), records.end());
-      } else {
-        ++overflows_;  // the gap is refilled from the ledger
-      }
+      }  // else dropped: PumpLocked refills the gap from the ledger
     }
     if (idle_.load()) {
       std::lock_guard<std::mutex> lock(mu_);
@@ -776,7 +769,6 @@ class SubscribeReactor final : public grpc::ServerWriteReactor<v1::Record>,
   std::mutex inbox_mu_;             // only guards inbox_ (taken by the ledger thread)
   std::deque<v1::Record> inbox_;    // live records, bounded
   std::atomic<bool> idle_{false};   // caught up and waiting for commits
-  uint64_t overflows_ = 0;          // GUARDED_BY(inbox_mu_)
 };
 
 }  // namespace

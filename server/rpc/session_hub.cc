@@ -313,6 +313,12 @@ absl::StatusOr<std::shared_ptr<SessionRuntime>> SessionHub::Get(const std::strin
   return runtime;
 }
 
+std::shared_ptr<SessionRuntime> SessionHub::Find(const std::string& id) {
+  std::lock_guard<std::mutex> lock(mu_);
+  auto it = sessions_.find(id);
+  return it == sessions_.end() ? nullptr : it->second;
+}
+
 absl::StatusOr<std::shared_ptr<SessionRuntime>> SessionHub::Create(const std::string& title,
                                                                    const std::string& study,
                                                                    const std::string& kernel) {

@@ -149,6 +149,9 @@ class SessionHub {
   // The runtime of a session, loaded from the ledger on first use.
   // NOT_FOUND for an unknown session.
   absl::StatusOr<std::shared_ptr<SessionRuntime>> Get(const std::string& id);
+  // The runtime of a session if it is loaded already, else null. Unlike Get
+  // this never loads (loading replays the ledger into the credit engine).
+  std::shared_ptr<SessionRuntime> Find(const std::string& id);
   // Creates and opens a session anchored to UTC now, with `kernel` (text
   // form; empty: the server default) as its default delay kernel.
   absl::StatusOr<std::shared_ptr<SessionRuntime>> Create(const std::string& title,

@@ -173,6 +173,13 @@ TEST_F(AdminTest, TokensAreStoredHashedNeverInTheClear) {
   EXPECT_EQ(sqlite3_column_int(q, 0), 0);
   sqlite3_finalize(q);
   sqlite3_close(db);
+  // Nor anywhere in the ledger's files, byte for byte.
+  for (const char* name : {"/tickmark.db", "/tickmark.db-wal"}) {
+    std::ifstream in(dir_.path() + name, std::ios::binary);
+    const std::string bytes((std::istreambuf_iterator<char>(in)), std::istreambuf_iterator<char>());
+    EXPECT_EQ(bytes.find(secret), std::string::npos) << name;
+    EXPECT_EQ(bytes.find(secret.substr(4)), std::string::npos) << name;  // without "tmk_"
+  }
 }
 
 TEST_F(AdminTest, RevokedTokenIsRefusedAndItsStreamEnds) {

@@ -319,8 +319,8 @@ void SqliteLedger::Close() {
     // A clean close checkpoints the WAL into the main file.
     sqlite3_close(writer_db_);
   }
-  const_cast<sqlite3*&>(reader_db_) = nullptr;
-  const_cast<sqlite3*&>(writer_db_) = nullptr;
+  reader_db_ = nullptr;
+  writer_db_ = nullptr;
 }
 
 absl::Status SqliteLedger::RunSync(std::function<absl::Status(sqlite3*)> op) {

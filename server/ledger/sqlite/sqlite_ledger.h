@@ -104,9 +104,9 @@ class SqliteLedger final : public Ledger {
   Stmt& Prepared(const char* sql);
 
   const Options options_;
-  sqlite3* const writer_db_;  // used only on the writer thread (and in Open/Close)
+  sqlite3* writer_db_;  // used only on the writer thread (and in Open/Close)
   std::mutex read_mu_;        // serialises use of reader_db_
-  sqlite3* const reader_db_;  // GUARDED_BY(read_mu_)
+  sqlite3* reader_db_;  // GUARDED_BY(read_mu_)
 
   std::mutex mu_;
   std::condition_variable work_cv_;             // signalled when queue_ grows or closing_
