@@ -130,6 +130,12 @@ class Ledger {
                                      const std::vector<tickmark::v1::Record>& records,
                                      bool overwrite) = 0;
 
+  // Whether writes succeed now: OK, or the reason they are failing (for
+  // example RESOURCE_EXHAUSTED while the disk is full). Shown to operators
+  // (session show, health) and in the log; a failing ledger recovers by
+  // itself when the cause is gone.
+  virtual absl::Status WriteHealth() { return absl::OkStatus(); }
+
   // Commits what is queued, stops the writer and closes the database.
   // Appends after Close fail with UNAVAILABLE.
   virtual void Close() = 0;
