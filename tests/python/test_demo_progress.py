@@ -9,6 +9,8 @@ from __future__ import annotations
 import io
 import os
 import pty
+import select
+import time
 
 from tickmark.demo.learner import episode_line
 from tickmark.demo.progress import ProgressLine, is_terminal
@@ -43,6 +45,19 @@ def test_progress_to_a_string_buffer_is_plain_lines():
     assert buffer.getvalue() == "".join(t + "\n" for t in _lines(2))
 
 
+def _read_until_newline(fd, timeout=10.0):
+    """Reads a pty's master side until the output ends a line (a pty may hand it over in parts)."""
+    out = b""
+    deadline = time.monotonic() + timeout
+    while not out.endswith(b"\n"):
+        left = deadline - time.monotonic()
+        assert left > 0, f"no end of line from the pty; got {out!r}"
+        ready, _, _ = select.select([fd], [], [], left)
+        if ready:
+            out += os.read(fd, 4096)
+    return out.decode()
+
+
 def test_progress_on_a_terminal_rewrites_one_line_and_ends_it():
     master, slave = pty.openpty()
     try:
@@ -53,7 +68,7 @@ def test_progress_on_a_terminal_rewrites_one_line_and_ends_it():
             progress.show("episode   1 | a longer first line")
             progress.show("episode   2 | short")
             progress.finish()
-        out = os.read(master, 4096).decode()
+        out = _read_until_newline(master)
     finally:
         os.close(master)
         os.close(slave)
