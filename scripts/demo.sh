@@ -1,9 +1,9 @@
 #!/usr/bin/env bash
-# The dock-rover demo (design.md §8), called by ./run demo: a real tickmarkd
+# The dock-rover demo (docs/architecture.md §8), called by ./run demo: a real tickmarkd
 # on a temporary ledger; a rover agent that learns from settled labels; a
 # simulated trainer whose clock is offset and drifting and whose feedback
-# crosses an emulated link (150 ms ± 75 ms). Prints a live progress line, then
-# a summary, the ledger path and a plot.
+# crosses an emulated link (150 ms ± 75 ms). Prints progress (a live line on a
+# terminal, one line per episode in a log), then a summary, the ledger path and a plot.
 set -euo pipefail
 BUILD=${1:?usage: demo.sh BUILD_DIR [SECONDS]}
 SECONDS_TO_DRIVE=${2:-75}
@@ -19,7 +19,9 @@ cleanup() {
 }
 trap cleanup EXIT
 
-say() { printf '\n\033[1m== %s\033[0m\n' "$*"; }
+say() {  # bold on a terminal; plain text in a log
+  if [[ -t 1 ]]; then printf '\n\033[1m== %s\033[0m\n' "$*"; else printf '\n== %s\n' "$*"; fi
+}
 wait_for_line() {  # file pattern -> waits up to 10 s for a line matching pattern
   for _ in $(seq 100); do
     grep -q "$2" "$1" 2>/dev/null && return 0

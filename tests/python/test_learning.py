@@ -36,11 +36,12 @@ def test_rover_learns_from_tickmark_labels_and_beats_naive_credit(server, links,
          "--watch-token-file", str(observer_token), "--seconds", str(seconds + 1), "--seed", "3"],
         env=env, stderr=subprocess.PIPE, text=True)
     summary = tmp_path / "summary.json"
+    learner_log = open(tmp_path / "learner.err", "w")  # a file, not a terminal
     learner = subprocess.Popen(
         [PY, "-m", "tickmark.demo.learner", "--server", server.address,
          "--token-file", str(agent_token), "--seconds", str(seconds), "--epsilon", "0.5", "--rate", "5",
          "--seed", "3", "--summary", str(summary)],
-        env=env, stdout=subprocess.PIPE, stderr=subprocess.DEVNULL, text=True)
+        env=env, stdout=subprocess.PIPE, stderr=learner_log, text=True)
     try:
         assert trainer.wait(120) == 0, trainer.stderr.read()
         server.close_session(session, admin)
@@ -49,10 +50,15 @@ def test_rover_learns_from_tickmark_labels_and_beats_naive_credit(server, links,
         for p in (trainer, learner):
             if p.poll() is None:
                 p.kill()
+        learner_log.close()
     assert learner.returncode == 0
     result = json.loads(summary.read_text())
     print(json.dumps(result, indent=2))
     assert result["session_closed"]
+    # Progress to a log: one line per episode, no carriage returns.
+    log = (tmp_path / "learner.err").read_bytes()  # bytes: text mode would turn '\r' into '\n'
+    assert b"\r" not in log
+    assert sum(line.startswith(b"episode ") for line in log.split(b"\n")) == result["episodes"]
     assert result["feedback"] >= 100
     assert result["labels"] >= result["steps"] * 0.9
     # Margins (fractions of 100 seeded evaluation episodes).

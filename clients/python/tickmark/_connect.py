@@ -46,7 +46,7 @@ def _is_loopback(target: str) -> bool:
 
 
 def open_channel(target: str, ca_file: Optional[str] = None, insecure: bool = False) -> grpc.Channel:
-    """Plaintext on loopback (or when insecure); TLS otherwise (design.md §7)."""
+    """Plaintext on loopback (or when insecure); TLS otherwise (docs/architecture.md §7)."""
     if ca_file:
         with open(ca_file, "rb") as f:
             creds = grpc.ssl_channel_credentials(root_certificates=f.read())

@@ -25,6 +25,7 @@ import time
 
 import tickmark
 from tickmark.demo import model, world
+from tickmark.demo.progress import ProgressLine
 
 
 class Observer:
@@ -102,6 +103,14 @@ class Observer:
         return self.credit_on_target / self.credit_total if self.credit_total > 0 else float("nan")
 
 
+def episode_line(episode: int, feedback: int, labels: int, recent: list, learned: float,
+                 precision: float) -> str:
+    """The progress text after an episode; `recent` holds the last episodes' docked flags."""
+    return (f"episode {episode:3d} | feedback {feedback:4d} | labels {labels:4d} | "
+            f"success (last 10) {100 * sum(recent) / len(recent):3.0f}% | "
+            f"greedy eval {100 * learned:3.0f}% | credit precision {precision:.2f}")
+
+
 def main(argv=None) -> int:
     p = argparse.ArgumentParser(prog="python3 -m tickmark.demo.learner", description=__doc__,
                                 formatter_class=argparse.RawDescriptionHelpFormatter)
@@ -125,6 +134,7 @@ def main(argv=None) -> int:
     curve = []  # (feedback count, success tickmark, success naive)
     observer = Observer()
     history = []
+    progress = ProgressLine(sys.stderr)  # a live line on a terminal, one line per episode otherwise
     with tickmark.Agent(args.server, token_file=args.token_file, client_id="demo-rover") as agent:
         reader = threading.Thread(target=observer.run, args=(agent,), daemon=True)
         reader.start()
@@ -153,11 +163,8 @@ def main(argv=None) -> int:
                 nfb, precision, labels = len(observer.feedback), observer.precision(), observer.labels
             curve.append((nfb, learned, naive))
             recent = history[-10:]
-            print(f"\repisode {episode:3d} | feedback {nfb:4d} | labels {labels:4d} | "
-                  f"success (last 10) {100 * sum(recent) / len(recent):3.0f}% | "
-                  f"greedy eval {100 * learned:3.0f}% | credit precision {precision:.2f}   ",
-                  end="", file=sys.stderr, flush=True)
-        print(file=sys.stderr)
+            progress.show(episode_line(episode, nfb, labels, recent, learned, precision))
+        progress.finish()
         agent.flush(10)
         # Final labels arrive once the session closes (the operator closes it).
         observer.finished.wait(args.wait_final)
