@@ -20,6 +20,7 @@ using BoostPolicy = internal::NoThrowPolicy;
 
 constexpr double kLogSqrt2Pi = 0.91893853320467274178;  // ln sqrt(2 pi)
 constexpr double kInf = std::numeric_limits<double>::infinity();
+constexpr double kMinExGaussianSigma = 1e-3;  // seconds
 
 bool Usable(std::span<const double> x, size_t min_size) {
   if (x.size() < min_size) return false;
@@ -215,8 +216,13 @@ std::optional<ExGaussianFit> FitExGaussian(std::span<const double> seconds) {
   // right skew starts from a small tau instead.
   double tau = m3 > 0 ? std::cbrt(m3 / 2) : 0.1 * sd;
   tau = std::clamp(tau, 0.05 * sd, 0.95 * sd);
-  const double sigma = std::sqrt(std::max(m2 - tau * tau, 0.01 * m2));
+  const double sigma = std::max(std::sqrt(std::max(m2 - tau * tau, 0.01 * m2)),
+                                2 * kMinExGaussianSigma);
   auto objective = [&](const std::array<double, 3>& p) {
+    // Below the sources' timing resolution sigma is not identifiable, and
+    // the likelihood of a near-exponential sample keeps growing as sigma
+    // shrinks; the floor keeps the fit at a usable kernel.
+    if (std::exp(p[1]) < kMinExGaussianSigma) return kInf;
     const double value =
         -ExGaussianLogLikelihood(seconds, p[0], std::exp(p[1]), std::exp(p[2]));
     return std::isfinite(value) ? value : kInf;

@@ -9,7 +9,9 @@
 //   lognormal      mu, sigma of ln x; shift 0; closed form            k = 2
 //   ex-Gaussian    mu, sigma, tau; Nelder-Mead on (mu, ln sigma, ln tau)
 //                  from the moment estimates, restarted until it stops
-//                  improving; the plain (not zero-cut) likelihood     k = 3
+//                  improving; the plain (not zero-cut) likelihood;
+//                  sigma >= 1 ms, below which a near-exponential sample
+//                  drives the likelihood up without bound            k = 3
 // Each fit also gets its Kolmogorov-Smirnov distance to the sample. The
 // lowest AIC is chosen; a nonparametric bootstrap (resample the delays,
 // refit the chosen family) gives intervals for its mean and 90th percentile.
