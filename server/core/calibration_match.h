@@ -1,4 +1,4 @@
-// The matching rule of the calibration task (design.md §5): which move of
+// The matching rule of the calibration task: which move of
 // the on-screen mover each of a trainer's answers judged, and so the
 // trainer's evaluative delays.
 //

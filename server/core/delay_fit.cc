@@ -237,6 +237,151 @@ std::optional<ExGaussianFit> FitExGaussian(std::span<const double> seconds) {
   return fit;
 }
 
+namespace {
+
+constexpr double kMixtureMinWeight = 0.1;
+constexpr double kMixtureMinSigma = 0.05;
+constexpr Duration kMixtureBin = Duration::Millis(5);
+
+double LogNormalDensity(double y, double mu, double sigma) {
+  const double z = (y - mu) / sigma;
+  return -0.5 * z * z - std::log(sigma) - kLogSqrt2Pi;
+}
+
+// ln of the mixture density of y = ln x (not of x).
+double MixtureLogDensityOfLog(double y, const LognormalMixtureFit& f) {
+  const double a = std::log(f.weight) + LogNormalDensity(y, f.mu1, f.sigma1);
+  const double b = std::log1p(-f.weight) + LogNormalDensity(y, f.mu2, f.sigma2);
+  const double m = std::max(a, b);
+  return m + std::log(std::exp(a - m) + std::exp(b - m));
+}
+
+}  // namespace
+
+double LognormalMixtureLogLikelihood(std::span<const double> seconds,
+                                     const LognormalMixtureFit& fit) {
+  double sum = 0;
+  for (double x : seconds) {
+    if (!(x > 0)) return -kInf;
+    const double y = std::log(x);
+    sum += MixtureLogDensityOfLog(y, fit) - y;
+  }
+  return sum;
+}
+
+double LognormalMixtureCdf(double seconds, const LognormalMixtureFit& f) {
+  if (!(seconds > 0)) return 0.0;
+  const double y = std::log(seconds);
+  auto phi = [](double z) { return 0.5 * std::erfc(-z * 0.70710678118654752440); };
+  return f.weight * phi((y - f.mu1) / f.sigma1) + (1 - f.weight) * phi((y - f.mu2) / f.sigma2);
+}
+
+std::optional<DelayKernel> LognormalMixtureKernel(const LognormalMixtureFit& fit,
+                                                  std::string* error) {
+  // The 0.999 quantile, by bisection in log space between the components'
+  // far quantiles.
+  double lo = std::min(fit.mu1 - 10 * fit.sigma1, fit.mu2 - 10 * fit.sigma2);
+  double hi = std::max(fit.mu1 + 10 * fit.sigma1, fit.mu2 + 10 * fit.sigma2);
+  for (int i = 0; i < 200; ++i) {
+    const double mid = 0.5 * (lo + hi);
+    (LognormalMixtureCdf(std::exp(mid), fit) >= DelayKernel::kDefaultHorizonQuantile ? hi : lo) = mid;
+  }
+  const double end = std::exp(hi);
+  const double bin = kMixtureBin.seconds();
+  if (!std::isfinite(end) || end / bin > static_cast<double>(DelayKernel::kMaxEmpiricalBins)) {
+    if (error != nullptr) *error = "mixture horizon too long for a histogram";
+    return std::nullopt;
+  }
+  const size_t bins = static_cast<size_t>(std::ceil(end / bin));
+  std::vector<double> counts(bins);
+  double below = 0;
+  for (size_t i = 0; i < bins; ++i) {
+    const double above = LognormalMixtureCdf(static_cast<double>(i + 1) * bin, fit);
+    counts[i] = std::max(0.0, above - below);
+    below = above;
+  }
+  return DelayKernel::Empirical(Duration::Zero(), kMixtureBin, std::move(counts), error);
+}
+
+std::optional<LognormalMixtureFit> FitLognormalMixture(std::span<const double> seconds) {
+  if (!Usable(seconds, 5)) return std::nullopt;
+  std::vector<double> y;
+  for (double x : seconds) y.push_back(std::log(x));
+  std::sort(y.begin(), y.end());
+  const size_t n = y.size();
+  auto log_likelihood = [&](const LognormalMixtureFit& f) {
+    double sum = 0;
+    for (double v : y) sum += MixtureLogDensityOfLog(v, f);
+    return sum;
+  };
+  std::optional<LognormalMixtureFit> best;
+  double best_value = -kInf;
+  std::vector<double> r(n);
+  for (double split : {0.2, 0.35, 0.5, 0.65, 0.8}) {
+    // Start: the lower and upper parts of the sorted sample.
+    const size_t cut = std::clamp<size_t>(static_cast<size_t>(split * static_cast<double>(n)), 2, n - 2);
+    auto moments = [&](size_t b, size_t e, double* mu, double* sigma) {
+      double m = 0, ss = 0;
+      for (size_t i = b; i < e; ++i) m += y[i];
+      m /= static_cast<double>(e - b);
+      for (size_t i = b; i < e; ++i) ss += (y[i] - m) * (y[i] - m);
+      *mu = m;
+      *sigma = std::max(std::sqrt(ss / static_cast<double>(e - b)), kMixtureMinSigma);
+    };
+    LognormalMixtureFit f;
+    f.weight = std::clamp(static_cast<double>(cut) / static_cast<double>(n), kMixtureMinWeight,
+                          1 - kMixtureMinWeight);
+    moments(0, cut, &f.mu1, &f.sigma1);
+    moments(cut, n, &f.mu2, &f.sigma2);
+    double value = -kInf;
+    for (int iter = 0; iter < 1000; ++iter) {
+      // E step: each answer's responsibility of component 1, and the
+      // log-likelihood of the current parameters on the way.
+      double r_sum = 0, current = 0;
+      const double log_w1 = std::log(f.weight), log_w2 = std::log1p(-f.weight);
+      for (size_t i = 0; i < n; ++i) {
+        const double a = log_w1 + LogNormalDensity(y[i], f.mu1, f.sigma1);
+        const double b = log_w2 + LogNormalDensity(y[i], f.mu2, f.sigma2);
+        r[i] = 1 / (1 + std::exp(b - a));
+        r_sum += r[i];
+        current += std::max(a, b) + std::log1p(std::exp(-std::abs(a - b)));
+      }
+      // EM never lowers the likelihood; stop once it no longer rises.
+      const bool done = current - value <= 1e-10 * (1 + std::abs(current));
+      value = current;
+      if (done) break;
+      const double s_sum = static_cast<double>(n) - r_sum;
+      if (!(r_sum > 0) || !(s_sum > 0)) break;
+      // M step, each parameter clamped to its bound (still an ascent step:
+      // the expected log-likelihood is concave in each).
+      double m1 = 0, m2 = 0;
+      for (size_t i = 0; i < n; ++i) m1 += r[i] * y[i], m2 += (1 - r[i]) * y[i];
+      m1 /= r_sum, m2 /= s_sum;
+      double v1 = 0, v2 = 0;
+      for (size_t i = 0; i < n; ++i) {
+        v1 += r[i] * (y[i] - m1) * (y[i] - m1);
+        v2 += (1 - r[i]) * (y[i] - m2) * (y[i] - m2);
+      }
+      f.weight = std::clamp(r_sum / static_cast<double>(n), kMixtureMinWeight, 1 - kMixtureMinWeight);
+      f.mu1 = m1, f.mu2 = m2;
+      f.sigma1 = std::max(std::sqrt(v1 / r_sum), kMixtureMinSigma);
+      f.sigma2 = std::max(std::sqrt(v2 / s_sum), kMixtureMinSigma);
+    }
+    value = log_likelihood(f);
+    if (std::isfinite(value) && value > best_value) {
+      best_value = value;
+      best = f;
+    }
+  }
+  if (!best) return std::nullopt;
+  if (best->mu1 > best->mu2) {
+    std::swap(best->mu1, best->mu2);
+    std::swap(best->sigma1, best->sigma2);
+    best->weight = 1 - best->weight;
+  }
+  return best;
+}
+
 double KsDistance(std::span<const double> seconds, const DelayKernel& kernel) {
   std::vector<double> sorted(seconds.begin(), seconds.end());
   std::sort(sorted.begin(), sorted.end());
@@ -256,6 +401,7 @@ const char* DelayFamilyName(DelayFamily family) {
     case DelayFamily::kShiftedGamma: return "shifted-gamma";
     case DelayFamily::kLognormal: return "lognormal";
     case DelayFamily::kExGaussian: return "exgauss";
+    case DelayFamily::kLognormalMixture: return "lognormal-mixture";
   }
   return "";
 }
@@ -309,6 +455,15 @@ FamilyFit FitFamily(DelayFamily family, std::span<const double> x) {
         out.mean_seconds = e->mu_seconds + e->tau_seconds;
       }
       break;
+    case DelayFamily::kLognormalMixture:
+      out.parameters = 5;
+      if (auto m = FitLognormalMixture(x)) {
+        out.kernel = LognormalMixtureKernel(*m, &error);
+        out.log_likelihood = LognormalMixtureLogLikelihood(x, *m);
+        out.mean_seconds = m->weight * std::exp(m->mu1 + 0.5 * m->sigma1 * m->sigma1) +
+                           (1 - m->weight) * std::exp(m->mu2 + 0.5 * m->sigma2 * m->sigma2);
+      }
+      break;
   }
   if (out.kernel && !std::isfinite(out.log_likelihood)) {
     out.kernel.reset();
@@ -351,7 +506,8 @@ std::optional<DelayFitReport> FitDelays(std::span<const double> seconds,
   report.answers = seconds.size();
   double best_aic = kInf;
   for (DelayFamily family : {DelayFamily::kGamma, DelayFamily::kShiftedGamma,
-                             DelayFamily::kLognormal, DelayFamily::kExGaussian}) {
+                             DelayFamily::kLognormal, DelayFamily::kExGaussian,
+                             DelayFamily::kLognormalMixture}) {
     report.fits.push_back(FitFamily(family, seconds));
     const FamilyFit& f = report.fits.back();
     if (f.kernel && f.aic < best_aic) {

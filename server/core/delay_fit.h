@@ -1,5 +1,5 @@
-// Calibration fitting (design.md §5): turns a trainer's measured delays into
-// a delay kernel. Four families are fitted by maximum likelihood and compared
+// Calibration fitting: turns a trainer's measured delays into
+// a delay kernel. Five families are fitted by maximum likelihood and compared
 // by AIC = 2k - 2 ln L:
 //   gamma          shape, scale; shift 0 (Minka 2002, gamma_fit.h)   k = 2
 //   shifted gamma  shape, scale, shift: the gamma fit profiled over the
@@ -12,6 +12,14 @@
 //                  improving; the plain (not zero-cut) likelihood;
 //                  sigma >= 1 ms, below which a near-exponential sample
 //                  drives the likelihood up without bound            k = 3
+//   lognormal      two lognormal components (weight, mu1, sigma1, mu2,
+//   mixture        sigma2) by EM on ln x from five splits of the sorted
+//                  sample, each weight >= 0.1 and each sigma >= 0.05
+//                  (so no component collapses onto a few answers); a
+//                  trainer with fast answers and slow second looks is
+//                  bimodal, which no single family above can follow.
+//                  Its kernel is an empirical one: 5 ms bins of the
+//                  fitted CDF up to its 0.999 quantile               k = 5
 // Each fit also gets its Kolmogorov-Smirnov distance to the sample. The
 // lowest AIC is chosen; a nonparametric bootstrap (resample the delays,
 // refit the chosen family) gives intervals for its mean and 90th percentile.
@@ -50,11 +58,23 @@ struct ExGaussianFit {
   double tau_seconds = 0;
 };
 
+struct LognormalMixtureFit {
+  double weight = 0;  // of component 1, the one with the lower mu
+  double mu1 = 0, sigma1 = 0, mu2 = 0, sigma2 = 0;  // of ln(seconds)
+};
+
 // Each returns nullopt for fewer than 2 (3 for the three-parameter
-// families) delays, a delay not finite or <= 0, or all delays equal.
+// families, 5 for the mixture) delays, a delay not finite or <= 0, or all
+// delays equal.
 std::optional<ShiftedGammaFit> FitShiftedGamma(std::span<const double> seconds);
 std::optional<LognormalFit> FitLognormal(std::span<const double> seconds);
 std::optional<ExGaussianFit> FitExGaussian(std::span<const double> seconds);
+std::optional<LognormalMixtureFit> FitLognormalMixture(std::span<const double> seconds);
+
+// The mixture's CDF at x seconds, and its kernel (see above).
+double LognormalMixtureCdf(double seconds, const LognormalMixtureFit& fit);
+std::optional<DelayKernel> LognormalMixtureKernel(const LognormalMixtureFit& fit,
+                                                  std::string* error = nullptr);
 
 // Log-likelihoods of a sample under the families (seconds).
 double GammaLogLikelihood(std::span<const double> seconds, double shape,
@@ -63,11 +83,13 @@ double LognormalLogLikelihood(std::span<const double> seconds, double mu,
                               double sigma);
 double ExGaussianLogLikelihood(std::span<const double> seconds, double mu,
                                double sigma, double tau);
+double LognormalMixtureLogLikelihood(std::span<const double> seconds,
+                                     const LognormalMixtureFit& fit);
 
 // sup_x |F_n(x) - F(x)| with F the kernel's (uncut) Cdf.
 double KsDistance(std::span<const double> seconds, const DelayKernel& kernel);
 
-enum class DelayFamily { kGamma, kShiftedGamma, kLognormal, kExGaussian };
+enum class DelayFamily { kGamma, kShiftedGamma, kLognormal, kExGaussian, kLognormalMixture };
 const char* DelayFamilyName(DelayFamily family);  // "gamma", "shifted-gamma", ...
 
 struct DelayFitOptions {

@@ -24,8 +24,9 @@
 //                            instead SciPy's bounded scalar minimiser over
 //                            loc in [0, our bound] of gamma.fit(floc=loc):
 //                            our maximum must be at least as high (-1e-6).
-// Our own log-likelihoods must equal SciPy's logpdf sums at our parameters
-// (1e-9 relative).
+// Our own log-likelihoods (the two-lognormal mixture's too; SciPy has no
+// mixture fit to compare the maximum with) must equal SciPy's logpdf sums
+// at our parameters (1e-9 relative).
 #include <unistd.h>
 
 #include <algorithm>
@@ -223,6 +224,7 @@ TEST(DelayFitReferenceTest, FitsAgainstSciPyFit) {
     ShiftedGammaFit shifted;
     LognormalFit lognormal;
     ExGaussianFit exg;
+    LognormalMixtureFit mixture;
   };
   std::vector<Case> cases;
   std::string script =
@@ -233,24 +235,28 @@ TEST(DelayFitReferenceTest, FitsAgainstSciPyFit) {
   for (Truth truth : {Truth::kGamma, Truth::kLognormal, Truth::kExGaussian}) {
     for (int n : {40, 200}) {
       for (uint64_t seed : {1, 2, 3}) {
-        Case c{truth, n, seed, Sample(truth, n, seed * 100 + static_cast<uint64_t>(truth)), {}, {}, {}, {}};
+        Case c{truth, n, seed, Sample(truth, n, seed * 100 + static_cast<uint64_t>(truth)), {}, {}, {}, {}, {}};
         auto gamma = FitGamma(c.x);
         auto shifted = FitShiftedGamma(c.x);
         auto lognormal = FitLognormal(c.x);
         auto exg = FitExGaussian(c.x);
-        ASSERT_TRUE(gamma && shifted && lognormal && exg);
+        auto mixture = FitLognormalMixture(c.x);
+        ASSERT_TRUE(gamma && shifted && lognormal && exg && mixture);
         c.gamma = *gamma, c.shifted = *shifted, c.lognormal = *lognormal, c.exg = *exg;
+        c.mixture = *mixture;
         std::vector<double> sorted = c.x;
         std::sort(sorted.begin(), sorted.end());
         // The shift's upper bound, as FitShiftedGamma states it.
         const double max_shift = std::max(0.0, sorted[0] - std::max(1e-3, 0.5 * (sorted[1] - sorted[0])));
-        char ours[512];
+        char ours[768];
         std::snprintf(ours, sizeof(ours),
                       "ga, gs = %.17g, %.17g\nsa, ss, sl = %.17g, %.17g, %.17g\n"
-                      "lm, ls = %.17g, %.17g\nem, es, et = %.17g, %.17g, %.17g\ncmax = %.17g\n",
+                      "lm, ls = %.17g, %.17g\nem, es, et = %.17g, %.17g, %.17g\ncmax = %.17g\n"
+                      "mw, m1, s1, m2, s2 = %.17g, %.17g, %.17g, %.17g, %.17g\n",
                       gamma->shape, gamma->scale_seconds, shifted->shape, shifted->scale_seconds,
                       shifted->shift_seconds, lognormal->mu, lognormal->sigma, exg->mu_seconds,
-                      exg->sigma_seconds, exg->tau_seconds, max_shift);
+                      exg->sigma_seconds, exg->tau_seconds, max_shift, mixture->weight,
+                      mixture->mu1, mixture->sigma1, mixture->mu2, mixture->sigma2);
         script += "x = np.array(" + List(c.x) + ")\n" + ours +
                   // 0, 1
                   "a, _, scale = stats.gamma.fit(x, floc=0)\nout(a, scale)\n"
@@ -274,16 +280,19 @@ TEST(DelayFitReferenceTest, FitsAgainstSciPyFit) {
                   // 11, 12, 13
                   "out(np.sum(stats.gamma.logpdf(x, ga, scale=gs)))\n"
                   "out(np.sum(stats.lognorm.logpdf(x, ls, scale=math.exp(lm))))\n"
-                  "out(np.std(x))\n";
+                  "out(np.std(x))\n"
+                  // 14
+                  "out(np.sum(np.log(mw * stats.lognorm.pdf(x, s1, scale=math.exp(m1)) + "
+                  "(1 - mw) * stats.lognorm.pdf(x, s2, scale=math.exp(m2)))))\n";
         cases.push_back(std::move(c));
       }
     }
   }
   const std::vector<double> all = SciPy(script);
-  ASSERT_EQ(all.size(), 14 * cases.size());
+  ASSERT_EQ(all.size(), 15 * cases.size());
   for (size_t i = 0; i < cases.size(); ++i) {
     const Case& c = cases[i];
-    const double* ref = &all[14 * i];
+    const double* ref = &all[15 * i];
     SCOPED_TRACE("truth " + std::to_string(static_cast<int>(c.truth)) + " n " + std::to_string(c.n) +
                  " seed " + std::to_string(c.seed));
     EXPECT_NEAR(c.gamma.shape, ref[0], 1e-6 * ref[0]);          // SciPy stats.gamma.fit(x, floc=0)
@@ -306,6 +315,8 @@ TEST(DelayFitReferenceTest, FitsAgainstSciPyFit) {
     EXPECT_NEAR(sg_ll, ref[10], 1e-9 * std::abs(ref[10]));  // SciPy stats.gamma.logpdf sum
     EXPECT_NEAR(g_ll, ref[11], 1e-9 * std::abs(ref[11]));   // SciPy stats.gamma.logpdf sum
     EXPECT_NEAR(l_ll, ref[12], 1e-9 * std::abs(ref[12]));   // SciPy stats.lognorm.logpdf sum
+    EXPECT_NEAR(LognormalMixtureLogLikelihood(c.x, c.mixture), ref[14],
+                1e-9 * std::abs(ref[14]));  // SciPy stats.lognorm.pdf, weighted sum of two
   }
 }
 
