@@ -25,7 +25,8 @@ constexpr double kMinExGaussianSigma = 1e-3;  // seconds
 bool Usable(std::span<const double> x, size_t min_size) {
   if (x.size() < min_size) return false;
   for (double v : x) {
-    if (!std::isfinite(v) || v <= 0) return false;
+    // The bound keeps every delay convertible to a Duration.
+    if (!std::isfinite(v) || v <= 0 || v > DelayKernel::kMaxHorizon.seconds()) return false;
   }
   return std::any_of(x.begin(), x.end(), [&](double v) { return v != x[0]; });
 }
@@ -501,7 +502,7 @@ std::optional<DelayFitReport> FitDelays(std::span<const double> seconds,
     return std::nullopt;
   };
   if (seconds.size() < 3) return fail("fewer than 3 delays");
-  if (!Usable(seconds, 3)) return fail("a delay is not finite or <= 0, or all are equal");
+  if (!Usable(seconds, 3)) return fail("a delay is not finite, <= 0 or > 86400 s, or all are equal");
   DelayFitReport report;
   report.answers = seconds.size();
   double best_aic = kInf;

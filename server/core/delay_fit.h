@@ -28,7 +28,8 @@
 // critical value of the Kolmogorov distribution, from memory; conservative
 // here, since the parameters were fitted to the same sample).
 //
-// Pure functions; thread-safe. Delays are in seconds, each finite and > 0.
+// Pure functions; thread-safe. Delays are in seconds, each finite, > 0 and
+// at most 86400 s (DelayKernel::kMaxHorizon).
 #ifndef TICKMARK_SERVER_CORE_DELAY_FIT_H_
 #define TICKMARK_SERVER_CORE_DELAY_FIT_H_
 
@@ -65,7 +66,7 @@ struct LognormalMixtureFit {
 
 // Each returns nullopt for fewer than 2 (3 for the three-parameter
 // families, 5 for the mixture) delays, a delay not finite or <= 0, or all
-// delays equal.
+// delays equal, or a delay over 86400 s.
 std::optional<ShiftedGammaFit> FitShiftedGamma(std::span<const double> seconds);
 std::optional<LognormalFit> FitLognormal(std::span<const double> seconds);
 std::optional<ExGaussianFit> FitExGaussian(std::span<const double> seconds);
@@ -131,7 +132,8 @@ struct DelayFitReport {
 };
 
 // Fits every family and chooses one. nullopt (and *error) when no family
-// fits: fewer than 3 delays, a delay not finite or <= 0, or all equal.
+// fits: fewer than 3 delays, a delay not finite, <= 0 or > 86400 s, or all
+// equal.
 std::optional<DelayFitReport> FitDelays(std::span<const double> seconds,
                                         const DelayFitOptions& options = {},
                                         std::string* error = nullptr);

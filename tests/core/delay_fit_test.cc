@@ -212,6 +212,8 @@ TEST(DelayFitTest, RefusesUnusableSamples) {
   EXPECT_FALSE(FitDelays(std::vector<double>{0.4, 0.5, -0.1}, {}, &error).has_value());
   EXPECT_FALSE(FitDelays(std::vector<double>{0.4, 0.5, NAN}, {}, &error).has_value());
   EXPECT_FALSE(FitDelays(std::vector<double>{0.4, 0.4, 0.4}, {}, &error).has_value());
+  // Would overflow a Duration when the KS distance is taken.
+  EXPECT_FALSE(FitDelays(std::vector<double>{0.4, 0.5, 1e300}, {}, &error).has_value());
   EXPECT_FALSE(FitExGaussian(std::vector<double>{0.4, 0.5}).has_value());
   EXPECT_FALSE(FitShiftedGamma(std::vector<double>{0.4, 0.5}).has_value());
   EXPECT_FALSE(FitLognormal(std::vector<double>{0.4}).has_value());
