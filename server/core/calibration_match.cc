@@ -27,11 +27,16 @@ std::vector<size_t> OrderBy(std::span<const T> items, Key key) {
 
 const char* AnswerOutcomeName(AnswerOutcome outcome) {
   switch (outcome) {
-    case AnswerOutcome::kValid: return "valid";
-    case AnswerOutcome::kWrongSign: return "wrong-sign";
-    case AnswerOutcome::kPractice: return "practice";
-    case AnswerOutcome::kDouble: return "double";
-    case AnswerOutcome::kStray: return "stray";
+    case AnswerOutcome::kValid:
+      return "valid";
+    case AnswerOutcome::kWrongSign:
+      return "wrong-sign";
+    case AnswerOutcome::kPractice:
+      return "practice";
+    case AnswerOutcome::kDouble:
+      return "double";
+    case AnswerOutcome::kStray:
+      return "stray";
   }
   return "";
 }
@@ -83,11 +88,21 @@ CalibrationMatchResult MatchCalibration(std::span<const CalibrationMove> moves,
       }
     }
     switch (m.outcome) {
-      case AnswerOutcome::kValid: ++result.valid; break;
-      case AnswerOutcome::kWrongSign: ++result.wrong_sign; break;
-      case AnswerOutcome::kPractice: ++result.practice_answers; break;
-      case AnswerOutcome::kDouble: ++result.double_answers; break;
-      case AnswerOutcome::kStray: ++result.stray; break;
+      case AnswerOutcome::kValid:
+        ++result.valid;
+        break;
+      case AnswerOutcome::kWrongSign:
+        ++result.wrong_sign;
+        break;
+      case AnswerOutcome::kPractice:
+        ++result.practice_answers;
+        break;
+      case AnswerOutcome::kDouble:
+        ++result.double_answers;
+        break;
+      case AnswerOutcome::kStray:
+        ++result.stray;
+        break;
     }
     result.answers.push_back(m);
   }

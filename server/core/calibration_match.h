@@ -36,8 +36,8 @@ struct CalibrationMove {
 };
 
 struct CalibrationAnswer {
-  ClientTime at;          // the source's event time of the answer
-  bool approve = false;   // the answer's sign
+  ClientTime at;         // the source's event time of the answer
+  bool approve = false;  // the answer's sign
 };
 
 enum class AnswerOutcome {
@@ -54,10 +54,10 @@ struct CalibrationMatchOptions {
 };
 
 struct MatchedAnswer {
-  size_t answer = 0;             // index into the answers given
+  size_t answer = 0;  // index into the answers given
   AnswerOutcome outcome = AnswerOutcome::kStray;
-  std::optional<size_t> move;    // index into the moves given, when matched
-  Duration delay;                // at - shown, when matched
+  std::optional<size_t> move;  // index into the moves given, when matched
+  Duration delay;              // at - shown, when matched
 };
 
 struct CalibrationMatchResult {
@@ -69,8 +69,8 @@ struct CalibrationMatchResult {
   size_t double_answers = 0;
   size_t stray = 0;
   size_t practice_answers = 0;
-  size_t missed = 0;                   // non-practice moves never answered
-  size_t moves = 0;                    // non-practice moves
+  size_t missed = 0;  // non-practice moves never answered
+  size_t moves = 0;   // non-practice moves
 };
 
 CalibrationMatchResult MatchCalibration(std::span<const CalibrationMove> moves,

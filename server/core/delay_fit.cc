@@ -2,12 +2,11 @@
 
 #include <algorithm>
 #include <array>
+#include <boost/math/special_functions/gamma.hpp>
 #include <cmath>
 #include <limits>
 #include <random>
 #include <utility>
-
-#include <boost/math/special_functions/gamma.hpp>
 
 #include "server/core/ex_gaussian.h"
 #include "server/core/gamma_fit.h"
@@ -35,8 +34,7 @@ bool Usable(std::span<const double> x, size_t min_size) {
 // 1/2), restarted from the best vertex with a fresh simplex until a restart
 // no longer improves, which guards against the method's premature collapse.
 template <typename F>
-std::array<double, 3> NelderMead(F f, std::array<double, 3> start,
-                                 std::array<double, 3> step) {
+std::array<double, 3> NelderMead(F f, std::array<double, 3> start, std::array<double, 3> step) {
   using Point = std::array<double, 3>;
   double best_value = f(start);
   for (int restart = 0; restart < 8; ++restart) {
@@ -109,11 +107,10 @@ double Mean(std::span<const double> x) {
 
 }  // namespace
 
-double GammaLogLikelihood(std::span<const double> seconds, double shape,
-                          double scale_seconds, double shift_seconds) {
+double GammaLogLikelihood(std::span<const double> seconds, double shape, double scale_seconds,
+                          double shift_seconds) {
   // Boost rather than std::lgamma, which writes the global signgam.
-  const double norm =
-      boost::math::lgamma(shape, BoostPolicy()) + shape * std::log(scale_seconds);
+  const double norm = boost::math::lgamma(shape, BoostPolicy()) + shape * std::log(scale_seconds);
   double sum = 0;
   for (double x : seconds) {
     const double y = x - shift_seconds;
@@ -123,8 +120,7 @@ double GammaLogLikelihood(std::span<const double> seconds, double shape,
   return sum;
 }
 
-double LognormalLogLikelihood(std::span<const double> seconds, double mu,
-                              double sigma) {
+double LognormalLogLikelihood(std::span<const double> seconds, double mu, double sigma) {
   double sum = 0;
   for (double x : seconds) {
     if (!(x > 0)) return -kInf;
@@ -134,8 +130,8 @@ double LognormalLogLikelihood(std::span<const double> seconds, double mu,
   return sum;
 }
 
-double ExGaussianLogLikelihood(std::span<const double> seconds, double mu,
-                               double sigma, double tau) {
+double ExGaussianLogLikelihood(std::span<const double> seconds, double mu, double sigma,
+                               double tau) {
   double sum = 0;
   for (double x : seconds) sum += ExGaussianLogPdf(x, mu, sigma, tau);
   return sum;
@@ -217,22 +213,21 @@ std::optional<ExGaussianFit> FitExGaussian(std::span<const double> seconds) {
   // right skew starts from a small tau instead.
   double tau = m3 > 0 ? std::cbrt(m3 / 2) : 0.1 * sd;
   tau = std::clamp(tau, 0.05 * sd, 0.95 * sd);
-  const double sigma = std::max(std::sqrt(std::max(m2 - tau * tau, 0.01 * m2)),
-                                2 * kMinExGaussianSigma);
+  const double sigma =
+      std::max(std::sqrt(std::max(m2 - tau * tau, 0.01 * m2)), 2 * kMinExGaussianSigma);
   auto objective = [&](const std::array<double, 3>& p) {
     // Below the sources' timing resolution sigma is not identifiable, and
     // the likelihood of a near-exponential sample keeps growing as sigma
     // shrinks; the floor keeps the fit at a usable kernel.
     if (std::exp(p[1]) < kMinExGaussianSigma) return kInf;
-    const double value =
-        -ExGaussianLogLikelihood(seconds, p[0], std::exp(p[1]), std::exp(p[2]));
+    const double value = -ExGaussianLogLikelihood(seconds, p[0], std::exp(p[1]), std::exp(p[2]));
     return std::isfinite(value) ? value : kInf;
   };
-  const std::array<double, 3> best = NelderMead(
-      objective, {mean - tau, std::log(sigma), std::log(tau)}, {0.1 * sd, 0.2, 0.2});
+  const std::array<double, 3> best =
+      NelderMead(objective, {mean - tau, std::log(sigma), std::log(tau)}, {0.1 * sd, 0.2, 0.2});
   ExGaussianFit fit{best[0], std::exp(best[1]), std::exp(best[2])};
-  if (!std::isfinite(fit.mu_seconds) || !(fit.sigma_seconds > 0) ||
-      !(fit.tau_seconds > 0) || !std::isfinite(fit.tau_seconds)) {
+  if (!std::isfinite(fit.mu_seconds) || !(fit.sigma_seconds > 0) || !(fit.tau_seconds > 0) ||
+      !std::isfinite(fit.tau_seconds)) {
     return std::nullopt;
   }
   return fit;
@@ -285,7 +280,8 @@ std::optional<DelayKernel> LognormalMixtureKernel(const LognormalMixtureFit& fit
   double hi = std::max(fit.mu1 + 10 * fit.sigma1, fit.mu2 + 10 * fit.sigma2);
   for (int i = 0; i < 200; ++i) {
     const double mid = 0.5 * (lo + hi);
-    (LognormalMixtureCdf(std::exp(mid), fit) >= DelayKernel::kDefaultHorizonQuantile ? hi : lo) = mid;
+    (LognormalMixtureCdf(std::exp(mid), fit) >= DelayKernel::kDefaultHorizonQuantile ? hi : lo) =
+        mid;
   }
   const double end = std::exp(hi);
   const double bin = kMixtureBin.seconds();
@@ -320,7 +316,8 @@ std::optional<LognormalMixtureFit> FitLognormalMixture(std::span<const double> s
   std::vector<double> r(n);
   for (double split : {0.2, 0.35, 0.5, 0.65, 0.8}) {
     // Start: the lower and upper parts of the sorted sample.
-    const size_t cut = std::clamp<size_t>(static_cast<size_t>(split * static_cast<double>(n)), 2, n - 2);
+    const size_t cut =
+        std::clamp<size_t>(static_cast<size_t>(split * static_cast<double>(n)), 2, n - 2);
     auto moments = [&](size_t b, size_t e, double* mu, double* sigma) {
       double m = 0, ss = 0;
       for (size_t i = b; i < e; ++i) m += y[i];
@@ -363,7 +360,8 @@ std::optional<LognormalMixtureFit> FitLognormalMixture(std::span<const double> s
         v1 += r[i] * (y[i] - m1) * (y[i] - m1);
         v2 += (1 - r[i]) * (y[i] - m2) * (y[i] - m2);
       }
-      f.weight = std::clamp(r_sum / static_cast<double>(n), kMixtureMinWeight, 1 - kMixtureMinWeight);
+      f.weight =
+          std::clamp(r_sum / static_cast<double>(n), kMixtureMinWeight, 1 - kMixtureMinWeight);
       f.mu1 = m1, f.mu2 = m2;
       f.sigma1 = std::max(std::sqrt(v1 / r_sum), kMixtureMinSigma);
       f.sigma2 = std::max(std::sqrt(v2 / s_sum), kMixtureMinSigma);
@@ -390,19 +388,23 @@ double KsDistance(std::span<const double> seconds, const DelayKernel& kernel) {
   double d = 0;
   for (size_t i = 0; i < sorted.size(); ++i) {
     const double f = kernel.Cdf(Duration::FromSeconds(sorted[i]));
-    d = std::max({d, f - static_cast<double>(i) / n,
-                  static_cast<double>(i + 1) / n - f});
+    d = std::max({d, f - static_cast<double>(i) / n, static_cast<double>(i + 1) / n - f});
   }
   return d;
 }
 
 const char* DelayFamilyName(DelayFamily family) {
   switch (family) {
-    case DelayFamily::kGamma: return "gamma";
-    case DelayFamily::kShiftedGamma: return "shifted-gamma";
-    case DelayFamily::kLognormal: return "lognormal";
-    case DelayFamily::kExGaussian: return "exgauss";
-    case DelayFamily::kLognormalMixture: return "lognormal-mixture";
+    case DelayFamily::kGamma:
+      return "gamma";
+    case DelayFamily::kShiftedGamma:
+      return "shifted-gamma";
+    case DelayFamily::kLognormal:
+      return "lognormal";
+    case DelayFamily::kExGaussian:
+      return "exgauss";
+    case DelayFamily::kLognormalMixture:
+      return "lognormal-mixture";
   }
   return "";
 }
@@ -432,8 +434,7 @@ FamilyFit FitFamily(DelayFamily family, std::span<const double> x) {
         const Duration shift = Duration::FromSeconds(g->shift_seconds);
         out.kernel = DelayKernel::Gamma(g->shape, g->scale_seconds, shift,
                                         DelayKernel::kDefaultHorizonQuantile, &error);
-        out.log_likelihood =
-            GammaLogLikelihood(x, g->shape, g->scale_seconds, shift.seconds());
+        out.log_likelihood = GammaLogLikelihood(x, g->shape, g->scale_seconds, shift.seconds());
         out.mean_seconds = shift.seconds() + g->shape * g->scale_seconds;
       }
       break;
@@ -495,20 +496,20 @@ Interval PercentileInterval(std::vector<double> values, double level) {
 }  // namespace
 
 std::optional<DelayFitReport> FitDelays(std::span<const double> seconds,
-                                        const DelayFitOptions& options,
-                                        std::string* error) {
+                                        const DelayFitOptions& options, std::string* error) {
   auto fail = [&](const char* why) {
     if (error != nullptr) *error = why;
     return std::nullopt;
   };
   if (seconds.size() < 3) return fail("fewer than 3 delays");
-  if (!Usable(seconds, 3)) return fail("a delay is not finite, <= 0 or > 86400 s, or all are equal");
+  if (!Usable(seconds, 3))
+    return fail("a delay is not finite, <= 0 or > 86400 s, or all are equal");
   DelayFitReport report;
   report.answers = seconds.size();
   double best_aic = kInf;
-  for (DelayFamily family : {DelayFamily::kGamma, DelayFamily::kShiftedGamma,
-                             DelayFamily::kLognormal, DelayFamily::kExGaussian,
-                             DelayFamily::kLognormalMixture}) {
+  for (DelayFamily family :
+       {DelayFamily::kGamma, DelayFamily::kShiftedGamma, DelayFamily::kLognormal,
+        DelayFamily::kExGaussian, DelayFamily::kLognormalMixture}) {
     report.fits.push_back(FitFamily(family, seconds));
     const FamilyFit& f = report.fits.back();
     if (f.kernel && f.aic < best_aic) {

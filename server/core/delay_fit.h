@@ -60,7 +60,7 @@ struct ExGaussianFit {
 };
 
 struct LognormalMixtureFit {
-  double weight = 0;  // of component 1, the one with the lower mu
+  double weight = 0;                                // of component 1, the one with the lower mu
   double mu1 = 0, sigma1 = 0, mu2 = 0, sigma2 = 0;  // of ln(seconds)
 };
 
@@ -78,12 +78,11 @@ std::optional<DelayKernel> LognormalMixtureKernel(const LognormalMixtureFit& fit
                                                   std::string* error = nullptr);
 
 // Log-likelihoods of a sample under the families (seconds).
-double GammaLogLikelihood(std::span<const double> seconds, double shape,
-                          double scale_seconds, double shift_seconds);
-double LognormalLogLikelihood(std::span<const double> seconds, double mu,
-                              double sigma);
-double ExGaussianLogLikelihood(std::span<const double> seconds, double mu,
-                               double sigma, double tau);
+double GammaLogLikelihood(std::span<const double> seconds, double shape, double scale_seconds,
+                          double shift_seconds);
+double LognormalLogLikelihood(std::span<const double> seconds, double mu, double sigma);
+double ExGaussianLogLikelihood(std::span<const double> seconds, double mu, double sigma,
+                               double tau);
 double LognormalMixtureLogLikelihood(std::span<const double> seconds,
                                      const LognormalMixtureFit& fit);
 
@@ -94,23 +93,23 @@ enum class DelayFamily { kGamma, kShiftedGamma, kLognormal, kExGaussian, kLognor
 const char* DelayFamilyName(DelayFamily family);  // "gamma", "shifted-gamma", ...
 
 struct DelayFitOptions {
-  size_t min_answers = 40;           // fewer: warning
-  double ks_coefficient = 1.36;      // warn when KS > ks_coefficient / sqrt(n)
-  int bootstrap_resamples = 1000;    // 0: no intervals
-  uint64_t bootstrap_seed = 1;       // same seed and sample, same intervals
-  double interval_level = 0.95;      // central percentile interval
+  size_t min_answers = 40;         // fewer: warning
+  double ks_coefficient = 1.36;    // warn when KS > ks_coefficient / sqrt(n)
+  int bootstrap_resamples = 1000;  // 0: no intervals
+  uint64_t bootstrap_seed = 1;     // same seed and sample, same intervals
+  double interval_level = 0.95;    // central percentile interval
 };
 
 struct FamilyFit {
   DelayFamily family = DelayFamily::kGamma;
-  int parameters = 0;                // k in the AIC
-  std::optional<DelayKernel> kernel; // nullopt: this family did not fit
-  std::string error;                 // why not, when kernel is empty
+  int parameters = 0;                 // k in the AIC
+  std::optional<DelayKernel> kernel;  // nullopt: this family did not fit
+  std::string error;                  // why not, when kernel is empty
   double log_likelihood = 0;
   double aic = 0;
   double ks_distance = 0;
-  double mean_seconds = 0;           // of the fitted distribution
-  double p90_seconds = 0;            // its 0.9 quantile
+  double mean_seconds = 0;  // of the fitted distribution
+  double p90_seconds = 0;   // its 0.9 quantile
 };
 
 struct Interval {
@@ -120,14 +119,14 @@ struct Interval {
 
 struct DelayFitReport {
   size_t answers = 0;
-  std::vector<FamilyFit> fits;       // one per DelayFamily, in enum order
-  size_t chosen = 0;                 // index into fits: the lowest AIC
+  std::vector<FamilyFit> fits;  // one per DelayFamily, in enum order
+  size_t chosen = 0;            // index into fits: the lowest AIC
   DelayKernel kernel() const { return *fits[chosen].kernel; }
   std::optional<Interval> mean_seconds;  // bootstrap, chosen family
   std::optional<Interval> p90_seconds;   // bootstrap, chosen family
-  double ks_threshold = 0;           // ks_coefficient / sqrt(n)
+  double ks_threshold = 0;               // ks_coefficient / sqrt(n)
   bool too_few_answers = false;
-  bool poor_fit = false;             // chosen fit's KS over ks_threshold
+  bool poor_fit = false;  // chosen fit's KS over ks_threshold
   bool warning() const { return too_few_answers || poor_fit; }
 };
 

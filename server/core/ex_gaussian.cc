@@ -62,7 +62,7 @@ double ExGaussianQuantile(double p, double mu, double sigma, double tau) {
   double lo = mu - 40 * sigma;
   double hi = mu + 40 * sigma - tau * std::log1p(-p) + tau;
   for (int i = 0; i < 200 && hi - lo > 4 * std::numeric_limits<double>::epsilon() *
-                                              (std::abs(lo) + std::abs(hi));
+                                           (std::abs(lo) + std::abs(hi));
        ++i) {
     const double mid = 0.5 * (lo + hi);
     if (ExGaussianCdf(mid, mu, sigma, tau) >= p) {

@@ -3,37 +3,49 @@
 // expected for every answer.
 #include "server/core/calibration_match.h"
 
+#include <gtest/gtest.h>
+
 #include <cstdint>
 #include <limits>
 #include <string>
 #include <vector>
-
-#include <gtest/gtest.h>
 
 namespace tickmark {
 namespace {
 
 ClientTime Ms(int64_t ms) { return ClientTime::FromNanos(ms * 1'000'000); }
 
-struct Move { int64_t ms; char rule; bool practice = false; };  // rule '+' or '-'
-struct Answer { int64_t ms; char sign; };
+struct Move {
+  int64_t ms;
+  char rule;
+  bool practice = false;
+};  // rule '+' or '-'
+struct Answer {
+  int64_t ms;
+  char sign;
+};
 
 struct Case {
   std::string name;
   std::vector<Move> moves;
   std::vector<Answer> answers;
-  std::string outcomes;          // per answer in time order: V W P D S
-  std::vector<double> delays;    // valid delays, seconds
+  std::string outcomes;        // per answer in time order: V W P D S
+  std::vector<double> delays;  // valid delays, seconds
   size_t missed = 0;
 };
 
 char Code(AnswerOutcome o) {
   switch (o) {
-    case AnswerOutcome::kValid: return 'V';
-    case AnswerOutcome::kWrongSign: return 'W';
-    case AnswerOutcome::kPractice: return 'P';
-    case AnswerOutcome::kDouble: return 'D';
-    case AnswerOutcome::kStray: return 'S';
+    case AnswerOutcome::kValid:
+      return 'V';
+    case AnswerOutcome::kWrongSign:
+      return 'W';
+    case AnswerOutcome::kPractice:
+      return 'P';
+    case AnswerOutcome::kDouble:
+      return 'D';
+    case AnswerOutcome::kStray:
+      return 'S';
   }
   return '?';
 }
@@ -41,32 +53,74 @@ char Code(AnswerOutcome o) {
 TEST(CalibrationMatchTest, ScriptedSequences) {
   const std::vector<Case> cases = {
       {"one move, answered in time", {{0, '+'}}, {{450, '+'}}, "V", {0.45}, 0},
-      {"early: an answer before any move is stray", {{1000, '+'}}, {{900, '+'}, {1500, '+'}},
-       "SV", {0.5}, 0},
-      {"an answer at the very presentation instant is not after it", {{1000, '+'}},
-       {{1000, '+'}, {1300, '+'}}, "SV", {0.3}, 0},
-      {"late: more than 4 s after the latest move is stray", {{0, '-'}}, {{4001, '-'}}, "S",
-       {}, 1},
+      {"early: an answer before any move is stray",
+       {{1000, '+'}},
+       {{900, '+'}, {1500, '+'}},
+       "SV",
+       {0.5},
+       0},
+      {"an answer at the very presentation instant is not after it",
+       {{1000, '+'}},
+       {{1000, '+'}, {1300, '+'}},
+       "SV",
+       {0.3},
+       0},
+      {"late: more than 4 s after the latest move is stray", {{0, '-'}}, {{4001, '-'}}, "S", {}, 1},
       {"exactly 4 s is still matched", {{0, '-'}}, {{4000, '-'}}, "V", {4.0}, 0},
-      {"wrong sign closes the move and gives no delay", {{0, '+'}, {2000, '-'}},
-       {{500, '-'}, {2600, '-'}}, "WV", {0.6}, 0},
-      {"double: a second answer to the same move", {{0, '+'}, {3000, '+'}},
-       {{400, '+'}, {700, '+'}, {3500, '+'}}, "VDV", {0.4, 0.5}, 0},
-      {"a corrected wrong answer is a double, not a delay", {{0, '+'}},
-       {{400, '-'}, {600, '+'}}, "WD", {}, 0},
-      {"missed: a move with no answer", {{0, '+'}, {1500, '-'}, {3000, '+'}},
-       {{500, '+'}, {3400, '+'}}, "VV", {0.5, 0.4}, 1},
+      {"wrong sign closes the move and gives no delay",
+       {{0, '+'}, {2000, '-'}},
+       {{500, '-'}, {2600, '-'}},
+       "WV",
+       {0.6},
+       0},
+      {"double: a second answer to the same move",
+       {{0, '+'}, {3000, '+'}},
+       {{400, '+'}, {700, '+'}, {3500, '+'}},
+       "VDV",
+       {0.4, 0.5},
+       0},
+      {"a corrected wrong answer is a double, not a delay",
+       {{0, '+'}},
+       {{400, '-'}, {600, '+'}},
+       "WD",
+       {},
+       0},
+      {"missed: a move with no answer",
+       {{0, '+'}, {1500, '-'}, {3000, '+'}},
+       {{500, '+'}, {3400, '+'}},
+       "VV",
+       {0.5, 0.4},
+       1},
       {"a late answer goes to the latest move, and the earlier one is missed",
-       {{0, '+'}, {1000, '+'}}, {{1300, '+'}}, "V", {0.3}, 1},
-      {"answering a later move closes earlier ones", {{0, '+'}, {1000, '-'}},
-       {{1200, '-'}, {1250, '+'}}, "VD", {0.2}, 1},
+       {{0, '+'}, {1000, '+'}},
+       {{1300, '+'}},
+       "V",
+       {0.3},
+       1},
+      {"answering a later move closes earlier ones",
+       {{0, '+'}, {1000, '-'}},
+       {{1200, '-'}, {1250, '+'}},
+       "VD",
+       {0.2},
+       1},
       {"practice moves give no delays and no misses",
        {{0, '+', true}, {1000, '-', true}, {3000, '+'}},
-       {{400, '+'}, {3500, '+'}}, "PV", {0.5}, 0},
+       {{400, '+'}, {3500, '+'}},
+       "PV",
+       {0.5},
+       0},
       {"a practice answer cannot be taken for the first real move",
-       {{0, '+', true}, {900, '+'}}, {{1000, '+'}, {1400, '+'}}, "VD", {0.1}, 0},
-      {"input in any order", {{3000, '-'}, {0, '+'}}, {{3300, '-'}, {250, '+'}}, "VV",
-       {0.25, 0.3}, 0},
+       {{0, '+', true}, {900, '+'}},
+       {{1000, '+'}, {1400, '+'}},
+       "VD",
+       {0.1},
+       0},
+      {"input in any order",
+       {{3000, '-'}, {0, '+'}},
+       {{3300, '-'}, {250, '+'}},
+       "VV",
+       {0.25, 0.3},
+       0},
   };
   for (const Case& c : cases) {
     SCOPED_TRACE(c.name);

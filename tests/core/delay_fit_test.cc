@@ -13,6 +13,8 @@
 // well (22) and the mixture wins 9 of each family by chance.
 #include "server/core/delay_fit.h"
 
+#include <gtest/gtest.h>
+
 #include <cmath>
 #include <cstdio>
 #include <functional>
@@ -20,16 +22,14 @@
 #include <string>
 #include <vector>
 
-#include <gtest/gtest.h>
-
 namespace tickmark {
 namespace {
 
 enum class Truth { kGamma, kLognormal, kExGaussian };
 
 // Known parameters, in the range of human evaluative delays.
-constexpr double kShape = 2.5, kScale = 0.2;             // gamma: mean 0.5 s
-constexpr double kLogMu = -0.6, kLogSigma = 0.5;         // lognormal: median 0.55 s
+constexpr double kShape = 2.5, kScale = 0.2;              // gamma: mean 0.5 s
+constexpr double kLogMu = -0.6, kLogSigma = 0.5;          // lognormal: median 0.55 s
 constexpr double kMu = 0.45, kSigma = 0.06, kTau = 0.25;  // ex-Gaussian: mean 0.7 s
 
 std::vector<double> Sample(Truth truth, int n, uint64_t seed) {
@@ -41,9 +41,15 @@ std::vector<double> Sample(Truth truth, int n, uint64_t seed) {
   std::vector<double> x(static_cast<size_t>(n));
   for (double& v : x) {
     switch (truth) {
-      case Truth::kGamma: v = gamma(rng); break;
-      case Truth::kLognormal: v = lognormal(rng); break;
-      case Truth::kExGaussian: v = normal(rng) + exponential(rng); break;
+      case Truth::kGamma:
+        v = gamma(rng);
+        break;
+      case Truth::kLognormal:
+        v = lognormal(rng);
+        break;
+      case Truth::kExGaussian:
+        v = normal(rng) + exponential(rng);
+        break;
     }
   }
   return x;
@@ -67,37 +73,50 @@ TEST(DelayFitTest, RecoversKnownParametersAndFamily) {
   // True mean and 0.9 quantile of each family (closed forms; the
   // ex-Gaussian's p90 from the kernel's own quantile).
   const double gamma_mean = kShape * kScale;
-  const double gamma_p90 = DelayKernel::Gamma(kShape, kScale, Duration::Zero())->Quantile(0.9).seconds();
+  const double gamma_p90 =
+      DelayKernel::Gamma(kShape, kScale, Duration::Zero())->Quantile(0.9).seconds();
   const double ln_mean = std::exp(kLogMu + kLogSigma * kLogSigma / 2);
-  const double ln_p90 = DelayKernel::Lognormal(kLogMu, kLogSigma, Duration::Zero())->Quantile(0.9).seconds();
+  const double ln_p90 =
+      DelayKernel::Lognormal(kLogMu, kLogSigma, Duration::Zero())->Quantile(0.9).seconds();
   const double eg_mean = kMu + kTau;
   const double eg_p90 = DelayKernel::ExGaussian(kMu, kSigma, kTau)->Quantile(0.9).seconds();
   const std::vector<Recovery> cases = {
-      {Truth::kGamma, 40, [&](const FamilyFit& f) {
-         return Within(f.kernel->shape(), kShape, 0.6) && Within(f.kernel->scale_seconds(), kScale, 0.45) &&
+      {Truth::kGamma, 40,
+       [&](const FamilyFit& f) {
+         return Within(f.kernel->shape(), kShape, 0.6) &&
+                Within(f.kernel->scale_seconds(), kScale, 0.45) &&
                 Within(f.mean_seconds, gamma_mean, 0.25) && Within(f.p90_seconds, gamma_p90, 0.25);
        }},
-      {Truth::kGamma, 200, [&](const FamilyFit& f) {
-         return Within(f.kernel->shape(), kShape, 0.25) && Within(f.kernel->scale_seconds(), kScale, 0.25) &&
+      {Truth::kGamma, 200,
+       [&](const FamilyFit& f) {
+         return Within(f.kernel->shape(), kShape, 0.25) &&
+                Within(f.kernel->scale_seconds(), kScale, 0.25) &&
                 Within(f.mean_seconds, gamma_mean, 0.11) && Within(f.p90_seconds, gamma_p90, 0.12);
        }},
-      {Truth::kLognormal, 40, [&](const FamilyFit& f) {
-         return WithinAbs(f.kernel->mu(), kLogMu, 0.2) && Within(f.kernel->sigma(), kLogSigma, 0.3) &&
-                Within(f.mean_seconds, ln_mean, 0.2) && Within(f.p90_seconds, ln_p90, 0.25);
+      {Truth::kLognormal, 40,
+       [&](const FamilyFit& f) {
+         return WithinAbs(f.kernel->mu(), kLogMu, 0.2) &&
+                Within(f.kernel->sigma(), kLogSigma, 0.3) && Within(f.mean_seconds, ln_mean, 0.2) &&
+                Within(f.p90_seconds, ln_p90, 0.25);
        }},
-      {Truth::kLognormal, 200, [&](const FamilyFit& f) {
-         return WithinAbs(f.kernel->mu(), kLogMu, 0.09) && Within(f.kernel->sigma(), kLogSigma, 0.13) &&
+      {Truth::kLognormal, 200,
+       [&](const FamilyFit& f) {
+         return WithinAbs(f.kernel->mu(), kLogMu, 0.09) &&
+                Within(f.kernel->sigma(), kLogSigma, 0.13) &&
                 Within(f.mean_seconds, ln_mean, 0.09) && Within(f.p90_seconds, ln_p90, 0.11);
        }},
-      {Truth::kExGaussian, 40, [&](const FamilyFit& f) {
+      {Truth::kExGaussian, 40,
+       [&](const FamilyFit& f) {
          return WithinAbs(f.kernel->mu(), kMu, 0.1) && WithinAbs(f.kernel->sigma(), kSigma, 0.07) &&
-                Within(f.kernel->tau_seconds(), kTau, 0.5) && Within(f.mean_seconds, eg_mean, 0.14) &&
-                Within(f.p90_seconds, eg_p90, 0.25);
+                Within(f.kernel->tau_seconds(), kTau, 0.5) &&
+                Within(f.mean_seconds, eg_mean, 0.14) && Within(f.p90_seconds, eg_p90, 0.25);
        }},
-      {Truth::kExGaussian, 200, [&](const FamilyFit& f) {
-         return WithinAbs(f.kernel->mu(), kMu, 0.035) && WithinAbs(f.kernel->sigma(), kSigma, 0.035) &&
-                Within(f.kernel->tau_seconds(), kTau, 0.25) && Within(f.mean_seconds, eg_mean, 0.07) &&
-                Within(f.p90_seconds, eg_p90, 0.12);
+      {Truth::kExGaussian, 200,
+       [&](const FamilyFit& f) {
+         return WithinAbs(f.kernel->mu(), kMu, 0.035) &&
+                WithinAbs(f.kernel->sigma(), kSigma, 0.035) &&
+                Within(f.kernel->tau_seconds(), kTau, 0.25) &&
+                Within(f.mean_seconds, eg_mean, 0.07) && Within(f.p90_seconds, eg_p90, 0.12);
        }},
   };
   constexpr int kSeeds = 50;
@@ -106,9 +125,7 @@ TEST(DelayFitTest, RecoversKnownParametersAndFamily) {
                        : c.truth == Truth::kLognormal ? "lognormal"
                                                       : "exgauss";
     SCOPED_TRACE(std::string(name) + " n=" + std::to_string(c.n));
-    const size_t index = c.truth == Truth::kGamma       ? 0
-                         : c.truth == Truth::kLognormal ? 2
-                                                        : 3;
+    const size_t index = c.truth == Truth::kGamma ? 0 : c.truth == Truth::kLognormal ? 2 : 3;
     int within = 0, right_family = 0;
     int wins[5] = {0, 0, 0, 0, 0};
     for (int seed = 1; seed <= kSeeds; ++seed) {
@@ -123,12 +140,12 @@ TEST(DelayFitTest, RecoversKnownParametersAndFamily) {
       within += c.ok(f) ? 1 : 0;
       ++wins[report->chosen];
       // A gamma sample is fitted equally rightly by the shifted gamma.
-      right_family += report->chosen == index ||
-                      (c.truth == Truth::kGamma && report->chosen == 1);
+      right_family += report->chosen == index || (c.truth == Truth::kGamma && report->chosen == 1);
     }
-    std::printf("%-9s n=%3d: within bands %d/%d; AIC wins gamma %d, shifted-gamma %d, "
-                "lognormal %d, exgauss %d, lognormal-mixture %d\n",
-                name, c.n, within, kSeeds, wins[0], wins[1], wins[2], wins[3], wins[4]);
+    std::printf(
+        "%-9s n=%3d: within bands %d/%d; AIC wins gamma %d, shifted-gamma %d, "
+        "lognormal %d, exgauss %d, lognormal-mixture %d\n",
+        name, c.n, within, kSeeds, wins[0], wins[1], wins[2], wins[3], wins[4]);
     EXPECT_GE(within, 46);
     if (c.n == 200) {
       EXPECT_GT(right_family, kSeeds / 2);
@@ -228,7 +245,8 @@ TEST(DelayFitTest, ExGaussianSigmaStaysAtOrAboveOneMillisecond) {
   auto fit = FitExGaussian(x);
   ASSERT_TRUE(fit.has_value());
   EXPECT_GE(fit->sigma_seconds, 1e-3);
-  EXPECT_TRUE(DelayKernel::ExGaussian(fit->mu_seconds, fit->sigma_seconds, fit->tau_seconds).has_value());
+  EXPECT_TRUE(
+      DelayKernel::ExGaussian(fit->mu_seconds, fit->sigma_seconds, fit->tau_seconds).has_value());
 }
 
 TEST(DelayFitTest, TwoModeSampleIsFittedByTheMixture) {

@@ -1,12 +1,12 @@
 // The lognormal and ex-Gaussian delay kernels: CDFs against Boost.Math,
 // the zero cut and horizon, the text form, and credit over a partition.
-#include <cmath>
-#include <string>
-#include <vector>
+#include <gtest/gtest.h>
 
 #include <boost/math/distributions/lognormal.hpp>
 #include <boost/math/distributions/normal.hpp>
-#include <gtest/gtest.h>
+#include <cmath>
+#include <string>
+#include <vector>
 
 #include "server/core/delay_kernel.h"
 #include "server/core/ex_gaussian.h"
@@ -26,11 +26,13 @@ TEST(DelayKernelFamiliesTest, LognormalCdfMatchesBoostOverGrid) {
         for (double x : {0.01, 0.1, 0.3, 0.6, 1.0, 2.5, 8.0}) {
           const double expect = boost::math::cdf(ref, x);
           EXPECT_NEAR(k->Cdf(Secs(shift + x)), expect, 1e-13 + 1e-12 * expect)
-              << mu << " " << sigma << " " << shift << " " << x;  // Boost.Math lognormal_distribution cdf
+              << mu << " " << sigma << " " << shift << " "
+              << x;  // Boost.Math lognormal_distribution cdf
         }
         EXPECT_EQ(k->Cdf(Secs(shift)), 0.0);
         EXPECT_EQ(k->LowerBound(), Secs(shift));
-        const double h = boost::math::quantile(ref, 0.999);  // Boost.Math lognormal_distribution quantile
+        const double h =
+            boost::math::quantile(ref, 0.999);  // Boost.Math lognormal_distribution quantile
         EXPECT_LE(std::abs((k->Horizon() - Secs(shift)).seconds() - h), 1.5e-9);
         EXPECT_NEAR(k->CdfAtHorizon(), 0.999, 1e-7);
         EXPECT_NEAR(k->Quantile(0.5).seconds(), shift + std::exp(mu), 1e-9);  // median e^mu
@@ -76,7 +78,8 @@ TEST(DelayKernelFamiliesTest, ExGaussianCdfLimitsAndBranchContinuity) {
   // tau -> 0: the exponential part vanishes, leaving normal(mu, sigma).
   boost::math::normal_distribution<double> normal(0.5, 0.1);
   for (double x : {0.3, 0.45, 0.5, 0.6, 0.8}) {
-    EXPECT_NEAR(ExGaussianCdf(x, 0.5, 0.1, 1e-7), boost::math::cdf(normal, x), 1e-6);  // Boost.Math normal_distribution cdf
+    EXPECT_NEAR(ExGaussianCdf(x, 0.5, 0.1, 1e-7), boost::math::cdf(normal, x),
+                1e-6);  // Boost.Math normal_distribution cdf
   }
   // sigma -> 0: a shifted exponential, 1 - exp(-(x - mu)/tau).
   for (double x : {0.6, 1.0, 2.0}) {
@@ -91,7 +94,8 @@ TEST(DelayKernelFamiliesTest, ExGaussianCdfLimitsAndBranchContinuity) {
   // The density is the CDF's slope, far into both tails too.
   for (double xx : {-0.2, 0.2, 0.4, 0.5, 1.0, 3.0}) {
     const double h = 1e-6;
-    const double slope = (ExGaussianCdf(xx + h, 0.4, 0.05, 0.3) - ExGaussianCdf(xx - h, 0.4, 0.05, 0.3)) / (2 * h);
+    const double slope =
+        (ExGaussianCdf(xx + h, 0.4, 0.05, 0.3) - ExGaussianCdf(xx - h, 0.4, 0.05, 0.3)) / (2 * h);
     const double pdf = std::exp(ExGaussianLogPdf(xx, 0.4, 0.05, 0.3));
     EXPECT_NEAR(slope, pdf, 1e-6 + 1e-6 * pdf) << xx;
   }
@@ -103,7 +107,10 @@ TEST(DelayKernelFamiliesTest, ExGaussianCdfLimitsAndBranchContinuity) {
 }
 
 TEST(DelayKernelFamiliesTest, TextFormRoundTrips) {
-  struct Case { const char* text; DelayKernel::Kind kind; };
+  struct Case {
+    const char* text;
+    DelayKernel::Kind kind;
+  };
   const Case cases[] = {
       {"lognormal:-0.5,0.35", DelayKernel::Kind::kLognormal},
       {"lognormal:-0.5,0.35,0.12", DelayKernel::Kind::kLognormal},
@@ -133,11 +140,11 @@ TEST(DelayKernelFamiliesTest, TextFormRoundTrips) {
 }
 
 TEST(DelayKernelFamiliesTest, ParseRejectsBadText) {
-  for (const char* text : {"lognormal:-0.5", "lognormal:-0.5,0", "lognormal:-0.5,0.3,0.1,0.2",
-                           "lognormal:-0.5,0.3,tau=0.2", "exgauss:0.45,0.06",
-                           "exgauss:0.45,0.06,0.25,0.1", "exgauss:0.45,0.06,0.25,shift=0.1",
-                           "exgauss:0.45,0.06,0.25,q=1", "exgauss:-3,0.06,0.25",
-                           "exgauss:0.45,x,0.25"}) {
+  for (const char* text :
+       {"lognormal:-0.5", "lognormal:-0.5,0", "lognormal:-0.5,0.3,0.1,0.2",
+        "lognormal:-0.5,0.3,tau=0.2", "exgauss:0.45,0.06", "exgauss:0.45,0.06,0.25,0.1",
+        "exgauss:0.45,0.06,0.25,shift=0.1", "exgauss:0.45,0.06,0.25,q=1", "exgauss:-3,0.06,0.25",
+        "exgauss:0.45,x,0.25"}) {
     std::string error;
     EXPECT_FALSE(DelayKernel::Parse(text, &error).has_value()) << text;
     EXPECT_FALSE(error.empty()) << text;
@@ -145,8 +152,8 @@ TEST(DelayKernelFamiliesTest, ParseRejectsBadText) {
 }
 
 TEST(DelayKernelFamiliesTest, CreditOverAPartitionSumsToOne) {
-  for (const char* text : {"lognormal:-0.5,0.35,0.1", "exgauss:0.45,0.06,0.25",
-                           "exgauss:0.1,0.1,0.3"}) {
+  for (const char* text :
+       {"lognormal:-0.5,0.35,0.1", "exgauss:0.45,0.06,0.25", "exgauss:0.1,0.1,0.3"}) {
     const DelayKernel k = *DelayKernel::Parse(text);
     const SessionTime tf = SessionTime::FromNanos(1'000'000'000'000);
     // Irregular steps covering [tf - horizon - 1 s, tf].

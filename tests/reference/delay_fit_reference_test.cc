@@ -27,9 +27,11 @@
 // Our own log-likelihoods (the two-lognormal mixture's too; SciPy has no
 // mixture fit to compare the maximum with) must equal SciPy's logpdf sums
 // at our parameters (1e-9 relative).
+#include <gtest/gtest.h>
 #include <unistd.h>
 
 #include <algorithm>
+#include <boost/math/distributions/lognormal.hpp>
 #include <cmath>
 #include <cstdio>
 #include <fstream>
@@ -38,9 +40,6 @@
 #include <sstream>
 #include <string>
 #include <vector>
-
-#include <boost/math/distributions/lognormal.hpp>
-#include <gtest/gtest.h>
 
 #include "server/core/delay_fit.h"
 #include "server/core/delay_kernel.h"
@@ -107,19 +106,23 @@ std::vector<double> SciPy(const std::string& body) {
 // take them.
 std::vector<double> Grid(double lo, double hi, int n) {
   std::vector<double> g;
-  for (int i = 0; i < n; ++i) g.push_back(Duration::FromSeconds(lo + (hi - lo) * i / (n - 1)).seconds());
+  for (int i = 0; i < n; ++i)
+    g.push_back(Duration::FromSeconds(lo + (hi - lo) * i / (n - 1)).seconds());
   return g;
 }
 
 TEST(DelayFitReferenceTest, LognormalCdfAgainstBoostAndSciPy) {
-  struct P { double mu, sigma, shift; };
+  struct P {
+    double mu, sigma, shift;
+  };
   const P params[] = {{-0.6, 0.5, 0.0}, {-1.5, 0.2, 0.1}, {0.3, 1.1, 0.05}};
   std::string script;
   std::vector<std::vector<double>> grids;
   for (const P& p : params) {
     grids.push_back(Grid(p.shift + 0.001, p.shift + 6, 60));
     char args[160];
-    std::snprintf(args, sizeof(args), "%.17g, loc=%.17g, scale=math.exp(%.17g)", p.sigma, p.shift, p.mu);
+    std::snprintf(args, sizeof(args), "%.17g, loc=%.17g, scale=math.exp(%.17g)", p.sigma, p.shift,
+                  p.mu);
     script += "for x in " + List(grids.back()) + ":\n    out(stats.lognorm.cdf(x, " + args + "))\n";
   }
   const std::vector<double> ref = SciPy(script);
@@ -135,13 +138,18 @@ TEST(DelayFitReferenceTest, LognormalCdfAgainstBoostAndSciPy) {
       const double got = k->Cdf(Duration::FromSeconds(x));
       EXPECT_NEAR(got, want, 1e-13 + 1e-9 * want)
           << x;  // SciPy stats.lognorm.cdf (s=sigma, loc=shift, scale=e^mu)
-      EXPECT_NEAR(got, boost::math::cdf(boost_ref, (Duration::FromSeconds(x) - Duration::FromSeconds(p.shift)).seconds()),
-                  1e-13 + 1e-12 * got);  // Boost.Math lognormal_distribution cdf
+      EXPECT_NEAR(
+          got,
+          boost::math::cdf(boost_ref,
+                           (Duration::FromSeconds(x) - Duration::FromSeconds(p.shift)).seconds()),
+          1e-13 + 1e-12 * got);  // Boost.Math lognormal_distribution cdf
     }
   }
 }
 
-struct ExG { double mu, sigma, tau; };
+struct ExG {
+  double mu, sigma, tau;
+};
 const ExG kExGaussians[] = {
     {0.45, 0.06, 0.25},   // a typical human delay
     {0.30, 0.10, 0.01},   // nearly normal: sigma/tau = 10
@@ -163,8 +171,8 @@ TEST(DelayFitReferenceTest, ExGaussianCdfAndDensityAgainstSciPy) {
   for (const ExG& p : kExGaussians) {
     // From far below mu into the far exponential tail.
     grids.push_back(Grid(p.mu - 10 * p.sigma, p.mu + 25 * p.tau, kPoints));
-    script += "for x in " + List(grids.back()) + ":\n    out(stats.exponnorm.cdf(x, " +
-              ExGArgs(p) + "), stats.exponnorm.logpdf(x, " + ExGArgs(p) + "))\n";
+    script += "for x in " + List(grids.back()) + ":\n    out(stats.exponnorm.cdf(x, " + ExGArgs(p) +
+              "), stats.exponnorm.logpdf(x, " + ExGArgs(p) + "))\n";
   }
   const std::vector<double> ref = SciPy(script);
   ASSERT_EQ(ref.size(), 2u * kPoints * grids.size());
@@ -176,7 +184,8 @@ TEST(DelayFitReferenceTest, ExGaussianCdfAndDensityAgainstSciPy) {
       const double cdf = ref[2 * (kPoints * j + i)], logpdf = ref[2 * (kPoints * j + i) + 1];
       EXPECT_NEAR(ExGaussianCdf(x, p.mu, p.sigma, p.tau), cdf, 1e-13 + 1e-9 * cdf)
           << x;  // SciPy stats.exponnorm.cdf(x, K=tau/sigma, loc=mu, scale=sigma)
-      EXPECT_NEAR(ExGaussianLogPdf(x, p.mu, p.sigma, p.tau), logpdf, 1e-13 + 1e-9 * std::abs(logpdf))
+      EXPECT_NEAR(ExGaussianLogPdf(x, p.mu, p.sigma, p.tau), logpdf,
+                  1e-13 + 1e-9 * std::abs(logpdf))
           << x;  // SciPy stats.exponnorm.logpdf
     }
   }
@@ -187,9 +196,9 @@ TEST(DelayFitReferenceTest, ExGaussianKernelIsSciPysConditionedOnPositiveDelay) 
   auto k = DelayKernel::ExGaussian(p.mu, p.sigma, p.tau);
   ASSERT_TRUE(k.has_value());
   const std::vector<double> xs = Grid(0.01, 3, 40);
-  const std::vector<double> ref = SciPy(
-      "g0 = stats.exponnorm.cdf(0, " + ExGArgs(p) + ")\nfor x in " + List(xs) +
-      ":\n    out((stats.exponnorm.cdf(x, " + ExGArgs(p) + ") - g0) / (1 - g0))");
+  const std::vector<double> ref =
+      SciPy("g0 = stats.exponnorm.cdf(0, " + ExGArgs(p) + ")\nfor x in " + List(xs) +
+            ":\n    out((stats.exponnorm.cdf(x, " + ExGArgs(p) + ") - g0) / (1 - g0))");
   ASSERT_EQ(ref.size(), xs.size());
   for (size_t i = 0; i < xs.size(); ++i) {
     EXPECT_NEAR(k->Cdf(Duration::FromSeconds(xs[i])), ref[i], 1e-12)
@@ -235,7 +244,8 @@ TEST(DelayFitReferenceTest, FitsAgainstSciPyFit) {
   for (Truth truth : {Truth::kGamma, Truth::kLognormal, Truth::kExGaussian}) {
     for (int n : {40, 200}) {
       for (uint64_t seed : {1, 2, 3}) {
-        Case c{truth, n, seed, Sample(truth, n, seed * 100 + static_cast<uint64_t>(truth)), {}, {}, {}, {}, {}};
+        Case c{truth, n,  seed, Sample(truth, n, seed * 100 + static_cast<uint64_t>(truth)), {}, {},
+               {},    {}, {}};
         auto gamma = FitGamma(c.x);
         auto shifted = FitShiftedGamma(c.x);
         auto lognormal = FitLognormal(c.x);
@@ -247,7 +257,8 @@ TEST(DelayFitReferenceTest, FitsAgainstSciPyFit) {
         std::vector<double> sorted = c.x;
         std::sort(sorted.begin(), sorted.end());
         // The shift's upper bound, as FitShiftedGamma states it.
-        const double max_shift = std::max(0.0, sorted[0] - std::max(1e-3, 0.5 * (sorted[1] - sorted[0])));
+        const double max_shift =
+            std::max(0.0, sorted[0] - std::max(1e-3, 0.5 * (sorted[1] - sorted[0])));
         char ours[768];
         std::snprintf(ours, sizeof(ours),
                       "ga, gs = %.17g, %.17g\nsa, ss, sl = %.17g, %.17g, %.17g\n"
@@ -293,8 +304,8 @@ TEST(DelayFitReferenceTest, FitsAgainstSciPyFit) {
   for (size_t i = 0; i < cases.size(); ++i) {
     const Case& c = cases[i];
     const double* ref = &all[15 * i];
-    SCOPED_TRACE("truth " + std::to_string(static_cast<int>(c.truth)) + " n " + std::to_string(c.n) +
-                 " seed " + std::to_string(c.seed));
+    SCOPED_TRACE("truth " + std::to_string(static_cast<int>(c.truth)) + " n " +
+                 std::to_string(c.n) + " seed " + std::to_string(c.seed));
     EXPECT_NEAR(c.gamma.shape, ref[0], 1e-6 * ref[0]);          // SciPy stats.gamma.fit(x, floc=0)
     EXPECT_NEAR(c.gamma.scale_seconds, ref[1], 1e-6 * ref[1]);  // SciPy stats.gamma.fit(x, floc=0)
     EXPECT_NEAR(c.lognormal.mu, ref[2], 1e-10);     // SciPy stats.lognorm.fit(x, floc=0): ln scale
@@ -303,12 +314,14 @@ TEST(DelayFitReferenceTest, FitsAgainstSciPyFit) {
     EXPECT_NEAR(c.exg.mu_seconds, ref[4], 0.02 * sd);     // SciPy stats.exponnorm.fit: loc
     EXPECT_NEAR(c.exg.sigma_seconds, ref[5], 0.02 * sd);  // SciPy stats.exponnorm.fit: scale
     EXPECT_NEAR(c.exg.tau_seconds, ref[6], 0.02 * sd);    // SciPy stats.exponnorm.fit: K * scale
-    EXPECT_GE(ref[8], ref[7] - 1e-6);   // SciPy stats.exponnorm.logpdf: ours at least SciPy's maximum
-    EXPECT_GE(ref[10], ref[9] - 1e-6);  // SciPy optimize.minimize_scalar over stats.gamma.fit(floc=loc)
+    EXPECT_GE(ref[8],
+              ref[7] - 1e-6);  // SciPy stats.exponnorm.logpdf: ours at least SciPy's maximum
+    EXPECT_GE(ref[10],
+              ref[9] - 1e-6);  // SciPy optimize.minimize_scalar over stats.gamma.fit(floc=loc)
     const double exg_ll =
         ExGaussianLogLikelihood(c.x, c.exg.mu_seconds, c.exg.sigma_seconds, c.exg.tau_seconds);
-    const double sg_ll = GammaLogLikelihood(c.x, c.shifted.shape, c.shifted.scale_seconds,
-                                            c.shifted.shift_seconds);
+    const double sg_ll =
+        GammaLogLikelihood(c.x, c.shifted.shape, c.shifted.scale_seconds, c.shifted.shift_seconds);
     const double g_ll = GammaLogLikelihood(c.x, c.gamma.shape, c.gamma.scale_seconds, 0);
     const double l_ll = LognormalLogLikelihood(c.x, c.lognormal.mu, c.lognormal.sigma);
     EXPECT_NEAR(exg_ll, ref[8], 1e-9 * std::abs(ref[8]));   // SciPy stats.exponnorm.logpdf sum
