@@ -7,9 +7,11 @@
 #include <limits>
 #include <utility>
 
+#include <boost/math/distributions/lognormal.hpp>
 #include <boost/math/policies/policy.hpp>
 #include <boost/math/special_functions/gamma.hpp>
 
+#include "server/core/ex_gaussian.h"
 #include "server/core/internal/boost_policy.h"
 
 namespace tickmark {
@@ -167,6 +169,35 @@ std::optional<DelayKernel> DelayKernel::Exponential(double rate_per_second,
   return k;
 }
 
+std::optional<DelayKernel> DelayKernel::Lognormal(double mu, double sigma,
+                                                  Duration shift,
+                                                  double horizon_quantile,
+                                                  std::string* error) {
+  DelayKernel k;
+  k.kind_ = Kind::kLognormal;
+  k.mu_ = mu;
+  k.sigma_ = sigma;
+  k.shift_ = shift;
+  k.q_ = horizon_quantile;
+  if (!k.Finish(error)) return std::nullopt;
+  return k;
+}
+
+std::optional<DelayKernel> DelayKernel::ExGaussian(double mu_seconds,
+                                                   double sigma_seconds,
+                                                   double tau_seconds,
+                                                   double horizon_quantile,
+                                                   std::string* error) {
+  DelayKernel k;
+  k.kind_ = Kind::kExGaussian;
+  k.mu_ = mu_seconds;
+  k.sigma_ = sigma_seconds;
+  k.tau_s_ = tau_seconds;
+  k.q_ = horizon_quantile;
+  if (!k.Finish(error)) return std::nullopt;
+  return k;
+}
+
 std::optional<DelayKernel> DelayKernel::Empirical(Duration first_edge,
                                                   Duration bin_width,
                                                   std::vector<double> counts,
@@ -181,7 +212,8 @@ std::optional<DelayKernel> DelayKernel::Empirical(Duration first_edge,
 }
 
 bool DelayKernel::Finish(std::string* error) {
-  const bool unbounded = kind_ == Kind::kGamma || kind_ == Kind::kExponential;
+  const bool unbounded = kind_ == Kind::kGamma || kind_ == Kind::kExponential ||
+                         kind_ == Kind::kLognormal || kind_ == Kind::kExGaussian;
   if (unbounded) {
     if (!(q_ > 0 && q_ < 1)) {
       return Fail(error, "horizon quantile must be in (0, 1)");
@@ -226,6 +258,41 @@ bool DelayKernel::Finish(std::string* error) {
       }
       lower_ = shift_;
       horizon_ = shift_ + *width;
+      break;
+    }
+    case Kind::kLognormal: {
+      if (!std::isfinite(mu_)) return Fail(error, "lognormal mu must be finite");
+      if (!std::isfinite(sigma_) || sigma_ <= 0) {
+        return Fail(error, "lognormal sigma must be finite and > 0");
+      }
+      std::optional<Duration> width = BoundedSeconds(boost::math::quantile(
+          boost::math::lognormal_distribution<double, BoostPolicy>(mu_, sigma_), q_));
+      if (!width || shift_ + *width > kMaxHorizon) {
+        return Fail(error, "lognormal horizon not finite or > 86400 s");
+      }
+      lower_ = shift_;
+      horizon_ = shift_ + *width;
+      break;
+    }
+    case Kind::kExGaussian: {
+      if (!std::isfinite(mu_) || std::abs(mu_) > kMaxHorizon.seconds()) {
+        return Fail(error, "exgauss mu must be finite and within 86400 s");
+      }
+      if (!std::isfinite(sigma_) || sigma_ <= 0 || !std::isfinite(tau_s_) ||
+          tau_s_ <= 0) {
+        return Fail(error, "exgauss sigma and tau must be finite and > 0");
+      }
+      exg_below_zero_ = ExGaussianCdf(0, mu_, sigma_, tau_s_);
+      if (!(exg_below_zero_ <= 0.5)) {
+        return Fail(error, "exgauss puts more than half its mass below zero delay");
+      }
+      std::optional<Duration> width = BoundedSeconds(ExGaussianQuantile(
+          exg_below_zero_ + q_ * (1 - exg_below_zero_), mu_, sigma_, tau_s_));
+      if (!width || *width > kMaxHorizon) {
+        return Fail(error, "exgauss horizon not finite or > 86400 s");
+      }
+      lower_ = Duration::Zero();
+      horizon_ = *width;
       break;
     }
     case Kind::kEmpirical: {
@@ -307,6 +374,17 @@ double DelayKernel::Cdf(Duration d) const {
                     static_cast<double>(width);
       return cum_[i] + (cum_[i + 1] - cum_[i]) * frac;
     }
+    case Kind::kLognormal: {
+      if (d <= shift_) return 0.0;
+      return boost::math::cdf(
+          boost::math::lognormal_distribution<double, BoostPolicy>(mu_, sigma_),
+          (d - shift_).seconds());
+    }
+    case Kind::kExGaussian: {
+      if (d <= Duration::Zero()) return 0.0;
+      const double g = ExGaussianCdf(d.seconds(), mu_, sigma_, tau_s_);
+      return std::max(0.0, (g - exg_below_zero_) / (1 - exg_below_zero_));
+    }
   }
   return 0.0;
 }
@@ -343,6 +421,22 @@ Duration DelayKernel::Quantile(double p) const {
              Duration::Nanos(static_cast<int64_t>(std::llround(
                  within * static_cast<double>(bin_width_.nanos()))));
     }
+    case Kind::kLognormal: {
+      if (p <= 0) return shift_;
+      if (p >= 1) return Duration::Max();
+      double x = boost::math::quantile(
+          boost::math::lognormal_distribution<double, BoostPolicy>(mu_, sigma_), p);
+      if (!std::isfinite(x)) return Duration::Max();
+      return shift_ + Duration::FromSeconds(std::min(x, 1e9));
+    }
+    case Kind::kExGaussian: {
+      if (p <= 0) return Duration::Zero();
+      if (p >= 1) return Duration::Max();
+      double x = ExGaussianQuantile(exg_below_zero_ + p * (1 - exg_below_zero_),
+                                    mu_, sigma_, tau_s_);
+      if (!std::isfinite(x)) return Duration::Max();
+      return Duration::FromSeconds(std::clamp(x, 0.0, 1e9));
+    }
   }
   return Duration::Zero();
 }
@@ -369,6 +463,14 @@ std::string DelayKernel::Describe() const {
       }
       return out + "])";
     }
+    case Kind::kLognormal:
+      return "lognormal(mu=" + FormatDouble(mu_) + ",sigma=" +
+             FormatDouble(sigma_) + ",shift=" + FormatSeconds(shift_) +
+             "s,q=" + FormatDouble(q_) + ")";
+    case Kind::kExGaussian:
+      return "exgauss(mu=" + FormatDouble(mu_) + "s,sigma=" +
+             FormatDouble(sigma_) + "s,tau=" + FormatDouble(tau_s_) +
+             "s,q=" + FormatDouble(q_) + ")";
   }
   return "";
 }
@@ -404,6 +506,10 @@ std::optional<DelayKernel> DelayKernel::Parse(std::string_view text,
     positional_names = {"rate", "shift"};
   } else if (kind == "empirical") {
     positional_names = {"first_edge", "bin_width"};
+  } else if (kind == "lognormal") {
+    positional_names = {"mu", "sigma", "shift"};
+  } else if (kind == "exgauss") {
+    positional_names = {"mu", "sigma", "tau"};
   } else {
     Fail(error, "unknown kernel kind '" + std::string(kind) + "'");
     return std::nullopt;
@@ -440,7 +546,17 @@ std::optional<DelayKernel> DelayKernel::Parse(std::string_view text,
     }
   }
 
-  std::optional<double> shape, scale, rate;
+  std::optional<double> shape, scale, rate, mu, sigma, tau;
+  const bool lognormal = kind == "lognormal";
+  const bool exgauss = kind == "exgauss";
+  // A double with an optional trailing unit ("0.3s") as Describe() prints.
+  auto number = [](std::string_view v, std::string_view unit) {
+    if (!unit.empty() && v.size() >= unit.size() &&
+        v.substr(v.size() - unit.size()) == unit) {
+      v.remove_suffix(unit.size());
+    }
+    return ParseDouble(v);
+  };
   std::optional<Duration> lower, upper, shift, first_edge, bin_width;
   double q = kDefaultHorizonQuantile;
   for (const auto& [key, value] : params) {
@@ -466,9 +582,17 @@ std::optional<DelayKernel> DelayKernel::Parse(std::string_view text,
       if (v.size() >= 2 && v.substr(v.size() - 2) == "/s") v.remove_suffix(2);
       rate = ParseDouble(v);
       ok = rate.has_value();
-    } else if (key == "shift" && (kind == "gamma" || kind == "exponential")) {
+    } else if (key == "shift" &&
+               (kind == "gamma" || kind == "exponential" || lognormal)) {
       seconds(shift);
-    } else if (key == "q" && (kind == "gamma" || kind == "exponential")) {
+    } else if ((key == "mu" || key == "sigma") && (lognormal || exgauss)) {
+      (key == "mu" ? mu : sigma) = number(value, exgauss ? "s" : "");
+      ok = (key == "mu" ? mu : sigma).has_value();
+    } else if (key == "tau" && exgauss) {
+      tau = number(value, "s");
+      ok = tau.has_value();
+    } else if (key == "q" && (kind == "gamma" || kind == "exponential" ||
+                              lognormal || exgauss)) {
       std::optional<double> v = ParseDouble(value);
       ok = v.has_value();
       if (v) q = *v;
@@ -518,6 +642,14 @@ std::optional<DelayKernel> DelayKernel::Parse(std::string_view text,
   if (kind == "exponential") {
     if (!rate) return missing("rate");
     return Exponential(*rate, shift.value_or(Duration::Zero()), q, error);
+  }
+  if (lognormal) {
+    if (!mu || !sigma) return missing("mu and sigma");
+    return Lognormal(*mu, *sigma, shift.value_or(Duration::Zero()), q, error);
+  }
+  if (exgauss) {
+    if (!mu || !sigma || !tau) return missing("mu, sigma and tau");
+    return ExGaussian(*mu, *sigma, *tau, q, error);
   }
   if (!first_edge || !bin_width || !have_counts) {
     return missing("first_edge, bin_width and counts");

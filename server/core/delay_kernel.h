@@ -14,6 +14,13 @@
 //   exponential(rate, shift)   F(d) = 1 - exp(-rate (d - shift)).
 //   empirical(first edge, bin width, counts)  histogram from calibration,
 //                              piecewise-linear CDF through the bin edges.
+//   lognormal(mu, sigma, shift)  ln((d - shift) / 1 s) ~ N(mu, sigma^2).
+//   exgauss(mu, sigma, tau)    normal(mu, sigma) + exponential(mean tau),
+//                              seconds, conditioned on d > 0: F(d) =
+//                              (G(d) - G(0)) / (1 - G(0)), G the plain
+//                              ex-Gaussian CDF (ex_gaussian.h). Fits of
+//                              real delays have G(0) below 1e-6; the
+//                              factories refuse G(0) > 0.5.
 // Every kind has support at or after zero delay (a >= 0, shift >= 0,
 // first edge >= 0): a human cannot react before the act, and the credit
 // engine relies on this to never credit a step that started after a
@@ -36,7 +43,7 @@ namespace tickmark {
 
 class DelayKernel {
  public:
-  enum class Kind { kUniform, kGamma, kExponential, kEmpirical };
+  enum class Kind { kUniform, kGamma, kExponential, kEmpirical, kLognormal, kExGaussian };
 
   static constexpr double kDefaultHorizonQuantile = 0.999;
   // No human delay model needs a longer window; the bound keeps every
@@ -59,6 +66,16 @@ class DelayKernel {
       double rate_per_second, Duration shift,
       double horizon_quantile = kDefaultHorizonQuantile,
       std::string* error = nullptr);
+  // mu and sigma of ln(delay - shift in seconds); sigma > 0.
+  static std::optional<DelayKernel> Lognormal(
+      double mu, double sigma, Duration shift,
+      double horizon_quantile = kDefaultHorizonQuantile,
+      std::string* error = nullptr);
+  // mu, sigma and tau in seconds; sigma, tau > 0.
+  static std::optional<DelayKernel> ExGaussian(
+      double mu_seconds, double sigma_seconds, double tau_seconds,
+      double horizon_quantile = kDefaultHorizonQuantile,
+      std::string* error = nullptr);
   // Bin i covers [first_edge + i*bin_width, first_edge + (i+1)*bin_width).
   // Counts must be finite, non-negative, and not all zero.
   static std::optional<DelayKernel> Empirical(Duration first_edge,
@@ -69,6 +86,7 @@ class DelayKernel {
   // Parses either the short form (numbers in seconds, rate per second)
   //   "uniform:0.2,4.0"  "gamma:2,0.28[,shift]"  "exponential:2.5[,shift]"
   //   "empirical:first_edge,bin_width,count0,count1,..."
+  //   "lognormal:mu,sigma[,shift]"  "exgauss:mu,sigma,tau"
   // optionally followed by ",q=0.99" for the unbounded kinds, or the
   // Describe() form, so Parse(k.Describe()) == k. Whitespace around tokens
   // is ignored.
@@ -88,8 +106,8 @@ class DelayKernel {
   double CutCdf(Duration d) const;
   // The uncut quantile: the smallest delay d with Cdf(d) >= p, p in (0, 1).
   Duration Quantile(double p) const;
-  // Lowest delay with positive density (a, shift, or the first non-empty
-  // bin's edge).
+  // Lowest delay with positive density (a, shift, zero for exgauss, or the
+  // first non-empty bin's edge).
   Duration LowerBound() const { return lower_; }
   // Upper end of support for bounded kinds; the horizon_quantile quantile,
   // rounded to the nanosecond, for unbounded kinds.
@@ -101,6 +119,10 @@ class DelayKernel {
   double shape() const { return shape_; }
   double scale_seconds() const { return scale_s_; }
   double rate_per_second() const { return rate_; }
+  // Lognormal: of ln(seconds); ex-Gaussian: seconds.
+  double mu() const { return mu_; }
+  double sigma() const { return sigma_; }
+  double tau_seconds() const { return tau_s_; }
   Duration shift() const { return shift_; }
   double horizon_quantile() const { return q_; }
   Duration uniform_lower() const { return a_; }
@@ -121,7 +143,10 @@ class DelayKernel {
   double shape_ = 0;               // gamma shape
   double scale_s_ = 0;             // gamma scale, seconds
   double rate_ = 0;                // exponential rate, per second
-  Duration shift_;                 // gamma / exponential shift
+  double mu_ = 0, sigma_ = 0;      // lognormal (log s) / ex-Gaussian (s)
+  double tau_s_ = 0;               // ex-Gaussian exponential mean, seconds
+  double exg_below_zero_ = 0;      // ex-Gaussian G(0), cut off
+  Duration shift_;                 // gamma / exponential / lognormal shift
   double q_ = 1.0;                 // horizon quantile (unbounded kinds)
   Duration first_edge_, bin_width_;  // empirical histogram geometry
   std::vector<double> counts_;     // empirical counts, as given
