@@ -46,14 +46,18 @@ absl::Status DamagedLedger(const std::string& path, const std::string& detail) {
   const std::string stem = fs::path(path).replace_extension("").string();
   return absl::DataLossError(Cat(
       "ledger ", path, " is damaged (", detail, "); tickmarkd will not start on it.\n",
-      "To recover: stop tickmarkd and keep the damaged copy as it is (with any ", path,
-      "-wal next to it), then copy out what SQLite can still read into a new file:\n",
-      "  sqlite3 ", path, " .recover | sqlite3 ", stem, ".recovered.db\n",
-      "  mv ", path, " ", path, ".damaged   (and ", path, "-wal, ", path, "-shm, ", path,
-      ".heads likewise)\n",
+      "To recover: stop tickmarkd, keep the damaged copy as it is, and copy what SQLite can "
+      "still read into a new file with the sqlite3 program:\n",
+      "  sqlite3 ", path, " .dump | sqlite3 ", stem, ".recovered.db\n",
+      "  (it names the damaged rows it cannot copy; the rest are copied)\n",
+      "  (a sqlite3 whose .recover command works, 3.41 or later, rescues more: use .recover "
+      "instead of .dump)\n",
+      "  mkdir ", path, ".damaged && mv ", path, " ", path, "-wal ", path, "-shm ", path,
+      ".damaged/   (whichever exist)\n",
       "  mv ", stem, ".recovered.db ", path, "\n",
-      "Then start tickmarkd (it will report any records the recovery lost) and run "
-      "`tickmark audit verify` on each session."));
+      "Leave ", path, ".heads in place: the next start compares it with the recovered ledger "
+      "and lists any records the recovery lost (accept them with --accept-lost-records). Then "
+      "run `tickmark audit verify` on each session."));
 }
 
 absl::Status CheckLedgerPresence(const std::string& path, const std::vector<std::string>& evidence,
@@ -84,10 +88,11 @@ absl::Status CheckLedgerPresence(const std::string& path, const std::vector<std:
   }
   return absl::FailedPreconditionError(Cat(
       "ledger ", path, exists ? " is an empty file" : " does not exist", ", but ", list,
-      " show that a ledger existed here; refusing to start with every session gone.\n",
-      "If the ledger was moved, point tickmarkd at it (--ledger). If it is damaged or lost, "
-      "restore it from a backup. To start a new, empty ledger on purpose, start once with "
-      "--new-ledger (the old operator token stays valid only if it is re-issued)."));
+      found.size() == 1 ? " exists" : " exist",
+      ": a ledger existed here, and starting would begin with every session gone.\n",
+      "If the ledger was moved, point tickmarkd at it. If it was lost, restore it from a "
+      "backup. To start a new, empty ledger on purpose, start once with --new-ledger (a new "
+      "operator token is then issued)."));
 }
 
 absl::Status QuickCheck(sqlite3* db, const std::string& path, std::chrono::milliseconds limit) {
@@ -106,6 +111,9 @@ absl::Status QuickCheck(sqlite3* db, const std::string& path, std::chrono::milli
       }
       if (!*row) break;
       std::string line = q.Text(0);
+      for (char& ch : line) {
+        if (ch == '\n') ch = ' ';
+      }
       if (line != "ok") problems.push_back(line);
     }
     if (s.ok() && !q.status().ok()) s = q.status();
