@@ -6,6 +6,7 @@
 
 #include <filesystem>
 #include <future>
+#include <limits>
 
 #include <gtest/gtest.h>
 
@@ -153,6 +154,46 @@ TEST_F(LedgerTest, DuplicateClientSequenceIsRefusedByTheSchema) {
   EXPECT_TRUE(ledger_->WriteHealth().ok());
   auto next = AppendSync("s-a", {FeedbackRecord("c1", 2, 1)});
   EXPECT_EQ(next[0].sequence(), 2u);  // the failed append's sequence is reused
+}
+
+// The label's parts column is JSON made by SQLite's json functions: any
+// trainer name round-trips, numbers keep every bit, and a non-finite number
+// becomes null (the old hand-written JSON printed `inf`, which no JSON
+// reader accepts).
+TEST_F(LedgerTest, LabelPartsColumnIsValidJsonForAnyTrainerName) {
+  ASSERT_TRUE(ledger_->CreateSession(Session("s-a")).ok());
+  const std::string tricky = "ava \"the\\ one\"\n\t\x01 \xc3\xa9";
+  v1::Record label;
+  auto* l = label.mutable_label();
+  l->set_step_sequence(1);
+  l->set_agent("rover");
+  auto* p = l->add_parts();
+  p->set_trainer(tricky);
+  p->set_value(0.1);
+  p->set_weight(1.0 / 3.0);
+  auto* q = l->add_parts();
+  q->set_trainer("bo");
+  q->set_value(std::numeric_limits<double>::infinity());
+  q->set_weight(1);
+  AppendSync("s-a", {label});
+  ledger_.reset();
+  sqlite3* db = nullptr;
+  ASSERT_EQ(sqlite3_open(path_.c_str(), &db), SQLITE_OK);
+  sqlite3_stmt* st = nullptr;
+  ASSERT_EQ(sqlite3_prepare_v2(db,
+                               "SELECT json_valid(parts), json_extract(parts, '$[0].trainer'), "
+                               "json_extract(parts, '$[0].value'), json_extract(parts, "
+                               "'$[0].weight'), json_type(parts, '$[1].value') FROM label",
+                               -1, &st, nullptr),
+            SQLITE_OK);
+  ASSERT_EQ(sqlite3_step(st), SQLITE_ROW);
+  EXPECT_EQ(sqlite3_column_int(st, 0), 1);
+  EXPECT_EQ(std::string(reinterpret_cast<const char*>(sqlite3_column_text(st, 1))), tricky);
+  EXPECT_EQ(sqlite3_column_double(st, 2), 0.1);
+  EXPECT_EQ(sqlite3_column_double(st, 3), 1.0 / 3.0);
+  EXPECT_EQ(std::string(reinterpret_cast<const char*>(sqlite3_column_text(st, 4))), "null");
+  sqlite3_finalize(st);
+  sqlite3_close(db);
 }
 
 TEST_F(LedgerTest, CountsByKind) {
