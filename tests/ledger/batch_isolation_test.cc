@@ -3,9 +3,9 @@
 // sequences go to the session's next records, so the chain has no hole.
 // (The old writer rolled back the whole transaction and then refused every
 // write until a restart.)
-#include <future>
-
 #include <gtest/gtest.h>
+
+#include <future>
 
 #include "tests/ledger/ledger_test_util.h"
 
@@ -74,8 +74,7 @@ TEST_P(BatchIsolationTest, OnlyTheFailingGroupFailsAndTheChainHasNoHole) {
   for (size_t i = 0; i < c.groups.size(); ++i) {
     ASSERT_EQ(results[i].wait_for(std::chrono::seconds(30)), std::future_status::ready);
     Committed got = results[i].get();
-    EXPECT_EQ(got.status.code(), c.groups[i].want)
-        << "group " << i << ": " << got.status.message();
+    EXPECT_EQ(got.status.code(), c.groups[i].want) << "group " << i << ": " << got.status.message();
     if (got.status.ok()) {
       // Sequences as committed: consecutive per session, whatever failed before.
       EXPECT_EQ(got.records[0].sequence(), ++stored[c.groups[i].session]) << "group " << i;
@@ -101,22 +100,21 @@ constexpr auto kDup = absl::StatusCode::kAlreadyExists;
 
 INSTANTIATE_TEST_SUITE_P(
     Cases, BatchIsolationTest,
-    ::testing::Values(
-        IsolationCase{"DuplicateOfACommittedRecord",
-                      {{"s-a", "c1", 2, kOk},
-                       {"s-a", "c1", 1, kDup},  // slipped past the server's dedup
-                       {"s-a", "c1", 3, kOk},
-                       {"s-b", "c2", 1, kOk}}},
-        IsolationCase{"DuplicateInsideTheSameBatch",
-                      {{"s-a", "c2", 5, kOk},
-                       {"s-b", "c2", 5, kOk},   // same key, other session: fine
-                       {"s-a", "c2", 5, kDup},  // resent before the first committed
-                       {"s-a", "c2", 6, kOk}}},
-        IsolationCase{"FirstAndLastFail",
-                      {{"s-a", "c1", 1, kDup},
-                       {"s-a", "c3", 1, kOk},
-                       {"s-b", "c3", 1, kOk},
-                       {"s-a", "c3", 1, kDup}}}),
+    ::testing::Values(IsolationCase{"DuplicateOfACommittedRecord",
+                                    {{"s-a", "c1", 2, kOk},
+                                     {"s-a", "c1", 1, kDup},  // slipped past the server's dedup
+                                     {"s-a", "c1", 3, kOk},
+                                     {"s-b", "c2", 1, kOk}}},
+                      IsolationCase{"DuplicateInsideTheSameBatch",
+                                    {{"s-a", "c2", 5, kOk},
+                                     {"s-b", "c2", 5, kOk},   // same key, other session: fine
+                                     {"s-a", "c2", 5, kDup},  // resent before the first committed
+                                     {"s-a", "c2", 6, kOk}}},
+                      IsolationCase{"FirstAndLastFail",
+                                    {{"s-a", "c1", 1, kDup},
+                                     {"s-a", "c3", 1, kOk},
+                                     {"s-b", "c3", 1, kOk},
+                                     {"s-a", "c3", 1, kDup}}}),
     [](const ::testing::TestParamInfo<IsolationCase>& p) { return p.param.name; });
 
 }  // namespace

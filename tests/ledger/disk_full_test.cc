@@ -7,6 +7,7 @@
 // The full disk is a small tmpfs the test mounts, so it needs root (the
 // test is skipped, saying so, otherwise).
 #include <fcntl.h>
+#include <gtest/gtest.h>
 #include <sqlite3.h>
 #include <sys/mount.h>
 #include <unistd.h>
@@ -14,8 +15,6 @@
 #include <condition_variable>
 #include <cstring>
 #include <mutex>
-
-#include <gtest/gtest.h>
 
 #include "tests/ledger/ledger_test_util.h"
 

@@ -3,13 +3,12 @@
 // and each is refused with a message that names the file and the way out.
 // (The old ledger opened all of them: truncated, empty, deleted beside its
 // operator token, or without the WAL that held the last records.)
+#include <gtest/gtest.h>
 #include <sqlite3.h>
 
 #include <cstdlib>
 #include <fstream>
 #include <iostream>
-
-#include <gtest/gtest.h>
 
 #include "tests/ledger/ledger_test_util.h"
 
@@ -76,7 +75,8 @@ class LedgerStartupTest : public ::testing::TestWithParam<StartCase> {
     }
     ASSERT_TRUE((*l)->Flush().ok());
     ASSERT_TRUE(fs::exists(o.path + "-wal"));
-    for (const char* f : {"tickmark.db", "tickmark.db-wal", "tickmark.db.heads", "operator.token"}) {
+    for (const char* f :
+         {"tickmark.db", "tickmark.db-wal", "tickmark.db.heads", "operator.token"}) {
       fs::copy_file(*root_ + "/src/" + f, live + "/" + f);
     }
   }
@@ -142,7 +142,8 @@ TEST_P(LedgerStartupTest, RefusedWithAClearMessageOrOpened) {
   for (std::string want : c.message_has) {
     for (size_t at; (at = want.find('$')) != std::string::npos;) want.replace(at, 1, o.path);
     EXPECT_NE(l.status().message().find(want), absl::string_view::npos)
-        << "message lacks '" << want << "':\n" << l.status().message();
+        << "message lacks '" << want << "':\n"
+        << l.status().message();
   }
   if (!l.ok()) {
     std::cout << "what the operator sees:\n" << l.status().message() << "\n";
@@ -195,32 +196,79 @@ const uint64_t kAll = kCheckpointed + kInWal;
 INSTANTIATE_TEST_SUITE_P(
     Cases, LedgerStartupTest,
     ::testing::Values(
-        StartCase{"IntactCopy", false, Spoil::kNone, false, false, StatusCode::kOk, {},
-                  kCheckpointed},
-        StartCase{"IntactCopyWithItsWal", true, Spoil::kNone, false, false, StatusCode::kOk, {},
-                  kAll},
-        StartCase{"TruncatedBy1234Bytes", false, Spoil::kTruncate1234, false, false,
-                  StatusCode::kDataLoss, {"$", "damaged", "sqlite3 $ .dump | sqlite3", "keep the damaged copy"}},
-        StartCase{"ZeroLengthFile", false, Spoil::kZeroLength, false, false,
-                  StatusCode::kFailedPrecondition, {"$", "empty file", "--new-ledger"}},
-        StartCase{"DeletedWhileOperatorTokenExists", false, Spoil::kDeleteKeepToken, false, false,
-                  StatusCode::kFailedPrecondition, {"$", "does not exist", "operator.token"}},
-        StartCase{"DeletedWhileSideFileExists", false, Spoil::kDeleteKeepSideFile, false, false,
-                  StatusCode::kFailedPrecondition, {"$", "tickmark.db.heads", "--new-ledger"}},
-        StartCase{"DeletedAndANewLedgerAskedFor", false, Spoil::kDeleteKeepToken, true, false,
-                  StatusCode::kOk, {}, 0},
-        StartCase{"ZeroLengthAndANewLedgerAskedFor", false, Spoil::kZeroLength, true, false,
-                  StatusCode::kOk, {}, 0},
-        StartCase{"WalRemovedAfterWriting", true, Spoil::kDropWal, false, false,
+        StartCase{
+            "IntactCopy", false, Spoil::kNone, false, false, StatusCode::kOk, {}, kCheckpointed},
+        StartCase{
+            "IntactCopyWithItsWal", true, Spoil::kNone, false, false, StatusCode::kOk, {}, kAll},
+        StartCase{"TruncatedBy1234Bytes",
+                  false,
+                  Spoil::kTruncate1234,
+                  false,
+                  false,
+                  StatusCode::kDataLoss,
+                  {"$", "damaged", "sqlite3 $ .dump | sqlite3", "keep the damaged copy"}},
+        StartCase{"ZeroLengthFile",
+                  false,
+                  Spoil::kZeroLength,
+                  false,
+                  false,
+                  StatusCode::kFailedPrecondition,
+                  {"$", "empty file", "--new-ledger"}},
+        StartCase{"DeletedWhileOperatorTokenExists",
+                  false,
+                  Spoil::kDeleteKeepToken,
+                  false,
+                  false,
+                  StatusCode::kFailedPrecondition,
+                  {"$", "does not exist", "operator.token"}},
+        StartCase{"DeletedWhileSideFileExists",
+                  false,
+                  Spoil::kDeleteKeepSideFile,
+                  false,
+                  false,
+                  StatusCode::kFailedPrecondition,
+                  {"$", "tickmark.db.heads", "--new-ledger"}},
+        StartCase{"DeletedAndANewLedgerAskedFor",
+                  false,
+                  Spoil::kDeleteKeepToken,
+                  true,
+                  false,
+                  StatusCode::kOk,
+                  {},
+                  0},
+        StartCase{"ZeroLengthAndANewLedgerAskedFor",
+                  false,
+                  Spoil::kZeroLength,
+                  true,
+                  false,
+                  StatusCode::kOk,
+                  {},
+                  0},
+        StartCase{"WalRemovedAfterWriting",
+                  true,
+                  Spoil::kDropWal,
+                  false,
+                  false,
                   StatusCode::kDataLoss,
                   {"$", "session s-a: records 51..300 missing (ledger ends at 50)",
                    "--accept-lost-records"}},
-        StartCase{"WalDamagedAfterWriting", true, Spoil::kDamageWal, false, false,
-                  StatusCode::kDataLoss, {"$", "session s-a: records", "--accept-lost-records"}},
-        StartCase{"WalRemovedAndTheLossAccepted", true, Spoil::kDropWal, false, true,
-                  StatusCode::kOk, {}, kCheckpointed},
-        StartCase{"FreshEmptyFolder", false, Spoil::kEmptyFolder, false, false, StatusCode::kOk,
-                  {}, 0}),
+        StartCase{"WalDamagedAfterWriting",
+                  true,
+                  Spoil::kDamageWal,
+                  false,
+                  false,
+                  StatusCode::kDataLoss,
+                  {"$", "session s-a: records", "--accept-lost-records"}},
+        StartCase{"WalRemovedAndTheLossAccepted",
+                  true,
+                  Spoil::kDropWal,
+                  false,
+                  true,
+                  StatusCode::kOk,
+                  {},
+                  kCheckpointed},
+        StartCase{
+            "FreshEmptyFolder", false, Spoil::kEmptyFolder, false, false, StatusCode::kOk, {}, 0}),
     [](const ::testing::TestParamInfo<StartCase>& p) { return std::string(p.param.name); });
 
 }  // namespace

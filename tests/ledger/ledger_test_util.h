@@ -4,14 +4,14 @@
 #ifndef TICKMARK_TESTS_LEDGER_LEDGER_TEST_UTIL_H_
 #define TICKMARK_TESTS_LEDGER_LEDGER_TEST_UTIL_H_
 
+#include <gtest/gtest.h>
+
 #include <chrono>
 #include <cstdlib>
 #include <filesystem>
 #include <future>
 #include <string>
 #include <vector>
-
-#include <gtest/gtest.h>
 
 #include "server/ledger/sqlite/sqlite_ledger.h"
 
@@ -20,8 +20,8 @@ namespace tickmark::ledger::testing {
 namespace v1 = tickmark::v1;
 
 inline std::string MakeTempDir(const char* stem) {
-  std::string tmpl = (std::filesystem::temp_directory_path() / (std::string(stem) + "-XXXXXX"))
-                         .string();
+  std::string tmpl =
+      (std::filesystem::temp_directory_path() / (std::string(stem) + "-XXXXXX")).string();
   return mkdtemp(tmpl.data());
 }
 

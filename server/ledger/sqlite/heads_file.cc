@@ -61,8 +61,8 @@ absl::StatusOr<SessionHeads> HeadsFile::Read() const {
 absl::Status HeadsFile::Write(const SessionHeads& heads) const {
   std::string text = Cat(kVersionLine, "\n");
   for (const auto& [id, head] : heads) {
-    text += Cat(head.sequence, " ", absl::BytesToHexString(head.hash), " ", absl::CHexEscape(id),
-                "\n");
+    text +=
+        Cat(head.sequence, " ", absl::BytesToHexString(head.hash), " ", absl::CHexEscape(id), "\n");
   }
   const std::string tmp = path_ + ".tmp";
   const int fd = open(tmp.c_str(), O_CREAT | O_TRUNC | O_WRONLY | O_CLOEXEC, 0600);

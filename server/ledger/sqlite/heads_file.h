@@ -29,7 +29,7 @@ namespace tickmark::ledger {
 
 // Where a session's committed chain ends.
 struct SessionHead {
-  uint64_t sequence = 0;                   // 0: no record yet
+  uint64_t sequence = 0;                     // 0: no record yet
   std::string hash = std::string(32, '\0');  // hash of that record (zeros before the first)
 };
 using SessionHeads = std::map<std::string, SessionHead, std::less<>>;

@@ -8,10 +8,11 @@
 namespace tickmark::ledger {
 
 absl::Status ApplyMigrations(sqlite3* db) {
-  absl::Status s = Exec(db,
-                        "CREATE TABLE IF NOT EXISTS schema_migrations ("
-                        " version INTEGER PRIMARY KEY, description TEXT NOT NULL,"
-                        " applied_utc TEXT NOT NULL DEFAULT (strftime('%Y-%m-%dT%H:%M:%SZ','now')));");
+  absl::Status s =
+      Exec(db,
+           "CREATE TABLE IF NOT EXISTS schema_migrations ("
+           " version INTEGER PRIMARY KEY, description TEXT NOT NULL,"
+           " applied_utc TEXT NOT NULL DEFAULT (strftime('%Y-%m-%dT%H:%M:%SZ','now')));");
   if (!s.ok()) return s;
   int64_t have = 0;
   {
@@ -22,9 +23,9 @@ absl::Status ApplyMigrations(sqlite3* db) {
   }
   auto all = SqliteMigrations();
   if (have > static_cast<int64_t>(all.size())) {
-    return absl::FailedPreconditionError(Cat(
-        "ledger schema version ", have, " is newer than this program knows (", all.size(),
-        "); use a newer tickmarkd"));
+    return absl::FailedPreconditionError(Cat("ledger schema version ", have,
+                                             " is newer than this program knows (", all.size(),
+                                             "); use a newer tickmarkd"));
   }
   for (const Migration& m : all) {
     if (m.version <= have) continue;

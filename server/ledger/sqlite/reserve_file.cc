@@ -20,8 +20,8 @@ absl::Status ReserveFile::Create() {
   close(fd);
   if (rc != 0) {
     unlink(path_.c_str());
-    const std::string why = Cat("cannot reserve ", bytes_, " bytes in ", path_, ": ",
-                                std::strerror(rc));
+    const std::string why =
+        Cat("cannot reserve ", bytes_, " bytes in ", path_, ": ", std::strerror(rc));
     return rc == ENOSPC || rc == EFBIG ? absl::ResourceExhaustedError(why)
                                        : absl::UnavailableError(why);
   }

@@ -46,7 +46,7 @@ absl::StatusOr<sqlite3*> OpenDb(const std::string& path, bool full) {
 // Free bytes for an unprivileged writer on the file system holding `path`.
 uint64_t FreeBytes(const std::string& path) {
   std::string dir = std::filesystem::path(path).parent_path().string();
-  struct statvfs st{};
+  struct statvfs st {};
   if (statvfs(dir.empty() ? "." : dir.c_str(), &st) != 0) return UINT64_MAX;
   return static_cast<uint64_t>(st.f_bavail) * st.f_frsize;
 }
@@ -99,10 +99,17 @@ absl::StatusOr<std::unique_ptr<SqliteLedger>> SqliteLedger::Open(const Options& 
     return s;
   }
   if (replaces_old) {
-    // The old side file and WAL describe a ledger that is gone; SQLite must
-    // not apply that WAL to the new file.
+    // An old WAL belongs to a ledger that is gone; SQLite must not apply it
+    // to the new file. It is kept aside, not deleted: it may be evidence.
     std::error_code ec;
-    std::filesystem::remove(options.path + "-wal", ec);
+    if (std::filesystem::exists(options.path + "-wal", ec)) {
+      std::filesystem::rename(options.path + "-wal", options.path + "-wal.replaced", ec);
+      if (ec)
+        return absl::UnavailableError(
+            Cat("cannot move the old ", options.path, "-wal aside: ", ec.message()));
+      TM_LOG(kWarning) << "the old " << options.path << "-wal is kept as " << options.path
+                       << "-wal.replaced";
+    }
     std::filesystem::remove(options.path + "-shm", ec);
   }
   auto damaged = [&](const absl::Status& s) {
@@ -518,8 +525,8 @@ void SqliteLedger::TryRecover() {
     // fill the disk again at once.
     return again(absl::ResourceExhaustedError("no room beyond the reserve file"));
   }
-  const auto failed_for = std::chrono::duration_cast<std::chrono::milliseconds>(
-      SteadyClock::now() - failing_since_);
+  const auto failed_for =
+      std::chrono::duration_cast<std::chrono::milliseconds>(SteadyClock::now() - failing_since_);
   if (absl::Status s = NoteLedgerEvent(
           "write_resumed", Cat("after ", failed_for.count(), " ms of: ", health.message()));
       !s.ok()) {
@@ -531,8 +538,8 @@ void SqliteLedger::TryRecover() {
     std::lock_guard<std::mutex> lock(read_mu_);
     sqlite3_db_config(reader_db_, SQLITE_DBCONFIG_NO_CKPT_ON_CLOSE, 0, nullptr);
   }
-  TM_LOG(kInfo) << "ledger writes resumed after " << failed_for.count() << " ms (were failing: "
-                << health.message() << ")";
+  TM_LOG(kInfo) << "ledger writes resumed after " << failed_for.count()
+                << " ms (were failing: " << health.message() << ")";
   backoff_ = std::chrono::milliseconds(0);
   SetHealth(absl::OkStatus());
 }
@@ -542,8 +549,13 @@ absl::Status SqliteLedger::CreateSession(const SessionRow& row) {
     Statement q(db,
                 "INSERT INTO session (id, title, study, state, opened_session_ns, utc_anchor_ns, "
                 "mono_anchor_ns, boot_id) VALUES (?, ?, ?, 'open', ?, ?, ?, ?)");
-    return q.Bind(row.id).Bind(row.title).Bind(row.study).Bind(row.opened_session_ns)
-        .Bind(row.utc_anchor_ns).Bind(row.mono_anchor_ns).Bind(row.boot_id)
+    return q.Bind(row.id)
+        .Bind(row.title)
+        .Bind(row.study)
+        .Bind(row.opened_session_ns)
+        .Bind(row.utc_anchor_ns)
+        .Bind(row.mono_anchor_ns)
+        .Bind(row.boot_id)
         .Run();
   });
 }
@@ -559,10 +571,10 @@ absl::StatusOr<SessionRow> SqliteLedger::GetSession(std::string_view id) {
 
 absl::StatusOr<std::vector<SessionRow>> SqliteLedger::ListSessions(bool include_closed) {
   std::lock_guard<std::mutex> lock(read_mu_);
-  Statement q(reader_db_, Cat("SELECT ", kSessionColumns, " FROM session ",
-                              include_closed ? "" : "WHERE state = 'open' ",
-                              "ORDER BY opened_session_ns")
-                              .c_str());
+  Statement q(reader_db_,
+              Cat("SELECT ", kSessionColumns, " FROM session ",
+                  include_closed ? "" : "WHERE state = 'open' ", "ORDER BY opened_session_ns")
+                  .c_str());
   std::vector<SessionRow> out;
   while (true) {
     auto row = q.Step();
@@ -585,8 +597,8 @@ absl::Status SqliteLedger::CloseSession(std::string_view id, int64_t closed_sess
 absl::Status SqliteLedger::ReanchorSession(std::string_view id, int64_t utc_anchor_ns,
                                            int64_t mono_anchor_ns, std::string_view boot_id) {
   return RunSync([=](sqlite3* db) {
-    Statement q(db,
-                "UPDATE session SET utc_anchor_ns = ?, mono_anchor_ns = ?, boot_id = ? WHERE id = ?");
+    Statement q(
+        db, "UPDATE session SET utc_anchor_ns = ?, mono_anchor_ns = ?, boot_id = ? WHERE id = ?");
     return q.Bind(utc_anchor_ns).Bind(mono_anchor_ns).Bind(boot_id).Bind(id).Run();
   });
 }
@@ -601,8 +613,11 @@ absl::Status SqliteLedger::PutToken(const TokenRow& row) {
     } else {
       q.Bind(row.id).Bind(row.session_id);
     }
-    return q.Bind(RoleWord(row.role)).Bind(row.subject).BindBlob(row.hash)
-        .Bind(row.issued_session_ns).Bind(row.revoked)
+    return q.Bind(RoleWord(row.role))
+        .Bind(row.subject)
+        .BindBlob(row.hash)
+        .Bind(row.issued_session_ns)
+        .Bind(row.revoked)
         .Run();
   });
 }

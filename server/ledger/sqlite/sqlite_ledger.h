@@ -106,8 +106,8 @@ class SqliteLedger final : public Ledger {
                                   CommitCallback done) override;
   void Barrier(std::function<void()> done) override;
   absl::Status Flush() override;
-  absl::StatusOr<std::vector<tickmark::v1::Record>> Read(std::string_view session_id,
-                                                         uint64_t from, size_t max) override;
+  absl::StatusOr<std::vector<tickmark::v1::Record>> Read(std::string_view session_id, uint64_t from,
+                                                         size_t max) override;
   absl::StatusOr<std::optional<uint64_t>> FindClientSequence(std::string_view session_id,
                                                              std::string_view client_id,
                                                              uint64_t client_sequence) override;
@@ -159,9 +159,9 @@ class SqliteLedger final : public Ledger {
   absl::Status RunSync(std::function<absl::Status(sqlite3*)> op);
 
   const Options options_;
-  sqlite3* writer_db_;  // used only on the writer thread (and in Open/Close)
-  std::mutex read_mu_;  // serialises use of reader_db_
-  sqlite3* reader_db_;  // GUARDED_BY(read_mu_)
+  sqlite3* writer_db_;                   // used only on the writer thread (and in Open/Close)
+  std::mutex read_mu_;                   // serialises use of reader_db_
+  sqlite3* reader_db_;                   // GUARDED_BY(read_mu_)
   HeadsFile heads_file_;                 // writer thread only (after Open)
   ReserveFile reserve_;                  // writer thread only (after Open)
   std::unique_ptr<TypedTables> tables_;  // writer thread only
@@ -176,7 +176,7 @@ class SqliteLedger final : public Ledger {
   std::chrono::steady_clock::time_point next_retry_;  // writer thread only, while failing
   std::chrono::milliseconds backoff_{0};              // writer thread only, while failing
   std::chrono::steady_clock::time_point failing_since_;  // writer thread only
-  std::thread writer_;                                // runs WriterLoop
+  std::thread writer_;                                   // runs WriterLoop
 };
 
 }  // namespace tickmark::ledger

@@ -44,20 +44,20 @@ int OnProgress(void* arg) {
 
 absl::Status DamagedLedger(const std::string& path, const std::string& detail) {
   const std::string stem = fs::path(path).replace_extension("").string();
-  return absl::DataLossError(Cat(
-      "ledger ", path, " is damaged (", detail, "); tickmarkd will not start on it.\n",
-      "To recover: stop tickmarkd, keep the damaged copy as it is, and copy what SQLite can "
-      "still read into a new file with the sqlite3 program:\n",
-      "  sqlite3 ", path, " .dump | sqlite3 ", stem, ".recovered.db\n",
-      "  (it names the damaged rows it cannot copy; the rest are copied)\n",
-      "  (a sqlite3 whose .recover command works, 3.41 or later, rescues more: use .recover "
-      "instead of .dump)\n",
-      "  mkdir ", path, ".damaged && mv ", path, " ", path, "-wal ", path, "-shm ", path,
-      ".damaged/   (whichever exist)\n",
-      "  mv ", stem, ".recovered.db ", path, "\n",
-      "Leave ", path, ".heads in place: the next start compares it with the recovered ledger "
-      "and lists any records the recovery lost (accept them with --accept-lost-records). Then "
-      "run `tickmark audit verify` on each session."));
+  return absl::DataLossError(
+      Cat("ledger ", path, " is damaged (", detail, "); tickmarkd will not start on it.\n",
+          "To recover: stop tickmarkd, keep the damaged copy as it is, and copy what SQLite can "
+          "still read into a new file with the sqlite3 program:\n",
+          "  sqlite3 ", path, " .dump | sqlite3 ", stem, ".recovered.db\n",
+          "  (it names the damaged rows it cannot copy; the rest are copied)\n",
+          "  (a sqlite3 whose .recover command works, 3.41 or later, rescues more: use .recover "
+          "instead of .dump)\n",
+          "  mkdir ", path, ".damaged && mv ", path, " ", path, "-wal ", path, "-shm ", path,
+          ".damaged/   (whichever exist)\n", "  mv ", stem, ".recovered.db ", path, "\n", "Leave ",
+          path,
+          ".heads in place: the next start compares it with the recovered ledger "
+          "and lists any records the recovery lost (accept them with --accept-lost-records). Then "
+          "run `tickmark audit verify` on each session."));
 }
 
 absl::Status CheckLedgerPresence(const std::string& path, const std::vector<std::string>& evidence,
@@ -86,13 +86,13 @@ absl::Status CheckLedgerPresence(const std::string& path, const std::vector<std:
     *replaces_old = true;
     return absl::OkStatus();
   }
-  return absl::FailedPreconditionError(Cat(
-      "ledger ", path, exists ? " is an empty file" : " does not exist", ", but ", list,
-      found.size() == 1 ? " exists" : " exist",
-      ": a ledger existed here, and starting would begin with every session gone.\n",
-      "If the ledger was moved, point tickmarkd at it. If it was lost, restore it from a "
-      "backup. To start a new, empty ledger on purpose, start once with --new-ledger (a new "
-      "operator token is then issued)."));
+  return absl::FailedPreconditionError(
+      Cat("ledger ", path, exists ? " is an empty file" : " does not exist", ", but ", list,
+          found.size() == 1 ? " exists" : " exist",
+          ": a ledger existed here, and starting would begin with every session gone.\n",
+          "If the ledger was moved, point tickmarkd at it. If it was lost, restore it from a "
+          "backup. To start a new, empty ledger on purpose, start once with --new-ledger (a new "
+          "operator token is then issued)."));
 }
 
 absl::Status QuickCheck(sqlite3* db, const std::string& path, std::chrono::milliseconds limit) {
@@ -163,13 +163,13 @@ absl::Status LostRecords(const std::string& path, const std::string& heads_path,
   std::string list;
   for (size_t i = 0; i < findings.size() && i < 20; ++i) list += Cat("  ", findings[i], "\n");
   if (findings.size() > 20) list += Cat("  ... and ", findings.size() - 20, " more sessions\n");
-  return absl::DataLossError(Cat(
-      "ledger ", path, " lacks records that were committed (its side file ", heads_path,
-      " says so); the -wal file was probably damaged or removed after a crash:\n", list,
-      "tickmarkd will not start on it. If a copy of the missing ", path,
-      "-wal exists, put it back next to the ledger and start again. To accept the loss "
-      "and go on with what the ledger holds, start once with --accept-lost-records "
-      "(the loss is then written to the ledger_event table)."));
+  return absl::DataLossError(
+      Cat("ledger ", path, " lacks records that were committed (its side file ", heads_path,
+          " says so); the -wal file was probably damaged or removed after a crash:\n", list,
+          "tickmarkd will not start on it. If a copy of the missing ", path,
+          "-wal exists, put it back next to the ledger and start again. To accept the loss "
+          "and go on with what the ledger holds, start once with --accept-lost-records "
+          "(the loss is then written to the ledger_event table)."));
 }
 
 }  // namespace tickmark::ledger

@@ -47,7 +47,7 @@ class TypedTables {
   // SQLite's own json functions so that nothing here escapes text by hand.
   absl::Status LabelPartsJson(const tickmark::v1::Label& label, std::string* json);
 
-  sqlite3* db_;                                            // borrowed writing connection
+  sqlite3* db_;                                              // borrowed writing connection
   std::map<std::string, std::unique_ptr<Statement>> cache_;  // by SQL text
 };
 
