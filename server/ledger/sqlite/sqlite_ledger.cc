@@ -11,6 +11,7 @@
 #include "server/base/strings.h"
 #include "server/ledger/sqlite/enum_names.h"
 #include "server/ledger/sqlite/migration_runner.h"
+#include "server/ledger/sqlite/read_connection.h"
 #include "server/ledger/sqlite/startup_checks.h"
 #include "server/ledger/sqlite/statement.h"
 #include "server/ledger/sqlite/typed_tables.h"
@@ -51,41 +52,6 @@ uint64_t FreeBytes(const std::string& path) {
   return static_cast<uint64_t>(st.f_bavail) * st.f_frsize;
 }
 
-SessionRow SessionFromRow(const Statement& q) {
-  SessionRow row;
-  row.id = q.Text(0);
-  row.title = q.Text(1);
-  row.study = q.Text(2);
-  row.open = q.Text(3) == "open";
-  row.opened_session_ns = q.Int(4);
-  row.closed_session_ns = q.IsNull(5) ? 0 : q.Int(5);
-  row.utc_anchor_ns = q.Int(6);
-  row.mono_anchor_ns = q.Int(7);
-  row.boot_id = q.Text(8);
-  row.last_sequence = static_cast<uint64_t>(q.Int(9));
-  return row;
-}
-
-constexpr const char* kSessionColumns =
-    "id, title, study, state, opened_session_ns, closed_session_ns, utc_anchor_ns, "
-    "mono_anchor_ns, boot_id, (SELECT COALESCE(MAX(seq), 0) FROM record r WHERE r.session_id = "
-    "session.id)";
-
-TokenRow TokenFromRow(const Statement& q) {
-  TokenRow t;
-  t.id = q.Text(0);
-  t.session_id = q.Text(1);
-  t.role = RoleFromWord(q.Text(2));
-  t.subject = q.Text(3);
-  t.hash = q.Blob(4);
-  t.issued_session_ns = q.Int(5);
-  t.revoked = q.Int(6) != 0;
-  return t;
-}
-
-constexpr const char* kTokenColumns =
-    "id, COALESCE(session_id, ''), role, subject, secret_sha256, issued_session_ns, revoked";
-
 }  // namespace
 
 absl::StatusOr<std::unique_ptr<SqliteLedger>> SqliteLedger::Open(const Options& options) {
@@ -117,7 +83,7 @@ absl::StatusOr<std::unique_ptr<SqliteLedger>> SqliteLedger::Open(const Options& 
   };
   auto writer = OpenDb(options.path, options.synchronous_full);
   if (!writer.ok()) return damaged(writer.status());
-  std::unique_ptr<SqliteLedger> ledger(new SqliteLedger(options, *writer, nullptr));
+  std::unique_ptr<SqliteLedger> ledger(new SqliteLedger(options, *writer));
   if (!is_new) {
     if (absl::Status s = QuickCheck(*writer, options.path, options.quick_check_limit); !s.ok()) {
       return s;
@@ -126,7 +92,7 @@ absl::StatusOr<std::unique_ptr<SqliteLedger>> SqliteLedger::Open(const Options& 
   if (absl::Status s = ApplyMigrations(*writer); !s.ok()) return damaged(s);
   auto reader = OpenDb(options.path, options.synchronous_full);
   if (!reader.ok()) return damaged(reader.status());
-  ledger->reader_db_ = *reader;
+  ledger->reads_ = std::make_unique<ReadConnection>(*reader);
   if (absl::Status s = ledger->LoadHeads(); !s.ok()) return damaged(s);
   if (is_new) {
     if (replaces_old) {
@@ -149,10 +115,9 @@ absl::StatusOr<std::unique_ptr<SqliteLedger>> SqliteLedger::Open(const Options& 
   return ledger;
 }
 
-SqliteLedger::SqliteLedger(Options options, sqlite3* writer, sqlite3* reader)
+SqliteLedger::SqliteLedger(Options options, sqlite3* writer)
     : options_(std::move(options)),
       writer_db_(writer),
-      reader_db_(reader),
       heads_file_(HeadsPath(options_.path), options_.synchronous_full),
       reserve_(ReservePath(options_.path), options_.reserve_bytes) {}
 
@@ -229,12 +194,10 @@ void SqliteLedger::Close() {
   work_cv_.notify_all();
   if (writer_.joinable()) writer_.join();
   tables_.reset();  // finalise its statements before closing the connection
-  std::lock_guard<std::mutex> lock(read_mu_);
-  if (reader_db_ != nullptr) sqlite3_close(reader_db_);
+  if (reads_) reads_->Close();
   // A clean close checkpoints the WAL into the main file (unless writes are
   // failing: then EnterFailing turned that off and the WAL stays, intact).
   if (writer_db_ != nullptr) sqlite3_close(writer_db_);
-  reader_db_ = nullptr;
   writer_db_ = nullptr;
 }
 
@@ -494,10 +457,7 @@ void SqliteLedger::EnterFailing(const absl::Status& cause) {
   // until writes work again.
   sqlite3_wal_autocheckpoint(writer_db_, 0);
   sqlite3_db_config(writer_db_, SQLITE_DBCONFIG_NO_CKPT_ON_CLOSE, 1, nullptr);
-  {
-    std::lock_guard<std::mutex> lock(read_mu_);
-    sqlite3_db_config(reader_db_, SQLITE_DBCONFIG_NO_CKPT_ON_CLOSE, 1, nullptr);
-  }
+  reads_->SetCheckpointOnClose(false);
   if (full) reserve_.Release();
   absl::Status noted = NoteLedgerEvent("write_failing", std::string(health.message()));
   TM_LOG(kError) << health.message() << "; appends fail with this error until a retry succeeds ("
@@ -534,10 +494,7 @@ void SqliteLedger::TryRecover() {
   }
   sqlite3_wal_autocheckpoint(writer_db_, kAutoCheckpointPages);
   sqlite3_db_config(writer_db_, SQLITE_DBCONFIG_NO_CKPT_ON_CLOSE, 0, nullptr);
-  {
-    std::lock_guard<std::mutex> lock(read_mu_);
-    sqlite3_db_config(reader_db_, SQLITE_DBCONFIG_NO_CKPT_ON_CLOSE, 0, nullptr);
-  }
+  reads_->SetCheckpointOnClose(true);
   TM_LOG(kInfo) << "ledger writes resumed after " << failed_for.count()
                 << " ms (were failing: " << health.message() << ")";
   backoff_ = std::chrono::milliseconds(0);
@@ -561,28 +518,11 @@ absl::Status SqliteLedger::CreateSession(const SessionRow& row) {
 }
 
 absl::StatusOr<SessionRow> SqliteLedger::GetSession(std::string_view id) {
-  std::lock_guard<std::mutex> lock(read_mu_);
-  Statement q(reader_db_, Cat("SELECT ", kSessionColumns, " FROM session WHERE id = ?").c_str());
-  auto row = q.Bind(id).Step();
-  if (!row.ok()) return row.status();
-  if (!*row) return absl::NotFoundError(Cat("no session '", id, "'"));
-  return SessionFromRow(q);
+  return reads_->GetSession(id);
 }
 
 absl::StatusOr<std::vector<SessionRow>> SqliteLedger::ListSessions(bool include_closed) {
-  std::lock_guard<std::mutex> lock(read_mu_);
-  Statement q(reader_db_,
-              Cat("SELECT ", kSessionColumns, " FROM session ",
-                  include_closed ? "" : "WHERE state = 'open' ", "ORDER BY opened_session_ns")
-                  .c_str());
-  std::vector<SessionRow> out;
-  while (true) {
-    auto row = q.Step();
-    if (!row.ok()) return row.status();
-    if (!*row) break;
-    out.push_back(SessionFromRow(q));
-  }
-  return out;
+  return reads_->ListSessions(include_closed);
 }
 
 absl::Status SqliteLedger::CloseSession(std::string_view id, int64_t closed_session_ns) {
@@ -623,29 +563,11 @@ absl::Status SqliteLedger::PutToken(const TokenRow& row) {
 }
 
 absl::StatusOr<TokenRow> SqliteLedger::FindTokenByHash(std::string_view hash) {
-  std::lock_guard<std::mutex> lock(read_mu_);
-  Statement q(reader_db_,
-              Cat("SELECT ", kTokenColumns, " FROM token WHERE secret_sha256 = ?").c_str());
-  auto row = q.BindBlob(hash).Step();
-  if (!row.ok()) return row.status();
-  if (!*row) return absl::NotFoundError("unknown token");
-  return TokenFromRow(q);
+  return reads_->FindTokenByHash(hash);
 }
 
 absl::StatusOr<std::vector<TokenRow>> SqliteLedger::ListTokens(std::string_view session_id) {
-  std::lock_guard<std::mutex> lock(read_mu_);
-  Statement q(reader_db_, Cat("SELECT ", kTokenColumns,
-                              " FROM token WHERE session_id = ? ORDER BY issued_session_ns, id")
-                              .c_str());
-  q.Bind(session_id);
-  std::vector<TokenRow> out;
-  while (true) {
-    auto row = q.Step();
-    if (!row.ok()) return row.status();
-    if (!*row) break;
-    out.push_back(TokenFromRow(q));
-  }
-  return out;
+  return reads_->ListTokens(session_id);
 }
 
 absl::StatusOr<TokenRow> SqliteLedger::RevokeToken(std::string_view session_id,
@@ -659,83 +581,26 @@ absl::StatusOr<TokenRow> SqliteLedger::RevokeToken(std::string_view session_id,
     return absl::OkStatus();
   });
   if (!s.ok()) return s;
-  std::lock_guard<std::mutex> lock(read_mu_);
-  Statement q(reader_db_, Cat("SELECT ", kTokenColumns, " FROM token WHERE id = ?").c_str());
-  auto row = q.Bind(token_id).Step();
-  if (!row.ok()) return row.status();
-  if (!*row) return absl::NotFoundError("token vanished");
-  return TokenFromRow(q);
+  return reads_->FindToken(token_id);
 }
 
 absl::StatusOr<std::vector<Record>> SqliteLedger::Read(std::string_view session_id, uint64_t from,
                                                        size_t max) {
-  std::lock_guard<std::mutex> lock(read_mu_);
-  Statement q(reader_db_,
-              "SELECT body, hash FROM record WHERE session_id = ? AND seq >= ? ORDER BY seq "
-              "LIMIT ?");
-  q.Bind(session_id).Bind(from).Bind(static_cast<int64_t>(max));
-  std::vector<Record> out;
-  while (true) {
-    auto row = q.Step();
-    if (!row.ok()) return row.status();
-    if (!*row) break;
-    Record r;
-    std::string body = q.Blob(0);
-    if (!r.ParseFromString(body)) {
-      return absl::DataLossError(Cat("record body does not parse in session ", session_id));
-    }
-    r.set_hash(q.Blob(1));
-    out.push_back(std::move(r));
-  }
-  return out;
+  return reads_->Read(session_id, from, max);
 }
 
 absl::StatusOr<std::optional<uint64_t>> SqliteLedger::FindClientSequence(
     std::string_view session_id, std::string_view client_id, uint64_t client_sequence) {
-  std::lock_guard<std::mutex> lock(read_mu_);
-  Statement q(reader_db_,
-              "SELECT seq FROM record WHERE session_id = ? AND client_id = ? AND client_seq = ?");
-  auto row = q.Bind(session_id).Bind(client_id).Bind(client_sequence).Step();
-  if (!row.ok()) return row.status();
-  if (!*row) return std::optional<uint64_t>();
-  return std::optional<uint64_t>(static_cast<uint64_t>(q.Int(0)));
+  return reads_->FindClientSequence(session_id, client_id, client_sequence);
 }
 
 absl::StatusOr<uint64_t> SqliteLedger::LastClientSequence(std::string_view session_id,
                                                           std::string_view client_id) {
-  std::lock_guard<std::mutex> lock(read_mu_);
-  Statement q(reader_db_,
-              "SELECT COALESCE(MAX(client_seq), 0) FROM record WHERE session_id = ? AND "
-              "client_id = ? AND client_seq IS NOT NULL");
-  auto row = q.Bind(session_id).Bind(client_id).Step();
-  if (!row.ok()) return row.status();
-  return static_cast<uint64_t>(q.Int(0));
+  return reads_->LastClientSequence(session_id, client_id);
 }
 
 absl::StatusOr<RecordCounts> SqliteLedger::Counts(std::string_view session_id) {
-  std::lock_guard<std::mutex> lock(read_mu_);
-  Statement q(reader_db_,
-              "SELECT (SELECT COUNT(*) FROM feedback WHERE session_id = ?1),"
-              " (SELECT COUNT(*) FROM step WHERE session_id = ?1),"
-              " (SELECT COUNT(*) FROM probe WHERE session_id = ?1),"
-              " (SELECT COUNT(*) FROM marker WHERE session_id = ?1),"
-              " (SELECT COUNT(*) FROM client WHERE session_id = ?1),"
-              " (SELECT COUNT(*) FROM feedback WHERE session_id = ?1 AND late)"
-              "  + (SELECT COUNT(*) FROM step WHERE session_id = ?1 AND late),"
-              " (SELECT COUNT(*) FROM unmatched WHERE session_id = ?1 AND derived_set = 'live'),"
-              " (SELECT COUNT(*) FROM probe WHERE session_id = ?1 AND NOT accepted)");
-  auto row = q.Bind(session_id).Step();
-  if (!row.ok()) return row.status();
-  RecordCounts c;
-  c.feedback = static_cast<uint64_t>(q.Int(0));
-  c.steps = static_cast<uint64_t>(q.Int(1));
-  c.probes = static_cast<uint64_t>(q.Int(2));
-  c.markers = static_cast<uint64_t>(q.Int(3));
-  c.clients = static_cast<uint64_t>(q.Int(4));
-  c.late = static_cast<uint64_t>(q.Int(5));
-  c.unmatched = static_cast<uint64_t>(q.Int(6));
-  c.rejected_probes = static_cast<uint64_t>(q.Int(7));
-  return c;
+  return reads_->Counts(session_id);
 }
 
 absl::Status SqliteLedger::PutDerivedSet(std::string_view session_id, std::string_view name,

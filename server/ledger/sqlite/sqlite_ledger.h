@@ -56,6 +56,7 @@ struct sqlite3;
 
 namespace tickmark::ledger {
 
+class ReadConnection;
 class TypedTables;
 
 class SqliteLedger final : public Ledger {
@@ -139,7 +140,7 @@ class SqliteLedger final : public Ledger {
     std::function<void()> barrier;              // for barriers
   };
 
-  SqliteLedger(Options options, sqlite3* writer, sqlite3* reader);
+  SqliteLedger(Options options, sqlite3* writer);
   absl::Status LoadHeads();
   absl::Status CheckSideFile();
   void WriterLoop();
@@ -159,12 +160,11 @@ class SqliteLedger final : public Ledger {
   absl::Status RunSync(std::function<absl::Status(sqlite3*)> op);
 
   const Options options_;
-  sqlite3* writer_db_;                   // used only on the writer thread (and in Open/Close)
-  std::mutex read_mu_;                   // serialises use of reader_db_
-  sqlite3* reader_db_;                   // GUARDED_BY(read_mu_)
-  HeadsFile heads_file_;                 // writer thread only (after Open)
-  ReserveFile reserve_;                  // writer thread only (after Open)
-  std::unique_ptr<TypedTables> tables_;  // writer thread only
+  sqlite3* writer_db_;                     // used only on the writer thread (and in Open/Close)
+  std::unique_ptr<ReadConnection> reads_;  // the reading side (its own connection)
+  HeadsFile heads_file_;                   // writer thread only (after Open)
+  ReserveFile reserve_;                    // writer thread only (after Open)
+  std::unique_ptr<TypedTables> tables_;    // writer thread only
 
   std::mutex mu_;
   std::condition_variable work_cv_;                   // signalled when queue_ grows or closing_
