@@ -4,15 +4,21 @@
 // returns writes resume by themselves, continuing the chain without a gap.
 // (The old ledger refused every write until a restart.)
 //
-// The full disk is a small tmpfs the test mounts, so it needs root (the
-// test is skipped, saying so, otherwise).
+// The full disk is a small tmpfs the test mounts, so DiskFullTest needs root
+// (it is skipped, saying so, otherwise). FileSizeLimitTest needs no root: a
+// per-file size limit in a forked child makes the writes fail instead.
 #include <fcntl.h>
 #include <gtest/gtest.h>
 #include <sqlite3.h>
 #include <sys/mount.h>
+#include <sys/resource.h>
+#include <sys/wait.h>
 #include <unistd.h>
 
+#include <algorithm>
 #include <condition_variable>
+#include <csignal>
+#include <cstdio>
 #include <cstring>
 #include <mutex>
 
@@ -22,6 +28,7 @@ namespace tickmark::ledger {
 namespace {
 
 using namespace tickmark::ledger::testing;
+namespace fs = std::filesystem;
 
 // Rows of ledger_event, read with a connection of our own (as an operator
 // would with the sqlite3 CLI).
@@ -192,6 +199,78 @@ TEST_F(DiskFullTest, ClosesCleanlyWhileTheDiskIsFullAndLosesNothingCommitted) {
   Open();
   ExpectChainVerifies(ledger_.get(), "s-a", committed);
   EXPECT_TRUE(ledger_->WriteHealth().ok());
+}
+
+// The same way out without root: a per-file size limit (RLIMIT_FSIZE) in a
+// forked child stands in for the full disk, and raising it again for the
+// space that returns. The child reports through its exit status (and
+// prints its failures).
+TEST(FileSizeLimitTest, AppendsFailPromptlyThenResumeWhenTheLimitIsRaised) {
+  const std::string dir = MakeTempDir("tm-fsize");
+  const pid_t pid = fork();
+  ASSERT_GE(pid, 0);
+  if (pid == 0) {
+    signal(SIGXFSZ, SIG_IGN);  // a write past the limit then fails with EFBIG instead
+    std::mutex mu;
+    std::condition_variable cv;
+    std::vector<absl::Status> changes;
+    SqliteLedger::Options o;
+    o.path = dir + "/t.db";
+    o.reserve_bytes = 0;  // a per-file limit: freeing another file gives nothing back
+    o.retry_initial = std::chrono::milliseconds(5);
+    o.retry_max = std::chrono::milliseconds(50);
+    o.on_write_health = [&](const absl::Status& st) {
+      std::lock_guard<std::mutex> lock(mu);
+      changes.push_back(st);
+      cv.notify_all();
+    };
+    auto opened = SqliteLedger::Open(o);
+    if (!opened.ok()) _exit(10);
+    std::unique_ptr<SqliteLedger> ledger = std::move(*opened);
+    if (!ledger->CreateSession(Session("s-a")).ok()) _exit(11);
+    uint64_t committed = 0;
+    for (uint64_t i = 1; i <= 5; ++i) {
+      Committed c = AppendAndWait(ledger.get(), "s-a", {FeedbackRecord("c1", i, 1)});
+      if (!c.status.ok()) _exit(12);
+      committed = c.records.back().sequence();
+    }
+    rlimit limit{};
+    getrlimit(RLIMIT_FSIZE, &limit);
+    const rlim_t hard = limit.rlim_max;
+    limit.rlim_cur = static_cast<rlim_t>(
+        std::max(fs::file_size(o.path), fs::file_size(o.path + "-wal")) + (64 << 10));
+    if (setrlimit(RLIMIT_FSIZE, &limit) != 0) _exit(13);
+    absl::Status failure;
+    for (int i = 0; i < 2000 && failure.ok(); ++i) {
+      Committed c = AppendAndWait(ledger.get(), "s-a", {MarkerRecord(4096)});
+      failure = c.status;
+      if (c.status.ok()) committed = c.records.back().sequence();
+    }
+    if (failure.ok()) _exit(14);
+    std::fprintf(stderr, "append failed as expected: %s\n", std::string(failure.message()).c_str());
+    if (ledger->WriteHealth().ok()) _exit(15);
+    // Failing appends are answered at once, not held.
+    if (AppendAndWait(ledger.get(), "s-a", {FeedbackRecord("c1", 100, 1)}).status.ok()) _exit(16);
+    limit.rlim_cur = hard;
+    if (setrlimit(RLIMIT_FSIZE, &limit) != 0) _exit(17);
+    {
+      std::unique_lock<std::mutex> lock(mu);
+      if (!cv.wait_for(lock, std::chrono::seconds(30),
+                       [&] { return !changes.empty() && changes.back().ok(); })) {
+        _exit(18);
+      }
+    }
+    Committed after = AppendAndWait(ledger.get(), "s-a", {FeedbackRecord("c1", 200, 1)});
+    if (!after.status.ok() || after.records[0].sequence() != committed + 1) _exit(19);
+    ExpectChainVerifies(ledger.get(), "s-a", committed + 1);
+    ledger.reset();
+    _exit(::testing::Test::HasFailure() ? 20 : 0);
+  }
+  int status = 0;
+  ASSERT_EQ(waitpid(pid, &status, 0), pid);
+  std::filesystem::remove_all(dir);
+  ASSERT_TRUE(WIFEXITED(status)) << "child ended by signal " << WTERMSIG(status);
+  EXPECT_EQ(WEXITSTATUS(status), 0) << "see the child's exit points in the test body";
 }
 
 }  // namespace
