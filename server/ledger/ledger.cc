@@ -2,6 +2,8 @@
 
 #include <openssl/evp.h>
 
+#include <memory>
+
 #include <google/protobuf/io/coded_stream.h>
 #include <google/protobuf/io/zero_copy_stream_impl_lite.h>
 
@@ -56,30 +58,35 @@ std::optional<std::pair<std::string, uint64_t>> ClientKeyOf(const Record& record
   return std::nullopt;
 }
 
-std::string CanonicalBody(const Record& record) {
+absl::StatusOr<std::string> CanonicalBody(const Record& record) {
   Record body = record;
   body.clear_hash();
   std::string bytes;
+  bool ok = false;
   {
     google::protobuf::io::StringOutputStream raw(&bytes);
     google::protobuf::io::CodedOutputStream out(&raw);
     // Deterministic so that the same record always has the same bytes.
     out.SetSerializationDeterministic(true);
-    body.SerializeToCodedStream(&out);
+    ok = body.SerializeToCodedStream(&out) && !out.HadError();
   }
+  if (!ok) return absl::InternalError("record does not serialise (too large?)");
   return bytes;
 }
 
-std::string ChainHash(std::string_view prev_hash, const Record& record) {
-  const std::string bytes = CanonicalBody(record);
+absl::StatusOr<std::string> ChainHash(std::string_view prev_hash, const Record& record) {
+  auto bytes = CanonicalBody(record);
+  if (!bytes.ok()) return bytes.status();
   unsigned char digest[EVP_MAX_MD_SIZE];
   unsigned int len = 0;
-  EVP_MD_CTX* ctx = EVP_MD_CTX_new();
-  EVP_DigestInit_ex(ctx, EVP_sha256(), nullptr);
-  EVP_DigestUpdate(ctx, prev_hash.data(), prev_hash.size());
-  EVP_DigestUpdate(ctx, bytes.data(), bytes.size());
-  EVP_DigestFinal_ex(ctx, digest, &len);
-  EVP_MD_CTX_free(ctx);
+  std::unique_ptr<EVP_MD_CTX, decltype(&EVP_MD_CTX_free)> ctx(EVP_MD_CTX_new(), &EVP_MD_CTX_free);
+  // OpenSSL docs, EVP_DigestInit(3): these return 1 for success, 0 for failure.
+  if (ctx == nullptr || EVP_DigestInit_ex(ctx.get(), EVP_sha256(), nullptr) != 1 ||
+      EVP_DigestUpdate(ctx.get(), prev_hash.data(), prev_hash.size()) != 1 ||
+      EVP_DigestUpdate(ctx.get(), bytes->data(), bytes->size()) != 1 ||
+      EVP_DigestFinal_ex(ctx.get(), digest, &len) != 1 || len != 32) {
+    return absl::InternalError("SHA-256 of a ledger record failed (OpenSSL EVP)");
+  }
   return std::string(reinterpret_cast<char*>(digest), len);
 }
 

@@ -95,7 +95,10 @@ class Ledger {
 
   // Assigns the next sequence numbers of `session_id` to `records` (in
   // order), queues them for the writer and returns the first one assigned.
-  // `done` runs after the commit. The records' session_id, sequence and hash
+  // `done` runs after the commit. The sequence returned is provisional: if
+  // an earlier append of the same session fails, its sequences are given
+  // to the appends after it so that the session's chain has no hole; `done`
+  // always receives the records as committed. The records' session_id, sequence and hash
   // are filled by the ledger; everything else is the caller's.
   virtual absl::StatusOr<uint64_t> Append(std::string_view session_id,
                                           std::vector<tickmark::v1::Record> records,
@@ -131,9 +134,11 @@ class Ledger {
                                      bool overwrite) = 0;
 
   // Whether writes succeed now: OK, or the reason they are failing (for
-  // example RESOURCE_EXHAUSTED while the disk is full). Shown to operators
-  // (session show, health) and in the log; a failing ledger recovers by
-  // itself when the cause is gone.
+  // example RESOURCE_EXHAUSTED "ledger disk full: ..." while the disk is
+  // full). Shown to operators (session show, health) and in the log; a
+  // failing ledger recovers by itself when the cause is gone. While it is
+  // not OK, appends still return a sequence but their commit callbacks get
+  // this status (promptly: nothing waits for the disk).
   virtual absl::Status WriteHealth() { return absl::OkStatus(); }
 
   // Commits what is queued, stops the writer and closes the database.
@@ -150,11 +155,14 @@ tickmark::v1::RecordKind RecordKindOf(const tickmark::v1::Record& record);
 std::optional<std::pair<std::string, uint64_t>> ClientKeyOf(const tickmark::v1::Record& record);
 
 // The bytes stored as a record's body and hashed: its deterministic
-// serialisation with the hash field empty.
-std::string CanonicalBody(const tickmark::v1::Record& record);
+// serialisation with the hash field empty. INTERNAL if it cannot be
+// serialised (never an empty or partial body).
+absl::StatusOr<std::string> CanonicalBody(const tickmark::v1::Record& record);
 
 // SHA-256(prev_hash || CanonicalBody(record)); see the header comment.
-std::string ChainHash(std::string_view prev_hash, const tickmark::v1::Record& record);
+// INTERNAL if OpenSSL fails: a failure is an error, never a wrong hash.
+absl::StatusOr<std::string> ChainHash(std::string_view prev_hash,
+                                      const tickmark::v1::Record& record);
 
 }  // namespace tickmark::ledger
 

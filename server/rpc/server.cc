@@ -110,6 +110,10 @@ absl::StatusOr<std::unique_ptr<TickmarkServer>> TickmarkServer::Start(
   ledger::SqliteLedger::Options lo;
   lo.path = s->ledger_path_;
   lo.synchronous_full = options.durable_power_loss;
+  lo.allow_new_ledger = options.new_ledger;
+  lo.accept_lost_records = options.accept_lost_records;
+  lo.reserve_bytes = options.ledger_reserve_bytes;
+  lo.evidence_files = {s->operator_token_path_};
   auto ledger = ledger::SqliteLedger::Open(lo);
   if (!ledger.ok()) return ledger.status();
   s->ledger_ = std::move(*ledger);

@@ -26,6 +26,14 @@ struct ServerOptions {
   std::string data_dir;                   // holds tickmark.db and operator.token
   std::string ledger_path;                // default: data_dir/tickmark.db
   bool durable_power_loss = false;        // SQLite synchronous=FULL
+  // Start a new, empty ledger although the data folder shows one existed
+  // (operator.token, tickmark.db.heads); see SqliteLedger::Options.
+  bool new_ledger = false;
+  // Start although the ledger lacks records its side file says were
+  // committed (the loss is logged and noted in the ledger).
+  bool accept_lost_records = false;
+  // Size of the ledger's reserve file (freed when the disk is full).
+  uint64_t ledger_reserve_bytes = 4 << 20;
   // TLS: both set, or neither (then plaintext, allowed only on loopback
   // unless allow_insecure_remote).
   std::string tls_cert_file;

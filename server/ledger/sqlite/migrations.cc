@@ -212,6 +212,20 @@ CREATE TABLE session_event (
   PRIMARY KEY (session_id, seq)
 ) WITHOUT ROWID;
 )sql"},
+    {2, "ledger_event: the server's own notes on the ledger (writes failing/resumed, losses accepted)",
+     R"sql(
+-- Not part of any session's chain: what happened to the ledger itself.
+-- write_failing is committed from the space of the reserve file when the
+-- disk is full; write_resumed when writes work again; records_lost_accepted
+-- and new_ledger when an operator started over a loss on purpose.
+CREATE TABLE ledger_event (
+  id     INTEGER PRIMARY KEY,
+  at_utc TEXT NOT NULL DEFAULT (strftime('%Y-%m-%dT%H:%M:%fZ','now')),
+  event  TEXT NOT NULL CHECK (event IN ('write_failing', 'write_resumed',
+                                        'records_lost_accepted', 'new_ledger')),
+  detail TEXT NOT NULL
+);
+)sql"},
 };
 
 }  // namespace

@@ -1,10 +1,33 @@
-// The embedded ledger: one SQLite file in WAL mode (design.md §3, §6).
+// The embedded ledger: one SQLite file in WAL mode.
 //
 // One writer thread owns the only writing connection. Appends are queued and
 // committed in batches (group commit): the writer takes everything queued,
 // commits it in one transaction, then runs the commit callbacks. Session and
 // token changes go through the same writer so there is never a second
 // writing connection; they return once committed.
+//
+// Batch isolation: each Append group is inserted under its own SAVEPOINT. A
+// group that breaks a constraint (a duplicate client key that slipped past
+// the server's dedup, say) is rolled back alone and only its callback gets
+// the error; the session's later appends take over its sequences, so the
+// chain stays gap-free.
+//
+// Failure state: a storage error (disk full, I/O error) rolls back the whole
+// transaction; every group in it gets the error and the sessions' chains
+// are re-assigned from their last committed record. The ledger then fails
+// appends promptly (their callbacks get WriteHealth()) and the writer
+// retries with backoff until a write succeeds again, when it resumes by
+// itself. On a full disk the reserve file (<ledger>.reserve) is deleted
+// first, so that the ledger_event row saying "write_failing" always commits
+// and a clean shutdown has room; WAL checkpoints are off while failing so
+// that they cannot eat that space. Transitions are logged and reported to
+// Options::on_write_health.
+//
+// Start-up (Open) refuses, with a message naming the file and the way out:
+// a damaged ledger (PRAGMA quick_check), a missing or empty ledger where one
+// existed (unless allow_new_ledger), and a ledger that lacks committed
+// records according to the side file <ledger>.heads (unless
+// accept_lost_records). See startup_checks.h and heads_file.h.
 //
 // Durability: with synchronous=NORMAL (the default) a committed transaction
 // survives the process being killed; with synchronous=FULL it also survives
@@ -15,6 +38,7 @@
 #ifndef TICKMARK_SERVER_LEDGER_SQLITE_SQLITE_LEDGER_H_
 #define TICKMARK_SERVER_LEDGER_SQLITE_SQLITE_LEDGER_H_
 
+#include <chrono>
 #include <condition_variable>
 #include <deque>
 #include <map>
@@ -22,24 +46,48 @@
 #include <mutex>
 #include <string>
 #include <thread>
+#include <vector>
 
 #include "server/ledger/ledger.h"
+#include "server/ledger/sqlite/heads_file.h"
+#include "server/ledger/sqlite/reserve_file.h"
 
 struct sqlite3;
 
 namespace tickmark::ledger {
 
-class Stmt;
+class ReadConnection;
+class TypedTables;
 
 class SqliteLedger final : public Ledger {
  public:
   struct Options {
-    std::string path;              // the database file; created if missing
-    bool synchronous_full = false;  // FULL instead of NORMAL (see above)
+    std::string path;                 // the database file; created if missing
+    bool synchronous_full = false;    // FULL instead of NORMAL (see above)
     size_t max_batch_records = 4096;  // most records one transaction takes
+    // Start a new, empty ledger even though `evidence_files` or the side file
+    // show that one existed here (the operator's explicit choice).
+    bool allow_new_ledger = false;
+    // Start although the side file shows committed records the ledger lacks
+    // (logged, and noted in ledger_event).
+    bool accept_lost_records = false;
+    // Files whose presence shows that a ledger existed (the operator token).
+    // <path>.heads and <path>-wal always count.
+    std::vector<std::string> evidence_files;
+    // Size of <path>.reserve; 0 turns the reserve off.
+    uint64_t reserve_bytes = 4 << 20;
+    // PRAGMA quick_check at start stops (with a warning) after this long.
+    std::chrono::milliseconds quick_check_limit{60'000};
+    // Retries while writes fail: first after retry_initial, doubling up to
+    // retry_max.
+    std::chrono::milliseconds retry_initial{100};
+    std::chrono::milliseconds retry_max{5'000};
+    // Called on the writer thread on each change of WriteHealth().
+    std::function<void(const absl::Status&)> on_write_health;
   };
 
-  // Opens (creating if needed) and migrates the database, starts the writer.
+  // Checks, opens (creating if allowed) and migrates the database, starts the
+  // writer. The refusals are described above.
   static absl::StatusOr<std::unique_ptr<SqliteLedger>> Open(const Options& options);
   ~SqliteLedger() override;
 
@@ -59,8 +107,8 @@ class SqliteLedger final : public Ledger {
                                   CommitCallback done) override;
   void Barrier(std::function<void()> done) override;
   absl::Status Flush() override;
-  absl::StatusOr<std::vector<tickmark::v1::Record>> Read(std::string_view session_id,
-                                                         uint64_t from, size_t max) override;
+  absl::StatusOr<std::vector<tickmark::v1::Record>> Read(std::string_view session_id, uint64_t from,
+                                                         size_t max) override;
   absl::StatusOr<std::optional<uint64_t>> FindClientSequence(std::string_view session_id,
                                                              std::string_view client_id,
                                                              uint64_t client_sequence) override;
@@ -72,7 +120,12 @@ class SqliteLedger final : public Ledger {
                              std::string_view spec,
                              const std::vector<tickmark::v1::Record>& records,
                              bool overwrite) override;
+  absl::Status WriteHealth() override;
   void Close() override;
+
+  // Where the side file and the reserve file live for a ledger at `path`.
+  static std::string HeadsPath(const std::string& path) { return path + ".heads"; }
+  static std::string ReservePath(const std::string& path) { return path + ".reserve"; }
 
  private:
   // One unit of work for the writer: records to insert, or a synchronous
@@ -80,43 +133,50 @@ class SqliteLedger final : public Ledger {
   struct Work {
     std::string session_id;
     std::vector<tickmark::v1::Record> records;
-    CommitCallback done;                            // for records
-    std::function<absl::Status(sqlite3*)> op;       // for synchronous changes
-    std::function<void(absl::Status)> op_done;      // result of op
-    std::function<void()> barrier;                  // for barriers
-  };
-  // Where a session's chain stands (assigned, maybe not yet committed).
-  struct Chain {
-    uint64_t next_sequence = 1;
-    std::string last_hash = std::string(32, '\0');
+    CommitCallback done;                        // for records
+    absl::Status error;                         // set: fail the records with it, do not insert
+    std::function<absl::Status(sqlite3*)> op;   // for synchronous changes
+    std::function<void(absl::Status)> op_done;  // result of op
+    std::function<void()> barrier;              // for barriers
   };
 
-  SqliteLedger(Options options, sqlite3* writer, sqlite3* reader);
-  absl::Status LoadChains();
+  SqliteLedger(Options options, sqlite3* writer);
+  absl::Status LoadHeads();
+  absl::Status CheckSideFile();
   void WriterLoop();
+  void RunOp(Work& w);
+  // Commits the record groups batch[begin, end) (one transaction, one
+  // savepoint each) and runs their callbacks.
+  void CommitGroups(std::vector<Work>& batch, size_t begin, size_t end);
+  // Gives the session's records that are not committed yet — batch[from..]
+  // and everything queued — sequences and hashes that continue from `head`.
+  void RechainLocked(const std::string& session, const SessionHead& head, std::vector<Work>& batch,
+                     size_t from);
+  // The failure state: entered on a storage error, left by TryRecover.
+  void EnterFailing(const absl::Status& cause);
+  void TryRecover();
+  absl::Status NoteLedgerEvent(const char* event, const std::string& detail);
+  void SetHealth(absl::Status health);
   absl::Status RunSync(std::function<absl::Status(sqlite3*)> op);
-  absl::Status InsertRecord(const tickmark::v1::Record& record);
-  // Inserts a credit, label or unmatched row of derived set `set`.
-  absl::Status InsertDerivedRow(std::string_view set, uint64_t seq,
-                                const tickmark::v1::Record& record);
-  struct Statements;
-  // A cached prepared statement on the writer connection (writer thread only).
-  Stmt& Prepared(const char* sql);
 
   const Options options_;
-  sqlite3* writer_db_;  // used only on the writer thread (and in Open/Close)
-  std::mutex read_mu_;        // serialises use of reader_db_
-  sqlite3* reader_db_;  // GUARDED_BY(read_mu_)
+  sqlite3* writer_db_;                     // used only on the writer thread (and in Open/Close)
+  std::unique_ptr<ReadConnection> reads_;  // the reading side (its own connection)
+  HeadsFile heads_file_;                   // writer thread only (after Open)
+  ReserveFile reserve_;                    // writer thread only (after Open)
+  std::unique_ptr<TypedTables> tables_;    // writer thread only
 
   std::mutex mu_;
-  std::condition_variable work_cv_;             // signalled when queue_ grows or closing_
-  std::deque<Work> queue_;                      // GUARDED_BY(mu_)
-  std::map<std::string, Chain, std::less<>> chains_;         // GUARDED_BY(mu_)
-  std::map<std::string, uint64_t, std::less<>> committed_;   // GUARDED_BY(mu_)
-  bool closing_ = false;                        // GUARDED_BY(mu_)
-  absl::Status failed_;                         // GUARDED_BY(mu_): sticky write failure
-  std::thread writer_;                          // runs WriterLoop
-  std::unique_ptr<Statements> statements_;      // writer thread only
+  std::condition_variable work_cv_;                   // signalled when queue_ grows or closing_
+  std::deque<Work> queue_;                            // GUARDED_BY(mu_)
+  SessionHeads assigned_;                             // GUARDED_BY(mu_): last sequence handed out
+  SessionHeads committed_;                            // GUARDED_BY(mu_): last sequence committed
+  bool closing_ = false;                              // GUARDED_BY(mu_)
+  absl::Status health_;                               // GUARDED_BY(mu_): WriteHealth()
+  std::chrono::steady_clock::time_point next_retry_;  // writer thread only, while failing
+  std::chrono::milliseconds backoff_{0};              // writer thread only, while failing
+  std::chrono::steady_clock::time_point failing_since_;  // writer thread only
+  std::thread writer_;                                   // runs WriterLoop
 };
 
 }  // namespace tickmark::ledger

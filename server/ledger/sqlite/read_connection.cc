@@ -1,0 +1,204 @@
+#include "server/ledger/sqlite/read_connection.h"
+
+#include <sqlite3.h>
+
+#include "server/base/strings.h"
+#include "server/ledger/sqlite/enum_names.h"
+#include "server/ledger/sqlite/statement.h"
+
+namespace tickmark::ledger {
+namespace {
+
+using tickmark::v1::Record;
+
+SessionRow SessionFromRow(const Statement& q) {
+  SessionRow row;
+  row.id = q.Text(0);
+  row.title = q.Text(1);
+  row.study = q.Text(2);
+  row.open = q.Text(3) == "open";
+  row.opened_session_ns = q.Int(4);
+  row.closed_session_ns = q.IsNull(5) ? 0 : q.Int(5);
+  row.utc_anchor_ns = q.Int(6);
+  row.mono_anchor_ns = q.Int(7);
+  row.boot_id = q.Text(8);
+  row.last_sequence = static_cast<uint64_t>(q.Int(9));
+  return row;
+}
+
+constexpr const char* kSessionColumns =
+    "id, title, study, state, opened_session_ns, closed_session_ns, utc_anchor_ns, "
+    "mono_anchor_ns, boot_id, (SELECT COALESCE(MAX(seq), 0) FROM record r WHERE r.session_id = "
+    "session.id)";
+
+TokenRow TokenFromRow(const Statement& q) {
+  TokenRow t;
+  t.id = q.Text(0);
+  t.session_id = q.Text(1);
+  t.role = RoleFromWord(q.Text(2));
+  t.subject = q.Text(3);
+  t.hash = q.Blob(4);
+  t.issued_session_ns = q.Int(5);
+  t.revoked = q.Int(6) != 0;
+  return t;
+}
+
+constexpr const char* kTokenColumns =
+    "id, COALESCE(session_id, ''), role, subject, secret_sha256, issued_session_ns, revoked";
+
+}  // namespace
+
+ReadConnection::ReadConnection(sqlite3* db) : db_(db) {}
+
+ReadConnection::~ReadConnection() { Close(); }
+
+void ReadConnection::Close() {
+  std::lock_guard<std::mutex> lock(mu_);
+  if (db_ != nullptr) sqlite3_close(db_);
+  db_ = nullptr;
+}
+
+void ReadConnection::SetCheckpointOnClose(bool on) {
+  std::lock_guard<std::mutex> lock(mu_);
+  if (db_ != nullptr) sqlite3_db_config(db_, SQLITE_DBCONFIG_NO_CKPT_ON_CLOSE, on ? 0 : 1, nullptr);
+}
+
+absl::StatusOr<SessionRow> ReadConnection::GetSession(std::string_view id) {
+  std::lock_guard<std::mutex> lock(mu_);
+  if (db_ == nullptr) return absl::UnavailableError("ledger is closed");
+  Statement q(db_, Cat("SELECT ", kSessionColumns, " FROM session WHERE id = ?").c_str());
+  auto row = q.Bind(id).Step();
+  if (!row.ok()) return row.status();
+  if (!*row) return absl::NotFoundError(Cat("no session '", id, "'"));
+  return SessionFromRow(q);
+}
+
+absl::StatusOr<std::vector<SessionRow>> ReadConnection::ListSessions(bool include_closed) {
+  std::lock_guard<std::mutex> lock(mu_);
+  if (db_ == nullptr) return absl::UnavailableError("ledger is closed");
+  Statement q(db_, Cat("SELECT ", kSessionColumns, " FROM session ",
+                       include_closed ? "" : "WHERE state = 'open' ", "ORDER BY opened_session_ns")
+                       .c_str());
+  std::vector<SessionRow> out;
+  while (true) {
+    auto row = q.Step();
+    if (!row.ok()) return row.status();
+    if (!*row) break;
+    out.push_back(SessionFromRow(q));
+  }
+  return out;
+}
+
+absl::StatusOr<TokenRow> ReadConnection::FindTokenByHash(std::string_view hash) {
+  std::lock_guard<std::mutex> lock(mu_);
+  if (db_ == nullptr) return absl::UnavailableError("ledger is closed");
+  Statement q(db_, Cat("SELECT ", kTokenColumns, " FROM token WHERE secret_sha256 = ?").c_str());
+  auto row = q.BindBlob(hash).Step();
+  if (!row.ok()) return row.status();
+  if (!*row) return absl::NotFoundError("unknown token");
+  return TokenFromRow(q);
+}
+
+absl::StatusOr<std::vector<TokenRow>> ReadConnection::ListTokens(std::string_view session_id) {
+  std::lock_guard<std::mutex> lock(mu_);
+  if (db_ == nullptr) return absl::UnavailableError("ledger is closed");
+  Statement q(db_, Cat("SELECT ", kTokenColumns,
+                       " FROM token WHERE session_id = ? ORDER BY issued_session_ns, id")
+                       .c_str());
+  q.Bind(session_id);
+  std::vector<TokenRow> out;
+  while (true) {
+    auto row = q.Step();
+    if (!row.ok()) return row.status();
+    if (!*row) break;
+    out.push_back(TokenFromRow(q));
+  }
+  return out;
+}
+
+absl::StatusOr<std::vector<Record>> ReadConnection::Read(std::string_view session_id, uint64_t from,
+                                                         size_t max) {
+  std::lock_guard<std::mutex> lock(mu_);
+  if (db_ == nullptr) return absl::UnavailableError("ledger is closed");
+  Statement q(db_,
+              "SELECT body, hash FROM record WHERE session_id = ? AND seq >= ? ORDER BY seq "
+              "LIMIT ?");
+  q.Bind(session_id).Bind(from).Bind(static_cast<int64_t>(max));
+  std::vector<Record> out;
+  while (true) {
+    auto row = q.Step();
+    if (!row.ok()) return row.status();
+    if (!*row) break;
+    Record r;
+    std::string body = q.Blob(0);
+    if (!r.ParseFromString(body)) {
+      return absl::DataLossError(Cat("record body does not parse in session ", session_id));
+    }
+    r.set_hash(q.Blob(1));
+    out.push_back(std::move(r));
+  }
+  return out;
+}
+
+absl::StatusOr<std::optional<uint64_t>> ReadConnection::FindClientSequence(
+    std::string_view session_id, std::string_view client_id, uint64_t client_sequence) {
+  std::lock_guard<std::mutex> lock(mu_);
+  if (db_ == nullptr) return absl::UnavailableError("ledger is closed");
+  Statement q(db_,
+              "SELECT seq FROM record WHERE session_id = ? AND client_id = ? AND client_seq = ?");
+  auto row = q.Bind(session_id).Bind(client_id).Bind(client_sequence).Step();
+  if (!row.ok()) return row.status();
+  if (!*row) return std::optional<uint64_t>();
+  return std::optional<uint64_t>(static_cast<uint64_t>(q.Int(0)));
+}
+
+absl::StatusOr<uint64_t> ReadConnection::LastClientSequence(std::string_view session_id,
+                                                            std::string_view client_id) {
+  std::lock_guard<std::mutex> lock(mu_);
+  if (db_ == nullptr) return absl::UnavailableError("ledger is closed");
+  Statement q(db_,
+              "SELECT COALESCE(MAX(client_seq), 0) FROM record WHERE session_id = ? AND "
+              "client_id = ? AND client_seq IS NOT NULL");
+  auto row = q.Bind(session_id).Bind(client_id).Step();
+  if (!row.ok()) return row.status();
+  return static_cast<uint64_t>(q.Int(0));
+}
+
+absl::StatusOr<RecordCounts> ReadConnection::Counts(std::string_view session_id) {
+  std::lock_guard<std::mutex> lock(mu_);
+  if (db_ == nullptr) return absl::UnavailableError("ledger is closed");
+  Statement q(db_,
+              "SELECT (SELECT COUNT(*) FROM feedback WHERE session_id = ?1),"
+              " (SELECT COUNT(*) FROM step WHERE session_id = ?1),"
+              " (SELECT COUNT(*) FROM probe WHERE session_id = ?1),"
+              " (SELECT COUNT(*) FROM marker WHERE session_id = ?1),"
+              " (SELECT COUNT(*) FROM client WHERE session_id = ?1),"
+              " (SELECT COUNT(*) FROM feedback WHERE session_id = ?1 AND late)"
+              "  + (SELECT COUNT(*) FROM step WHERE session_id = ?1 AND late),"
+              " (SELECT COUNT(*) FROM unmatched WHERE session_id = ?1 AND derived_set = 'live'),"
+              " (SELECT COUNT(*) FROM probe WHERE session_id = ?1 AND NOT accepted)");
+  auto row = q.Bind(session_id).Step();
+  if (!row.ok()) return row.status();
+  RecordCounts c;
+  c.feedback = static_cast<uint64_t>(q.Int(0));
+  c.steps = static_cast<uint64_t>(q.Int(1));
+  c.probes = static_cast<uint64_t>(q.Int(2));
+  c.markers = static_cast<uint64_t>(q.Int(3));
+  c.clients = static_cast<uint64_t>(q.Int(4));
+  c.late = static_cast<uint64_t>(q.Int(5));
+  c.unmatched = static_cast<uint64_t>(q.Int(6));
+  c.rejected_probes = static_cast<uint64_t>(q.Int(7));
+  return c;
+}
+
+absl::StatusOr<TokenRow> ReadConnection::FindToken(std::string_view token_id) {
+  std::lock_guard<std::mutex> lock(mu_);
+  if (db_ == nullptr) return absl::UnavailableError("ledger is closed");
+  Statement q(db_, Cat("SELECT ", kTokenColumns, " FROM token WHERE id = ?").c_str());
+  auto row = q.Bind(token_id).Step();
+  if (!row.ok()) return row.status();
+  if (!*row) return absl::NotFoundError("token vanished");
+  return TokenFromRow(q);
+}
+
+}  // namespace tickmark::ledger
