@@ -156,7 +156,7 @@ TEST_F(AdminTest, TokensAreStoredHashedNeverInTheClear) {
                                -1, &q, nullptr),
             SQLITE_OK);
   // SHA-256 (FIPS 180-4) via OpenSSL, the same digest the server stores.
-  std::string digest = rpc::HashSecret(secret);
+  std::string digest = *rpc::HashSecret(secret);
   sqlite3_bind_blob(q, 1, digest.data(), static_cast<int>(digest.size()), SQLITE_TRANSIENT);
   sqlite3_bind_text(q, 2, secret.c_str(), -1, SQLITE_TRANSIENT);
   ASSERT_EQ(sqlite3_step(q), SQLITE_ROW);
