@@ -285,7 +285,10 @@ grpc::ServerUnaryReactor* AdminService::AddMarker(grpc::CallbackServerContext* c
   if (!rt.ok()) return Done(ctx, rt.status());
   if (!(*rt)->open()) return Done(ctx, absl::FailedPreconditionError("session is closed"));
   const int64_t now = (*rt)->Now().nanos();
-  if (req->at_session_ns() != 0 && std::llabs(req->at_session_ns() - now) > 86'400'000'000'000LL) {
+  // Saturating time arithmetic: the requested time may be any int64.
+  if (req->at_session_ns() != 0 &&
+      Abs(SessionTime::FromNanos(req->at_session_ns()) - SessionTime::FromNanos(now)) >
+          Duration::Seconds(86'400)) {
     return Done(ctx, absl::InvalidArgumentError("marker time is more than a day from now"));
   }
   v1::Record r;

@@ -93,6 +93,7 @@ absl::Status CheckTlsPair(const std::string& cert_file, const std::string& key_f
   std::unique_ptr<X509, decltype(&X509_free)> x509(
       PEM_read_bio_X509(cert_bio.get(), nullptr, nullptr, nullptr), &X509_free);
   if (!x509) {
+    ERR_clear_error();
     return absl::InvalidArgumentError(
         Cat("TLS certificate ", cert_file, " holds no PEM certificate (\"-----BEGIN CERTIFICATE-----\")"));
   }

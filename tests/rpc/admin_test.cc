@@ -1,9 +1,16 @@
 // SessionAdmin over real gRPC on 127.0.0.1:0: each RPC, and the token rules
 // of design.md §7 (a token of session A can do nothing in session B; tokens
 // are stored hashed).
+#include <grpcpp/generic/generic_stub.h>
 #include <sqlite3.h>
 
+#include <future>
+#include <limits>
+#include <thread>
+
+#include "server/ledger/sqlite/sqlite_ledger.h"
 #include "server/rpc/auth.h"
+#include "server/rpc/credit_driver.h"
 #include "tests/rpc/test_server.h"
 
 namespace tickmark::testing {
@@ -231,6 +238,24 @@ TEST_F(AdminTest, MarkerIsStoredAndAcknowledgedWithItsSequence) {
             grpc::StatusCode::INVALID_ARGUMENT);
 }
 
+// Regression: the "within a day" check subtracted in int64 (undefined
+// behaviour for these, caught by UBSan).
+TEST_F(AdminTest, MarkerTimesAtTheEndsOfInt64AreRefused) {
+  auto [s, admin] = server_.CreateSession();
+  for (int64_t at : {std::numeric_limits<int64_t>::min(), std::numeric_limits<int64_t>::max(),
+                     std::numeric_limits<int64_t>::min() + 1}) {
+    v1::AddMarkerRequest req;
+    req.set_session_id(s);
+    req.set_text("far away");
+    req.set_at_session_ns(at);
+    v1::AddMarkerResponse resp;
+    auto ctx = server_.Context(admin);
+    EXPECT_EQ(server_.admin().AddMarker(ctx.get(), req, &resp).error_code(),
+              grpc::StatusCode::INVALID_ARGUMENT)
+        << at;
+  }
+}
+
 }  // namespace
 }  // namespace tickmark::testing
 
@@ -255,14 +280,6 @@ TEST(ServerStartTest, AFailedStartReportsItsErrorAndCleansUp) {
 
 }  // namespace
 }  // namespace tickmark::testing
-
-#include <grpcpp/generic/generic_stub.h>
-
-#include <future>
-#include <thread>
-
-#include "server/ledger/sqlite/sqlite_ledger.h"
-#include "server/rpc/credit_driver.h"
 
 namespace tickmark::testing {
 namespace {
