@@ -14,6 +14,7 @@
 #include <cstring>
 #include <filesystem>
 #include <fstream>
+#include <mutex>
 
 #include <grpcpp/health_check_service_interface.h>
 #include <grpcpp/security/server_credentials.h>
@@ -207,9 +208,10 @@ absl::StatusOr<std::unique_ptr<TickmarkServer>> TickmarkServer::Start(
   s->live_ = std::make_unique<LiveService>(s->hub_.get(), s->auth_.get(), &s->mono_, live);
 
   // The standard gRPC health service (grpc.health.v1.Health): NOT_SERVING
-  // while the ledger cannot write. Process-wide switch; read when the
-  // builder builds.
-  grpc::EnableDefaultHealthCheckService(true);
+  // while the ledger cannot write. A process-wide switch that is not
+  // thread-safe, read when a builder builds: set it once.
+  static std::once_flag health_enabled;
+  std::call_once(health_enabled, [] { grpc::EnableDefaultHealthCheckService(true); });
   grpc::ServerBuilder builder;
   builder.AddListeningPort(options.listen, creds, &s->port_);
   builder.RegisterService(s->admin_.get());
