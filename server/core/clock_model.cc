@@ -6,15 +6,25 @@
 #include <cstdint>
 #include <limits>
 #include <numeric>
+#include <optional>
 #include <vector>
 
 namespace tickmark {
 namespace {
 
 // Raw nanosecond difference between readings of two different clocks; only
-// first-order differences like this are ever taken (RFC 5905 §8), so no sum
-// of two absolute timestamps can overflow.
-int64_t Diff(ClientTime c, SessionTime s) { return c.nanos() - s.nanos(); }
+// first-order differences like this are ever taken (RFC 5905 §8). Saturates;
+// for accepted probes CheckedOnWire has shown that it fits.
+int64_t Diff(ClientTime c, SessionTime s) {
+  return time_internal::SaturatingSub(c.nanos(), s.nanos());
+}
+
+// A wide intermediate clamped back into int64.
+int64_t ClampToInt64(__int128 v) {
+  if (v > time_internal::kMaxNs) return time_internal::kMaxNs;
+  if (v < time_internal::kMinNs) return time_internal::kMinNs;
+  return static_cast<int64_t>(v);
+}
 
 // Duration from a double count of nanoseconds, saturating at ±Max.
 Duration SaturatingNanos(double ns) {
@@ -37,15 +47,27 @@ size_t MinDelayIndex(size_t begin, size_t end, GetDelay delay_of) {
 
 }  // namespace
 
-OnWire ComputeOnWire(const ProbeTimestamps& p) {
+std::optional<OnWire> CheckedOnWire(const ProbeTimestamps& p) {
+  using time_internal::CheckedSub;
   // Roles: the server is the RFC's requester, the device its responder, so
   // the RFC's θ (responder clock − requester clock) is client − session.
-  const int64_t forward = Diff(p.t2, p.t1);   // T2 − T1
-  const int64_t backward = Diff(p.t3, p.t4);  // T3 − T4
-  const int64_t round_trip = (p.t4 - p.t1).nanos();
-  const int64_t hold = (p.t3 - p.t2).nanos();
-  return OnWire{Duration::Nanos((forward + backward) / 2),
-                Duration::Nanos(round_trip - hold)};
+  int64_t forward = 0, backward = 0, round_trip = 0, hold = 0, delay = 0;
+  if (!CheckedSub(p.t2.nanos(), p.t1.nanos(), &forward) ||      // T2 − T1
+      !CheckedSub(p.t3.nanos(), p.t4.nanos(), &backward) ||     // T3 − T4
+      !CheckedSub(p.t4.nanos(), p.t1.nanos(), &round_trip) ||   // T4 − T1
+      !CheckedSub(p.t3.nanos(), p.t2.nanos(), &hold) ||         // T3 − T2
+      !CheckedSub(round_trip, hold, &delay)) {
+    return std::nullopt;
+  }
+  // The mean of two int64 values always fits; their sum may not.
+  const __int128 sum = static_cast<__int128>(forward) + backward;
+  return OnWire{Duration::Nanos(static_cast<int64_t>(sum / 2)), Duration::Nanos(delay)};
+}
+
+OnWire ComputeOnWire(const ProbeTimestamps& p) {
+  if (std::optional<OnWire> w = CheckedOnWire(p)) return *w;
+  const __int128 sum = static_cast<__int128>(Diff(p.t2, p.t1)) + Diff(p.t3, p.t4);
+  return OnWire{Duration::Nanos(ClampToInt64(sum / 2)), (p.t4 - p.t1) - (p.t3 - p.t2)};
 }
 
 const char* ProbeVerdictName(ProbeVerdict v) {
@@ -58,6 +80,10 @@ const char* ProbeVerdictName(ProbeVerdict v) {
       return "rejected_negative_delay";
     case ProbeVerdict::kClockJump:
       return "clock_jump";
+    case ProbeVerdict::kRejectedOutOfRange:
+      return "rejected_out_of_range";
+    case ProbeVerdict::kRejectedUnconfirmedJump:
+      return "rejected_unconfirmed_jump";
   }
   return "unknown";
 }
@@ -126,7 +152,14 @@ ClockModel::ClockModel(Options o) : options_(o) {
 
 ProbeVerdict ClockModel::AddProbe(const ProbeTimestamps& p) {
   if (p.t3 < p.t2 || p.t4 < p.t1) return ProbeVerdict::kRejectedReversed;
-  OnWire w = ComputeOnWire(p);
+  // Timestamps from outside may be anything: a difference that does not
+  // fit, or an offset no pair of real clocks has, is refused before any of
+  // it reaches the model.
+  std::optional<OnWire> checked = CheckedOnWire(p);
+  if (!checked || Abs(checked->offset) > options_.max_abs_offset) {
+    return ProbeVerdict::kRejectedOutOfRange;
+  }
+  OnWire w = *checked;
   // RFC 5905 §8: a slightly negative δ comes from frequency error over the
   // exchange and is clamped; one beyond the precision means the timestamps
   // contradict each other.
@@ -134,22 +167,34 @@ ProbeVerdict ClockModel::AddProbe(const ProbeTimestamps& p) {
     return ProbeVerdict::kRejectedNegativeDelay;
   }
   w.delay = std::max(w.delay, options_.precision);
+  const Sample sample{p, w};
 
   ProbeVerdict verdict = ProbeVerdict::kAccepted;
-  if (ready()) {
-    const ClientTime mid_client = p.t2 + (p.t3 - p.t2) / 2;
-    const SessionTime mid_session =
-        SessionTime::FromNanos(mid_client.nanos() - w.offset.nanos());
-    const Duration miss = Abs(ToSession(mid_client) - mid_session);
-    const Duration allowed = UncertaintyAt(mid_client);
-    const Duration fixed = options_.jump_threshold + w.delay;
-    if (allowed < Duration::Max() - fixed && miss > fixed + allowed) {
-      history_.clear();
-      verdict = ProbeVerdict::kClockJump;
+  const ClientTime mid_client = p.t2 + (p.t3 - p.t2) / 2;
+  if (ready() && LooksLikeJump(mid_client, w)) {
+    // A real step of the device's clock shows in every probe after it; a
+    // corrupt or hostile reply shows once. Restart only when two probes in
+    // a row agree on the new offset.
+    const bool confirms = [&] {
+      if (!jump_candidate_) return false;
+      const Sample& c = *jump_candidate_;
+      const Duration apart = Abs(p.t4 - c.t.t4);
+      const Duration drift_allowance = Duration::FromSeconds(
+          apart.seconds() * 2 * options_.max_drift_ppm * 1e-6);
+      return Abs(w.offset - c.w.offset) <=
+             options_.jump_threshold + w.delay + c.w.delay + drift_allowance;
+    }();
+    if (!confirms) {
+      jump_candidate_ = sample;
+      return ProbeVerdict::kRejectedUnconfirmedJump;
     }
+    history_.clear();
+    history_.push_back(*jump_candidate_);
+    verdict = ProbeVerdict::kClockJump;
   }
+  jump_candidate_.reset();
 
-  history_.push_back(Sample{p, w});
+  history_.push_back(sample);
   const size_t keep = static_cast<size_t>(options_.filter_stages);
   while (history_.size() > keep &&
          history_.back().t.t4 - history_.front().t.t4 > options_.drift_window) {
@@ -157,6 +202,15 @@ ProbeVerdict ClockModel::AddProbe(const ProbeTimestamps& p) {
   }
   Refit();
   return verdict;
+}
+
+bool ClockModel::LooksLikeJump(ClientTime mid_client, const OnWire& w) const {
+  const SessionTime mid_session =
+      SessionTime::FromNanos(time_internal::SaturatingSub(mid_client.nanos(), w.offset.nanos()));
+  const Duration miss = Abs(ToSession(mid_client) - mid_session);
+  // Saturates: with an unbounded uncertainty nothing is a jump.
+  const Duration allowed = options_.jump_threshold + w.delay + UncertaintyAt(mid_client);
+  return miss > allowed;
 }
 
 void ClockModel::Refit() {
@@ -168,7 +222,7 @@ void ClockModel::Refit() {
   const Sample& c = history_[chosen];
   ref_client_ = c.t.t2 + (c.t.t3 - c.t.t2) / 2;
   offset_ = c.w.offset;
-  ref_session_ = SessionTime::FromNanos(ref_client_.nanos() - offset_.nanos());
+  ref_session_ = SessionTime::FromNanos(ref_client_.nanos()) - offset_;
   min_delay_ = c.w.delay;
 
   const double max_drift = options_.max_drift_ppm * 1e-6;
@@ -188,13 +242,14 @@ void ClockModel::Refit() {
   // slopes. Centre on the first sample in int64 before going to double.
   std::vector<double> fx(n), fy(n), bx(n), by(n);
   const int64_t f0 = Diff(first.t.t2, first.t.t1);
+  // Negating T3 − T4 fits: an accepted probe's |T3 − T4| is below 2^62 + δ.
   const int64_t b0 = -Diff(first.t.t3, first.t.t4);
   for (size_t i = 0; i < n; ++i) {
     const ProbeTimestamps& t = history_[i].t;
     fx[i] = static_cast<double>((t.t1 - first.t.t1).nanos());
-    fy[i] = static_cast<double>(Diff(t.t2, t.t1) - f0);
+    fy[i] = static_cast<double>(static_cast<__int128>(Diff(t.t2, t.t1)) - f0);
     bx[i] = static_cast<double>((t.t4 - first.t.t4).nanos());
-    by[i] = static_cast<double>(-Diff(t.t3, t.t4) - b0);
+    by[i] = static_cast<double>(-static_cast<__int128>(Diff(t.t3, t.t4)) - b0);
   }
   const Line forward = LowerEnvelopeFit(fx, fy);
   const Line backward = LowerEnvelopeFit(bx, by);
@@ -222,23 +277,24 @@ void ClockModel::Refit() {
   }
   offset_ = SaturatingNanos(0.5 * (fwd - bwd));
   ref_session_ = mid;
-  ref_client_ = ClientTime::FromNanos(mid.nanos() + offset_.nanos());
+  ref_client_ = ClientTime::FromNanos(mid.nanos()) + offset_;
 }
 
 SessionTime ClockModel::ToSession(ClientTime t) const {
   if (!ready()) return SessionTime::FromNanos(t.nanos());
   // session = ref_session + dt / (1 + drift), written as dt minus a small
-  // correction so the large part stays exact in int64.
-  const Duration dt = t - ref_client_;
-  const double correction =
-      static_cast<double>(dt.nanos()) * drift_ / (1.0 + drift_);
-  return ref_session_ + dt - SaturatingNanos(correction);
+  // correction so the large part stays exact. t comes from outside, so dt
+  // and the sum are taken in 128 bits and only the result is clamped.
+  const __int128 dt = static_cast<__int128>(t.nanos()) - ref_client_.nanos();
+  const double correction = static_cast<double>(dt) * drift_ / (1.0 + drift_);
+  return SessionTime::FromNanos(
+      ClampToInt64(ref_session_.nanos() + dt - SaturatingNanos(correction).nanos()));
 }
 
 Duration ClockModel::UncertaintyAt(ClientTime t) const {
   if (!ready()) return Duration::Max();
   const double distance =
-      std::abs(static_cast<double>((t - ref_client_).nanos()));
+      std::abs(static_cast<double>(static_cast<__int128>(t.nanos()) - ref_client_.nanos()));
   const double growth = distance * (kPhiPpm * 1e-6 + drift_error_);
   return SaturatingNanos(static_cast<double>(min_delay_.nanos()) / 2 + growth);
 }

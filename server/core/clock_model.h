@@ -27,6 +27,7 @@
 #define TICKMARK_SERVER_CORE_CLOCK_MODEL_H_
 
 #include <deque>
+#include <optional>
 #include <span>
 
 #include "server/core/time.h"
@@ -49,15 +50,28 @@ struct OnWire {
 
 // RFC 5905 §8 on-wire formulas in 64-bit first-order differences. The delay is
 // returned as computed (not clamped); ClockModel applies the §8 clamp.
-// Requires the client clock and session time to be within ~146 years of each
-// other so that the differences fit in int64.
+// nullopt when a difference or the result does not fit in int64 (the
+// timestamps come from outside and may be anything).
+std::optional<OnWire> CheckedOnWire(const ProbeTimestamps& p);
+
+// CheckedOnWire, or for timestamps it cannot represent the same formulas
+// with saturating arithmetic (defined, but meaningless: for logging what a
+// rejected probe claimed, never for a model).
 OnWire ComputeOnWire(const ProbeTimestamps& p);
 
+// What ClockModel::AddProbe made of a probe. Every kRejected* leaves the
+// model exactly as it was; ProbeVerdictName is the reason to record.
 enum class ProbeVerdict {
   kAccepted,
   kRejectedReversed,       // T3 < T2 or T4 < T1: timestamps cannot be right
   kRejectedNegativeDelay,  // δ < −precision: the timestamps contradict
   kClockJump,              // accepted; the client clock stepped, so restarted
+  // A difference of the timestamps overflows int64, or the offset is beyond
+  // Options::max_abs_offset: no real clock pair gives such a probe.
+  kRejectedOutOfRange,
+  // Disagrees with the model like a clock jump, but one probe is not enough
+  // to restart: held as a candidate until the next probe confirms it.
+  kRejectedUnconfirmedJump,
 };
 
 // Stable lower-case name, e.g. "rejected_reversed", for logs and the ledger.
@@ -100,6 +114,12 @@ class ClockModel {
     // Until the held probes span this much session time the drift is taken as
     // 0 ± max_drift_ppm: a fit over a shorter span is mostly delay jitter.
     Duration min_drift_span = Duration::Seconds(10);
+    // Probes whose offset (client clock − session time) is larger than this
+    // are impossible. 2^62 ns (about 146 years) keeps the client readings
+    // the model works with inside int64 with room to spare, since session
+    // times are UTC nanoseconds (about 1.8e18 today, below 2^61 until 2043);
+    // a client clock counting from boot sits about −56 years off.
+    Duration max_abs_offset = Duration::Nanos(int64_t{1} << 62);
   };
 
   // RFC 5905 §9.2: dispersion grows at PHI = 15 ppm, the assumed frequency
@@ -110,7 +130,10 @@ class ClockModel {
   explicit ClockModel(Options o);
 
   // Judges one probe and, unless rejected, adds it. A rejected probe leaves
-  // the model unchanged. On kClockJump the model restarts from this probe.
+  // the model unchanged. A probe that disagrees with a ready model like a
+  // clock jump is held back (kRejectedUnconfirmedJump); if the next probe
+  // agrees with it (within jump_threshold plus both delays) the model
+  // restarts from the two (kClockJump), so one absurd probe never moves it.
   ProbeVerdict AddProbe(const ProbeTimestamps& p);
 
   // True once at least one probe was accepted.
@@ -139,9 +162,13 @@ class ClockModel {
 
   // Recomputes the filter choice and the drift fit after history_ changed.
   void Refit();
+  // True if `w` (a probe at client time mid_client) disagrees with the model
+  // by more than the jump threshold plus what delay and uncertainty explain.
+  bool LooksLikeJump(ClientTime mid_client, const OnWire& w) const;
 
   Options options_;
   std::deque<Sample> history_;  // accepted probes, oldest first
+  std::optional<Sample> jump_candidate_;  // a suspected jump awaiting confirmation
   // Cached by Refit(), valid when ready():
   SessionTime ref_session_;  // session midpoint (T1+T4)/2 of the chosen probe
   ClientTime ref_client_;    // client midpoint (T2+T3)/2 of the chosen probe

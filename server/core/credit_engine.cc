@@ -7,21 +7,9 @@
 namespace tickmark {
 namespace {
 
+// The initial watermark: the lowest representable instant. Time arithmetic
+// saturates (server/core/time.h), so watermark − d stays there.
 constexpr int64_t kMinNanos = std::numeric_limits<int64_t>::min();
-constexpr int64_t kMaxNanos = std::numeric_limits<int64_t>::max();
-
-// t - d for d >= 0, saturating at the start of time (the initial watermark
-// is the lowest representable instant).
-SessionTime SubSat(SessionTime t, Duration d) {
-  if (t.nanos() < kMinNanos + d.nanos()) return SessionTime::FromNanos(kMinNanos);
-  return t - d;
-}
-
-// t + d for d >= 0, saturating at the end of time.
-SessionTime AddSat(SessionTime t, Duration d) {
-  if (t.nanos() > kMaxNanos - d.nanos()) return SessionTime::FromNanos(kMaxNanos);
-  return t + d;
-}
 
 }  // namespace
 
@@ -172,8 +160,8 @@ void CreditEngine::MatchNewStep(Agent& agent, EngineOutput& out) {
   // Feedback in reach has start + lower < t_f < end + horizon for its own
   // kernel; the widest bounds over all kernels narrow the scan.
   auto it = open_feedback_.upper_bound(
-      {AddSat(step.start, min_lower_), std::numeric_limits<uint64_t>::max()});
-  const SessionTime stop = open ? kOpenEnd : AddSat(step.end, max_horizon_);
+      {step.start + min_lower_, std::numeric_limits<uint64_t>::max()});
+  const SessionTime stop = open ? kOpenEnd : step.end + max_horizon_;
   std::vector<uint64_t> reached;
   for (; it != open_feedback_.end() && it->first < stop; ++it) {
     if (InReach(feedback_.at(it->second), step.start, step.end)) {
@@ -216,7 +204,7 @@ EngineOutput CreditEngine::AddFeedback(const FeedbackInput& input) {
       return out;
     }
   }
-  f.past_deadline = input.event <= SubSat(watermark_, options_.allowed_lateness);
+  f.past_deadline = input.event <= watermark_ - options_.allowed_lateness;
 
   for (auto& [name, agent] : agents_) {
     auto& steps = agent.steps;
@@ -265,7 +253,7 @@ EngineOutput CreditEngine::AdvanceWatermark(SessionTime watermark) {
   EngineOutput out;
   if (watermark <= watermark_) return out;
   watermark_ = watermark;
-  const SessionTime deadline = SubSat(watermark_, options_.allowed_lateness);
+  const SessionTime deadline = watermark_ - options_.allowed_lateness;
   while (!open_feedback_.empty() && open_feedback_.begin()->first <= deadline) {
     Feedback& f = feedback_.at(open_feedback_.begin()->second);
     f.past_deadline = true;
@@ -280,7 +268,7 @@ EngineOutput CreditEngine::AdvanceWatermark(SessionTime watermark) {
 
 void CreditEngine::Settle(EngineOutput& out) {
   const SessionTime limit =
-      SubSat(watermark_, max_horizon_ + options_.allowed_lateness);
+      watermark_ - (max_horizon_ + options_.allowed_lateness);
   for (auto& [name, agent] : agents_) {
     while (!agent.steps.empty() && agent.steps.front().end != kOpenEnd &&
            agent.steps.front().end <= limit) {

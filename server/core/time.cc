@@ -10,4 +10,9 @@ int64_t SystemMonotonic::NowNanos() const {
   return static_cast<int64_t>(ts.tv_sec) * 1'000'000'000 + ts.tv_nsec;
 }
 
+const SystemMonotonic* SystemMonotonic::Get() {
+  static const SystemMonotonic kInstance;
+  return &kInstance;
+}
+
 }  // namespace tickmark

@@ -61,6 +61,26 @@ v1::TokenInfo ToProto(const ledger::TokenRow& row) {
   return t;
 }
 
+// The session default kernel's text: from the loaded runtime, or else from
+// the session's first records (SessionHub::Create writes it second).
+std::string DefaultKernelOf(SessionHub* hub, const std::string& session_id) {
+  if (auto rt = hub->Find(session_id)) {
+    if (std::string k = rt->default_kernel(); !k.empty()) return k;
+  }
+  auto head = hub->ledger()->Read(session_id, 1, 16);
+  if (!head.ok()) return "";
+  for (const v1::Record& r : *head) {
+    if (r.has_kernel() && r.kernel().trainer().empty()) return r.kernel().description();
+  }
+  return "";
+}
+
+void FillLedgerHealth(ledger::Ledger* ledger, v1::LedgerHealth* out) {
+  const absl::Status write = ledger->WriteHealth();
+  out->set_writable(write.ok());
+  if (!write.ok()) out->set_reason(write.ToString());
+}
+
 absl::Status Summarize(SessionHub* hub, const ledger::SessionRow& row, v1::SessionSummary* out) {
   *out->mutable_session() = ToProto(row);
   auto counts = hub->ledger()->Counts(row.id);
@@ -73,6 +93,8 @@ absl::Status Summarize(SessionHub* hub, const ledger::SessionRow& row, v1::Sessi
   out->set_late_count(counts->late);
   out->set_unmatched_count(counts->unmatched);
   out->set_rejected_probe_count(counts->rejected_probes);
+  out->set_default_kernel(DefaultKernelOf(hub, row.id));
+  FillLedgerHealth(hub->ledger(), out->mutable_ledger_health());
   // A session nobody has touched since the start has no streams; Find
   // avoids loading it (and replaying its ledger) just to say so.
   if (auto rt = hub->Find(row.id)) {
@@ -225,8 +247,8 @@ grpc::ServerUnaryReactor* AdminService::RevokeToken(grpc::CallbackServerContext*
   auto row = hub_->ledger()->RevokeToken(req->session_id(), req->token_id());
   if (!row.ok()) return Done(ctx, row.status());
   if (auto rt = hub_->Find(req->session_id())) {  // not loaded: no streams to end
-    rt->EndStreamsOf(row->id, grpc::Status(grpc::StatusCode::UNAUTHENTICATED,
-                                              "token " + row->id + " has been revoked"));
+    rt->EndStreamsOf(row->id,
+                     absl::UnauthenticatedError(Cat("token ", row->id, " has been revoked")));
   }
   *resp->mutable_token() = ToProto(*row);
   return Done(ctx, absl::OkStatus());
@@ -251,8 +273,9 @@ grpc::ServerUnaryReactor* AdminService::AddMarker(grpc::CallbackServerContext* c
                                                   v1::AddMarkerResponse* resp) {
   auto who = AuthenticateContext(*ctx, *auth_);
   if (!who.ok()) return Done(ctx, who.status());
-  if (absl::Status s = Authorize(*who, req->session_id(), {v1::ROLE_ADMIN, v1::ROLE_AGENT});
-      !s.ok()) {
+  // Markers are the admin's (the role table): an agent marks its own
+  // timeline with steps, not with session markers.
+  if (absl::Status s = Authorize(*who, req->session_id(), {v1::ROLE_ADMIN}); !s.ok()) {
     return Done(ctx, s);
   }
   if (req->text().empty() || req->text().size() > 1024) {
@@ -262,7 +285,10 @@ grpc::ServerUnaryReactor* AdminService::AddMarker(grpc::CallbackServerContext* c
   if (!rt.ok()) return Done(ctx, rt.status());
   if (!(*rt)->open()) return Done(ctx, absl::FailedPreconditionError("session is closed"));
   const int64_t now = (*rt)->Now().nanos();
-  if (req->at_session_ns() != 0 && std::llabs(req->at_session_ns() - now) > 86'400'000'000'000LL) {
+  // Saturating time arithmetic: the requested time may be any int64.
+  if (req->at_session_ns() != 0 &&
+      Abs(SessionTime::FromNanos(req->at_session_ns()) - SessionTime::FromNanos(now)) >
+          Duration::Seconds(86'400)) {
     return Done(ctx, absl::InvalidArgumentError("marker time is more than a day from now"));
   }
   v1::Record r;
@@ -324,9 +350,9 @@ class ReplayReactor final : public grpc::ServerWriteReactor<v1::ReplayProgress> 
     queue_.push_back(std::move(m));
     PumpLocked();
   }
-  void End(grpc::Status status) {
+  void End(const absl::Status& status) {
     std::lock_guard<std::mutex> lock(mu_);
-    end_ = std::move(status);
+    end_ = status;
     PumpLocked();
   }
   bool cancelled() const { return cancelled_.load(); }
@@ -357,7 +383,7 @@ class ReplayReactor final : public grpc::ServerWriteReactor<v1::ReplayProgress> 
     }
     if (end_) {
       finished_ = true;
-      Finish(cancelled_ ? grpc::Status::CANCELLED : *end_);
+      Finish(ToGrpc(cancelled_ ? absl::CancelledError("replay cancelled") : *end_));
     }
   }
 
@@ -366,7 +392,7 @@ class ReplayReactor final : public grpc::ServerWriteReactor<v1::ReplayProgress> 
   v1::ReplayProgress current_;            // being written
   bool writing_ = false;
   bool finished_ = false;
-  std::optional<grpc::Status> end_;
+  std::optional<absl::Status> end_;
   std::atomic<bool> cancelled_{false};
 };
 
@@ -476,12 +502,12 @@ grpc::ServerWriteReactor<v1::ReplayProgress>* AdminService::Replay(
   }
   if (s.ok()) s = hub_->ledger()->GetSession(req->session_id()).status();
   if (!s.ok()) {
-    reactor->End(ToGrpc(s));
+    reactor->End(s);
     return reactor;
   }
   reactor->worker = std::thread([hub = hub_, request = *req, reactor] {
     absl::Status st = RunReplay(hub, request, reactor);
-    reactor->End(ToGrpc(st));
+    reactor->End(st);
   });
   return reactor;
 }

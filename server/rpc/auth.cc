@@ -1,49 +1,54 @@
 #include "server/rpc/auth.h"
 
+#include <openssl/err.h>
 #include <openssl/evp.h>
 #include <openssl/rand.h>
 
+#include "absl/strings/escaping.h"
+#include "absl/strings/string_view.h"
 #include "server/base/strings.h"
 
 namespace tickmark::rpc {
 
-std::string RandomHex(size_t bytes) {
-  std::string raw(bytes, '\0');
-  RAND_bytes(reinterpret_cast<unsigned char*>(raw.data()), static_cast<int>(bytes));
-  static constexpr char kHex[] = "0123456789abcdef";
-  std::string out;
-  for (unsigned char c : raw) {
-    out += kHex[c >> 4];
-    out += kHex[c & 15];
+namespace {
+
+absl::string_view AbslView(const std::string& s) { return absl::string_view(s.data(), s.size()); }
+
+// n bytes from OpenSSL's CSPRNG, or an error: never fewer, never weaker.
+absl::StatusOr<std::string> RandomBytes(size_t n) {
+  std::string raw(n, '\0');
+  // OpenSSL docs, RAND_bytes(3): returns 1 on success.
+  if (RAND_bytes(reinterpret_cast<unsigned char*>(raw.data()), static_cast<int>(n)) != 1) {
+    ERR_clear_error();
+    return absl::UnavailableError("no random bytes from OpenSSL (RAND_bytes failed)");
   }
-  return out;
+  return raw;
 }
 
-std::string NewSecret() {
-  unsigned char raw[32];
-  RAND_bytes(raw, sizeof raw);
-  static constexpr char kAlphabet[] =
-      "ABCDEFGHIJKLMNOPQRSTUVWXYZabcdefghijklmnopqrstuvwxyz0123456789-_";
+}  // namespace
+
+absl::StatusOr<std::string> RandomHex(size_t bytes) {
+  auto raw = RandomBytes(bytes);
+  if (!raw.ok()) return raw.status();
+  return absl::BytesToHexString(AbslView(*raw));
+}
+
+absl::StatusOr<std::string> NewSecret() {
+  auto raw = RandomBytes(32);
+  if (!raw.ok()) return raw.status();
   // base64url without padding (RFC 4648 §5).
-  std::string out = "tmk_";
-  uint32_t acc = 0;
-  int bits = 0;
-  for (unsigned char c : raw) {
-    acc = (acc << 8) | c;
-    bits += 8;
-    while (bits >= 6) {
-      bits -= 6;
-      out += kAlphabet[(acc >> bits) & 63];
-    }
-  }
-  if (bits > 0) out += kAlphabet[(acc << (6 - bits)) & 63];
-  return out;
+  return "tmk_" + absl::WebSafeBase64Escape(AbslView(*raw));
 }
 
-std::string HashSecret(std::string_view secret) {
+absl::StatusOr<std::string> HashSecret(std::string_view secret) {
   unsigned char digest[EVP_MAX_MD_SIZE];
   unsigned int len = 0;
-  EVP_Digest(secret.data(), secret.size(), digest, &len, EVP_sha256(), nullptr);
+  // OpenSSL docs, EVP_Digest(3): returns 1 on success.
+  if (EVP_Digest(secret.data(), secret.size(), digest, &len, EVP_sha256(), nullptr) != 1 ||
+      len != 32) {
+    ERR_clear_error();
+    return absl::InternalError("SHA-256 failed in OpenSSL (EVP_Digest)");
+  }
   return std::string(reinterpret_cast<char*>(digest), len);
 }
 
@@ -73,7 +78,9 @@ absl::StatusOr<Principal> TokenAuthority::Authenticate(std::string_view secret) 
   if (secret.size() > 200 || secret.substr(0, 4) != "tmk_") {
     return absl::UnauthenticatedError("malformed token");
   }
-  auto row = ledger_->FindTokenByHash(HashSecret(secret));
+  auto hash = HashSecret(secret);
+  if (!hash.ok()) return hash.status();
+  auto row = ledger_->FindTokenByHash(*hash);
   if (absl::IsNotFound(row.status())) return absl::UnauthenticatedError("unknown token");
   if (!row.ok()) return row.status();
   if (row->revoked) return absl::UnauthenticatedError(Cat("token ", row->id, " has been revoked"));
@@ -83,16 +90,21 @@ absl::StatusOr<Principal> TokenAuthority::Authenticate(std::string_view secret) 
 absl::StatusOr<std::pair<ledger::TokenRow, std::string>> TokenAuthority::Issue(
     std::string_view session_id, tickmark::v1::Role role, std::string_view subject,
     int64_t now_session_ns) {
+  auto id = RandomHex(4);
+  if (!id.ok()) return id.status();
+  auto secret = NewSecret();
+  if (!secret.ok()) return secret.status();
+  auto hash = HashSecret(*secret);
+  if (!hash.ok()) return hash.status();
   ledger::TokenRow row;
-  row.id = "t-" + RandomHex(4);
+  row.id = "t-" + *id;
   row.session_id = std::string(session_id);
   row.role = role;
   row.subject = std::string(subject);
   row.issued_session_ns = now_session_ns;
-  std::string secret = NewSecret();
-  row.hash = HashSecret(secret);
+  row.hash = std::move(*hash);
   if (absl::Status s = ledger_->PutToken(row); !s.ok()) return s;
-  return std::make_pair(std::move(row), std::move(secret));
+  return std::make_pair(std::move(row), std::move(*secret));
 }
 
 }  // namespace tickmark::rpc

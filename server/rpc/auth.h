@@ -17,11 +17,12 @@
 
 namespace tickmark::rpc {
 
-// Random ids and secrets from OpenSSL's CSPRNG.
-std::string RandomHex(size_t bytes);
-std::string NewSecret();
-// SHA-256 of the secret, 32 raw bytes.
-std::string HashSecret(std::string_view secret);
+// Random ids and secrets from OpenSSL's CSPRNG; UNAVAILABLE when it gives no
+// bytes (never a weaker fallback). RandomHex: 2·bytes lower-case hex digits.
+absl::StatusOr<std::string> RandomHex(size_t bytes);
+absl::StatusOr<std::string> NewSecret();
+// SHA-256 of the secret, 32 raw bytes; INTERNAL if OpenSSL fails.
+absl::StatusOr<std::string> HashSecret(std::string_view secret);
 
 // What an authenticated caller may do.
 struct Principal {

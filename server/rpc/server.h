@@ -2,14 +2,21 @@
 // gRPC services, and the operator token. main() only parses flags and calls
 // this (style.md: the binary is wiring only).
 //
+// Health: the standard gRPC health service is on; a watcher thread reads
+// Ledger::WriteHealth() every ServerOptions::health_interval and reports
+// NOT_SERVING while ledger writes fail, SERVING again once they succeed.
+//
 // Thread safety: Start/Shutdown from one thread; the rest is internal.
 #ifndef TICKMARK_SERVER_RPC_SERVER_H_
 #define TICKMARK_SERVER_RPC_SERVER_H_
 
 #include <grpcpp/server.h>
 
+#include <condition_variable>
 #include <memory>
+#include <mutex>
 #include <string>
+#include <thread>
 
 #include "server/ledger/ledger.h"
 #include "server/rpc/admin_service.h"
@@ -46,12 +53,19 @@ struct ServerOptions {
   uint16_t udp_probe_port = 0;
   LiveService::Options live;
   SessionHub::Options sessions;
+  // How often the ledger's write health is read for the gRPC health
+  // service (grpc.health.v1.Health: NOT_SERVING while writes fail).
+  Duration health_interval = Duration::Seconds(1);
 };
 
 class TickmarkServer {
  public:
   // Opens the ledger, creates the operator token file if missing, binds.
   static absl::StatusOr<std::unique_ptr<TickmarkServer>> Start(const ServerOptions& options);
+  // The same on a ledger opened by the caller (tests wrap one to inject
+  // faults); options.ledger_path then only names it in messages.
+  static absl::StatusOr<std::unique_ptr<TickmarkServer>> Start(
+      const ServerOptions& options, std::unique_ptr<ledger::Ledger> ledger);
   ~TickmarkServer();
 
   // The bound port (useful with port 0).
@@ -67,6 +81,10 @@ class TickmarkServer {
 
  private:
   TickmarkServer() = default;
+  // The health watcher thread: reads Ledger::WriteHealth() every
+  // health_interval_ and flips the gRPC health status on a change.
+  void WatchLedgerHealth();
+  void StopHealthWatcher();
 
   std::unique_ptr<ledger::Ledger> ledger_;
   SystemMonotonic mono_;
@@ -80,12 +98,20 @@ class TickmarkServer {
   std::string operator_token_path_;
   std::string ledger_path_;
   bool shut_down_ = false;
+
+  Duration health_interval_;
+  std::thread health_thread_;
+  std::mutex health_mu_;
+  std::condition_variable health_cv_;
+  bool health_stop_ = false;  // GUARDED_BY(health_mu_)
 };
 
-// True if host:port names a loopback address (127.0.0.0/8, [::1], localhost).
-bool IsLoopbackAddress(const std::string& host_port);
-// The host part of host:port or [v6]:port, brackets removed.
-std::string ListenHost(const std::string& host_port);
+// Checks a TLS pair before the server uses it: both files or neither, each
+// readable, each parses as PEM (certificate; unencrypted private key), and
+// the key belongs to the (first) certificate. Every error names the file.
+// On success fills *cert_pem and *key_pem with the files' contents.
+absl::Status CheckTlsPair(const std::string& cert_file, const std::string& key_file,
+                          std::string* cert_pem, std::string* key_pem);
 
 }  // namespace tickmark::rpc
 

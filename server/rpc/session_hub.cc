@@ -7,6 +7,7 @@
 #include "server/base/log.h"
 #include "server/base/strings.h"
 #include "server/rpc/auth.h"
+#include "server/rpc/status.h"
 
 namespace tickmark::rpc {
 
@@ -159,9 +160,16 @@ Duration SessionRuntime::allowed_lateness() const {
   return Duration::Nanos(lateness_ns_.load());
 }
 
+std::string SessionRuntime::default_kernel() const {
+  std::lock_guard<std::mutex> lock(kernel_mu_);
+  return default_kernel_;
+}
+
 void SessionRuntime::NoteKernel(const Record& r) {
   if (r.has_kernel() && r.kernel().trainer().empty()) {
     lateness_ns_.store(r.kernel().allowed_lateness_ns());
+    std::lock_guard<std::mutex> lock(kernel_mu_);
+    default_kernel_ = r.kernel().description();
   }
 }
 
@@ -256,19 +264,21 @@ void SessionRuntime::RemoveSink(RecordSink* sink) {
   sinks_.erase(sink);
 }
 
-void SessionRuntime::MarkClosed(const grpc::Status& why) {
+void SessionRuntime::MarkClosed(const absl::Status& why) {
   {
     std::lock_guard<std::mutex> lock(mu_);
     open_ = false;
   }
+  const grpc::Status status = ToGrpc(why);
   std::lock_guard<std::mutex> lock(streams_mu_);
-  for (StreamHandle* s : streams_) s->End(why);
+  for (StreamHandle* s : streams_) s->End(status);
 }
 
-void SessionRuntime::EndStreamsOf(const std::string& token_id, const grpc::Status& why) {
+void SessionRuntime::EndStreamsOf(const std::string& token_id, const absl::Status& why) {
+  const grpc::Status status = ToGrpc(why);
   std::lock_guard<std::mutex> lock(streams_mu_);
   for (StreamHandle* s : streams_) {
-    if (s->token_id() == token_id) s->End(why);
+    if (s->token_id() == token_id) s->End(status);
   }
 }
 
@@ -328,8 +338,10 @@ absl::StatusOr<std::shared_ptr<SessionRuntime>> SessionHub::Create(const std::st
     if (!parsed.ok()) return parsed.status();
     k = *parsed;
   }
+  auto id = RandomHex(4);
+  if (!id.ok()) return id.status();
   ledger::SessionRow row;
-  row.id = "s-" + RandomHex(4);
+  row.id = "s-" + *id;
   row.title = title;
   row.study = study;
   row.utc_anchor_ns = utc_now_ns_();
@@ -365,8 +377,7 @@ absl::Status SessionHub::Close(const std::string& id) {
   if (!runtime.ok()) return runtime.status();
   if (!(*runtime)->open()) return absl::FailedPreconditionError(Cat("session ", id, " is already closed"));
   const int64_t now = (*runtime)->Now().nanos();
-  (*runtime)->MarkClosed(grpc::Status(grpc::StatusCode::FAILED_PRECONDITION,
-                                      "session " + id + " was closed"));
+  (*runtime)->MarkClosed(absl::FailedPreconditionError(Cat("session ", id, " was closed")));
   // Everything accepted so far is committed and credited; then the final
   // labels, then the "closed" record, so followers that stop at it miss none.
   if (absl::Status s = ledger_->Flush(); !s.ok()) return s;

@@ -90,6 +90,9 @@ class SessionRuntime {
 
   // How late a record may arrive and still be credited (fixed at creation).
   Duration allowed_lateness() const;
+  // The session default kernel's canonical text (its KernelSetting record's
+  // description); empty until that record was seen.
+  std::string default_kernel() const;
 
   // Feeds the credit engine with everything the ledger holds for this
   // session and writes the derived records that are missing (after a
@@ -101,9 +104,9 @@ class SessionRuntime {
   absl::Status FinishCredit(int64_t end_ns);
 
   // Marks the session closed and ends every stream with `why`.
-  void MarkClosed(const grpc::Status& why);
+  void MarkClosed(const absl::Status& why);
   // Ends the streams that use this token.
-  void EndStreamsOf(const std::string& token_id, const grpc::Status& why);
+  void EndStreamsOf(const std::string& token_id, const absl::Status& why);
 
  private:
   // Per client id: what is known about its sequence numbers.
@@ -129,6 +132,8 @@ class SessionRuntime {
   std::mutex credit_mu_;
   CreditDriver credit_;             // GUARDED_BY(credit_mu_)
   std::atomic<int64_t> lateness_ns_{0};  // from the session's default kernel record
+  mutable std::mutex kernel_mu_;
+  std::string default_kernel_;      // GUARDED_BY(kernel_mu_)
 
   std::mutex streams_mu_;
   std::set<StreamHandle*> streams_;  // GUARDED_BY(streams_mu_)

@@ -7,6 +7,8 @@
 #include <algorithm>
 #include <cmath>
 #include <cstdint>
+#include <limits>
+#include <utility>
 #include <random>
 #include <vector>
 
@@ -302,12 +304,17 @@ TEST(ClockModelTest, ClockJumpRestartsModel) {
 
   sim.device().Step(Duration::Seconds(2));  // e.g. the device's NTP stepped it
   sim.WaitUntil(Duration::Seconds(30));
+  // The first probe after the step is held back; the next one confirms it.
+  const ClockEstimate before = model.estimate();
+  EXPECT_EQ(model.AddProbe(sim.Probe()), ProbeVerdict::kRejectedUnconfirmedJump);
+  EXPECT_EQ(model.estimate(), before);
+  sim.WaitUntil(Duration::Seconds(31));
   EXPECT_EQ(model.AddProbe(sim.Probe()), ProbeVerdict::kClockJump);
-  EXPECT_EQ(model.estimate().samples, 1);
+  EXPECT_EQ(model.estimate().samples, 2);
   EXPECT_EQ(model.estimate().drift_ppm, 0.0);  // too short a span to fit yet
 
   const SessionTime restart = sim.Now();
-  for (int k = 31; k < 60; ++k) {
+  for (int k = 32; k < 60; ++k) {
     sim.WaitUntil(Duration::Seconds(k));
     ASSERT_EQ(model.AddProbe(sim.Probe()), ProbeVerdict::kAccepted)
         << "probe " << k;
@@ -426,6 +433,167 @@ TEST(ProbeVerdictNameTest, Names) {
   EXPECT_STREQ(ProbeVerdictName(ProbeVerdict::kRejectedNegativeDelay),
                "rejected_negative_delay");
   EXPECT_STREQ(ProbeVerdictName(ProbeVerdict::kClockJump), "clock_jump");
+  EXPECT_STREQ(ProbeVerdictName(ProbeVerdict::kRejectedOutOfRange), "rejected_out_of_range");
+  EXPECT_STREQ(ProbeVerdictName(ProbeVerdict::kRejectedUnconfirmedJump),
+               "rejected_unconfirmed_jump");
+}
+
+constexpr int64_t kMin = std::numeric_limits<int64_t>::min();
+constexpr int64_t kMax = std::numeric_limits<int64_t>::max();
+
+// A model fed 20 good probes, one a second, and what it says before any
+// absurd probe arrives.
+struct ReadyModel {
+  explicit ReadyModel(uint64_t seed) : sim(kSymmetric, seed) {
+    for (int k = 0; k < 20; ++k) {
+      sim.WaitUntil(Duration::Seconds(k));
+      EXPECT_EQ(model.AddProbe(sim.Probe()), ProbeVerdict::kAccepted);
+    }
+    probe_at = sim.device().Read(sim.Now());
+    before = model.estimate();
+    mapped_before = model.ToSession(probe_at);
+    uncertainty_before = model.UncertaintyAt(probe_at);
+  }
+  void ExpectUnmoved() const {
+    EXPECT_EQ(model.estimate(), before);
+    EXPECT_EQ(model.ToSession(probe_at), mapped_before);
+    EXPECT_EQ(model.UncertaintyAt(probe_at), uncertainty_before);
+  }
+  Simulation sim;
+  ClockModel model;
+  ClientTime probe_at;
+  ClockEstimate before;
+  SessionTime mapped_before;
+  Duration uncertainty_before;
+};
+
+// Regression (issue 9.5): T3 − T2 wrapped, the probe was accepted and the
+// next feedback landed thousands of seconds off.
+TEST(ClockModelOverflowTest, ProbeWithT2MinAndT3MaxIsRejectedAndMovesNothing) {
+  ReadyModel m(77);
+  m.sim.WaitUntil(Duration::Seconds(20));
+  ProbeTimestamps absurd = m.sim.Probe();
+  absurd.t2 = ClientTime::FromNanos(kMin);
+  absurd.t3 = ClientTime::FromNanos(kMax);
+  EXPECT_FALSE(CheckedOnWire(absurd).has_value());
+  EXPECT_EQ(m.model.AddProbe(absurd), ProbeVerdict::kRejectedOutOfRange);
+  m.ExpectUnmoved();
+
+  // The next real feedback still maps to the truth, within a few ms.
+  m.sim.WaitUntil(Duration::Seconds(21));
+  ASSERT_EQ(m.model.AddProbe(m.sim.Probe()), ProbeVerdict::kAccepted);
+  const ClientTime event = m.sim.device().Read(m.sim.Now());
+  const Duration error = m.model.ToSession(event) - m.sim.device().TrueSession(event);
+  EXPECT_LE(Abs(error), m.model.UncertaintyAt(event));
+  EXPECT_LT(m.model.UncertaintyAt(event), Duration::Millis(100));
+}
+
+TEST(ClockModelOverflowTest, ProbeWithT2AndT3MaxIsRejectedAndMovesNothing) {
+  ReadyModel m(78);
+  m.sim.WaitUntil(Duration::Seconds(20));
+  ProbeTimestamps absurd = m.sim.Probe();
+  absurd.t2 = ClientTime::FromNanos(kMax);
+  absurd.t3 = ClientTime::FromNanos(kMax);
+  EXPECT_EQ(m.model.AddProbe(absurd), ProbeVerdict::kRejectedOutOfRange);
+  m.ExpectUnmoved();
+}
+
+TEST(ClockModelOverflowTest, AbsurdProbesNeverMakeAFreshModelReady) {
+  FakeMonotonic mono;
+  SessionClock session(kOpenUtcNs, &mono);
+  const SessionTime t1 = session.Now();
+  const SessionTime t4 = t1 + Duration::Millis(40);
+  ClockModel model;
+  for (auto [t2, t3] : {std::pair{kMin, kMax}, std::pair{kMax, kMax}, std::pair{kMin, kMin},
+                        std::pair{kMin, kMin + 1}}) {
+    const ProbeTimestamps p{t1, ClientTime::FromNanos(t2), ClientTime::FromNanos(t3), t4};
+    EXPECT_EQ(model.AddProbe(p), ProbeVerdict::kRejectedOutOfRange) << t2 << " " << t3;
+    EXPECT_FALSE(model.ready());
+  }
+  // Session times from outside too (a replayed ledger): T4 − T1 overflows.
+  const ProbeTimestamps wide{SessionTime::FromNanos(kMin), ClientTime::FromNanos(0),
+                             ClientTime::FromNanos(1), SessionTime::FromNanos(kMax)};
+  EXPECT_EQ(model.AddProbe(wide), ProbeVerdict::kRejectedOutOfRange);
+  EXPECT_FALSE(model.ready());
+}
+
+TEST(ClockModelOverflowTest, ComputeOnWireIsDefinedForAnyTimestamps) {
+  const ProbeTimestamps p{SessionTime::FromNanos(kOpenUtcNs), ClientTime::FromNanos(kMin),
+                          ClientTime::FromNanos(kMax), SessionTime::FromNanos(kOpenUtcNs + 1)};
+  const OnWire w = ComputeOnWire(p);  // saturated, for the record only
+  EXPECT_LT(w.delay, -Duration::Seconds(1'000'000'000));
+  // Offsets that fit are exact even when the sum of the halves does not.
+  const ProbeTimestamps far{SessionTime::FromNanos(-4'000'000'000'000'000'000),
+                            ClientTime::FromNanos(4'000'000'000'000'000'000),
+                            ClientTime::FromNanos(4'000'000'000'000'000'000),
+                            SessionTime::FromNanos(-4'000'000'000'000'000'000)};
+  ASSERT_TRUE(CheckedOnWire(far).has_value());
+  EXPECT_EQ(CheckedOnWire(far)->offset.nanos(), 8'000'000'000'000'000'000);
+  ClockModel model;
+  EXPECT_EQ(model.AddProbe(far), ProbeVerdict::kRejectedOutOfRange);  // > max_abs_offset
+}
+
+// Regression: one probe far from the model restarted it on its own.
+TEST(ClockModelOverflowTest, OneAbsurdProbeInRangeIsHeldNotAJump) {
+  ReadyModel m(79);
+  m.sim.WaitUntil(Duration::Seconds(20));
+  ProbeTimestamps absurd = m.sim.Probe();
+  const Duration years = Duration::Seconds(50LL * 365 * 86400);
+  absurd.t2 += years;
+  absurd.t3 += years;
+  EXPECT_EQ(m.model.AddProbe(absurd), ProbeVerdict::kRejectedUnconfirmedJump);
+  m.ExpectUnmoved();
+  // The next good probe does not confirm it: accepted, no restart.
+  m.sim.WaitUntil(Duration::Seconds(21));
+  EXPECT_EQ(m.model.AddProbe(m.sim.Probe()), ProbeVerdict::kAccepted);
+  EXPECT_EQ(m.model.estimate().samples, m.before.samples + 1);
+  // Two absurd probes that disagree with each other never restart it either.
+  for (int k = 22; k < 26; ++k) {
+    m.sim.WaitUntil(Duration::Seconds(k));
+    ProbeTimestamps p = m.sim.Probe();
+    p.t2 += years + Duration::Seconds(1000 * k);
+    p.t3 += years + Duration::Seconds(1000 * k);
+    EXPECT_EQ(m.model.AddProbe(p), ProbeVerdict::kRejectedUnconfirmedJump) << k;
+  }
+  EXPECT_EQ(m.model.estimate().samples, m.before.samples + 1);
+}
+
+// Regression: ToSession took t − reference in int64, so a client time far
+// from the reference wrapped and mapped to the wrong side of the timeline.
+TEST(ClockModelOverflowTest, MappingOfExtremeClientTimesIsMonotoneAndDefined) {
+  ReadyModel m(80);
+  const ClockEstimate est = m.model.estimate();
+  const std::vector<int64_t> readings = {kMin,
+                                         kMin + 1,
+                                         -1'000'000'000'000'000'000,
+                                         0,
+                                         est.reference.nanos(),
+                                         est.reference.nanos() + 1,
+                                         4'000'000'000'000'000'000,
+                                         kMax - 1,
+                                         kMax};
+  SessionTime previous = SessionTime::FromNanos(kMin);
+  for (int64_t r : readings) {
+    const ClientTime c = ClientTime::FromNanos(r);
+    const SessionTime s = m.model.ToSession(c);
+    EXPECT_GE(s, previous) << "reading " << r;
+    previous = s;
+    // Far from the reference the mapping is within 0.1 % of the plain
+    // distance (drift ≤ 500 ppm) and the uncertainty is enormous, not wrapped.
+    const double distance = static_cast<double>(r) - static_cast<double>(est.reference.nanos());
+    const double moved = static_cast<double>(s.nanos()) -
+                         static_cast<double>(m.model.ToSession(est.reference).nanos());
+    if (std::abs(distance) > 1e18 && s.nanos() != kMin && s.nanos() != kMax) {
+      EXPECT_NEAR(moved / distance, 1.0, 1e-3) << "reading " << r;
+    }
+    const Duration u = m.model.UncertaintyAt(c);
+    EXPECT_GT(u, Duration::Zero());
+    if (std::abs(distance) > 1e18) {
+      EXPECT_GT(u, Duration::Seconds(1000)) << "reading " << r;
+    }
+  }
+  EXPECT_LT(m.model.ToSession(ClientTime::FromNanos(kMin)),
+            m.model.ToSession(ClientTime::FromNanos(0)));
 }
 
 }  // namespace

@@ -1,9 +1,16 @@
 // SessionAdmin over real gRPC on 127.0.0.1:0: each RPC, and the token rules
 // of design.md §7 (a token of session A can do nothing in session B; tokens
 // are stored hashed).
+#include <grpcpp/generic/generic_stub.h>
 #include <sqlite3.h>
 
+#include <future>
+#include <limits>
+#include <thread>
+
+#include "server/ledger/sqlite/sqlite_ledger.h"
 #include "server/rpc/auth.h"
+#include "server/rpc/credit_driver.h"
 #include "tests/rpc/test_server.h"
 
 namespace tickmark::testing {
@@ -156,7 +163,7 @@ TEST_F(AdminTest, TokensAreStoredHashedNeverInTheClear) {
                                -1, &q, nullptr),
             SQLITE_OK);
   // SHA-256 (FIPS 180-4) via OpenSSL, the same digest the server stores.
-  std::string digest = rpc::HashSecret(secret);
+  std::string digest = *rpc::HashSecret(secret);
   sqlite3_bind_blob(q, 1, digest.data(), static_cast<int>(digest.size()), SQLITE_TRANSIENT);
   sqlite3_bind_text(q, 2, secret.c_str(), -1, SQLITE_TRANSIENT);
   ASSERT_EQ(sqlite3_step(q), SQLITE_ROW);
@@ -231,6 +238,24 @@ TEST_F(AdminTest, MarkerIsStoredAndAcknowledgedWithItsSequence) {
             grpc::StatusCode::INVALID_ARGUMENT);
 }
 
+// Regression: the "within a day" check subtracted in int64 (undefined
+// behaviour for these, caught by UBSan).
+TEST_F(AdminTest, MarkerTimesAtTheEndsOfInt64AreRefused) {
+  auto [s, admin] = server_.CreateSession();
+  for (int64_t at : {std::numeric_limits<int64_t>::min(), std::numeric_limits<int64_t>::max(),
+                     std::numeric_limits<int64_t>::min() + 1}) {
+    v1::AddMarkerRequest req;
+    req.set_session_id(s);
+    req.set_text("far away");
+    req.set_at_session_ns(at);
+    v1::AddMarkerResponse resp;
+    auto ctx = server_.Context(admin);
+    EXPECT_EQ(server_.admin().AddMarker(ctx.get(), req, &resp).error_code(),
+              grpc::StatusCode::INVALID_ARGUMENT)
+        << at;
+  }
+}
+
 }  // namespace
 }  // namespace tickmark::testing
 
@@ -251,6 +276,259 @@ TEST(ServerStartTest, AFailedStartReportsItsErrorAndCleansUp) {
   o.listen = "192.0.2.1:0";  // RFC 5737 documentation address; plaintext refused
   auto remote = rpc::TickmarkServer::Start(o);
   EXPECT_EQ(remote.status().code(), absl::StatusCode::kInvalidArgument);
+}
+
+}  // namespace
+}  // namespace tickmark::testing
+
+namespace tickmark::testing {
+namespace {
+
+// Regression (issue 9.10): an agent token could add markers; the role table
+// says admin only. Every role against AddMarker.
+TEST_F(AdminTest, MarkersFollowTheRoleTable) {
+  auto [s, admin] = server_.CreateSession();
+  struct Case {
+    const char* who;
+    std::string token;
+    grpc::StatusCode want;
+  };
+  const std::vector<Case> table = {
+      {"operator", server_.operator_token(), grpc::StatusCode::OK},
+      {"admin", admin, grpc::StatusCode::OK},
+      {"admin (issued)", server_.IssueToken(s, v1::ROLE_ADMIN, "", admin), grpc::StatusCode::OK},
+      {"trainer", server_.IssueToken(s, v1::ROLE_TRAINER, "ava", admin),
+       grpc::StatusCode::PERMISSION_DENIED},
+      {"agent", server_.IssueToken(s, v1::ROLE_AGENT, "rover", admin),
+       grpc::StatusCode::PERMISSION_DENIED},
+      {"observer", server_.IssueToken(s, v1::ROLE_OBSERVER, "", admin),
+       grpc::StatusCode::PERMISSION_DENIED},
+      {"no token", "", grpc::StatusCode::UNAUTHENTICATED},
+  };
+  for (const Case& c : table) {
+    v1::AddMarkerRequest req;
+    req.set_session_id(s);
+    req.set_text(std::string("by ") + c.who);
+    v1::AddMarkerResponse resp;
+    auto ctx = server_.Context(c.token);
+    EXPECT_EQ(server_.admin().AddMarker(ctx.get(), req, &resp).error_code(), c.want) << c.who;
+  }
+}
+
+// Issue 10.6: session show/list name the session's kernel; the text is the
+// canonical form, which parses back to the same kernel.
+TEST_F(AdminTest, SummaryNamesTheDefaultKernelAlsoAfterARestart) {
+  v1::CreateSessionRequest req;
+  req.set_title("gamma session");
+  req.set_default_kernel("gamma:2,0.28");
+  v1::CreateSessionResponse created;
+  auto ctx = server_.Context(server_.operator_token());
+  ASSERT_TRUE(server_.admin().CreateSession(ctx.get(), req, &created).ok());
+  auto [plain, plain_admin] = server_.CreateSession("server default");
+  const std::string want = rpc::ParseKernel("gamma:2,0.28")->Describe();
+
+  auto summary_of = [](TestServer& server, const std::string& id, v1::SessionSummary* out) {
+    v1::GetSessionRequest g;
+    g.set_session_id(id);
+    auto c = server.Context(server.operator_token());
+    return server.admin().GetSession(c.get(), g, out);
+  };
+  v1::SessionSummary summary;
+  ASSERT_TRUE(summary_of(server_, created.session().id(), &summary).ok());
+  EXPECT_EQ(summary.default_kernel(), want);
+  ASSERT_TRUE(rpc::ParseKernel(summary.default_kernel()).ok());
+  v1::SessionSummary plain_summary;
+  ASSERT_TRUE(summary_of(server_, plain, &plain_summary).ok());
+  EXPECT_EQ(plain_summary.default_kernel(),
+            rpc::SessionHub::Options{}.default_kernel.Describe());
+  EXPECT_TRUE(summary.ledger_health().writable());
+  EXPECT_EQ(summary.ledger_health().reason(), "");
+
+  // After a restart the session is not loaded: the kernel comes from the ledger.
+  server_.Shutdown();
+  TestServer again(dir_.path());
+  v1::SessionSummary reread;
+  ASSERT_TRUE(summary_of(again, created.session().id(), &reread).ok());
+  EXPECT_EQ(reread.default_kernel(), want);
+  v1::ListSessionsRequest lreq;
+  v1::ListSessionsResponse listed;
+  auto lctx = again.Context(again.operator_token());
+  ASSERT_TRUE(again.admin().ListSessions(lctx.get(), lreq, &listed).ok());
+  ASSERT_EQ(listed.sessions_size(), 2);
+  for (const auto& s : listed.sessions()) {
+    EXPECT_FALSE(s.default_kernel().empty()) << s.session().id();
+    EXPECT_TRUE(s.has_ledger_health());
+  }
+}
+
+// A ledger whose WriteHealth the test sets; everything else is the real
+// SQLite ledger underneath (a fault-injecting wrapper, not a mock).
+class WriteHealthLedger final : public ledger::Ledger {
+ public:
+  explicit WriteHealthLedger(std::unique_ptr<ledger::Ledger> inner) : inner_(std::move(inner)) {}
+
+  void SetWriteHealth(absl::Status s) {
+    std::lock_guard<std::mutex> lock(mu_);
+    health_ = std::move(s);
+  }
+  absl::Status WriteHealth() override {
+    std::lock_guard<std::mutex> lock(mu_);
+    return health_;
+  }
+
+  absl::Status CreateSession(const ledger::SessionRow& row) override {
+    return inner_->CreateSession(row);
+  }
+  absl::StatusOr<ledger::SessionRow> GetSession(std::string_view id) override {
+    return inner_->GetSession(id);
+  }
+  absl::StatusOr<std::vector<ledger::SessionRow>> ListSessions(bool include_closed) override {
+    return inner_->ListSessions(include_closed);
+  }
+  absl::Status CloseSession(std::string_view id, int64_t closed_session_ns) override {
+    return inner_->CloseSession(id, closed_session_ns);
+  }
+  absl::Status ReanchorSession(std::string_view id, int64_t utc_anchor_ns, int64_t mono_anchor_ns,
+                               std::string_view boot_id) override {
+    return inner_->ReanchorSession(id, utc_anchor_ns, mono_anchor_ns, boot_id);
+  }
+  absl::Status PutToken(const ledger::TokenRow& row) override { return inner_->PutToken(row); }
+  absl::StatusOr<ledger::TokenRow> FindTokenByHash(std::string_view hash) override {
+    return inner_->FindTokenByHash(hash);
+  }
+  absl::StatusOr<std::vector<ledger::TokenRow>> ListTokens(std::string_view session_id) override {
+    return inner_->ListTokens(session_id);
+  }
+  absl::StatusOr<ledger::TokenRow> RevokeToken(std::string_view session_id,
+                                               std::string_view token_id) override {
+    return inner_->RevokeToken(session_id, token_id);
+  }
+  absl::StatusOr<uint64_t> Append(std::string_view session_id, std::vector<v1::Record> records,
+                                  ledger::CommitCallback done) override {
+    return inner_->Append(session_id, std::move(records), std::move(done));
+  }
+  void Barrier(std::function<void()> done) override { inner_->Barrier(std::move(done)); }
+  absl::Status Flush() override { return inner_->Flush(); }
+  absl::StatusOr<std::vector<v1::Record>> Read(std::string_view session_id, uint64_t from,
+                                               size_t max) override {
+    return inner_->Read(session_id, from, max);
+  }
+  absl::StatusOr<std::optional<uint64_t>> FindClientSequence(std::string_view session_id,
+                                                             std::string_view client_id,
+                                                             uint64_t client_sequence) override {
+    return inner_->FindClientSequence(session_id, client_id, client_sequence);
+  }
+  absl::StatusOr<uint64_t> LastClientSequence(std::string_view session_id,
+                                              std::string_view client_id) override {
+    return inner_->LastClientSequence(session_id, client_id);
+  }
+  absl::StatusOr<ledger::RecordCounts> Counts(std::string_view session_id) override {
+    return inner_->Counts(session_id);
+  }
+  uint64_t CommittedSequence(std::string_view session_id) override {
+    return inner_->CommittedSequence(session_id);
+  }
+  absl::Status PutDerivedSet(std::string_view session_id, std::string_view name,
+                             std::string_view spec, const std::vector<v1::Record>& records,
+                             bool overwrite) override {
+    return inner_->PutDerivedSet(session_id, name, spec, records, overwrite);
+  }
+  void Close() override { inner_->Close(); }
+
+ private:
+  std::unique_ptr<ledger::Ledger> inner_;
+  std::mutex mu_;
+  absl::Status health_;  // GUARDED_BY(mu_)
+};
+
+// grpc.health.v1.Health/Check for the whole server (service ""), by hand
+// with the generic stub: the request is empty, the response's field 1 is
+// the status (health.proto in the gRPC repository: 1 SERVING, 2 NOT_SERVING).
+int HealthStatus(const std::shared_ptr<grpc::Channel>& channel) {
+  grpc::GenericStub stub(channel);
+  grpc::ClientContext ctx;
+  ctx.set_deadline(std::chrono::system_clock::now() + std::chrono::seconds(10));
+  grpc::ByteBuffer request;  // empty HealthCheckRequest
+  grpc::Slice empty;
+  request = grpc::ByteBuffer(&empty, 1);
+  grpc::ByteBuffer response;
+  std::promise<grpc::Status> done;
+  stub.UnaryCall(&ctx, "/grpc.health.v1.Health/Check", grpc::StubOptions(), &request, &response,
+                 [&done](grpc::Status s) { done.set_value(std::move(s)); });
+  grpc::Status s = done.get_future().get();
+  if (!s.ok()) return -1;
+  std::vector<grpc::Slice> slices;
+  if (!response.Dump(&slices).ok()) return -1;
+  std::string bytes;
+  for (const auto& slice : slices) bytes.append(reinterpret_cast<const char*>(slice.begin()), slice.size());
+  if (bytes.empty()) return 0;  // UNKNOWN: field 1 absent
+  if (bytes.size() != 2 || bytes[0] != 0x08) return -2;
+  return bytes[1];
+}
+constexpr int kServing = 1;
+constexpr int kNotServing = 2;
+
+// Waits (with a deadline) until the health service reports `want`.
+bool AwaitHealth(const std::shared_ptr<grpc::Channel>& channel, int want) {
+  const auto deadline = std::chrono::steady_clock::now() + std::chrono::seconds(10);
+  while (std::chrono::steady_clock::now() < deadline) {
+    if (HealthStatus(channel) == want) return true;
+    std::this_thread::sleep_for(std::chrono::milliseconds(5));
+  }
+  return false;
+}
+
+// Issue 9.2: the server says so (session show, health) while the ledger
+// cannot write, and says so again when it can.
+TEST(LedgerHealthTest, HealthAndSummaryFollowTheLedgersWriteHealth) {
+  TempDir dir;
+  ledger::SqliteLedger::Options lo;
+  lo.path = dir.path() + "/tickmark.db";
+  auto sqlite = ledger::SqliteLedger::Open(lo);
+  ASSERT_TRUE(sqlite.ok()) << sqlite.status().message();
+  auto wrapper = std::make_unique<WriteHealthLedger>(std::move(*sqlite));
+  WriteHealthLedger* ledger = wrapper.get();
+  rpc::ServerOptions o;
+  o.listen = "127.0.0.1:0";
+  o.data_dir = dir.path();
+  o.health_interval = Duration::Millis(10);  // the production default is 1 s
+  auto server = rpc::TickmarkServer::Start(o, std::move(wrapper));
+  ASSERT_TRUE(server.ok()) << server.status().message();
+  std::string operator_token;
+  std::ifstream((*server)->operator_token_path()) >> operator_token;
+  auto channel = grpc::CreateChannel("127.0.0.1:" + std::to_string((*server)->port()),
+                                     grpc::InsecureChannelCredentials());
+  auto admin = v1::SessionAdmin::NewStub(channel);
+  auto summary = [&] {
+    v1::ListSessionsRequest req;
+    v1::ListSessionsResponse resp;
+    grpc::ClientContext ctx;
+    ctx.AddMetadata("authorization", "Bearer " + operator_token);
+    EXPECT_TRUE(admin->ListSessions(&ctx, req, &resp).ok());
+    return resp.sessions_size() > 0 ? resp.sessions(0) : v1::SessionSummary{};
+  };
+  {
+    v1::CreateSessionRequest req;
+    v1::CreateSessionResponse resp;
+    grpc::ClientContext ctx;
+    ctx.AddMetadata("authorization", "Bearer " + operator_token);
+    ASSERT_TRUE(admin->CreateSession(&ctx, req, &resp).ok());
+  }
+
+  EXPECT_EQ(HealthStatus(channel), kServing);
+  EXPECT_TRUE(summary().ledger_health().writable());
+
+  ledger->SetWriteHealth(absl::ResourceExhaustedError("database or disk is full"));
+  EXPECT_TRUE(AwaitHealth(channel, kNotServing));
+  v1::SessionSummary failing = summary();
+  EXPECT_FALSE(failing.ledger_health().writable());
+  EXPECT_EQ(failing.ledger_health().reason(), "RESOURCE_EXHAUSTED: database or disk is full");
+
+  ledger->SetWriteHealth(absl::OkStatus());
+  EXPECT_TRUE(AwaitHealth(channel, kServing));
+  EXPECT_TRUE(summary().ledger_health().writable());
+  EXPECT_EQ(summary().ledger_health().reason(), "");
+  (*server)->Shutdown(Duration::Seconds(1));
 }
 
 }  // namespace
