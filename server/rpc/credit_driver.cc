@@ -31,6 +31,18 @@ v1::DelayKernel KernelToProto(const DelayKernel& k) {
       p.mutable_empirical()->set_bin_width_ns(k.bin_width().nanos());
       for (double c : k.counts()) p.mutable_empirical()->add_counts(c);
       break;
+    case DelayKernel::Kind::kLognormal:
+      p.mutable_lognormal()->set_mu(k.mu());
+      p.mutable_lognormal()->set_sigma(k.sigma());
+      p.mutable_lognormal()->set_shift_ns(k.shift().nanos());
+      p.set_horizon_quantile(k.horizon_quantile());
+      break;
+    case DelayKernel::Kind::kExGaussian:
+      p.mutable_ex_gaussian()->set_mu_s(k.mu());
+      p.mutable_ex_gaussian()->set_sigma_s(k.sigma());
+      p.mutable_ex_gaussian()->set_tau_s(k.tau_seconds());
+      p.set_horizon_quantile(k.horizon_quantile());
+      break;
   }
   return p;
 }
@@ -58,6 +70,14 @@ absl::StatusOr<DelayKernel> KernelFromProto(const v1::DelayKernel& p) {
                                  Duration::Nanos(p.empirical().bin_width_ns()),
                                  {p.empirical().counts().begin(), p.empirical().counts().end()},
                                  &error);
+      break;
+    case v1::DelayKernel::kLognormal:
+      k = DelayKernel::Lognormal(p.lognormal().mu(), p.lognormal().sigma(),
+                                 Duration::Nanos(p.lognormal().shift_ns()), q, &error);
+      break;
+    case v1::DelayKernel::kExGaussian:
+      k = DelayKernel::ExGaussian(p.ex_gaussian().mu_s(), p.ex_gaussian().sigma_s(),
+                                  p.ex_gaussian().tau_s(), q, &error);
       break;
     case v1::DelayKernel::KIND_NOT_SET:
       error = "no kernel kind set";

@@ -19,6 +19,7 @@
 #include <vector>
 
 #include "server/core/delay_kernel.h"
+#include "server/rpc/credit_driver.h"
 #include "tests/rpc/test_server.h"
 
 namespace tickmark::testing {
@@ -679,6 +680,27 @@ TEST_F(CreditTest, ContiguousStepsAcrossAReconnectAreAllPlaced) {
     ADD_FAILURE() << "step " << u.step_sequence() << " rejected: " << u.reason();
   }
   EXPECT_EQ(c.labels.size(), 10u);
+}
+
+}  // namespace
+}  // namespace tickmark::testing
+
+namespace tickmark::testing {
+namespace {
+
+// The ledger keeps kernels as protos (KernelSetting, session default): every
+// kind must survive the trip, or a lognormal or ex-Gaussian kernel would be
+// stored as an empty proto and replay would credit with nothing.
+TEST(KernelProtoTest, EveryKindRoundTripsThroughTheProto) {
+  for (const char* text : {"uniform:0.2,4.0", "gamma:2,0.28,0.05", "exponential:2.5,0.1",
+                           "empirical:0.1,0.05,1,3,2", "lognormal:-0.6,0.45,0.05",
+                           "lognormal:-0.6,0.45,q=0.99", "exgauss:0.4,0.05,0.3"}) {
+    std::optional<DelayKernel> k = DelayKernel::Parse(text);
+    ASSERT_TRUE(k.has_value()) << text;
+    absl::StatusOr<DelayKernel> back = rpc::KernelFromProto(rpc::KernelToProto(*k));
+    ASSERT_TRUE(back.ok()) << text << ": " << back.status();
+    EXPECT_EQ(*back, *k) << text << " came back as " << back->Describe();
+  }
 }
 
 }  // namespace
