@@ -7,6 +7,7 @@ CommandTable::CommandTable(CLI::App* root, CommonFlags* common) : root_(root), c
 CLI::App* CommandTable::AddGroup(const std::string& name, const std::string& description) {
   CLI::App* group = root_->add_subcommand(name, description);
   group->require_subcommand(0, 1);
+  AddCommonFlags(*group, common_);
   return group;
 }
 

@@ -168,23 +168,42 @@ class Layout : public CLI::Formatter {
     return Wrap(text, kWidth - kColumn);
   }
 
+  std::string make_subcommand(const CLI::App* sub) const override {
+    std::stringstream out;
+    CLI::detail::format_help(out, sub->get_display_name(true),
+                             Wrap(sub->get_description(), kWidth - kColumn), kColumn);
+    return out.str();
+  }
+
+  std::string make_description(const CLI::App* app) const override {
+    const std::string text = app->get_description();
+    return text.empty() ? "" : Wrap(text, kWidth) + "\n";
+  }
+
  private:
-  // Breaks `text` at spaces into lines of at most `width` (longer words
-  // stay whole); CLI11 indents each new line to the description column.
+  // Breaks each line of `text` at spaces into lines of at most `width`
+  // (longer words stay whole); CLI11 indents each new line to the
+  // description column.
   static std::string Wrap(const std::string& text, size_t width) {
     std::string out;
-    size_t line = 0;
-    std::istringstream words(text);
-    for (std::string word; words >> word;) {
-      if (line > 0 && line + 1 + word.size() > width) {
-        out += '\n';
-        line = 0;
-      } else if (line > 0) {
-        out += ' ';
-        ++line;
+    std::istringstream lines(text);
+    bool first_line = true;
+    for (std::string paragraph; std::getline(lines, paragraph);) {
+      if (!first_line) out += '\n';
+      first_line = false;
+      size_t line = 0;
+      std::istringstream words(paragraph);
+      for (std::string word; words >> word;) {
+        if (line > 0 && line + 1 + word.size() > width) {
+          out += '\n';
+          line = 0;
+        } else if (line > 0) {
+          out += ' ';
+          ++line;
+        }
+        out += word;
+        line += word.size();
       }
-      out += word;
-      line += word.size();
     }
     return out;
   }
