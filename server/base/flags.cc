@@ -68,8 +68,8 @@ class TomlConfig : public CLI::Config {
         if (dashed != key && app_->get_option_no_throw("--" + dashed) != nullptr) {
           hint = " (did you mean '" + dashed + "'?)";
         }
-        throw CLI::ConfigError(where + ": unknown key '" + key + "'" + hint +
-                               "; keys are the long flag names of --help");
+        throw CLI::ConfigError(where + ": unknown key '" + key + "'" + hint + "; keys are " +
+                               app_->get_name() + "'s long flag names");
       }
       CLI::ConfigItem item;
       item.name = key;
@@ -312,6 +312,25 @@ std::optional<int> ParseCommandLine(CLI::App& app, int argc, char** argv) {
   const std::string program = ProgramName(app);
   std::cerr << program << ": " << text << " (see " << program << " --help)\n";
   return kExitUsage;
+}
+
+CLI::Validator Between(double lo, double hi) {
+  auto text = [](double v) {
+    char buf[32];
+    auto [end, ec] = std::to_chars(buf, buf + sizeof buf, v);
+    return std::string(buf, end);
+  };
+  const std::string range = "in [" + text(lo) + ", " + text(hi) + "]";
+  return CLI::Validator(
+      [lo, hi, range](std::string& input) {
+        double v = 0;
+        auto [end, ec] = std::from_chars(input.data(), input.data() + input.size(), v);
+        if (ec != std::errc() || end != input.data() + input.size()) {
+          return "'" + input + "' is not a number";
+        }
+        return v >= lo && v <= hi ? std::string() : input + " is not " + range;
+      },
+      range);
 }
 
 CLI::Option* AddTomlConfig(CLI::App& app, const std::string& help) {

@@ -56,6 +56,10 @@ std::optional<int> ParseCommandLine(CLI::App& app, int argc, char** argv);
 // Adds `--config FILE` (TOML; see the file comment). Call after ConfigureApp.
 CLI::Option* AddTomlConfig(CLI::App& app, const std::string& help);
 
+// Accepts a number in [lo, hi]; like CLI::Range, with the bounds written as
+// short as they are (1e+09, not 1000000000.000000).
+CLI::Validator Between(double lo, double hi);
+
 }  // namespace tickmark
 
 #endif  // TICKMARK_SERVER_BASE_FLAGS_H_

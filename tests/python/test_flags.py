@@ -28,7 +28,6 @@ def run(program, *args, timeout=30):
 def test_help_exits_zero_and_prints_usage(program):
     p = run(program, "--help")
     assert p.returncode == 0, p.stderr
-    assert p.stdout.startswith(p.stdout.split("\n")[0])
     assert "Usage:" in p.stdout and "--help" in p.stdout, p.stdout
 
 

@@ -51,7 +51,7 @@ CLI::Option* AddMillis(CLI::App& app, const std::string& name, Duration* field,
           help)
       ->type_name("MS")
       ->default_str("0")
-      ->check(CLI::Range(0.0, 1e9));
+      ->check(tickmark::Between(0, 1e9));
 }
 
 void PrintCounters(const le::LinkCounters& c) {
@@ -98,7 +98,7 @@ int main(int argc, char** argv) {
   app.add_option("--loss", loss,
                  "datagram loss probability, both directions (ignored for TCP)")
       ->type_name("P")
-      ->check(CLI::Range(0.0, 1.0));
+      ->check(tickmark::Between(0, 1));
   app.add_option("--seed", config.profile.seed, "seed of every random draw");
   app.add_flag("--allow-non-loopback", config.allow_non_loopback,
                "permit addresses other than loopback");
