@@ -2,7 +2,8 @@
 // group's file (or a new <group>_commands.cc listed in CMakeLists.txt and
 // declared here), register it with table.AddCommand, and give it its flags
 // on the CLI::App that returns; CallAdmin (connection.h) is the skeleton of a
-// one-call command.
+// one-call command. Each Add* registers into the table; call them from
+// main()'s thread, before parsing.
 #ifndef TICKMARK_CLIENTS_CLI_COMMANDS_H_
 #define TICKMARK_CLIENTS_CLI_COMMANDS_H_
 

@@ -7,17 +7,13 @@
 #include <signal.h>
 #include <unistd.h>
 
-#include <algorithm>
 #include <atomic>
 #include <chrono>
 #include <cstdio>
-#include <cstdlib>
 #include <iostream>
-#include <map>
 #include <mutex>
 #include <string>
 #include <thread>
-#include <vector>
 
 #include "clients/common/channel.h"
 #include "clients/common/client_id.h"
