@@ -382,7 +382,9 @@ std::string TtySource() {
 
 int Main(int argc, char** argv) {
   auto flags = ParseKeysFlags(std::vector<std::string>(argv + 1, argv + argc));
-  if (!flags.ok()) return Usage(std::string(flags.status().message()));
+  if (!flags.ok()) {
+    return Usage(std::string(flags.status().message()) + " (see " + kProgram + " --help)");
+  }
   KeyMap keymap = KeyMap::Defaults();
   if (flags->help) {
     std::cout << KeysUsage(keymap.Legend());
