@@ -1,61 +1,100 @@
 // tickmarkd: flags and config file -> TickmarkServer -> run until SIGINT or
 // SIGTERM. Nothing else lives here.
+//
+// Every flag is one line in AddServerFlags, bound straight to the field of
+// ServerOptions it sets; the field's initial value is the default shown in
+// --help, and the flag's long name is also its key in the --config file.
 #include <signal.h>
 
 #include <iostream>
 
-#include <toml++/toml.h>
-
 #include "server/base/flags.h"
 #include "server/base/log.h"
+#include "server/core/delay_kernel.h"
 #include "server/rpc/server.h"
 
 namespace {
+
+using tickmark::Duration;
 
 constexpr char kSafety[] =
     "Safety: tickmark is not a safety system. A robot trained or driven with it needs an\n"
     "independent emergency stop; studies with people need approval from your ethics board\n"
     "and participant data protection under local rules.";
 
-// Applies a TOML config file to options; command-line flags win.
-bool ApplyConfig(const std::string& path, const tickmark::FlagSet& flags,
-                 tickmark::rpc::ServerOptions* o, std::string* log_level, std::string* durability,
-                 std::string* default_kernel, int64_t* udp_probe_port) {
-  toml::table t;
-  try {
-    t = toml::parse_file(path);
-  } catch (const toml::parse_error& e) {
-    std::cerr << "tickmarkd: " << path << ": " << e.description() << " at line "
-              << e.source().begin.line << "\n";
-    return false;
-  }
-  auto str = [&](const char* key, const char* flag, std::string* out) {
-    if (auto v = t[key].value<std::string>(); v && !flags.WasSet(flag)) *out = *v;
-  };
-  str("listen", "listen", &o->listen);
-  str("data_dir", "data-dir", &o->data_dir);
-  str("ledger", "ledger", &o->ledger_path);
-  str("log_level", "log-level", log_level);
-  str("durability", "durability", durability);
-  str("tls_cert", "tls-cert", &o->tls_cert_file);
-  str("tls_key", "tls-key", &o->tls_key_file);
-  str("default_kernel", "default-kernel", default_kernel);
-  if (auto v = t["probes"]["burst"].value<int64_t>(); v && !flags.WasSet("probe-burst")) {
-    o->live.probe_burst = static_cast<int>(*v);
-  }
-  if (auto v = t["probes"]["interval_ms"].value<int64_t>(); v && !flags.WasSet("probe-interval-ms")) {
-    o->live.probe_interval = tickmark::Duration::Millis(*v);
-  }
-  if (auto v = t["udp_probe_port"].value<int64_t>(); v && !flags.WasSet("udp-probe-port")) {
-    *udp_probe_port = *v;
-  }
-  if (auto v = t["limits"]["max_state_bytes"].value<int64_t>(); v && !flags.WasSet("max-state-bytes")) {
-    o->live.limits.max_state_bytes = static_cast<uint32_t>(*v);
-  }
-  if (auto v = t["limits"]["max_event_age_s"].value<int64_t>(); v && !flags.WasSet("max-event-age-s")) {
-    o->live.limits.max_event_age = tickmark::Duration::Seconds(*v);
-  }
-  return true;
+// A flag holding a whole number of `unit` (Duration::Millis or ::Seconds)
+// in [lo, hi], stored as a Duration.
+CLI::Option* AddDuration(CLI::App& app, const std::string& name, Duration* field,
+                         Duration (*unit)(int64_t), int64_t lo, int64_t hi,
+                         const std::string& help) {
+  const int64_t per_unit = unit(1).nanos();
+  return app
+      .add_option_function<int64_t>(
+          name, [field, unit](const int64_t& v) { *field = unit(v); }, help)
+      ->default_str(std::to_string(field->nanos() / per_unit))
+      ->check(CLI::Range(lo, hi));
+}
+
+// Accepts a delay kernel's text form; the message names what is wrong.
+CLI::Validator KernelText() {
+  return CLI::Validator(
+      [](std::string& text) {
+        std::string error;
+        return tickmark::DelayKernel::Parse(text, &error) ? std::string() : error;
+      },
+      "");
+}
+
+void AddServerFlags(CLI::App& app, tickmark::rpc::ServerOptions& o, std::string& log_level) {
+  app.add_option("--listen", o.listen, "HOST:PORT for gRPC (port 0 picks a free port)");
+  app.add_option("--data-dir", o.data_dir, "folder for tickmark.db and operator.token");
+  app.add_option("--ledger", o.ledger_path, "ledger file (default DATA_DIR/tickmark.db)");
+  app.add_option("--log-level", log_level, "debug, info, warning or error")
+      ->check(CLI::IsMember({"debug", "info", "warning", "error"}));
+  app.add_option_function<std::string>(
+         "--durability", [&o](const std::string& v) { o.durable_power_loss = v == "power"; },
+         "'process': acknowledged records survive the server being killed (SQLite WAL, "
+         "synchronous=NORMAL); 'power': also power loss (synchronous=FULL, slower)")
+      ->check(CLI::IsMember({"process", "power"}))
+      ->default_str(o.durable_power_loss ? "power" : "process");
+  CLI::Option* cert =
+      app.add_option("--tls-cert", o.tls_cert_file, "PEM certificate chain for TLS");
+  CLI::Option* key = app.add_option("--tls-key", o.tls_key_file, "PEM private key for TLS");
+  cert->needs(key);
+  key->needs(cert);
+  app.add_flag("--allow-insecure-remote", o.allow_insecure_remote,
+               "allow plaintext on a non-loopback address (trusted networks only)");
+  app.add_option("--probe-burst", o.live.probe_burst,
+                 "clock probes sent right after a client connects")
+      ->check(CLI::Range(1, 1000));
+  AddDuration(app, "--probe-interval-ms", &o.live.probe_interval, Duration::Millis, 10,
+              3'600'000, "clock probe period afterwards");
+  app.add_option_function<int>(
+         "--udp-probe-port",
+         [&o](const int& port) {
+           o.udp_probe = port != 0;
+           o.udp_probe_port = static_cast<uint16_t>(port);
+         },
+         "UDP port on the --listen host where clients may start their own clock probes, "
+         "for LAN-grade timing (0: off; see DEVELOPERS.md, UDP probe port)")
+      ->default_str("0")
+      ->check(CLI::Range(0, 65535));
+  app.add_option("--max-state-bytes", o.live.limits.max_state_bytes,
+                 "largest step state payload accepted")
+      ->check(CLI::Range(uint32_t{1}, uint32_t{64} << 20));
+  AddDuration(app, "--max-event-age-s", &o.live.limits.max_event_age, Duration::Seconds, 1,
+              31'536'000, "oldest event time accepted, in seconds before arrival");
+  app.add_option_function<std::string>(
+         "--default-kernel",
+         [&o](const std::string& v) { o.sessions.default_kernel = *tickmark::DelayKernel::Parse(v); },
+         "delay kernel of sessions that name none (uniform:MIN,MAX, gamma:SHAPE,SCALE[,SHIFT], "
+         "exponential:RATE[,SHIFT]; seconds)")
+      ->type_name("KERNEL")
+      ->default_str("uniform:0.2,4.0")
+      ->check(KernelText());
+  AddDuration(app, "--allowed-lateness-ms", &o.sessions.allowed_lateness, Duration::Millis, 0,
+              3'600'000,
+              "how late a record may arrive and still be credited; fixed per session at creation");
 }
 
 }  // namespace
@@ -63,105 +102,20 @@ bool ApplyConfig(const std::string& path, const tickmark::FlagSet& flags,
 int main(int argc, char** argv) {
   tickmark::SetLogTag("tickmarkd");
   tickmark::rpc::ServerOptions options;
-  std::string config, log_level = "info", durability = "process";
-  int64_t probe_burst = options.live.probe_burst;
-  int64_t probe_interval_ms = options.live.probe_interval.nanos() / 1'000'000;
-  int64_t max_state_bytes = options.live.limits.max_state_bytes;
-  int64_t max_event_age_s = options.live.limits.max_event_age.nanos() / 1'000'000'000;
-  bool allow_insecure_remote = false;
-  int64_t udp_probe_port = 0;
-  std::string default_kernel = "uniform:0.2,4.0";
-  int64_t allowed_lateness_ms = options.sessions.allowed_lateness.nanos() / 1'000'000;
-
-  tickmark::FlagSet flags(
-      "tickmarkd",
+  std::string log_level = "info";
+  CLI::App app(
       "The tickmark server: takes feedback from trainers and steps from agents over gRPC,\n"
-      "times them on one session timeline and keeps everything in a ledger (SQLite).");
-  flags.String("listen", &options.listen, "HOST:PORT for gRPC (port 0 picks a free port)");
-  flags.String("data-dir", &options.data_dir, "folder for tickmark.db and operator.token");
-  flags.String("ledger", &options.ledger_path, "ledger file (default DATA_DIR/tickmark.db)");
-  flags.String("config", &config, "TOML config file (flags given here win)");
-  flags.String("log-level", &log_level, "debug, info, warning or error");
-  flags.String("durability", &durability,
-               "'process': acknowledged records survive the server being killed (SQLite WAL, "
-               "synchronous=NORMAL); 'power': also power loss (synchronous=FULL, slower)");
-  flags.String("tls-cert", &options.tls_cert_file, "PEM certificate chain for TLS");
-  flags.String("tls-key", &options.tls_key_file, "PEM private key for TLS");
-  flags.Bool("allow-insecure-remote", &allow_insecure_remote,
-             "allow plaintext on a non-loopback address (trusted networks only)");
-  flags.Int("probe-burst", &probe_burst, "clock probes sent right after a client connects");
-  flags.Int("probe-interval-ms", &probe_interval_ms, "clock probe period afterwards");
-  flags.Int("udp-probe-port", &udp_probe_port,
-            "UDP port on the --listen host where clients may start their own clock probes, "
-            "for LAN-grade timing (0: off; see DEVELOPERS.md, UDP probe port)");
-  flags.Int("max-state-bytes", &max_state_bytes, "largest step state payload accepted");
-  flags.Int("max-event-age-s", &max_event_age_s,
-            "oldest event time accepted, in seconds before arrival");
-  flags.String("default-kernel", &default_kernel,
-               "delay kernel of sessions that name none (uniform:MIN,MAX, gamma:SHAPE,SCALE[,SHIFT], "
-               "exponential:RATE[,SHIFT]; seconds)");
-  flags.Int("allowed-lateness-ms", &allowed_lateness_ms,
-            "how late a record may arrive and still be credited; fixed per session at creation");
-  flags.Epilog(std::string("The operator token (for the tickmark CLI) is written to\n"
-                           "DATA_DIR/operator.token on first start.\n\n") +
-               kSafety);
-  if (auto r = flags.Parse(argc, argv); r != tickmark::FlagSet::kOk) {
-    return r == tickmark::FlagSet::kHelp ? 0 : 2;
-  }
-  if (!flags.args().empty()) {
-    std::cerr << "tickmarkd: unexpected argument '" << flags.args()[0] << "' (see --help)\n";
-    return 2;
-  }
-  if (!config.empty() && !ApplyConfig(config, flags, &options, &log_level, &durability,
-                                      &default_kernel, &udp_probe_port)) {
-    return 2;
-  }
-  if (udp_probe_port < 0 || udp_probe_port > 65535) {
-    std::cerr << "tickmarkd: --udp-probe-port must be 0..65535\n";
-    return 2;
-  }
-  options.udp_probe = udp_probe_port != 0;
-  options.udp_probe_port = static_cast<uint16_t>(udp_probe_port);
-  if (flags.WasSet("probe-burst")) options.live.probe_burst = static_cast<int>(probe_burst);
-  if (flags.WasSet("probe-interval-ms")) {
-    options.live.probe_interval = tickmark::Duration::Millis(probe_interval_ms);
-  }
-  if (flags.WasSet("max-state-bytes")) {
-    options.live.limits.max_state_bytes = static_cast<uint32_t>(max_state_bytes);
-  }
-  if (flags.WasSet("max-event-age-s")) {
-    options.live.limits.max_event_age = tickmark::Duration::Seconds(max_event_age_s);
-  }
-  options.allow_insecure_remote = allow_insecure_remote;
-  {
-    std::string error;
-    auto kernel = tickmark::DelayKernel::Parse(default_kernel, &error);
-    if (!kernel) {
-      std::cerr << "tickmarkd: --default-kernel: " << error << "\n";
-      return 2;
-    }
-    options.sessions.default_kernel = *kernel;
-  }
-  if (allowed_lateness_ms < 0 || allowed_lateness_ms > 3'600'000) {
-    std::cerr << "tickmarkd: --allowed-lateness-ms must be 0..3600000\n";
-    return 2;
-  }
-  options.sessions.allowed_lateness = tickmark::Duration::Millis(allowed_lateness_ms);
-  auto level = tickmark::ParseLogLevel(log_level);
-  if (!level) {
-    std::cerr << "tickmarkd: --log-level must be debug, info, warning or error\n";
-    return 2;
-  }
-  tickmark::SetLogLevel(*level);
-  if (durability != "process" && durability != "power") {
-    std::cerr << "tickmarkd: --durability must be 'process' or 'power'\n";
-    return 2;
-  }
-  options.durable_power_loss = durability == "power";
-  if (options.live.probe_burst < 1 || options.live.probe_interval < tickmark::Duration::Millis(10)) {
-    std::cerr << "tickmarkd: --probe-burst must be >= 1 and --probe-interval-ms >= 10\n";
-    return 2;
-  }
+      "times them on one session timeline and keeps everything in a ledger (SQLite).",
+      "tickmarkd");
+  tickmark::ConfigureApp(app, std::string("The operator token (for the tickmark CLI) is written to\n"
+                                          "DATA_DIR/operator.token on first start.\n\n") +
+                                  kSafety);
+  tickmark::AddTomlConfig(app,
+                          "TOML config file: keys are the long flag names (listen = "
+                          "\"0.0.0.0:7461\"); flags given here win");
+  AddServerFlags(app, options, log_level);
+  if (auto exit = tickmark::ParseCommandLine(app, argc, argv)) return *exit;
+  tickmark::SetLogLevel(*tickmark::ParseLogLevel(log_level));
 
   // Signals are taken synchronously by one thread, so every other thread
   // (gRPC's, the ledger's) must start with them blocked.

@@ -1,8 +1,10 @@
 #include "clients/cli/jsonl.h"
 
+#include <charconv>
 #include <cmath>
 #include <cstdio>
 
+#include "absl/strings/escaping.h"
 #include <google/protobuf/descriptor.h>
 #include <google/protobuf/reflection.h>
 
@@ -35,42 +37,18 @@ void AppendString(std::string* out, const std::string& s) {
   *out += '"';
 }
 
-void AppendDouble(std::string* out, double v) {
+// The shortest text that reads back as the same value of its own type
+// (std::to_chars without a precision), so a float 0.1f is written 0.1, not
+// 0.10000000149011612 (its value widened to double).
+template <typename T>
+void AppendNumber(std::string* out, T v) {
   if (!std::isfinite(v)) {
     *out += "null";  // JSON has no NaN/Inf; the server never stores them
     return;
   }
-  char buf[32];
-  std::snprintf(buf, sizeof buf, "%.17g", v);
-  *out += buf;
-}
-
-std::string Base64(const std::string& in) {
-  static constexpr char kAlphabet[] =
-      "ABCDEFGHIJKLMNOPQRSTUVWXYZabcdefghijklmnopqrstuvwxyz0123456789+/";
-  std::string out;
-  size_t i = 0;
-  for (; i + 2 < in.size(); i += 3) {
-    uint32_t n = (uint32_t(uint8_t(in[i])) << 16) | (uint32_t(uint8_t(in[i + 1])) << 8) |
-                 uint8_t(in[i + 2]);
-    out += kAlphabet[n >> 18];
-    out += kAlphabet[(n >> 12) & 63];
-    out += kAlphabet[(n >> 6) & 63];
-    out += kAlphabet[n & 63];
-  }
-  if (i + 1 == in.size()) {
-    uint32_t n = uint32_t(uint8_t(in[i])) << 16;
-    out += kAlphabet[n >> 18];
-    out += kAlphabet[(n >> 12) & 63];
-    out += "==";
-  } else if (i + 2 == in.size()) {
-    uint32_t n = (uint32_t(uint8_t(in[i])) << 16) | (uint32_t(uint8_t(in[i + 1])) << 8);
-    out += kAlphabet[n >> 18];
-    out += kAlphabet[(n >> 12) & 63];
-    out += kAlphabet[(n >> 6) & 63];
-    out += '=';
-  }
-  return out;
+  char buf[64];
+  auto [end, ec] = std::to_chars(buf, buf + sizeof buf, v);
+  out->append(buf, end);
 }
 
 std::string EnumName(const google::protobuf::EnumValueDescriptor* v) {
@@ -111,10 +89,10 @@ void AppendValue(std::string* out, const Message& m, const Reflection* r, const 
       *out += std::to_string(rep ? r->GetRepeatedUInt64(m, f, index) : r->GetUInt64(m, f));
       break;
     case FieldDescriptor::CPPTYPE_DOUBLE:
-      AppendDouble(out, rep ? r->GetRepeatedDouble(m, f, index) : r->GetDouble(m, f));
+      AppendNumber(out, rep ? r->GetRepeatedDouble(m, f, index) : r->GetDouble(m, f));
       break;
     case FieldDescriptor::CPPTYPE_FLOAT:
-      AppendDouble(out, rep ? r->GetRepeatedFloat(m, f, index) : r->GetFloat(m, f));
+      AppendNumber(out, rep ? r->GetRepeatedFloat(m, f, index) : r->GetFloat(m, f));
       break;
     case FieldDescriptor::CPPTYPE_BOOL:
       *out += (rep ? r->GetRepeatedBool(m, f, index) : r->GetBool(m, f)) ? "true" : "false";
@@ -124,7 +102,7 @@ void AppendValue(std::string* out, const Message& m, const Reflection* r, const 
       break;
     case FieldDescriptor::CPPTYPE_STRING: {
       std::string s = rep ? r->GetRepeatedString(m, f, index) : r->GetString(m, f);
-      AppendString(out, f->type() == FieldDescriptor::TYPE_BYTES ? Base64(s) : s);
+      AppendString(out, f->type() == FieldDescriptor::TYPE_BYTES ? absl::Base64Escape(s) : s);
       break;
     }
     case FieldDescriptor::CPPTYPE_MESSAGE:
@@ -134,12 +112,15 @@ void AppendValue(std::string* out, const Message& m, const Reflection* r, const 
 }
 
 // Writes the fields of m as `"name":value` pairs (no braces), every field
-// including defaults, so every line of one kind has the same columns.
+// including defaults, so every line of one kind has the same columns; of a
+// oneof only the member in force is written (a kernel setting names one
+// kernel, not every kind with zeros).
 void AppendFields(std::string* out, const Message& m, bool* first) {
   const Reflection* r = m.GetReflection();
   const auto* d = m.GetDescriptor();
   for (int i = 0; i < d->field_count(); ++i) {
     const FieldDescriptor* f = d->field(i);
+    if (f->real_containing_oneof() != nullptr && !r->HasField(m, f)) continue;
     if (!*first) *out += ',';
     *first = false;
     AppendString(out, f->name());
@@ -162,16 +143,6 @@ void AppendMessage(std::string* out, const Message& m) {
   bool first = true;
   AppendFields(out, m, &first);
   *out += '}';
-}
-
-std::string Hex(const std::string& bytes) {
-  static constexpr char kHex[] = "0123456789abcdef";
-  std::string out;
-  for (unsigned char c : bytes) {
-    out += kHex[c >> 4];
-    out += kHex[c & 15];
-  }
-  return out;
 }
 
 }  // namespace
@@ -199,7 +170,7 @@ std::string RecordToJsonLine(const tickmark::v1::Record& record) {
   out += ",\"session_ns\":" + std::to_string(RecordSessionNs(record));
   out += ",\"written_session_ns\":" + std::to_string(record.written_session_ns());
   out += ",\"hash\":";
-  AppendString(&out, Hex(record.hash()));
+  AppendString(&out, absl::BytesToHexString(record.hash()));
   if (body != nullptr) {
     bool first = true;
     out += ',';

@@ -10,43 +10,42 @@
 #include <thread>
 
 #include "clients/common/channel.h"
+#include "clients/common/connection_flags.h"
 #include "clients/common/stream_client.h"
 #include "clients/common/token.h"
 #include "server/base/flags.h"
 
 int main(int argc, char** argv) {
-  std::string server = "127.0.0.1:7461", token_file, client_id = "scripted-rover";
+  tickmark::client::ConnectionFlags connection;
+  connection.client_id = "scripted-rover";
   int64_t seconds = 5, steps_per_second = 5, seed = 1;
-  tickmark::FlagSet flags("tickmark-scripted-agent",
-                          "A rover that wanders a 10x10 floor and publishes its steps (no learning).");
-  flags.String("server", &server, "tickmarkd address");
-  flags.String("token-file", &token_file, "agent token file (or TICKMARK_TOKEN)");
-  flags.String("client-id", &client_id, "stable client id");
-  flags.Int("seconds", &seconds, "how long to run");
-  flags.Int("rate", &steps_per_second, "steps per second");
-  flags.Int("seed", &seed, "random seed");
-  if (auto r = flags.Parse(argc, argv); r != tickmark::FlagSet::kOk) {
-    return r == tickmark::FlagSet::kHelp ? 0 : 2;
-  }
-  if (steps_per_second < 1 || steps_per_second > 1000 || seconds < 0) {
-    std::cerr << "tickmark-scripted-agent: --rate must be 1..1000 and --seconds >= 0\n";
-    return 2;
-  }
-  auto token = tickmark::client::ReadToken({token_file, ""});
+  CLI::App app("A rover that wanders a 10x10 floor and publishes its steps (no learning).",
+               "tickmark-scripted-agent");
+  tickmark::ConfigureApp(app);
+  tickmark::client::AddConnectionFlags(app, &connection);
+  app.add_option("--seconds", seconds, "how long to run")->check(CLI::Range(int64_t{0}, int64_t{86400}));
+  app.add_option("--rate", steps_per_second, "steps per second")
+      ->check(CLI::Range(int64_t{1}, int64_t{1000}));
+  app.add_option("--seed", seed, "random seed");
+  if (auto exit = tickmark::ParseCommandLine(app, argc, argv)) return *exit;
+  auto token = tickmark::client::ReadToken(connection.token);
   if (!token.ok()) {
     std::cerr << "tickmark-scripted-agent: " << token.status().message() << "\n";
     return 2;
   }
-  auto creds = tickmark::client::ChooseCredentials({server, false, ""});
+  for (const std::string& w : token->warnings) {
+    std::cerr << "tickmark-scripted-agent: warning: " << w << "\n";
+  }
+  auto creds = tickmark::client::ChooseCredentials(connection.channel);
   if (!creds.ok()) {
     std::cerr << "tickmark-scripted-agent: " << creds.status().message() << "\n";
     return 2;
   }
   tickmark::client::AgentClient agent;
   tickmark::client::StreamOptions o;
-  o.target = server;
+  o.target = connection.channel.target;
   o.token = token->value;
-  o.client_id = client_id;
+  o.client_id = connection.client_id;
   o.source = {tickmark::v1::SOURCE_KIND_SCRIPT, "scripted dock rover", "tickmark-scripted-agent"};
   o.credentials = creds->credentials;
   if (auto s = agent.Connect(o); !s.ok()) {

@@ -1,4 +1,5 @@
-// Command-line flags of tickmark-keys, and its --help text.
+// Command-line flags of tickmark-keys, and its --help text (CLI11, with the
+// connection flags every client shares).
 // Parsing only; no I/O. Thread-compatible.
 #ifndef TICKMARK_CLIENTS_KEYS_KEYS_FLAGS_H_
 #define TICKMARK_CLIENTS_KEYS_KEYS_FLAGS_H_
@@ -7,25 +8,19 @@
 #include <vector>
 
 #include "absl/status/statusor.h"
+#include "clients/common/connection_flags.h"
 
 namespace tickmark::keys {
 
-inline constexpr char kDefaultServer[] = "127.0.0.1:7461";
-
 struct KeysFlags {
-  std::string server = kDefaultServer;
-  std::string token_file;
-  std::string token;  // --token: accepted with a warning
-  std::string client_id;
+  client::ConnectionFlags connection;  // --server, --token-file, ... (shared)
   std::string profile;
   bool stdin_lines = false;
   double flush_timeout_s = 10.0;
-  bool insecure = false;
-  std::string ca_file;
   bool quiet = false;
-  bool help = false;
+  bool help = false;  // --help was given: print KeysUsage and exit
   // Input devices (evdev).
-  std::string device;             // --device PATH|NAME|VENDOR:PRODUCT
+  std::string device;                    // --device PATH|NAME|VENDOR:PRODUCT
   std::string input_dir = "/dev/input";  // --input-dir: where names are looked up
   bool list_devices = false;
   bool grab = false;

@@ -382,7 +382,9 @@ std::string TtySource() {
 
 int Main(int argc, char** argv) {
   auto flags = ParseKeysFlags(std::vector<std::string>(argv + 1, argv + argc));
-  if (!flags.ok()) return Usage(std::string(flags.status().message()));
+  if (!flags.ok()) {
+    return Usage(std::string(flags.status().message()) + " (see " + kProgram + " --help)");
+  }
   KeyMap keymap = KeyMap::Defaults();
   if (flags->help) {
     std::cout << KeysUsage(keymap.Legend());
@@ -406,7 +408,7 @@ int Main(int argc, char** argv) {
     if (!loaded.ok()) return Usage(std::string(loaded.status().message()));
     keymap = *std::move(loaded);
   }
-  auto token = client::ReadToken({flags->token_file, flags->token});
+  auto token = client::ReadToken(flags->connection.token);
   if (!token.ok()) return Usage(std::string(token.status().message()));
   for (const std::string& w : token->warnings) {
     std::cerr << kProgram << ": warning: " << w << "\n";
@@ -424,7 +426,7 @@ int Main(int argc, char** argv) {
   // Before anything starts a thread (creating gRPC credentials starts gRPC's
   // executor threads), so that only the SignalWatcher receives them.
   if (interactive) BlockTerminalSignals();
-  auto channel = client::ChooseCredentials({flags->server, flags->insecure, flags->ca_file});
+  auto channel = client::ChooseCredentials(flags->connection.channel);
   if (!channel.ok()) return Usage(std::string(channel.status().message()));
   std::string source = interactive ? TtySource() : "stdin";
   if (device_mode) {
@@ -432,15 +434,15 @@ int Main(int argc, char** argv) {
     source = flags->device;
     if (size_t slash = source.rfind('/'); slash != std::string::npos) source = source.substr(slash + 1);
   }
-  const std::string client_id = flags->client_id.empty()
+  const std::string client_id = flags->connection.client_id.empty()
                                     ? client::DefaultClientId(kProgram, source)
-                                    : flags->client_id;
+                                    : flags->connection.client_id;
   if (absl::Status s = client::ValidateClientId(client_id); !s.ok()) {
     return Usage(std::string(s.message()));
   }
 
   client::StreamOptions options;
-  options.target = flags->server;
+  options.target = flags->connection.channel.target;
   options.token = token->value;
   options.client_id = client_id;
   options.source.kind = device_mode   ? tickmark::v1::SOURCE_KIND_INPUT_DEVICE

@@ -7,24 +7,22 @@
 #include <signal.h>
 #include <unistd.h>
 
-#include <algorithm>
 #include <atomic>
 #include <chrono>
 #include <cstdio>
-#include <cstdlib>
 #include <iostream>
-#include <map>
 #include <mutex>
 #include <string>
 #include <thread>
-#include <vector>
 
 #include "clients/common/channel.h"
 #include "clients/common/client_id.h"
+#include "clients/common/connection_flags.h"
 #include "clients/common/monotonic_clock.h"
 #include "clients/common/stream_client.h"
 #include "clients/common/token.h"
 #include "clients/serial/serial_source.h"
+#include "server/base/flags.h"
 
 #ifndef TICKMARK_VERSION
 #define TICKMARK_VERSION "dev"
@@ -34,39 +32,12 @@ namespace tickmark::serial {
 namespace {
 
 constexpr char kProgram[] = "tickmark-serial";
-constexpr char kDefaultServer[] = "127.0.0.1:7461";
+constexpr char kDescription[] =
+    "tickmark-serial: send approve/disapprove feedback from a serial response\n"
+    "box to a tickmark session (a trainer source).";
 
-constexpr char kUsage[] =
-    R"usage(tickmark-serial: send approve/disapprove feedback from a serial response
-box to a tickmark session (a trainer source).
-
-Usage: tickmark-serial --port PATH --profile FILE [flags]
-
-Box
-  --port PATH          serial device (/dev/ttyUSB0, /dev/ttyACM0, a pty).
-                       Unplugging is survived: the port is reopened when it
-                       comes back.
-  --profile FILE       TOML: a [serial] table and [[binding]]s mapping box
-                       buttons to values; see clients/serial/profiles/
-                       (line-box.toml, raw-box.toml).
-  --protocol P         line | raw (overrides the profile).
-  --baud N             bits per second (profile, else 115200).
-  --parity P           none | even | odd.
-  --stop-bits S        1 | 1.5 | 2.
-  --data-bits N        5..8.
-  --no-box-clock       ignore the box's own timestamps; use receive times.
-
-Connection
-  --server HOST:PORT   tickmarkd address (default 127.0.0.1:7461)
-  --token-file PATH    file holding your trainer token; else TICKMARK_TOKEN.
-  --token TOKEN        accepted, with a warning: argv is visible in ps.
-  --client-id ID       stable id (default host:user:tickmark-serial:<port>).
-  --ca-file PATH       TLS, trusting the CA certificates in PATH.
-  --insecure           allow plaintext to a non-loopback host.
-  --flush-timeout S    seconds to wait for acknowledgements at exit (10).
-  --quiet              print only errors.
-  --verbose            one line per event; at exit the timing report.
-  --help               this text.
+constexpr char kFooter[] =
+    R"usage(--client-id defaults to host:user:tickmark-serial:<port>.
 
 Timing: a line "B1 down 123456" carries the box's clock (µs). That clock is
 not the host's, so it is mapped to the host's CLOCK_MONOTONIC (the clock
@@ -83,6 +54,60 @@ tickmark is not a safety system: a robot trained with it needs an
 independent emergency stop. Studies with people need ethics-board approval.
 )usage";
 
+// The box's port settings given on the command line; each overrides the
+// profile's when given.
+struct BoxFlags {
+  std::string port;
+  std::string profile;
+  CLI::Option* protocol = nullptr;
+  std::string protocol_value;
+  CLI::Option* baud = nullptr;
+  unsigned baud_value = 0;
+  CLI::Option* parity = nullptr;
+  std::string parity_value;
+  CLI::Option* stop_bits = nullptr;
+  std::string stop_bits_value;
+  CLI::Option* data_bits = nullptr;
+  unsigned data_bits_value = 0;
+  bool no_box_clock = false;
+};
+
+void DefineBoxFlags(CLI::App& app, BoxFlags* b) {
+  const std::string box = "Box";
+  app.add_option("--port", b->port,
+                 "serial device (/dev/ttyUSB0, /dev/ttyACM0, a pty); unplugging is survived: "
+                 "the port is reopened when it comes back")
+      ->type_name("PATH")
+      ->required()
+      ->group(box);
+  app.add_option("--profile", b->profile,
+                 "TOML: a [serial] table and [[binding]]s mapping box buttons to values; see "
+                 "clients/serial/profiles/ (line-box.toml, raw-box.toml)")
+      ->type_name("FILE")
+      ->required()
+      ->group(box);
+  b->protocol = app.add_option("--protocol", b->protocol_value, "line or raw; must match the profile's")
+                    ->check(CLI::IsMember({"line", "raw"}))
+                    ->group(box);
+  b->baud = app.add_option("--baud", b->baud_value, "bits per second (default: the profile's, else 115200)")
+                ->default_str("")
+                ->check(CLI::Range(50u, 4'000'000u))
+                ->group(box);
+  b->parity = app.add_option("--parity", b->parity_value, "parity (default: the profile's)")
+                  ->check(CLI::IsMember({"none", "even", "odd"}))
+                  ->group(box);
+  b->stop_bits = app.add_option("--stop-bits", b->stop_bits_value, "stop bits (default: the profile's)")
+                     ->check(CLI::IsMember({"1", "1.5", "2"}))
+                     ->group(box);
+  b->data_bits = app.add_option("--data-bits", b->data_bits_value, "data bits (default: the profile's)")
+                     ->default_str("")
+                     ->check(CLI::Range(5u, 8u))
+                     ->group(box);
+  app.add_flag("--no-box-clock", b->no_box_clock,
+               "ignore the box's own timestamps; use receive times")
+      ->group(box);
+}
+
 int Usage(const std::string& message) {
   std::cerr << kProgram << ": " << message << "\n";
   return 2;
@@ -95,79 +120,39 @@ std::chrono::steady_clock::time_point After(double s) {
 }
 
 int Main(int argc, char** argv) {
-  std::map<std::string, std::string> v = {{"--server", kDefaultServer}};
-  std::map<std::string, bool> b;
-  const std::vector<std::string> with_value = {
-      "--port", "--profile", "--protocol", "--baud", "--parity", "--stop-bits", "--data-bits",
-      "--server", "--token-file", "--token", "--client-id", "--ca-file", "--flush-timeout"};
-  const std::vector<std::string> switches = {"--no-box-clock", "--insecure", "--quiet",
-                                             "--verbose", "--help", "-h"};
-  for (int i = 1; i < argc; ++i) {
-    std::string a = argv[i];
-    std::string val;
-    bool has = false;
-    if (size_t eq = a.find('='); eq != std::string::npos && a.rfind("--", 0) == 0) {
-      val = a.substr(eq + 1);
-      a = a.substr(0, eq);
-      has = true;
-    }
-    if (std::find(switches.begin(), switches.end(), a) != switches.end() && !has) {
-      b[a] = true;
-    } else if (std::find(with_value.begin(), with_value.end(), a) != with_value.end()) {
-      if (!has) {
-        if (i + 1 >= argc) return Usage(a + " needs a value");
-        val = argv[++i];
-      }
-      if (val.empty()) return Usage(a + " needs a non-empty value");
-      v[a] = val;
-    } else {
-      return Usage("unknown argument \"" + std::string(argv[i]) + "\" (see --help)");
-    }
-  }
-  if (b["--help"] || b["-h"]) {
-    std::cout << kUsage;
-    return 0;
-  }
-  if (v["--port"].empty()) return Usage("--port is required (see --help)");
-  if (v["--profile"].empty()) return Usage("--profile is required (see clients/serial/profiles/)");
-  auto profile = LoadSerialProfile(v["--profile"]);
+  BoxFlags box;
+  client::ConnectionFlags connection;
+  double flush_timeout_s = 10;
+  bool quiet = false;
+  bool verbose = false;
+  CLI::App app(kDescription, kProgram);
+  ConfigureApp(app, kFooter);
+  DefineBoxFlags(app, &box);
+  client::AddConnectionFlags(app, &connection);
+  const std::string output = "Output";
+  client::AddFlushTimeoutFlag(app, &flush_timeout_s)->group(output);
+  app.add_flag("--quiet", quiet, "print only errors")->group(output);
+  app.add_flag("--verbose", verbose, "one line per event; at exit the timing report")
+      ->group(output);
+  if (auto exit = ParseCommandLine(app, argc, argv)) return *exit;
+
+  auto profile = LoadSerialProfile(box.profile);
   if (!profile.ok()) return Usage(std::string(profile.status().message()));
   PortSettings& ps = profile->settings;
-  if (v.count("--protocol")) {
-    if (v["--protocol"] != "line" && v["--protocol"] != "raw") return Usage("--protocol: line or raw");
-    const auto wanted = v["--protocol"] == "raw" ? PortSettings::Protocol::kRaw
-                                                 : PortSettings::Protocol::kLine;
+  if (box.protocol->count() > 0) {
+    const auto wanted = box.protocol_value == "raw" ? PortSettings::Protocol::kRaw
+                                                    : PortSettings::Protocol::kLine;
     if (wanted != ps.protocol) {
       return Usage("--protocol differs from the profile's; its button names would not fit");
     }
   }
-  auto number = [&](const std::string& flag, long lo, long hi, unsigned* out) -> bool {
-    if (!v.count(flag)) return true;
-    char* end = nullptr;
-    const long n = std::strtol(v[flag].c_str(), &end, 10);
-    if (*end != '\0' || n < lo || n > hi) return false;
-    *out = static_cast<unsigned>(n);
-    return true;
-  };
-  if (!number("--baud", 50, 4'000'000, &ps.baud)) return Usage("--baud: 50..4000000");
-  if (!number("--data-bits", 5, 8, &ps.data_bits)) return Usage("--data-bits: 5..8");
-  if (v.count("--parity")) {
-    if (v["--parity"] != "none" && v["--parity"] != "even" && v["--parity"] != "odd") {
-      return Usage("--parity: none, even or odd");
-    }
-    ps.parity = v["--parity"];
-  }
-  if (v.count("--stop-bits")) {
-    if (v["--stop-bits"] != "1" && v["--stop-bits"] != "1.5" && v["--stop-bits"] != "2") {
-      return Usage("--stop-bits: 1, 1.5 or 2");
-    }
-    ps.stop_bits = v["--stop-bits"];
-  }
-  if (b["--no-box-clock"]) ps.box_clock = false;
-  double flush_timeout_s = 10;
-  if (v.count("--flush-timeout")) flush_timeout_s = std::atof(v["--flush-timeout"].c_str());
+  if (box.baud->count() > 0) ps.baud = box.baud_value;
+  if (box.data_bits->count() > 0) ps.data_bits = box.data_bits_value;
+  if (box.parity->count() > 0) ps.parity = box.parity_value;
+  if (box.stop_bits->count() > 0) ps.stop_bits = box.stop_bits_value;
+  if (box.no_box_clock) ps.box_clock = false;
 
-  auto token = client::ReadToken({v["--token-file"], v["--token"]});
+  auto token = client::ReadToken(connection.token);
   if (!token.ok()) return Usage(std::string(token.status().message()));
   for (const std::string& w : token->warnings) std::cerr << kProgram << ": warning: " << w << "\n";
 
@@ -177,20 +162,20 @@ int Main(int argc, char** argv) {
   for (int sig : {SIGINT, SIGTERM, SIGHUP, SIGUSR1}) sigaddset(&set, sig);
   pthread_sigmask(SIG_BLOCK, &set, nullptr);
 
-  auto channel = client::ChooseCredentials({v["--server"], b["--insecure"], v["--ca-file"]});
+  auto channel = client::ChooseCredentials(connection.channel);
   if (!channel.ok()) return Usage(std::string(channel.status().message()));
-  std::string source = v["--port"];
+  std::string source = box.port;
   if (size_t slash = source.rfind('/'); slash != std::string::npos) source = source.substr(slash + 1);
   const std::string client_id =
-      v["--client-id"].empty() ? client::DefaultClientId(kProgram, source) : v["--client-id"];
+      connection.client_id.empty() ? client::DefaultClientId(kProgram, source) : connection.client_id;
   if (absl::Status s = client::ValidateClientId(client_id); !s.ok()) {
     return Usage(std::string(s.message()));
   }
   client::StreamOptions options;
-  options.target = v["--server"];
+  options.target = connection.channel.target;
   options.token = token->value;
   options.client_id = client_id;
-  options.source = {tickmark::v1::SOURCE_KIND_SERIAL, "serial box on " + v["--port"],
+  options.source = {tickmark::v1::SOURCE_KIND_SERIAL, "serial box on " + box.port,
                     std::string(kProgram) + " " + TICKMARK_VERSION};
   options.credentials = channel->credentials;
   options.clock = client::SystemMonotonic::Get();
@@ -206,8 +191,6 @@ int Main(int argc, char** argv) {
       (void)!write(wake[1], "x", 1);
     }
   });
-  const bool quiet = b["--quiet"];
-  const bool verbose = b["--verbose"];
   std::mutex out_mu;
   client::TrainerClient stream;
   client::TrainerClient::Callbacks cb;
@@ -233,7 +216,7 @@ int Main(int argc, char** argv) {
   if (absl::Status s = stream.Connect(std::move(options), std::move(cb)); !s.ok()) {
     std::fprintf(stderr, "%s: %s\n", kProgram, s.ToString().c_str());
   } else {
-    SerialSource port(v["--port"], ps);
+    SerialSource port(box.port, ps);
     if (absl::Status s2 = port.Open(); !s2.ok()) {
       std::fprintf(stderr, "%s: %s; waiting for the port\n", kProgram, s2.ToString().c_str());
     }

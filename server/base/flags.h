@@ -1,62 +1,64 @@
-// A small command-line parser shared by tickmark's programs, so every
-// program has the same --flag=value / --flag value forms and a generated
-// --help.
+// Command-line conventions shared by every tickmark program, on CLI11.
 //
-//   FlagSet flags("tickmarkd", "Runs the tickmark server.");
-//   std::string listen = "127.0.0.1:7461";
-//   flags.String("listen", &listen, "HOST:PORT to serve gRPC on");
-//   if (auto r = flags.Parse(argc, argv); r != FlagSet::kOk) return r == FlagSet::kHelp ? 0 : 2;
+// Each program builds a CLI::App, hands it to ConfigureApp first (so every
+// program has the same help layout, --help/-h, `--flag value` and
+// `--flag=value`, boolean flags that also take `=true`/`=false`, defaults
+// shown in the help), adds its flags, and calls ParseCommandLine:
+//
+//   CLI::App app("Runs the tickmark server.", "tickmarkd");
+//   tickmark::ConfigureApp(app, kSafety);
+//   app.add_option("--listen", options.listen, "HOST:PORT for gRPC");
+//   if (auto exit = tickmark::ParseCommandLine(app, argc, argv)) return *exit;
+//
+// Errors are one line on stderr, "PROGRAM: MESSAGE (see PROGRAM --help)",
+// and name the flag (or, for a config file, the file and key); the exit code
+// is kExitUsage.
+//
+// AddTomlConfig adds `--config FILE`: a TOML file whose top-level keys are
+// the long flag names (without the dashes in front), with values of the
+// flag's type. An unknown key, a section, or a bad value is an error naming
+// the key; flags given on the command line win over the file. It also adds
+// --print-config, which prints the settings in force as such a file.
 //
 // Not thread-safe; use from main().
 #ifndef TICKMARK_SERVER_BASE_FLAGS_H_
 #define TICKMARK_SERVER_BASE_FLAGS_H_
 
-#include <functional>
+#include <optional>
 #include <string>
 #include <vector>
 
+#include <CLI/CLI.hpp>
+
 namespace tickmark {
 
-class FlagSet {
- public:
-  enum Result { kOk, kHelp, kError };
+// Exit code for usage and configuration errors, the same in every program.
+inline constexpr int kExitUsage = 2;
 
-  FlagSet(std::string program, std::string summary);
+// Sets `app` (and subcommands added after this call) up the tickmark way.
+// `footer` is printed after the flags in --help (notices, examples).
+void ConfigureApp(CLI::App& app, const std::string& footer = "");
 
-  void String(const std::string& name, std::string* value, const std::string& help);
-  void Int(const std::string& name, int64_t* value, const std::string& help);
-  void Double(const std::string& name, double* value, const std::string& help);
-  // --name sets true, --no-name or --name=false sets false.
-  void Bool(const std::string& name, bool* value, const std::string& help);
-  // Free text appended to --help (examples, notices).
-  void Epilog(std::string text) { epilog_ = std::move(text); }
-
-  // Parses argv[first..]; prints --help to stdout or errors to stderr.
-  // Non-flag arguments are collected in args().
-  Result Parse(int argc, char** argv, int first = 1);
-  // True if the flag was given on the command line (so config files must
-  // not override it).
-  bool WasSet(const std::string& name) const;
-  const std::vector<std::string>& args() const { return args_; }
-  std::string Usage() const;
-
- private:
-  struct Flag {
-    std::string name;
-    std::string help;
-    std::string default_text;
-    bool is_bool = false;
-    std::function<bool(const std::string&)> set;  // false: bad value
-    bool was_set = false;
-  };
-  Flag* Find(const std::string& name);
-
-  std::string program_;
-  std::string summary_;
-  std::string epilog_;
-  std::vector<Flag> flags_;
-  std::vector<std::string> args_;
+enum class ParseResult {
+  kRun,    // flags parsed; the program goes on
+  kHelp,   // --help (or --print-config) given; `text` holds what to print
+  kError,  // bad command line or config; `text` holds the message
 };
+
+// Parses `args` (without the program name) into `app`. No output.
+ParseResult ParseArgs(CLI::App& app, const std::vector<std::string>& args, std::string* text);
+
+// ParseArgs on argv, printing help to stdout or the error to stderr.
+// Returns the exit code to stop with (0 after --help, kExitUsage after an
+// error), or nullopt when the program should run.
+std::optional<int> ParseCommandLine(CLI::App& app, int argc, char** argv);
+
+// Adds `--config FILE` (TOML; see the file comment). Call after ConfigureApp.
+CLI::Option* AddTomlConfig(CLI::App& app, const std::string& help);
+
+// Accepts a number in [lo, hi]; like CLI::Range, with the bounds written as
+// short as they are (1e+09, not 1000000000.000000).
+CLI::Validator Between(double lo, double hi);
 
 }  // namespace tickmark
 

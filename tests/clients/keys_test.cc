@@ -185,21 +185,21 @@ TEST(LineInputTest, ParsesValuesAndInputs) {
 TEST(KeysFlagsTest, DefaultsAndForms) {
   auto d = ParseKeysFlags({});
   ASSERT_TRUE(d.ok());
-  EXPECT_EQ(d->server, "127.0.0.1:7461");
+  EXPECT_EQ(d->connection.channel.target, "127.0.0.1:7461");
   EXPECT_FALSE(d->stdin_lines);
   auto f = ParseKeysFlags({"--server=dock.example.org:443", "--token-file", "/t",
                            "--stdin-lines", "--flush-timeout", "2.5", "--client-id",
                            "bench:1"});
   ASSERT_TRUE(f.ok()) << f.status();
-  EXPECT_EQ(f->server, "dock.example.org:443");
-  EXPECT_EQ(f->token_file, "/t");
+  EXPECT_EQ(f->connection.channel.target, "dock.example.org:443");
+  EXPECT_EQ(f->connection.token.token_file, "/t");
   EXPECT_TRUE(f->stdin_lines);
   EXPECT_EQ(f->flush_timeout_s, 2.5);
-  EXPECT_EQ(f->client_id, "bench:1");
+  EXPECT_EQ(f->connection.client_id, "bench:1");
   EXPECT_FALSE(ParseKeysFlags({"--server"}).ok());
   EXPECT_FALSE(ParseKeysFlags({"--frobnicate"}).ok());
   EXPECT_FALSE(ParseKeysFlags({"--flush-timeout", "-1"}).ok());
-  EXPECT_FALSE(ParseKeysFlags({"--insecure=yes"}).ok());
+  EXPECT_FALSE(ParseKeysFlags({"--insecure=maybe"}).ok());
   EXPECT_NE(KeysUsage("f approve").find("f approve"), std::string::npos);
 }
 

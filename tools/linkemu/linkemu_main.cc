@@ -2,15 +2,14 @@
 // then prints its counters. main() only wires flags to a proxy.
 #include <csignal>
 #include <cstdio>
-#include <cstdlib>
 #include <iostream>
 #include <optional>
 #include <string>
-#include <string_view>
 
 #include <boost/asio/io_context.hpp>
 #include <boost/asio/signal_set.hpp>
 
+#include "server/base/flags.h"
 #include "tools/linkemu/link_profile.h"
 #include "tools/linkemu/proxy_config.h"
 #include "tools/linkemu/tcp_delay_proxy.h"
@@ -21,40 +20,38 @@ namespace {
 using tickmark::Duration;
 namespace le = tickmark::linkemu;
 
-constexpr char kUsage[] = R"(usage: tickmark-linkemu --target HOST:PORT [options]
+constexpr char kDescription[] =
+    "Emulates a network link on loopback: a proxy that delays (TCP, UDP) and\n"
+    "loses (UDP only) traffic between its clients and one target.";
 
-Emulates a network link on loopback: a proxy that delays (TCP, UDP) and
-loses (UDP only) traffic between its clients and one target.
-
-  --listen HOST:PORT        where clients connect (default 127.0.0.1:0;
-                            port 0 lets the kernel pick one)
-  --target HOST:PORT        the real server (required)
-  --udp                     relay datagrams instead of a TCP stream
-  --forward-delay-ms MS     one-way delay client->server (default 0)
-  --backward-delay-ms MS    one-way delay server->client (default 0)
-  --jitter-ms MS            jitter amount, both directions (default 0)
-  --jitter uniform|normal   uniform: +-MS; normal: sigma MS (default uniform)
-  --loss P                  datagram loss probability, both directions,
-                            0..1 (default 0; ignored for TCP)
-  --seed N                  seed of every random draw (default 1)
-  --allow-non-loopback      permit addresses other than loopback
-  --help                    this text
-
-Addresses are numeric (or "localhost"); IPv6 as [::1]:PORT.
-Prints "listening HOST:PORT" once ready; counters on exit.
-)";
-
-// Parses a non-negative finite number of milliseconds.
-std::optional<Duration> ParseMillis(const std::string& text) {
-  char* end = nullptr;
-  const double ms = std::strtod(text.c_str(), &end);
-  if (text.empty() || *end != '\0' || !(ms >= 0.0) || ms > 1e9) return std::nullopt;
-  return Duration::FromSeconds(ms / 1000.0);
-}
+constexpr char kFooter[] =
+    "Addresses are numeric (or \"localhost\"); IPv6 as [::1]:PORT.\n"
+    "Prints \"listening HOST:PORT\" once ready; counters on exit.";
 
 int Fail(const std::string& message) {
-  std::cerr << "tickmark-linkemu: " << message << "\n(see --help)\n";
-  return 2;
+  std::cerr << "tickmark-linkemu: " << message << " (see tickmark-linkemu --help)\n";
+  return tickmark::kExitUsage;
+}
+
+// Accepts HOST:PORT or [V6]:PORT (numeric; see proxy_config.h).
+CLI::Validator HostPortText() {
+  return CLI::Validator(
+      [](std::string& text) {
+        return le::ParseHostPort(text) ? std::string() : "bad address " + text;
+      },
+      "");
+}
+
+// A flag in milliseconds (0..1e9, fractions allowed) stored as a Duration.
+CLI::Option* AddMillis(CLI::App& app, const std::string& name, Duration* field,
+                       const std::string& help) {
+  return app
+      .add_option_function<double>(
+          name, [field](const double& ms) { *field = Duration::FromSeconds(ms / 1000.0); },
+          help)
+      ->type_name("MS")
+      ->default_str("0")
+      ->check(tickmark::Between(0, 1e9));
 }
 
 void PrintCounters(const le::LinkCounters& c) {
@@ -74,67 +71,40 @@ void PrintCounters(const le::LinkCounters& c) {
 int main(int argc, char** argv) {
   le::ProxyConfig config;
   bool udp = false;
-  bool have_target = false;
+  std::string listen = le::ToString(config.listen);
+  std::string target;
   Duration jitter;
   std::string jitter_kind = "uniform";
   double loss = 0.0;
 
-  for (int i = 1; i < argc; ++i) {
-    const std::string_view flag = argv[i];
-    if (flag == "--help" || flag == "-h") {
-      std::cout << kUsage;
-      return 0;
-    }
-    if (flag == "--udp") {
-      udp = true;
-      continue;
-    }
-    if (flag == "--allow-non-loopback") {
-      config.allow_non_loopback = true;
-      continue;
-    }
-    if (i + 1 >= argc) return Fail("missing value for " + std::string(flag));
-    const std::string value = argv[++i];
-    if (flag == "--listen" || flag == "--target") {
-      auto hp = le::ParseHostPort(value);
-      if (!hp) return Fail("bad address " + value + " for " + std::string(flag));
-      if (flag == "--listen") {
-        config.listen = *hp;
-      } else {
-        config.target = *hp;
-        have_target = true;
-      }
-    } else if (flag == "--forward-delay-ms" || flag == "--backward-delay-ms" ||
-               flag == "--jitter-ms") {
-      auto d = ParseMillis(value);
-      if (!d) return Fail("bad duration " + value + " for " + std::string(flag));
-      if (flag == "--forward-delay-ms") {
-        config.profile.forward_delay = *d;
-      } else if (flag == "--backward-delay-ms") {
-        config.profile.backward_delay = *d;
-      } else {
-        jitter = *d;
-      }
-    } else if (flag == "--jitter") {
-      if (value != "uniform" && value != "normal") {
-        return Fail("--jitter must be uniform or normal");
-      }
-      jitter_kind = value;
-    } else if (flag == "--loss") {
-      char* end = nullptr;
-      loss = std::strtod(value.c_str(), &end);
-      if (value.empty() || *end != '\0' || !(loss >= 0.0 && loss <= 1.0)) {
-        return Fail("--loss must be a probability in [0, 1]");
-      }
-    } else if (flag == "--seed") {
-      char* end = nullptr;
-      config.profile.seed = std::strtoull(value.c_str(), &end, 10);
-      if (value.empty() || *end != '\0') return Fail("bad --seed " + value);
-    } else {
-      return Fail("unknown flag " + std::string(flag));
-    }
-  }
-  if (!have_target) return Fail("--target is required");
+  CLI::App app(kDescription, "tickmark-linkemu");
+  tickmark::ConfigureApp(app, kFooter);
+  app.add_option("--listen", listen,
+                 "HOST:PORT where clients connect (port 0 lets the kernel pick one)")
+      ->type_name("ADDR")
+      ->check(HostPortText());
+  app.add_option("--target", target, "HOST:PORT of the real server")
+      ->type_name("ADDR")
+      ->required()
+      ->check(HostPortText());
+  app.add_flag("--udp", udp, "relay datagrams instead of a TCP stream");
+  AddMillis(app, "--forward-delay-ms", &config.profile.forward_delay,
+            "one-way delay client->server");
+  AddMillis(app, "--backward-delay-ms", &config.profile.backward_delay,
+            "one-way delay server->client");
+  AddMillis(app, "--jitter-ms", &jitter, "jitter amount, both directions");
+  app.add_option("--jitter", jitter_kind, "uniform: +-MS; normal: sigma MS")
+      ->check(CLI::IsMember({"uniform", "normal"}));
+  app.add_option("--loss", loss,
+                 "datagram loss probability, both directions (ignored for TCP)")
+      ->type_name("P")
+      ->check(tickmark::Between(0, 1));
+  app.add_option("--seed", config.profile.seed, "seed of every random draw");
+  app.add_flag("--allow-non-loopback", config.allow_non_loopback,
+               "permit addresses other than loopback");
+  if (auto exit = tickmark::ParseCommandLine(app, argc, argv)) return *exit;
+  config.listen = *le::ParseHostPort(listen);
+  config.target = *le::ParseHostPort(target);
 
   const le::Jitter j = jitter_kind == "normal" ? le::Jitter::Normal(jitter)
                                                : le::Jitter::Uniform(jitter);

@@ -2,6 +2,8 @@
 
 #include <charconv>
 
+#include "server/net/address.h"
+
 namespace tickmark::linkemu {
 
 namespace errc = boost::system::errc;
@@ -44,7 +46,7 @@ boost::system::error_code ResolveAddress(const HostPort& hp,
   const auto address = boost::asio::ip::make_address(
       hp.host == "localhost" ? std::string("127.0.0.1") : hp.host, ec);
   if (ec) return errc::make_error_code(errc::invalid_argument);
-  if (!address.is_loopback() && !allow_non_loopback) {
+  if (!net::IsLoopbackHost(hp.host) && !allow_non_loopback) {
     return errc::make_error_code(errc::permission_denied);
   }
   *out = address;

@@ -1,7 +1,8 @@
 // Where a proxy listens, where it forwards to, and what the link does.
 //
 // Addresses are numeric (IPv4 or IPv6; "localhost" means 127.0.0.1): no name
-// lookup, so tests stay hermetic and the loopback check below is exact.
+// lookup, so tests stay hermetic. Loopback is decided by the one rule of
+// server/net/address.h, as for tickmarkd and the clients.
 // Unless allow_non_loopback is set, a proxy refuses to listen on or forward
 // to anything but loopback — load and fault tests must not touch other hosts
 // by accident.

@@ -1,0 +1,23 @@
+// The CLI's command groups, one file each. To add a command: write it in its
+// group's file (or a new <group>_commands.cc listed in CMakeLists.txt and
+// declared here), register it with table.AddCommand, and give it its flags
+// on the CLI::App that returns; CallAdmin (connection.h) is the skeleton of a
+// one-call command. Each Add* registers into the table; call them from
+// main()'s thread, before parsing.
+#ifndef TICKMARK_CLIENTS_CLI_COMMANDS_H_
+#define TICKMARK_CLIENTS_CLI_COMMANDS_H_
+
+#include "clients/cli/command_table.h"
+
+namespace tickmark::cli {
+
+void AddSessionCommands(CommandTable& table);  // session create|list|show|close
+void AddTokenCommands(CommandTable& table);    // token issue|list|revoke
+void AddMarkerCommands(CommandTable& table);   // marker add
+void AddKernelCommands(CommandTable& table);   // kernel set|load
+void AddReplayCommand(CommandTable& table);    // replay
+void AddExportCommand(CommandTable& table);    // export
+
+}  // namespace tickmark::cli
+
+#endif  // TICKMARK_CLIENTS_CLI_COMMANDS_H_

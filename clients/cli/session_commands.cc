@@ -1,0 +1,145 @@
+// tickmark session create|list|show|close.
+#include <iomanip>
+#include <iostream>
+#include <memory>
+
+#include "clients/cli/commands.h"
+#include "clients/cli/output.h"
+
+namespace tickmark::cli {
+namespace {
+
+namespace v1 = tickmark::v1;
+using Admin = v1::SessionAdmin::Stub;
+
+const char* StateWord(v1::SessionState state) {
+  return state == v1::SESSION_STATE_OPEN ? "open" : "closed";
+}
+
+void PrintSummaryLine(const v1::SessionSummary& s) {
+  std::cout << std::left << std::setw(12) << s.session().id() << std::setw(8)
+            << StateWord(s.session().state()) << std::setw(28)
+            << FormatUtc(s.session().opened_session_ns()) << std::right << std::setw(9)
+            << s.feedback_count() << std::setw(9) << s.step_count() << std::setw(7)
+            << s.connected_clients() << "  " << s.session().title() << "\n";
+}
+
+void AddCreate(CommandTable& table, CLI::App* group) {
+  auto req = std::make_shared<v1::CreateSessionRequest>();
+  auto token_out = std::make_shared<std::string>();
+  CLI::App* cmd = table.AddCommand(
+      group, "create", "Opens a session and prints its id and admin token.", [&table, req, token_out] {
+        return CallAdmin<v1::CreateSessionRequest, v1::CreateSessionResponse>(
+            table.common(), &Admin::CreateSession, *req, [&](const v1::CreateSessionResponse& r) {
+              std::cout << "session " << r.session().id() << " opened at "
+                        << FormatUtc(r.session().opened_session_ns()) << "\n";
+              if (!token_out->empty()) {
+                if (!WriteSecretFile(*token_out, r.admin_secret())) return kExitError;
+                std::cout << "admin token " << r.admin_token().token_id() << " written to "
+                          << *token_out << "\n";
+              } else {
+                std::cout << "admin token " << r.admin_token().token_id() << ": "
+                          << r.admin_secret() << "\n(shown once; keep it secret)\n";
+              }
+              return kExitOk;
+            });
+      });
+  cmd->add_option_function<std::string>(
+         "--title", [req](const std::string& v) { req->set_title(v); },
+         "what the session is (\"dock rover, pilot 3\")")
+      ->required();
+  cmd->add_option_function<std::string>(
+      "--study", [req](const std::string& v) { req->set_study(v); },
+      "study the session belongs to");
+  cmd->add_option_function<std::string>(
+      "--kernel", [req](const std::string& v) { req->set_default_kernel(v); },
+      "default delay kernel, e.g. uniform:0.2,4.0 or gamma:2,0.28 (seconds); default: the "
+      "server's");
+  cmd->add_option("--token-out", *token_out,
+                  "write the session's admin token to this file (0600)")
+      ->type_name("FILE");
+}
+
+void AddList(CommandTable& table, CLI::App* group) {
+  auto req = std::make_shared<v1::ListSessionsRequest>();
+  CLI::App* cmd = table.AddCommand(
+      group, "list", "Lists sessions with their counts (open ones unless --all).", [&table, req] {
+        return CallAdmin<v1::ListSessionsRequest, v1::ListSessionsResponse>(
+            table.common(), &Admin::ListSessions, *req, [&](const v1::ListSessionsResponse& r) {
+              std::cout << std::left << std::setw(12) << "SESSION" << std::setw(8) << "STATE"
+                        << std::setw(28) << "OPENED" << std::right << std::setw(9)
+                        << "FEEDBACK" << std::setw(9) << "STEPS" << std::setw(7) << "LIVE"
+                        << "  TITLE\n";
+              for (const auto& s : r.sessions()) PrintSummaryLine(s);
+              if (r.sessions().empty()) {
+                std::cout << (req->include_closed() ? "(no sessions)\n"
+                                                    : "(no sessions open; --all shows closed "
+                                                      "ones)\n");
+              }
+              return kExitOk;
+            });
+      });
+  cmd->add_flag_callback("--all", [req] { req->set_include_closed(true); },
+                         "include closed sessions");
+}
+
+void AddShow(CommandTable& table, CLI::App* group) {
+  auto req = std::make_shared<v1::GetSessionRequest>();
+  CLI::App* cmd = table.AddCommand(
+      group, "show", "Shows one session in detail, with its counts.", [&table, req] {
+        return CallAdmin<v1::GetSessionRequest, v1::SessionSummary>(
+            table.common(), &Admin::GetSession, *req, [](const v1::SessionSummary& r) {
+              const auto& ss = r.session();
+              std::cout << "session    " << ss.id() << "\n"
+                        << "title      " << ss.title() << "\n"
+                        << "study      " << (ss.study().empty() ? "-" : ss.study()) << "\n"
+                        << "state      " << StateWord(ss.state()) << "\n"
+                        << "opened     " << FormatUtc(ss.opened_session_ns()) << "\n"
+                        << "closed     " << FormatUtc(ss.closed_session_ns()) << "\n"
+                        << "records    " << ss.last_sequence() << "\n"
+                        << "feedback   " << r.feedback_count() << "\n"
+                        << "steps      " << r.step_count() << "\n"
+                        << "probes     " << r.probe_count() << " ("
+                        << r.rejected_probe_count() << " rejected)\n"
+                        << "markers    " << r.marker_count() << "\n"
+                        << "clients    " << r.client_count() << " (" << r.connected_clients()
+                        << " connected now)\n"
+                        << "late       " << r.late_count() << "\n"
+                        << "unmatched  " << r.unmatched_count() << "\n";
+              return kExitOk;
+            });
+      });
+  cmd->add_option_function<std::string>(
+         "ID", [req](const std::string& v) { req->set_session_id(v); }, "session id")
+      ->required();
+}
+
+void AddClose(CommandTable& table, CLI::App* group) {
+  auto req = std::make_shared<v1::CloseSessionRequest>();
+  CLI::App* cmd = table.AddCommand(
+      group, "close", "Ends a session: its streams end and no record is taken after.",
+      [&table, req] {
+        return CallAdmin<v1::CloseSessionRequest, v1::Session>(
+            table.common(), &Admin::CloseSession, *req, [](const v1::Session& r) {
+              std::cout << "session " << r.id() << " closed at "
+                        << FormatUtc(r.closed_session_ns()) << " (" << r.last_sequence()
+                        << " records)\n";
+              return kExitOk;
+            });
+      });
+  cmd->add_option_function<std::string>(
+         "ID", [req](const std::string& v) { req->set_session_id(v); }, "session id")
+      ->required();
+}
+
+}  // namespace
+
+void AddSessionCommands(CommandTable& table) {
+  CLI::App* group = table.AddGroup("session", "open, list, show and close sessions");
+  AddCreate(table, group);
+  AddList(table, group);
+  AddShow(table, group);
+  AddClose(table, group);
+}
+
+}  // namespace tickmark::cli
