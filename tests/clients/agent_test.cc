@@ -9,6 +9,7 @@
 #include <gtest/gtest.h>
 
 #include "server/rpc/server.h"
+#include "tests/clients/fake_live.h"
 #include "tickmark/v1/admin.grpc.pb.h"
 
 namespace tickmark::agent {
@@ -143,6 +144,31 @@ TEST_F(AgentTest, ServerRestartedMidStreamLosesAndDuplicatesNothing) {
   size_t n = 0;
   while (check->Next(std::chrono::seconds(10))) ++n;
   EXPECT_EQ(n, 80u);
+}
+
+// Regression: a server that took the agent's stream but never welcomed it
+// held Agent::Connect until connect_timeout, however long that was. The
+// attempt is now given up after hello_timeout and retried.
+TEST(AgentHelloTest, ServerThatNeverWelcomesIsRetried) {
+  testing::FakeLive fake;
+  const std::string target = fake.Start();
+  fake.Edit([](testing::FakeLive::Script& s) { s.silent_hellos = {1}; });
+  Agent::Options options;
+  options.server = target;
+  options.token = "tm_test_token";
+  options.client_id = "host:test:agent-silent";
+  options.hello_timeout = std::chrono::milliseconds(200);
+  options.connect_timeout = std::chrono::milliseconds(60'000);
+  auto agent = Agent::Connect(options);
+  ASSERT_TRUE(agent.ok()) << agent.status();
+  EXPECT_EQ((*agent)->status().connections, 1u);
+  EXPECT_EQ((*agent)->status().last_error.code(), absl::StatusCode::kDeadlineExceeded);
+  Step step;
+  step.action = "north";
+  ASSERT_TRUE((*agent)->Publish(step).ok());
+  ASSERT_TRUE((*agent)->Flush(std::chrono::milliseconds(30'000)).ok());
+  EXPECT_EQ(fake.hellos(), 2);
+  EXPECT_EQ(fake.stored().size(), 1u);
 }
 
 }  // namespace
