@@ -162,9 +162,13 @@ void Subscription::Run() {
     if (s.ok()) {
       break;  // the server ended it: the end of a closed session, or follow=false
     }
+    // Broken or ended by the server: resume. CANCELLED here (Close was not
+    // called, see above) comes from the other side — a server shutting down
+    // cancels its open calls — so it is not the client's own doing.
     const auto code = s.error_code();
     if (code != grpc::StatusCode::UNAVAILABLE && code != grpc::StatusCode::INTERNAL &&
-        code != grpc::StatusCode::UNKNOWN && code != grpc::StatusCode::RESOURCE_EXHAUSTED) {
+        code != grpc::StatusCode::UNKNOWN && code != grpc::StatusCode::RESOURCE_EXHAUSTED &&
+        code != grpc::StatusCode::CANCELLED && code != grpc::StatusCode::ABORTED) {
       status_ = rpc::FromGrpc(s);
       break;
     }

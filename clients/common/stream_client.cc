@@ -276,9 +276,11 @@ absl::Status StreamClient<Kind>::OnWelcomeLocked(const tickmark::v1::Welcome& w)
 }
 
 template <typename Kind>
-void StreamClient<Kind>::ReadLoop(Connection* conn, const Request& hello) {
+void StreamClient<Kind>::ReadLoop(Connection* conn, Request hello) {
   auto stream = Kind::Open(stub_.get(), &conn->ctx);
   tickmark::v1::ServerMessage msg;
+  // Stamped once the call is open, so connecting does not count as transit.
+  hello.mutable_hello()->set_sent_client_ns(clock_->NowNanos());
   const bool hello_ok = stream->Write(hello);
   {
     std::lock_guard<std::mutex> lock(mu_);
@@ -374,8 +376,8 @@ absl::Status StreamClient<Kind>::RunConnection(bool* welcomed) {
   h->set_source_kind(options_.source.kind);
   h->set_source_description(options_.source.description);
   h->set_software(options_.source.software);
-  h->set_sent_client_ns(clock_->NowNanos());
-  conn.reader = std::thread([this, &conn, hello = std::move(hello)] { ReadLoop(&conn, hello); });
+  conn.reader = std::thread(
+      [this, &conn, hello = std::move(hello)]() mutable { ReadLoop(&conn, std::move(hello)); });
 
   std::unique_lock<std::mutex> lock(mu_);
   // Ends an attempt that got no usable Welcome: `why`, or else the status

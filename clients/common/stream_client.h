@@ -234,7 +234,7 @@ class StreamClient {
   // The reader thread of one attempt: opens the call, writes `hello`, hands
   // the first message to the worker, and after a Welcome reads acks and
   // probes until the call ends.
-  void ReadLoop(Connection* conn, const Request& hello);
+  void ReadLoop(Connection* conn, Request hello);
   // Applies a Welcome under mu_; a non-OK result is a permanent error.
   absl::Status OnWelcomeLocked(const tickmark::v1::Welcome& w);
   void EnqueueLocked(Payload payload);

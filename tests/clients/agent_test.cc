@@ -2,6 +2,8 @@
 // restarted mid-stream on the same port and ledger.
 #include "clients/agent/agent.h"
 
+#include <algorithm>
+#include <atomic>
 #include <filesystem>
 #include <fstream>
 #include <set>
@@ -131,7 +133,7 @@ TEST_F(AgentTest, ServerRestartedMidStreamLosesAndDuplicatesNothing) {
   std::vector<uint64_t> seqs;
   while (states.size() < 80) {
     auto r = follower->Next(std::chrono::seconds(30));
-    ASSERT_TRUE(r) << "only " << states.size() << " steps arrived";
+    ASSERT_TRUE(r) << "only " << states.size() << " steps arrived; " << follower->status();
     states.push_back(r->step().state());
     seqs.push_back(r->sequence());
   }
@@ -169,6 +171,47 @@ TEST(AgentHelloTest, ServerThatNeverWelcomesIsRetried) {
   ASSERT_TRUE((*agent)->Flush(std::chrono::milliseconds(30'000)).ok());
   EXPECT_EQ(fake.hellos(), 2);
   EXPECT_EQ(fake.stored().size(), 1u);
+}
+
+// FakeLive plus a Subscribe whose first call the "server" cancels, as a
+// server that shuts down does; later calls send steps from_sequence..3.
+class CancellingSubscribeLive final : public testing::FakeLive {
+ public:
+  grpc::Status Subscribe(grpc::ServerContext*, const v1::SubscribeRequest* req,
+                         grpc::ServerWriter<v1::Record>* out) override {
+    if (calls_.fetch_add(1) == 0) return grpc::Status(grpc::StatusCode::CANCELLED, "shutting down");
+    for (uint64_t seq = std::max<uint64_t>(req->from_sequence(), 1); seq <= 3; ++seq) {
+      v1::Record r;
+      r.set_sequence(seq);
+      r.mutable_step()->set_state(std::to_string(seq));
+      if (!out->Write(r)) break;
+    }
+    return grpc::Status::OK;
+  }
+  int calls() const { return calls_.load(); }
+
+ private:
+  std::atomic<int> calls_{0};
+};
+
+// Regression: a subscription whose call the server cancelled (CANCELLED,
+// e.g. while it shut down for a restart) stopped for good with 0 records
+// instead of resuming like after any other broken connection.
+TEST(AgentSubscribeTest, ResumesAfterServerCancelledTheCall) {
+  CancellingSubscribeLive fake;
+  const std::string target = fake.Start();
+  Agent::Options options;
+  options.server = target;
+  options.token = "tm_test_token";
+  options.client_id = "host:test:agent-cancelled";
+  auto agent = Agent::Connect(options);
+  ASSERT_TRUE(agent.ok()) << agent.status();
+  auto sub = (*agent)->Subscribe({.from_sequence = 1, .kinds = {}, .follow = false});
+  std::vector<std::string> states;
+  while (auto r = sub->Next(std::chrono::seconds(30))) states.push_back(r->step().state());
+  EXPECT_EQ(states, (std::vector<std::string>{"1", "2", "3"})) << sub->status();
+  EXPECT_TRUE(sub->status().ok()) << sub->status();
+  EXPECT_EQ(fake.calls(), 2);
 }
 
 }  // namespace

@@ -28,7 +28,7 @@
 
 namespace tickmark::testing {
 
-class FakeLive final : public tickmark::v1::Live::Service {
+class FakeLive : public tickmark::v1::Live::Service {
  public:
   // How the fake misbehaves; change under Edit().
   struct Script {
