@@ -4,6 +4,8 @@
 #include "clients/common/client_id.h"
 #include "clients/common/token.h"
 #include "server/base/strings.h"
+// Header-only: the one absl::Status <-> grpc::Status mapping.
+#include "server/rpc/status.h"
 
 namespace tickmark::agent {
 
@@ -31,6 +33,8 @@ absl::StatusOr<std::unique_ptr<Agent>> Agent::Connect(const Options& options) {
   so.source = {v1::SOURCE_KIND_SCRIPT, options.description, "tickmark-agent-cpp 0.1"};
   so.credentials = creds->credentials;
   so.clock = agent->clock_;
+  so.hello_timeout = Duration::Nanos(
+      std::chrono::duration_cast<std::chrono::nanoseconds>(options.hello_timeout).count());
   // The first welcome or permanent failure; the callback outlives this call.
   struct FirstState {
     std::mutex mu;
@@ -158,10 +162,14 @@ void Subscription::Run() {
     if (s.ok()) {
       break;  // the server ended it: the end of a closed session, or follow=false
     }
+    // Broken or ended by the server: resume. CANCELLED here (Close was not
+    // called, see above) comes from the other side — a server shutting down
+    // cancels its open calls — so it is not the client's own doing.
     const auto code = s.error_code();
     if (code != grpc::StatusCode::UNAVAILABLE && code != grpc::StatusCode::INTERNAL &&
-        code != grpc::StatusCode::UNKNOWN && code != grpc::StatusCode::RESOURCE_EXHAUSTED) {
-      status_ = absl::Status(static_cast<absl::StatusCode>(code), s.error_message());
+        code != grpc::StatusCode::UNKNOWN && code != grpc::StatusCode::RESOURCE_EXHAUSTED &&
+        code != grpc::StatusCode::CANCELLED && code != grpc::StatusCode::ABORTED) {
+      status_ = rpc::FromGrpc(s);
       break;
     }
     // Broken connection: wait, then resume right after the last record.

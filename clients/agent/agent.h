@@ -118,10 +118,14 @@ class Agent {
     bool insecure = false;    // plaintext to a non-loopback server
     const MonotonicSource* clock = nullptr;  // default CLOCK_MONOTONIC; not owned
     std::chrono::milliseconds connect_timeout{10000};
+    // One attempt without a Welcome is given up after this and retried
+    // (client::StreamOptions::hello_timeout); zero waits without limit.
+    std::chrono::milliseconds hello_timeout{10000};
   };
 
-  // Connects and waits for the server's welcome. UNAUTHENTICATED etc. when
-  // the server refuses; DEADLINE_EXCEEDED when it does not answer.
+  // Connects and waits up to connect_timeout for the server's welcome,
+  // retrying attempts that get none within hello_timeout. UNAUTHENTICATED
+  // etc. when the server refuses; DEADLINE_EXCEEDED when it does not answer.
   static absl::StatusOr<std::unique_ptr<Agent>> Connect(const Options& options);
   ~Agent();
 

@@ -4,21 +4,16 @@
 #include <fstream>
 #include <sstream>
 
-#include <cctype>
-
 #include "absl/strings/str_cat.h"
+#include "server/net/address.h"
 
 namespace tickmark::client {
 namespace {
 
 // Debian's absl is built as C++14, so absl::string_view is not
-// std::string_view; these few helpers avoid converting back and forth.
+// std::string_view; this helper avoids converting back and forth.
 bool StartsWith(std::string_view s, std::string_view prefix) {
   return s.substr(0, prefix.size()) == prefix;
-}
-bool EndsWith(std::string_view s, std::string_view suffix) {
-  return s.size() >= suffix.size() &&
-         s.substr(s.size() - suffix.size()) == suffix;
 }
 
 }  // namespace
@@ -37,25 +32,14 @@ std::string TargetHost(std::string_view target) {
   } else if (StartsWith(target, "ipv4:") || StartsWith(target, "ipv6:")) {
     target.remove_prefix(5);
   }
-  if (StartsWith(target, "[")) {
-    size_t close = target.find(']');
-    return std::string(target.substr(1, close == std::string_view::npos
-                                            ? std::string_view::npos
-                                            : close - 1));
-  }
-  size_t colon = target.rfind(':');
-  // More than one colon without brackets: a bare IPv6 address, no port.
-  if (colon != std::string_view::npos && target.find(':') == colon) {
-    target = target.substr(0, colon);
-  }
-  return std::string(target);
+  return net::HostOf(target);
 }
 
-bool IsLoopbackHost(std::string_view host) {
-  std::string h(host);
-  for (char& c : h) c = static_cast<char>(std::tolower(static_cast<unsigned char>(c)));
-  return h == "unix" || h == "localhost" || EndsWith(h, ".localhost") ||
-         h == "::1" || h == "0:0:0:0:0:0:0:1" || StartsWith(h, "127.");
+bool MayUsePlaintext(std::string_view target) {
+  const std::string host = TargetHost(target);
+  // A unix socket never leaves the machine; every other host follows the
+  // one loopback rule (server/net/address.h).
+  return host == "unix" || net::IsLoopbackHost(host);
 }
 
 absl::StatusOr<ChannelChoice> ChooseCredentials(const ChannelFlags& flags) {
@@ -75,7 +59,7 @@ absl::StatusOr<ChannelChoice> ChooseCredentials(const ChannelFlags& flags) {
     opts.pem_root_certs = ss.str();
     out.credentials = grpc::SslCredentials(opts);
     out.tls = true;
-  } else if (flags.insecure || IsLoopbackHost(TargetHost(flags.target))) {
+  } else if (flags.insecure || MayUsePlaintext(flags.target)) {
     out.credentials = grpc::InsecureChannelCredentials();
   } else {
     out.credentials = grpc::SslCredentials(grpc::SslCredentialsOptions());

@@ -2,7 +2,7 @@
 // gRPC; plaintext only on loopback or when explicitly asked for).
 //
 //   --ca-file PATH   TLS, trusting the PEM roots in PATH;
-//   loopback target  plaintext (127.0.0.0/8, ::1, localhost, unix: sockets);
+//   loopback target  plaintext (see MayUsePlaintext);
 //   --insecure       plaintext to any host;
 //   otherwise        TLS with the system's trusted roots.
 //
@@ -29,8 +29,10 @@ struct ChannelFlags {
 // "unix:..." targets give "unix".
 std::string TargetHost(std::string_view target);
 
-// True for a host that can only be this machine.
-bool IsLoopbackHost(std::string_view host);
+// True when `target` can only be this machine: a unix socket, or a host that
+// net::IsLoopbackHost (server/net/address.h) accepts — an IP literal in
+// 127.0.0.0/8 or ::1, or "localhost". Other names ("127.example.org") are not.
+bool MayUsePlaintext(std::string_view target);
 
 struct ChannelChoice {
   std::shared_ptr<grpc::ChannelCredentials> credentials;

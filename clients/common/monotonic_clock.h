@@ -6,21 +6,24 @@
 // steps (NTP only slews it) and because it is the clock Linux can put on
 // input events (evdev EVIOCSCLOCKID), so every source on one machine shares it.
 //
+// The clock itself is tickmark::SystemMonotonic (server/core/time.h); this
+// header only keeps the spelling client::SystemMonotonic::Get() working for
+// programs that use it. New code should use tickmark::SystemMonotonic.
+//
 // Stateless; thread-safe.
 #ifndef TICKMARK_CLIENTS_COMMON_MONOTONIC_CLOCK_H_
 #define TICKMARK_CLIENTS_COMMON_MONOTONIC_CLOCK_H_
-
-#include <cstdint>
 
 #include "server/core/time.h"
 
 namespace tickmark::client {
 
-class SystemMonotonic final : public MonotonicSource {
- public:
-  int64_t NowNanos() const override;
+struct SystemMonotonic {
   // A process-wide instance, for defaults.
-  static const SystemMonotonic* Get();
+  static const tickmark::SystemMonotonic* Get() {
+    static const tickmark::SystemMonotonic kInstance;
+    return &kInstance;
+  }
 };
 
 }  // namespace tickmark::client

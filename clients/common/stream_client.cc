@@ -1,21 +1,18 @@
 #include "clients/common/stream_client.h"
 
-#include <netdb.h>
-#include <poll.h>
-#include <sys/eventfd.h>
-#include <sys/socket.h>
-#include <unistd.h>
-
 #include <algorithm>
-#include <array>
 #include <cmath>
 #include <random>
 #include <utility>
 
 #include "absl/strings/str_cat.h"
+#include "clients/common/channel.h"
 #include "clients/common/client_id.h"
-#include "clients/common/monotonic_clock.h"
+#include "clients/common/udp_prober.h"
 #include "server/net/probe_datagram.h"
+// Header-only: the one absl::Status <-> grpc::Status mapping; no link
+// dependency on the rpc library.
+#include "server/rpc/status.h"
 
 namespace tickmark::client {
 
@@ -33,187 +30,58 @@ const char* StreamStateName(StreamState s) {
 
 namespace {
 
-absl::Status FromGrpc(const grpc::Status& s) {
-  return absl::Status(static_cast<absl::StatusCode>(s.error_code()),
-                      s.error_message());
-}
-
 // Errors that no reconnect can cure (see the header).
-bool IsPermanent(const grpc::Status& s, bool welcomed) {
-  switch (s.error_code()) {
-    case grpc::StatusCode::UNAUTHENTICATED:
-    case grpc::StatusCode::PERMISSION_DENIED:
-    case grpc::StatusCode::NOT_FOUND:
-    case grpc::StatusCode::FAILED_PRECONDITION:
+bool IsPermanent(const absl::Status& s, bool welcomed) {
+  switch (s.code()) {
+    case absl::StatusCode::kUnauthenticated:
+    case absl::StatusCode::kPermissionDenied:
+    case absl::StatusCode::kNotFound:
+    case absl::StatusCode::kFailedPrecondition:
       return true;
-    case grpc::StatusCode::INVALID_ARGUMENT:
+    case absl::StatusCode::kInvalidArgument:
       return !welcomed;  // a bad Hello stays bad
     default:
       return false;
   }
 }
 
-// The host part of a gRPC target ("host:port", "[v6]:port", with an optional
-// "dns:///", "ipv4:" or "ipv6:" scheme).
-std::string TargetHost(std::string target) {
-  for (const char* scheme : {"dns:///", "dns:", "ipv4:", "ipv6:"}) {
-    if (target.rfind(scheme, 0) == 0) {
-      target = target.substr(std::string(scheme).size());
-      break;
-    }
+// The status of a rejecting Ack. Its code is a gRPC code number, the same
+// numbers as absl::StatusCode (stream.proto, Ack.code); a number outside the
+// known codes is kept in the message and reported as UNKNOWN rather than
+// cast into an enum that has no such value.
+absl::Status AckStatus(const tickmark::v1::Ack& ack) {
+  const int32_t code = ack.code();
+  if (code > 0 && code <= static_cast<int32_t>(absl::StatusCode::kUnauthenticated)) {
+    return absl::Status(static_cast<absl::StatusCode>(code), ack.message());
   }
-  if (!target.empty() && target.front() == '[') return target.substr(1, target.find(']') - 1);
-  if (auto colon = target.rfind(':'); colon != std::string::npos) return target.substr(0, colon);
-  return target;
+  return absl::UnknownError(absl::StrCat("ack code ", code, ": ", ack.message()));
+}
+
+// The default client clock (CLOCK_MONOTONIC; server/core/time.h).
+const MonotonicSource* SystemClock() {
+  static const SystemMonotonic kClock;
+  return &kClock;
 }
 
 }  // namespace
 
-// The client's half of the UDP probe exchange (server/net/probe_datagram.h):
-// request, then on the challenge stamp T2, answer with T1, T2 and T3 (T3
-// right before the send). One thread; a connected UDP socket, so only the
-// server's datagrams arrive; an eventfd wakes it to stop.
-class UdpProber {
- public:
-  // The first probes come this fast, so the model sharpens soon after the
-  // Welcome, as the server's own burst does.
-  static constexpr int kBurst = 8;
-  static constexpr Duration kBurstSpacing = Duration::Millis(50);
-  // A challenge later than this is given up; the next request has a new id.
-  static constexpr Duration kReplyTimeout = Duration::Millis(500);
-
-  // nullptr if the host does not resolve or no socket can be made: the
-  // stream's own probes still work, so this is not an error.
-  static std::unique_ptr<UdpProber> Start(const std::string& host, uint32_t port, uint64_t tag,
-                                          std::string key, const MonotonicSource* clock,
-                                          Duration interval, std::function<void()> on_exchange) {
-    addrinfo hints{};
-    hints.ai_socktype = SOCK_DGRAM;
-    addrinfo* found = nullptr;
-    if (getaddrinfo(host.c_str(), std::to_string(port).c_str(), &hints, &found) != 0) {
-      return nullptr;
-    }
-    int fd = -1;
-    for (addrinfo* a = found; a != nullptr && fd < 0; a = a->ai_next) {
-      fd = socket(a->ai_family, a->ai_socktype | SOCK_CLOEXEC, a->ai_protocol);
-      if (fd >= 0 && connect(fd, a->ai_addr, a->ai_addrlen) != 0) {
-        close(fd);
-        fd = -1;
-      }
-    }
-    freeaddrinfo(found);
-    if (fd < 0) return nullptr;
-    const int wake = eventfd(0, EFD_CLOEXEC);
-    if (wake < 0) {
-      close(fd);
-      return nullptr;
-    }
-    std::unique_ptr<UdpProber> p(new UdpProber(fd, wake, tag, std::move(key), clock, interval,
-                                               std::move(on_exchange)));
-    p->thread_ = std::thread([raw = p.get()] { raw->Run(); });
-    return p;
-  }
-
-  ~UdpProber() {
-    const uint64_t one = 1;
-    (void)!write(wake_, &one, sizeof one);
-    thread_.join();
-    close(fd_);
-    close(wake_);
-  }
-
- private:
-  UdpProber(int fd, int wake, uint64_t tag, std::string key, const MonotonicSource* clock,
-            Duration interval, std::function<void()> on_exchange)
-      : fd_(fd), wake_(wake), tag_(tag), key_(std::move(key)), clock_(clock),
-        interval_(interval), on_exchange_(std::move(on_exchange)) {}
-
-  // Waits until the socket is readable (true) or the timeout passes or a
-  // stop is asked for (false; stopping_ tells which).
-  bool WaitReadable(Duration timeout) {
-    std::array<pollfd, 2> fds{pollfd{fd_, POLLIN, 0}, pollfd{wake_, POLLIN, 0}};
-    const int ms = static_cast<int>(std::max<int64_t>(0, timeout.nanos() / 1'000'000));
-    if (poll(fds.data(), fds.size(), ms) <= 0) return false;
-    if (fds[1].revents != 0) {
-      stopping_ = true;
-      return false;
-    }
-    return (fds[0].revents & POLLIN) != 0;
-  }
-
-  // Schedules run on the process's steady clock: the client clock (clock_)
-  // may be a test's hand-driven one and only stamps T2 and T3.
-  static int64_t SteadyNanos() {
-    return std::chrono::duration_cast<std::chrono::nanoseconds>(
-               std::chrono::steady_clock::now().time_since_epoch())
-        .count();
-  }
-
-  void Run() {
-    using net::ProbeDatagram;
-    using net::ProbeDatagramKind;
-    uint64_t id = 0;
-    int sent = 0;
-    std::array<char, net::kMaxProbeDatagramBytes + 1> buf{};
-    while (!stopping_) {
-      ProbeDatagram request{ProbeDatagramKind::kRequest, tag_, ++id};
-      const std::string out = net::EncodeProbeDatagram(request, key_);
-      if (send(fd_, out.data(), out.size(), 0) >= 0) {
-        const int64_t give_up = SteadyNanos() + kReplyTimeout.nanos();
-        while (!stopping_) {
-          const int64_t left = give_up - SteadyNanos();
-          if (left <= 0 || !WaitReadable(Duration::Nanos(left))) break;
-          const ssize_t n = recv(fd_, buf.data(), buf.size(), 0);
-          const int64_t t2 = clock_->NowNanos();  // as close to the read as we can
-          if (n <= 0) continue;  // e.g. ICMP port unreachable from an earlier send
-          ProbeDatagram c;
-          if (net::DecodeProbeDatagram(std::string_view(buf.data(), static_cast<size_t>(n)),
-                                       key_, &c) != net::ProbeDecodeResult::kOk ||
-              c.kind != ProbeDatagramKind::kChallenge || c.tag != tag_ || c.id != id) {
-            continue;  // stale or foreign; keep waiting for ours
-          }
-          ProbeDatagram answer{ProbeDatagramKind::kAnswer, tag_, id, c.t1_session_ns, t2, 0};
-          answer.t3_client_ns = clock_->NowNanos();
-          const std::string a = net::EncodeProbeDatagram(answer, key_);
-          if (send(fd_, a.data(), a.size(), 0) >= 0) on_exchange_();
-          break;
-        }
-      }
-      ++sent;
-      const Duration gap = sent < kBurst ? kBurstSpacing : interval_;
-      // Sleeps until the next probe unless asked to stop; datagrams that
-      // arrive meanwhile are late challenges, read and dropped.
-      const int64_t next = SteadyNanos() + gap.nanos();
-      while (!stopping_) {
-        const int64_t left = next - SteadyNanos();
-        if (left <= 0) break;
-        if (WaitReadable(Duration::Nanos(left))) (void)recv(fd_, buf.data(), buf.size(), 0);
-      }
-    }
-  }
-
-  const int fd_;     // connected UDP socket
-  const int wake_;   // eventfd: written to stop
-  const uint64_t tag_;
-  const std::string key_;
-  const MonotonicSource* const clock_;  // the client clock; T2 and T3
-  const Duration interval_;
-  const std::function<void()> on_exchange_;
-  bool stopping_ = false;  // only the thread touches it
-  std::thread thread_;
-};
-
-// One stream attempt. The worker thread owns it; the reader thread uses
-// `stream` for reads only; other threads touch only `ctx` (TryCancel is
-// thread-safe) and the fields guarded by the client's mu_.
+// One stream attempt. The worker thread owns it. The reader thread opens
+// the call, writes the Hello and then only reads; the worker writes
+// everything after the Hello, once it has seen the first message arrive
+// (under mu_, so the two never write at once). Other threads touch only
+// `ctx` (TryCancel is thread-safe, also before the call exists) and the
+// fields guarded by the client's mu_.
 template <typename Kind>
 struct StreamClient<Kind>::Connection {
   grpc::ClientContext ctx;
+  // Set by the reader thread under mu_ before `first` or `reader_done`.
   std::unique_ptr<grpc::ClientReaderWriter<Request, tickmark::v1::ServerMessage>>
       stream;
   std::thread reader;
+  std::optional<tickmark::v1::ServerMessage> first;  // guarded by mu_
   bool welcomed = false;     // guarded by mu_
-  bool reader_done = false;  // Read() returned false; guarded by mu_
+  bool abandoned = false;    // no Welcome: the worker ends the attempt; mu_
+  bool reader_done = false;  // the reader stopped; guarded by mu_
   bool writes_done = false;  // WritesDone() called; guarded by mu_
   std::deque<Request> probe_replies;  // T2 stamped, T3 not yet; guarded by mu_
   // Declared last so it stops first: it reports to the client until then.
@@ -221,7 +89,7 @@ struct StreamClient<Kind>::Connection {
 };
 
 template <typename Kind>
-StreamClient<Kind>::StreamClient() : clock_(SystemMonotonic::Get()) {}
+StreamClient<Kind>::StreamClient() : clock_(SystemClock()) {}
 
 template <typename Kind>
 StreamClient<Kind>::~StreamClient() {
@@ -408,8 +276,35 @@ absl::Status StreamClient<Kind>::OnWelcomeLocked(const tickmark::v1::Welcome& w)
 }
 
 template <typename Kind>
-void StreamClient<Kind>::ReadLoop(Connection* conn) {
+void StreamClient<Kind>::ReadLoop(Connection* conn, Request hello) {
+  auto stream = Kind::Open(stub_.get(), &conn->ctx);
   tickmark::v1::ServerMessage msg;
+  // Stamped once the call is open, so connecting does not count as transit.
+  hello.mutable_hello()->set_sent_client_ns(clock_->NowNanos());
+  const bool hello_ok = stream->Write(hello);
+  {
+    std::lock_guard<std::mutex> lock(mu_);
+    conn->stream = std::move(stream);
+  }
+  if (hello_ok && conn->stream->Read(&msg)) {
+    std::unique_lock<std::mutex> lock(mu_);
+    conn->first = std::move(msg);
+    msg.Clear();
+    cv_.notify_all();
+    // Nothing after the first message is taken from a server that did not
+    // welcome this client.
+    cv_.wait(lock, [conn] { return conn->welcomed || conn->abandoned; });
+    if (conn->abandoned) {
+      conn->reader_done = true;
+      cv_.notify_all();
+      return;
+    }
+  } else {
+    std::lock_guard<std::mutex> lock(mu_);
+    conn->reader_done = true;
+    cv_.notify_all();
+    return;
+  }
   while (conn->stream->Read(&msg)) {
     if (msg.has_probe()) {
       const int64_t t2 = clock_->NowNanos();  // as close to the read as we can
@@ -453,7 +348,7 @@ void StreamClient<Kind>::ReadLoop(Connection* conn) {
       } else if (callbacks_.on_rejected) {
         callbacks_.on_rejected(
             ack.client_sequence(), Kind::GetPayload(*request),
-            absl::Status(static_cast<absl::StatusCode>(ack.code()), ack.message()));
+            AckStatus(ack));
       }
     }
     // A second Welcome, or a body from a newer protocol: nothing to do.
@@ -464,22 +359,16 @@ void StreamClient<Kind>::ReadLoop(Connection* conn) {
 }
 
 template <typename Kind>
-grpc::Status StreamClient<Kind>::RunConnection(bool* welcomed) {
+absl::Status StreamClient<Kind>::RunConnection(bool* welcomed) {
   *welcomed = false;
   Connection conn;
   {
     std::lock_guard<std::mutex> lock(mu_);
-    if (closing_ || stop_) return grpc::Status(grpc::StatusCode::CANCELLED, "closed");
+    if (closing_ || stop_) return absl::CancelledError("closed");
     conn_ = &conn;
     last_written_ = 0;  // resend everything unacknowledged
     SetStateLocked(StreamState::kConnecting);
   }
-  auto forget = [&] {
-    std::lock_guard<std::mutex> lock(mu_);
-    conn_ = nullptr;
-  };
-  conn.stream = Kind::Open(stub_.get(), &conn.ctx);
-
   Request hello;
   auto* h = hello.mutable_hello();
   h->set_token(options_.token);
@@ -487,50 +376,65 @@ grpc::Status StreamClient<Kind>::RunConnection(bool* welcomed) {
   h->set_source_kind(options_.source.kind);
   h->set_source_description(options_.source.description);
   h->set_software(options_.source.software);
-  h->set_sent_client_ns(clock_->NowNanos());
-  tickmark::v1::ServerMessage first;
-  if (!conn.stream->Write(hello) || !conn.stream->Read(&first)) {
-    grpc::Status s = conn.stream->Finish();
-    forget();
-    return s;
-  }
-  if (!first.has_welcome()) {
-    conn.ctx.TryCancel();
-    conn.stream->Finish();
-    forget();
-    return grpc::Status(grpc::StatusCode::INTERNAL,
-                        "server sent something other than a Welcome first");
-  }
-  {
-    std::unique_lock<std::mutex> lock(mu_);
-    absl::Status s = OnWelcomeLocked(first.welcome());
-    if (!s.ok()) {
-      conn.ctx.TryCancel();
-      conn_ = nullptr;
-      lock.unlock();
-      conn.stream->Finish();
-      return grpc::Status(static_cast<grpc::StatusCode>(s.code()),
-                          std::string(s.message()));
+  conn.reader = std::thread(
+      [this, &conn, hello = std::move(hello)]() mutable { ReadLoop(&conn, std::move(hello)); });
+
+  std::unique_lock<std::mutex> lock(mu_);
+  // Ends an attempt that got no usable Welcome: `why`, or else the status
+  // the call ended with.
+  auto give_up = [&](absl::Status why) {
+    conn.abandoned = true;
+    // A call that is already over keeps the status the server gave it;
+    // cancelling would replace that with CANCELLED.
+    if (!conn.reader_done) conn.ctx.TryCancel();
+    cv_.notify_all();
+    lock.unlock();
+    conn.reader.join();
+    absl::Status finished = rpc::FromGrpc(conn.stream->Finish());
+    lock.lock();
+    conn_ = nullptr;
+    return why.ok() ? finished : why;
+  };
+  auto first_arrived = [&] { return conn.first.has_value() || conn.reader_done; };
+  if (options_.hello_timeout > Duration::Zero()) {
+    const auto deadline =
+        std::chrono::steady_clock::now() + std::chrono::nanoseconds(options_.hello_timeout.nanos());
+    if (!cv_.wait_until(lock, deadline, first_arrived)) {
+      // A server that takes the stream but never welcomes would otherwise
+      // hold this client forever; the next attempt may reach a healthy one.
+      return give_up(absl::DeadlineExceededError(absl::StrCat(
+          "no Welcome from ", options_.target, " within ",
+          options_.hello_timeout.nanos() / 1'000'000, " ms of the Hello")));
     }
-    conn.welcomed = true;
-    *welcomed = true;
-    SetStateLocked(StreamState::kConnected);
+  } else {
+    cv_.wait(lock, first_arrived);
   }
+  if (!conn.first.has_value()) return give_up(absl::OkStatus());
+  if (!conn.first->has_welcome()) {
+    return give_up(absl::InternalError("server sent something other than a Welcome first"));
+  }
+  const tickmark::v1::Welcome w = conn.first->welcome();
+  if (absl::Status s = OnWelcomeLocked(w); !s.ok()) return give_up(s);
+  conn.welcomed = true;
+  *welcomed = true;
+  SetStateLocked(StreamState::kConnected);
+  lock.unlock();
   NotifyState();
-  const tickmark::v1::Welcome& w = first.welcome();
   if (options_.udp_probes && w.udp_probe_port() != 0 && w.udp_probe_port() <= 65535 &&
       w.udp_probe_key().size() == net::kProbeKeyBytes) {
-    conn.udp = UdpProber::Start(TargetHost(options_.target), w.udp_probe_port(), w.udp_probe_tag(),
-                                w.udp_probe_key(), clock_, options_.udp_probe_interval, [this] {
-                                  std::lock_guard<std::mutex> lock(mu_);
-                                  ++status_.udp_probes;
-                                  cv_.notify_all();
-                                });
+    const std::string host = TargetHost(options_.target);
+    if (host != "unix") {
+      conn.udp = UdpProber::Start(host, w.udp_probe_port(), w.udp_probe_tag(), w.udp_probe_key(),
+                                  clock_, options_.udp_probe_interval, [this] {
+                                    std::lock_guard<std::mutex> l(mu_);
+                                    ++status_.udp_probes;
+                                    cv_.notify_all();
+                                  });
+    }
   }
-  conn.reader = std::thread([this, &conn] { ReadLoop(&conn); });
 
-  // The writer: this thread is the only one that writes to the stream.
-  std::unique_lock<std::mutex> lock(mu_);
+  // The writer: this thread is the only one that writes after the Hello.
+  lock.lock();
   while (true) {
     cv_.wait(lock, [&] {
       return conn.reader_done || stop_ || !conn.probe_replies.empty() ||
@@ -570,8 +474,9 @@ grpc::Status StreamClient<Kind>::RunConnection(bool* welcomed) {
   // A failed write means the call is over, so the reader's Read fails too.
   conn.reader.join();
   conn.udp.reset();
-  grpc::Status s = conn.stream->Finish();
-  forget();
+  absl::Status s = rpc::FromGrpc(conn.stream->Finish());
+  lock.lock();
+  conn_ = nullptr;
   return s;
 }
 
@@ -582,10 +487,10 @@ void StreamClient<Kind>::Run() {
   std::unique_lock<std::mutex> lock(mu_, std::defer_lock);
   while (true) {
     bool welcomed = false;
-    grpc::Status s = RunConnection(&welcomed);
+    absl::Status s = RunConnection(&welcomed);
     lock.lock();
-    if (!s.ok() && !(closing_ && s.error_code() == grpc::StatusCode::CANCELLED)) {
-      status_.last_error = FromGrpc(s);
+    if (!s.ok() && !(closing_ && s.code() == absl::StatusCode::kCancelled)) {
+      status_.last_error = s;
     }
     if (IsPermanent(s, welcomed)) {
       SetStateLocked(StreamState::kFailed);

@@ -13,7 +13,10 @@
 // write, both on the injected client clock — the clock event times use).
 // On stream loss the client waits (exponential backoff, 100 ms doubling to
 // 5 s, ±20% jitter, reset after a Welcome), says Hello again and resends
-// every unacknowledged message in sequence order. An Ack with code 0 (stored
+// every unacknowledged message in sequence order. A server that takes the
+// stream but sends no Welcome within StreamOptions::hello_timeout counts as
+// a lost stream too (DEADLINE_EXCEEDED in last_error): the attempt is
+// cancelled and the next one follows after the backoff. An Ack with code 0 (stored
 // or duplicate) removes a message; an Ack with another code rejects it for
 // good: it is removed, reported through on_rejected, never resent.
 // UNAUTHENTICATED, PERMISSION_DENIED, NOT_FOUND, FAILED_PRECONDITION (at any
@@ -37,7 +40,7 @@
 // but the sample, since the stream's own probes go on regardless.
 //
 // Threads and ownership. Connect() starts one worker thread (connects, waits,
-// writes) and each connection has one reader thread (acks, probes), plus
+// writes) and each connection has one reader thread (Hello, acks, probes), plus
 // one UDP prober thread when the server offers a probe port. The
 // client owns both and joins them in Close() or the destructor.
 // Send, Flush, status and Close are thread-safe and may be called from any
@@ -109,8 +112,13 @@ struct StreamOptions {
   SourceInfo source;
   std::shared_ptr<grpc::ChannelCredentials> credentials;  // see channel.h
   // Event times and probe answers are read from this clock. Not owned; must
-  // outlive the client. nullptr: CLOCK_MONOTONIC (SystemMonotonic).
+  // outlive the client. nullptr: CLOCK_MONOTONIC (SystemMonotonic,
+  // server/core/time.h).
   const MonotonicSource* clock = nullptr;
+  // An attempt whose Welcome has not arrived this long after it started is
+  // given up and retried (a server that accepts streams but never answers
+  // must not hold the client forever). Zero: wait without limit.
+  Duration hello_timeout = Duration::Seconds(10);
   Duration initial_backoff = Duration::Millis(100);
   Duration max_backoff = Duration::Seconds(5);
   double backoff_jitter = 0.2;  // ± fraction of each wait
@@ -220,9 +228,13 @@ class StreamClient {
   };
 
   void Run();
-  // One connection attempt, from Hello to Finish. Sets *welcomed.
-  grpc::Status RunConnection(bool* welcomed);
-  void ReadLoop(Connection* conn);
+  // One connection attempt, from Hello to Finish: how the call ended.
+  // Sets *welcomed.
+  absl::Status RunConnection(bool* welcomed);
+  // The reader thread of one attempt: opens the call, writes `hello`, hands
+  // the first message to the worker, and after a Welcome reads acks and
+  // probes until the call ends.
+  void ReadLoop(Connection* conn, Request hello);
   // Applies a Welcome under mu_; a non-OK result is a permanent error.
   absl::Status OnWelcomeLocked(const tickmark::v1::Welcome& w);
   void EnqueueLocked(Payload payload);

@@ -218,7 +218,10 @@ std::vector<KeyEvent> KeyMap::FlushPending() {
 std::string KeyMap::Legend() const {
   // Group keys by binding, in order of value (quit last).
   std::vector<std::pair<const Binding*, std::string>> groups;
-  for (const auto& [key, b] : bindings_) {
+  for (const auto& entry : bindings_) {
+    // Not a structured binding: clang 14 (the fuzz build) cannot capture one.
+    const std::string& key = entry.first;
+    const Binding& b = entry.second;
     auto it = std::find_if(groups.begin(), groups.end(), [&](const auto& g) {
       return g.first->action == b.action && g.first->value == b.value &&
              g.first->label == b.label;

@@ -2,6 +2,8 @@
 // restarted mid-stream on the same port and ledger.
 #include "clients/agent/agent.h"
 
+#include <algorithm>
+#include <atomic>
 #include <filesystem>
 #include <fstream>
 #include <set>
@@ -9,6 +11,7 @@
 #include <gtest/gtest.h>
 
 #include "server/rpc/server.h"
+#include "tests/clients/fake_live.h"
 #include "tickmark/v1/admin.grpc.pb.h"
 
 namespace tickmark::agent {
@@ -130,7 +133,7 @@ TEST_F(AgentTest, ServerRestartedMidStreamLosesAndDuplicatesNothing) {
   std::vector<uint64_t> seqs;
   while (states.size() < 80) {
     auto r = follower->Next(std::chrono::seconds(30));
-    ASSERT_TRUE(r) << "only " << states.size() << " steps arrived";
+    ASSERT_TRUE(r) << "only " << states.size() << " steps arrived; " << follower->status();
     states.push_back(r->step().state());
     seqs.push_back(r->sequence());
   }
@@ -143,6 +146,72 @@ TEST_F(AgentTest, ServerRestartedMidStreamLosesAndDuplicatesNothing) {
   size_t n = 0;
   while (check->Next(std::chrono::seconds(10))) ++n;
   EXPECT_EQ(n, 80u);
+}
+
+// Regression: a server that took the agent's stream but never welcomed it
+// held Agent::Connect until connect_timeout, however long that was. The
+// attempt is now given up after hello_timeout and retried.
+TEST(AgentHelloTest, ServerThatNeverWelcomesIsRetried) {
+  testing::FakeLive fake;
+  const std::string target = fake.Start();
+  fake.Edit([](testing::FakeLive::Script& s) { s.silent_hellos = {1}; });
+  Agent::Options options;
+  options.server = target;
+  options.token = "tm_test_token";
+  options.client_id = "host:test:agent-silent";
+  options.hello_timeout = std::chrono::milliseconds(200);
+  options.connect_timeout = std::chrono::milliseconds(60'000);
+  auto agent = Agent::Connect(options);
+  ASSERT_TRUE(agent.ok()) << agent.status();
+  EXPECT_EQ((*agent)->status().connections, 1u);
+  EXPECT_EQ((*agent)->status().last_error.code(), absl::StatusCode::kDeadlineExceeded);
+  Step step;
+  step.action = "north";
+  ASSERT_TRUE((*agent)->Publish(step).ok());
+  ASSERT_TRUE((*agent)->Flush(std::chrono::milliseconds(30'000)).ok());
+  EXPECT_EQ(fake.hellos(), 2);
+  EXPECT_EQ(fake.stored().size(), 1u);
+}
+
+// FakeLive plus a Subscribe whose first call the "server" cancels, as a
+// server that shuts down does; later calls send steps from_sequence..3.
+class CancellingSubscribeLive final : public testing::FakeLive {
+ public:
+  grpc::Status Subscribe(grpc::ServerContext*, const v1::SubscribeRequest* req,
+                         grpc::ServerWriter<v1::Record>* out) override {
+    if (calls_.fetch_add(1) == 0) return grpc::Status(grpc::StatusCode::CANCELLED, "shutting down");
+    for (uint64_t seq = std::max<uint64_t>(req->from_sequence(), 1); seq <= 3; ++seq) {
+      v1::Record r;
+      r.set_sequence(seq);
+      r.mutable_step()->set_state(std::to_string(seq));
+      if (!out->Write(r)) break;
+    }
+    return grpc::Status::OK;
+  }
+  int calls() const { return calls_.load(); }
+
+ private:
+  std::atomic<int> calls_{0};
+};
+
+// Regression: a subscription whose call the server cancelled (CANCELLED,
+// e.g. while it shut down for a restart) stopped for good with 0 records
+// instead of resuming like after any other broken connection.
+TEST(AgentSubscribeTest, ResumesAfterServerCancelledTheCall) {
+  CancellingSubscribeLive fake;
+  const std::string target = fake.Start();
+  Agent::Options options;
+  options.server = target;
+  options.token = "tm_test_token";
+  options.client_id = "host:test:agent-cancelled";
+  auto agent = Agent::Connect(options);
+  ASSERT_TRUE(agent.ok()) << agent.status();
+  auto sub = (*agent)->Subscribe({.from_sequence = 1, .kinds = {}, .follow = false});
+  std::vector<std::string> states;
+  while (auto r = sub->Next(std::chrono::seconds(30))) states.push_back(r->step().state());
+  EXPECT_EQ(states, (std::vector<std::string>{"1", "2", "3"})) << sub->status();
+  EXPECT_TRUE(sub->status().ok()) << sub->status();
+  EXPECT_EQ(fake.calls(), 2);
 }
 
 }  // namespace

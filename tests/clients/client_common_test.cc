@@ -98,6 +98,17 @@ TEST_F(TokenTest, MissingEmptyAndMultiLineAreErrors) {
   EXPECT_FALSE(ReadToken({dir_ + "/absent", ""}).ok());
 }
 
+// Regression: the client's own loopback test took every host starting with
+// "127." for loopback, so a DNS name like 127.example.org got plaintext.
+TEST(ChannelTest, DnsNameStartingWith127IsNotLoopback) {
+  EXPECT_FALSE(MayUsePlaintext("127.example.org:7461"));
+  EXPECT_FALSE(MayUsePlaintext("dns:///127.example.org:7461"));
+  EXPECT_FALSE(MayUsePlaintext("127.0.0.1.example.org:7461"));
+  auto choice = ChooseCredentials({"127.example.org:7461", false, ""});
+  ASSERT_TRUE(choice.ok());
+  EXPECT_TRUE(choice->tls);
+}
+
 TEST(ChannelTest, TargetHost) {
   EXPECT_EQ(TargetHost("127.0.0.1:7461"), "127.0.0.1");
   EXPECT_EQ(TargetHost("[::1]:7461"), "::1");
@@ -109,12 +120,14 @@ TEST(ChannelTest, TargetHost) {
 
 TEST(ChannelTest, PlaintextOnlyOnLoopbackUnlessAsked) {
   // design.md §7: plaintext only on loopback or when explicitly asked for.
-  EXPECT_TRUE(IsLoopbackHost("127.0.0.1"));
-  EXPECT_TRUE(IsLoopbackHost("127.3.2.1"));  // RFC 1122 §3.2.1.3: 127/8 is loopback
-  EXPECT_TRUE(IsLoopbackHost("::1"));        // RFC 4291 §2.5.3
-  EXPECT_TRUE(IsLoopbackHost("LocalHost"));
-  EXPECT_FALSE(IsLoopbackHost("10.0.0.5"));
-  EXPECT_FALSE(IsLoopbackHost("127example.org"));
+  EXPECT_TRUE(MayUsePlaintext("127.0.0.1:7461"));
+  EXPECT_TRUE(MayUsePlaintext("127.3.2.1:7461"));  // RFC 1122 §3.2.1.3: 127/8 is loopback
+  EXPECT_TRUE(MayUsePlaintext("[::1]:7461"));      // RFC 4291 §2.5.3
+  EXPECT_TRUE(MayUsePlaintext("LocalHost:7461"));  // RFC 6761 §6.3
+  EXPECT_TRUE(MayUsePlaintext("ipv4:127.0.0.1:7461"));
+  EXPECT_TRUE(MayUsePlaintext("unix:/run/tickmark.sock"));
+  EXPECT_FALSE(MayUsePlaintext("10.0.0.5:7461"));
+  EXPECT_FALSE(MayUsePlaintext("127example.org:7461"));
 
   auto loop = ChooseCredentials({"127.0.0.1:7461", false, ""});
   ASSERT_TRUE(loop.ok());

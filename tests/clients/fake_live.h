@@ -2,7 +2,7 @@
 // in stream.proto (Hello → Welcome, an Ack per message, deduplication by
 // (client_id, client_sequence), ProbeRequests answered by ProbeReplies) and
 // can be told to misbehave: end streams mid-way, reject chosen sequences,
-// refuse hellos. It counts everything it sees so tests can check exactly-once
+// refuse hellos, leave hellos unanswered. It counts everything it sees so tests can check exactly-once
 // delivery. Runs on 127.0.0.1:0 with the sync gRPC server API.
 //
 // Thread-safe: handlers run on gRPC threads, tests read and change the script
@@ -28,7 +28,7 @@
 
 namespace tickmark::testing {
 
-class FakeLive final : public tickmark::v1::Live::Service {
+class FakeLive : public tickmark::v1::Live::Service {
  public:
   // How the fake misbehaves; change under Edit().
   struct Script {
@@ -36,6 +36,9 @@ class FakeLive final : public tickmark::v1::Live::Service {
     std::optional<grpc::Status> hello_error;
     // Refuse this many Hellos with UNAVAILABLE first.
     int transient_hello_failures = 0;
+    // Hellos (numbered from 1 over the fake's life) that get no answer at
+    // all: the stream stays open, silent, until the client ends it.
+    std::set<int> silent_hellos;
     // End a stream with UNAVAILABLE after it received this many messages
     // (0: never), at most max_drops times in all. When store_before_drop,
     // the last message is stored but its Ack never sent.
@@ -152,10 +155,20 @@ class FakeLive final : public tickmark::v1::Live::Service {
     const int64_t hello_ns = in.hello().sent_client_ns();
     tickmark::v1::ServerMessage out;
     int probes = 0;
+    bool silent = false;
     {
       std::lock_guard<std::mutex> lock(mu_);
       ++hellos_;
       cv_.notify_all();
+      silent = script_.silent_hellos.count(hellos_) != 0;
+    }
+    if (silent) {
+      while (stream->Read(&in)) {
+      }
+      return grpc::Status::OK;
+    }
+    {
+      std::lock_guard<std::mutex> lock(mu_);
       if (script_.hello_error) return *script_.hello_error;
       if (script_.transient_hello_failures > 0) {
         --script_.transient_hello_failures;

@@ -233,6 +233,60 @@ TEST(StreamClientTest, TransientHelloErrorsAreRetried) {
   EXPECT_EQ(client.status().connections, 1u);
 }
 
+// Regression: a server that accepted the stream but never sent a Welcome
+// held the client in its first Read forever. Now each such attempt ends
+// after hello_timeout and the next one follows, and what was not
+// acknowledged before is resent once a server welcomes the client.
+TEST(StreamClientTest, ServerThatNeverWelcomesIsRetriedAfterHelloTimeout) {
+  FakeLive fake;
+  const std::string target = fake.Start();
+  fake.Edit([](FakeLive::Script& s) {
+    s.silent_hellos = {1, 3};  // the first attempt and the one after the drop
+    s.drop_after = 3;          // the first welcomed stream ends at message 3,
+    s.max_drops = 1;
+    s.store_before_drop = false;  // which is neither stored nor acknowledged
+  });
+  Seen seen;
+  TrainerClient client;
+  StreamOptions options = Options(target, "host:test:silent");
+  options.hello_timeout = Duration::Millis(200);
+  ASSERT_TRUE(client.Connect(options, seen.Callbacks()).ok());
+  constexpr int kMessages = 5;
+  for (int i = 0; i < kMessages; ++i) ASSERT_TRUE(client.Send(Feedback(1.0, i)).ok());
+  ASSERT_TRUE(client.Flush(In(seconds(30))).ok());
+  ASSERT_TRUE(client.Close(In(seconds(10))).ok());
+
+  EXPECT_EQ(fake.hellos(), 4);
+  EXPECT_EQ(fake.drops(), 1);
+  const auto stored = fake.stored();
+  ASSERT_EQ(stored.size(), static_cast<size_t>(kMessages));
+  for (uint64_t seq = 1; seq <= kMessages; ++seq) {
+    EXPECT_EQ(stored.count({"host:test:silent", seq}), 1u) << seq;
+  }
+  std::lock_guard<std::mutex> l(seen.mu);
+  EXPECT_EQ(seen.acks.size(), static_cast<size_t>(kMessages));
+  const StreamStatus st = client.status();
+  EXPECT_EQ(st.connections, 2u);
+  EXPECT_EQ(st.reconnects, 3u);
+  EXPECT_EQ(st.last_error.code(), absl::StatusCode::kDeadlineExceeded) << st.last_error;
+}
+
+// A hello timeout of zero keeps the old behaviour: the attempt waits until
+// the server answers or the client is closed, and Close ends it.
+TEST(StreamClientTest, ZeroHelloTimeoutWaitsUntilClosed) {
+  FakeLive fake;
+  const std::string target = fake.Start();
+  fake.Edit([](FakeLive::Script& s) { s.silent_hellos = {1}; });
+  TrainerClient client;
+  StreamOptions options = Options(target, "host:test:nolimit");
+  options.hello_timeout = Duration::Zero();
+  ASSERT_TRUE(client.Connect(options).ok());
+  ASSERT_TRUE(fake.WaitFor([&] { return fake.hellos_locked() >= 1; }));
+  EXPECT_EQ(client.status().state, StreamState::kConnecting);
+  EXPECT_TRUE(client.Close(In(seconds(10))).ok());
+  EXPECT_EQ(fake.hellos(), 1);
+}
+
 // A restarted program with the same stable id must continue above what the
 // server holds, or its new messages would be taken for duplicates.
 TEST(StreamClientTest, RestartContinuesAboveServerSequence) {

@@ -1,0 +1,204 @@
+#!/usr/bin/python3
+"""Writes the seed corpora in fuzz/corpus/ that are not plain text.
+
+Run from the repository root after a build (it imports the Python stubs from
+build/python, and Debian's python3 for its protobuf module):
+  /usr/bin/python3 fuzz/make_seeds.py [BUILD_DIR]
+The text seeds
+(profile_toml, delay_kernel) are kept by hand. Targets that read their input
+through libFuzzer's FuzzedDataProvider take integers from the END of the
+input and byte strings from the front; FdpInput mirrors that so each seed
+drives its target down a real path.
+"""
+import hashlib
+import hmac
+import os
+import struct
+import sys
+
+ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
+CORPUS = os.path.join(ROOT, "fuzz", "corpus")
+
+
+class FdpInput:
+    """Builds an input that FuzzedDataProvider reads back as given."""
+
+    def __init__(self):
+        self.front = b""
+        self.back = []  # bytes in the order the provider consumes them
+
+    def int_in_range(self, lo, hi, value):
+        assert lo <= value <= hi
+        span, raw, n = hi - lo, value - lo, 0
+        while n < 8 and (span >> (8 * n)) > 0:
+            n += 1
+        self.back += list(raw.to_bytes(n, "big")) if n else []
+        return self
+
+    def i64(self, v):
+        return self.int_in_range(-(1 << 63), (1 << 63) - 1, v)
+
+    def i32(self, v):
+        return self.int_in_range(-(1 << 31), (1 << 31) - 1, v)
+
+    def u64(self, v):
+        return self.int_in_range(0, (1 << 64) - 1, v)
+
+    def u16(self, v):
+        return self.int_in_range(0, (1 << 16) - 1, v)
+
+    def boolean(self, b):
+        return self.int_in_range(0, 255, 1 if b else 0)
+
+    def data(self, b):
+        self.front += b
+        return self
+
+    def bytes(self):
+        return self.front + bytes(reversed(self.back))
+
+
+def write(target, name, content):
+    os.makedirs(os.path.join(CORPUS, target), exist_ok=True)
+    with open(os.path.join(CORPUS, target, name), "wb") as f:
+        f.write(content)
+
+
+# --- evdev: struct input_event on 64-bit Linux (include/uapi/linux/input.h).
+EV_SYN, EV_KEY, SYN_REPORT, SYN_DROPPED = 0, 1, 0, 3
+KEY_F, KEY_J, KEY_PAGEDOWN = 33, 36, 109
+
+
+def rec(sec, usec, type_, code, value):
+    return struct.pack("<qqHHi", sec, usec, type_, code, value)
+
+
+def evdev_read(fdp, chunk):
+    fdp.int_in_range(0, 15, 3).int_in_range(0, 72, len(chunk)).data(chunk)
+
+
+press = rec(1000, 5, EV_KEY, KEY_F, 1) + rec(1000, 5, EV_SYN, SYN_REPORT, 0)
+release = rec(1000, 90005, EV_KEY, KEY_F, 0) + rec(1000, 90005, EV_SYN, SYN_REPORT, 0)
+repeat = rec(1000, 60000, EV_KEY, KEY_F, 2) + rec(1000, 60000, EV_SYN, SYN_REPORT, 0)
+fdp = FdpInput()
+for chunk in (press, repeat, release):
+    evdev_read(fdp, chunk)
+write("evdev", "press-repeat-release", fdp.bytes())
+fdp = FdpInput()
+both = press + release
+evdev_read(fdp, both[:10])
+evdev_read(fdp, both[10:48])
+evdev_read(fdp, both[48:72])
+evdev_read(fdp, both[72:])
+write("evdev", "split-reads", fdp.bytes())
+fdp = FdpInput()
+evdev_read(fdp, rec(7, 1, EV_KEY, KEY_J, 1) + rec(7, 1, EV_SYN, SYN_DROPPED, 0))
+evdev_read(fdp, rec(7, 2, EV_KEY, KEY_PAGEDOWN, 1) + rec(7, 3, EV_SYN, SYN_REPORT, 0))
+fdp.int_in_range(0, 15, 2)  # TakeResyncRequest
+fdp.int_in_range(0, 15, 0).int_in_range(0, 4, 1).u16(KEY_PAGEDOWN)  # Resync
+evdev_read(fdp, rec(7, 4, EV_KEY, KEY_PAGEDOWN, 0) + rec(7, 4, EV_SYN, SYN_REPORT, 0))
+write("evdev", "dropped-then-resync", fdp.bytes())
+
+# --- serial_protocol: LineProtocol / RawProtocol reads.
+
+
+def serial(reads, stale_ns=1_000_000_000, host0=5_000_000_000):
+    fdp = FdpInput().int_in_range(1, 10_000_000_000, stale_ns)
+    fdp.int_in_range(0, 1 << 62, host0)
+    for delta, raw, chunk in reads:
+        fdp.int_in_range(0, 5_000_000_000, delta).boolean(raw)
+        fdp.int_in_range(0, 300, len(chunk)).data(chunk)
+    return fdp.bytes()
+
+
+write("serial_protocol", "lines", serial([(1000, False, b"B1 down 123456\nB1 up 123789\n"),
+                                          (2_000_000, False, b"B2 down 130000\r\nB2 up\n")]))
+write("serial_protocol", "cut-line", serial([(1000, False, b"B1 do"),
+                                             (2_000_000_000, False, b"B1 down 5\n")]))
+write("serial_protocol", "raw", serial([(1000, True, b"12"), (500, True, b"\x01\xff")]))
+write("serial_protocol", "garbage", serial([(1, False, b"B1 sideways 5\n" + b"x" * 140 + b"\n")]))
+
+# --- probe_datagram: magic "TMU1", kind, 3 zero bytes, tag, id, times, HMAC.
+
+
+def datagram(key, kind, tag, ident, *times):
+    body = b"TMU1" + bytes([kind, 0, 0, 0]) + struct.pack(">QQ", tag, ident)
+    body += b"".join(struct.pack(">q", t) for t in times)
+    return body + hmac.new(key, body, hashlib.sha256).digest()
+
+
+key = b"\x5a" * 32
+write("probe_datagram", "request", datagram(key, 1, 77, 1))
+write("probe_datagram", "challenge", datagram(key, 2, 77, 1, 1_700_000_000_000_000_000))
+write("probe_datagram", "answer", datagram(key, 3, 77, 1, 1_700_000_000_000_000_000,
+                                           5_000_000_000, 5_000_040_000))
+write("probe_datagram", "bad-mac", datagram(b"\xa5" * 32, 1, 77, 2))
+
+# --- udp_probe_table: requests and their answers on streams 1 and 2.
+fdp = FdpInput().int_in_range(0, 1 << 62, 1_700_000_000_000_000_000)
+for tag, ident in ((1, 1), (2, 1), (1, 2)):
+    fdp.int_in_range(0, 3, tag).int_in_range(0, 7, 4).int_in_range(0, 40, ident)
+    fdp.int_in_range(0, 3, 3).int_in_range(0, 7, 3).i32(250_000)  # session clock moves
+    fdp.int_in_range(0, 3, tag).int_in_range(0, 7, 6).boolean(True).int_in_range(0, 40, ident)
+    fdp.boolean(True).i64(5_000_000_000 + ident).i64(5_000_040_000 + ident)
+fdp.int_in_range(0, 3, 1).int_in_range(0, 7, 6).boolean(True).int_in_range(0, 40, 1)
+fdp.boolean(True).i64(5_000_000_001).i64(5_000_040_001)  # a replay
+write("udp_probe_table", "exchanges", fdp.bytes())
+fdp = FdpInput().int_in_range(0, 1 << 62, 0)
+fdp.int_in_range(0, 3, 1).int_in_range(0, 7, 0).int_in_range(0, 100, 32).data(b"TMU1" + bytes(28))
+fdp.int_in_range(0, 3, 1).int_in_range(0, 7, 2)  # stream removed
+fdp.int_in_range(0, 3, 1).int_in_range(0, 7, 4).int_in_range(0, 40, 3)
+fdp.int_in_range(0, 3, 1).int_in_range(0, 7, 1)  # and added again
+fdp.int_in_range(0, 3, 1).int_in_range(0, 7, 4).int_in_range(0, 40, 3)
+write("udp_probe_table", "remove-add", fdp.bytes())
+
+# --- clock_model: plausible probe sequences and event times.
+
+
+def probes(n, offset, drift_ppm, stages=8, events=3):
+    fdp = FdpInput().int_in_range(1, 16, stages).int_in_range(0, 1 << 62, 10**15)
+    for i in range(n):
+        fdp.int_in_range(0, 3, 1).boolean(False)
+        fdp.int_in_range(0, 1_000_000_000, 500_000_000)
+        off = offset + int(drift_ppm * 1e-6 * i * 5e8)
+        fdp.int_in_range(-10**12, 10**12, off)
+        fdp.int_in_range(-1_000_000, 50_000_000, 200_000 + 1000 * (i % 7))
+        fdp.int_in_range(-1_000, 5_000_000, 20_000)
+        fdp.int_in_range(-1_000_000, 100_000_000, 450_000 + 3000 * (i % 5))
+    for j in range(events):
+        fdp.int_in_range(0, 3, 0).boolean(False).i32(-1_000_000 * j)
+    return fdp.bytes()
+
+
+write("clock_model", "steady", probes(12, 3_000_000, 0))
+write("clock_model", "drifting", probes(40, -250_000_000, 80))
+write("clock_model", "few", probes(2, 0, 0, stages=1, events=1))
+
+# --- jsonl: real Records (protobuf wire format).
+sys.path.insert(0, os.path.join(sys.argv[1] if len(sys.argv) > 1 else "build", "python"))
+from tickmark.v1 import records_pb2 as r  # noqa: E402
+
+
+def record(seq, **body):
+    rec_ = r.Record(session_id="s-1a2b3c", sequence=seq, written_session_ns=10**18 + seq,
+                    hash=hashlib.sha256(bytes([seq])).digest(), **body)
+    return rec_.SerializeToString()
+
+
+write("jsonl", "session-opened", record(1, session_event=r.SessionEvent(
+    event=r.SessionEvent.KIND_OPENED, detail="opened by \"operator\"\n")))
+write("jsonl", "feedback", record(2, feedback=r.Feedback(
+    client_id="dock:ana:tickmark-keys:pts-3", client_sequence=4, trainer="trainer-ana",
+    value=-0.5, event_source_ns=5_000_000_000, arrival_session_ns=10**18,
+    event_session_ns=10**18 - 300_000_000)))
+write("jsonl", "step", record(3, step=r.Step(client_id="rover", client_sequence=1, agent="rover-1",
+                                             step_id=9, episode=2, start_agent_ns=1,
+                                             end_agent_ns=0)))
+write("jsonl", "probe", record(4, probe=r.Probe(client_id="c", probe_id=3, t1_session_ns=1,
+                                                t2_client_ns=2, t3_client_ns=3, t4_session_ns=4,
+                                                accepted=False, reject_reason="reversed")))
+write("jsonl", "label", record(5, label=r.Label(step_sequence=3, agent="rover-1", step_id=9,
+                                                value=0.25, weight=0.8, settled=True,
+                                                parts=[r.LabelPart(trainer="ü", value=1,
+                                                                   weight=0.1)])))
+print("seeds written under", CORPUS)
