@@ -21,6 +21,17 @@
 
 namespace tickmark::keys {
 
+int64_t InputRecord::time_ns() const {
+  int64_t sec_ns = 0, usec_ns = 0, sum = 0;
+  const int64_t saturated = (sec < 0 || (sec == 0 && usec < 0)) ? INT64_MIN : INT64_MAX;
+  if (__builtin_mul_overflow(sec, int64_t{1'000'000'000}, &sec_ns) ||
+      __builtin_mul_overflow(usec, int64_t{1'000}, &usec_ns) ||
+      __builtin_add_overflow(sec_ns, usec_ns, &sum)) {
+    return saturated;
+  }
+  return sum;
+}
+
 // The layout the constants above promise; the kernel header is the authority.
 static_assert(sizeof(input_event) == kInputEventSize);
 static_assert(offsetof(input_event, type) == kInputEventTypeOffset);

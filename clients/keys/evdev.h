@@ -50,7 +50,10 @@ struct InputRecord {
   uint16_t type = 0;
   uint16_t code = 0;
   int32_t value = 0;
-  int64_t time_ns() const { return sec * 1'000'000'000 + usec * 1'000; }
+  // The record's time in nanoseconds, saturated at the int64 limits: the
+  // kernel never sends such times, but records also come from files and
+  // FIFOs (--device), and an absurd one must not overflow.
+  int64_t time_ns() const;
 };
 
 // Reads one record from exactly kInputEventSize bytes (host byte order).

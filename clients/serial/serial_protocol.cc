@@ -44,7 +44,9 @@ std::optional<BoxEvent> ParseBoxLine(std::string_view line) {
   if (w.size() == 3) {
     int64_t us = 0;
     const auto [end, ec] = std::from_chars(w[2].data(), w[2].data() + w[2].size(), us);
-    if (ec != std::errc() || end != w[2].data() + w[2].size() || us < 0) return std::nullopt;
+    if (ec != std::errc() || end != w[2].data() + w[2].size() || us < 0 || us > kMaxBoxMicros) {
+      return std::nullopt;
+    }
     e.box_us = us;
   }
   return e;

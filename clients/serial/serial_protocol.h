@@ -41,6 +41,10 @@
 namespace tickmark::serial {
 
 inline constexpr size_t kMaxLine = 128;
+// The largest box timestamp taken (about 31.7 years of box uptime, in µs):
+// larger ones are garbage, and in nanoseconds they would overflow the
+// arithmetic of BoxClock.
+inline constexpr int64_t kMaxBoxMicros = 1'000'000'000'000'000;
 
 struct BoxEvent {
   std::string button;   // "B1"; "0x31" from the raw protocol

@@ -559,7 +559,11 @@ std::optional<DelayKernel> DelayKernel::Parse(std::string_view text,
   };
   std::optional<Duration> lower, upper, shift, first_edge, bin_width;
   double q = kDefaultHorizonQuantile;
-  for (const auto& [key, value] : params) {
+  // Not a structured binding: clang 14 (the fuzz build) cannot capture one
+  // in a lambda.
+  for (const auto& param : params) {
+    const auto& key = param.first;
+    const auto& value = param.second;
     bool ok = true;
     auto seconds = [&](std::optional<Duration>& out) {
       out = ParseSeconds(value);

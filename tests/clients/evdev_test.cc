@@ -70,6 +70,19 @@ TEST(EvdevLayout, MatchesThePublishedKernelHeader) {
   EXPECT_EQ(SYN_DROPPED, kSynDropped);    // event-codes.rst
 }
 
+// Regression (found by fuzz/evdev_fuzz.cc): a huge tv_sec from a record file
+// overflowed time_ns(); it now saturates.
+TEST(EvdevLayout, AbsurdRecordTimesSaturate) {
+  InputRecord r;
+  r.sec = INT64_MAX / 10;
+  EXPECT_EQ(r.time_ns(), INT64_MAX);
+  r.sec = INT64_MIN / 10;
+  EXPECT_EQ(r.time_ns(), INT64_MIN);
+  r.sec = 12;
+  r.usec = 345'678;
+  EXPECT_EQ(r.time_ns(), 12'345'678'000);
+}
+
 TEST(EvdevLayout, DecodesHandWrittenBytes) {
   // Built byte by byte from the published offsets (little-endian x86_64),
   // not from the struct: 1.000250 s, EV_KEY, KEY_PAGEDOWN, press.

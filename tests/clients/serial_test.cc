@@ -37,6 +37,17 @@ TEST(BoxLine, Parses) {
   EXPECT_FALSE(ParseBoxLine("B1 down 5 extra").has_value());
 }
 
+// Regression (found by fuzz/serial_protocol_fuzz.cc): a box timestamp above
+// about 9.2e15 µs overflowed BoxClock's nanosecond arithmetic.
+TEST(BoxLine, TimestampTooLargeForNanosecondsIsGarbage) {
+  EXPECT_FALSE(ParseBoxLine("B9 down 0000189399123359065702").has_value());
+  EXPECT_FALSE(ParseBoxLine("B9 down 9223372036854775807").has_value());
+  auto last = ParseBoxLine("B9 down 1000000000000000");  // kMaxBoxMicros itself
+  ASSERT_TRUE(last.has_value());
+  BoxClock clock;
+  EXPECT_EQ(clock.ToHost(*last->box_us, 5), 5);  // one sample: its own offset
+}
+
 TEST(LineProtocol, SplitLineGarbageAndOverlongLines) {
   LineProtocol p;
   EXPECT_TRUE(p.Feed("B1 do", 100).empty());  // a line cut in half
