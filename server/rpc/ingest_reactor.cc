@@ -58,9 +58,8 @@ void IngestReactor<Side>::Start(const absl::Status& admitted, std::string peer_h
   }
   admitted_ = true;
   const Duration timeout = service_->options().hello_timeout;
-  hello_deadline_.store(timeout > Duration::Zero()
-                            ? service_->limits_clock()->NowNanos() + timeout.nanos()
-                            : kNever);
+  hello_deadline_.store(
+      timeout > Duration::Zero() ? service_->limits_clock()->NowNanos() + timeout.nanos() : kNever);
   service_->ticker().Add(self_);
   reading_ = true;
   StartRead(&in_buf_);
@@ -87,8 +86,8 @@ void IngestReactor<Side>::OnReadDone(bool ok) {
     service_->counters().undecodable.fetch_add(1);
     Post([](IngestReactor& r) {
       r.reading_ = false;
-      r.FinishNow(grpc::Status(grpc::StatusCode::INVALID_ARGUMENT,
-                               Cat("a message did not decode as ", In::descriptor()->full_name())));
+      r.FinishNow(ToGrpc(absl::InvalidArgumentError(
+          Cat("a message did not decode as ", In::descriptor()->full_name()))));
     });
     return;
   }
@@ -159,8 +158,8 @@ void IngestReactor<Side>::Tick() {
   if (!hello_done_) {
     if (service_->limits_clock()->NowNanos() >= hello_deadline_.load()) {
       service_->counters().hello_timeouts.fetch_add(1);
-      FinishNow(grpc::Status(grpc::StatusCode::DEADLINE_EXCEEDED,
-                             Cat("no hello within ", opt.hello_timeout.seconds(), " s")));
+      FinishNow(ToGrpc(
+          absl::DeadlineExceededError(Cat("no hello within ", opt.hello_timeout.seconds(), " s"))));
     }
     return;
   }
@@ -207,12 +206,12 @@ void IngestReactor<Side>::HandleMessage(In message, int64_t arrival_mono) {
   if (finished_) return;
   if (!hello_done_) {
     if (!Side::IsHello(message)) {
-      return FinishNow(grpc::Status(grpc::StatusCode::INVALID_ARGUMENT,
-                                    "the first message on a stream must be a hello"));
+      return FinishNow(
+          ToGrpc(absl::InvalidArgumentError("the first message on a stream must be a hello")));
     }
     HandleHello(message.hello());
   } else if (Side::IsHello(message)) {
-    FinishNow(grpc::Status(grpc::StatusCode::INVALID_ARGUMENT, "a second hello on one stream"));
+    FinishNow(ToGrpc(absl::InvalidArgumentError("a second hello on one stream")));
   } else if (Side::IsProbeReply(message)) {
     HandleProbeReply(message.probe_reply());
   } else if (Side::IsPayload(message)) {
@@ -223,14 +222,13 @@ void IngestReactor<Side>::HandleMessage(In message, int64_t arrival_mono) {
     if (!TakeRateToken()) {
       service_->rate_limiter().NoteLimited(principal_.session_id + "/" + client_.client_id());
       Reject(Side::Sequence(message),
-             absl::ResourceExhaustedError(
-                 Cat("rate limit: slow down (", Side::kPayload, " per token and per stream, at most ",
-                     Side::kRole == v1::ROLE_TRAINER ? service_->options().feedback_rate
-                                                     : service_->options().step_rate,
-                     "/s); not stored")));
-    } else if (!model_.ready() &&
-               (!held_.empty() ||
-                arrival_mono - hello_mono_ns_ < service_->options().clock_wait.nanos())) {
+             absl::ResourceExhaustedError(Cat(
+                 "rate limit: slow down (", Side::kPayload, " per token and per stream, at most ",
+                 Side::kRole == v1::ROLE_TRAINER ? service_->options().feedback_rate
+                                                 : service_->options().step_rate,
+                 "/s); not stored")));
+    } else if (!model_.ready() && (!held_.empty() || arrival_mono - hello_mono_ns_ <
+                                                         service_->options().clock_wait.nanos())) {
       // Map once the first probe is back (see the header comment).
       held_.push_back({std::move(message), arrival});
       UpdateTickDue();
@@ -238,7 +236,7 @@ void IngestReactor<Side>::HandleMessage(In message, int64_t arrival_mono) {
       HandlePayload(message, arrival);
     }
   } else {
-    FinishNow(grpc::Status(grpc::StatusCode::INVALID_ARGUMENT, "empty message"));
+    FinishNow(ToGrpc(absl::InvalidArgumentError("empty message")));
   }
   MaybeRead();
 }
@@ -258,14 +256,14 @@ void IngestReactor<Side>::HandleHello(const v1::Hello& hello) {
   if (absl::Status s = CheckTokensAgree(hello.token(), metadata_secret_); !s.ok()) {
     return FinishNow(ToGrpc(s));
   }
-  absl::StatusOr<Principal> who = service_->auth()->Authenticate(
-      hello.token().empty() ? metadata_secret_ : hello.token());
+  absl::StatusOr<Principal> who =
+      service_->auth()->Authenticate(hello.token().empty() ? metadata_secret_ : hello.token());
   if (!who.ok()) return FinishNow(ToGrpc(who.status()));
   principal_ = *who;
   if (principal_.role != Side::kRole) {
-    return FinishNow(ToGrpc(absl::PermissionDeniedError(
-        Cat("this stream needs a ", Side::kName, " token; this one is ",
-            v1::Role_Name(principal_.role)))));
+    return FinishNow(ToGrpc(
+        absl::PermissionDeniedError(Cat("this stream needs a ", Side::kName, " token; this one is ",
+                                        v1::Role_Name(principal_.role)))));
   }
   auto runtime = service_->hub()->Get(principal_.session_id);
   if (!runtime.ok()) return FinishNow(ToGrpc(runtime.status()));
@@ -561,9 +559,10 @@ void IngestReactor<Side>::WriteNext() {
     while (sent_probes_.size() > kRememberedProbes) sent_probes_.erase(sent_probes_.begin());
   }
   bool own_buffer = false;
+  out_buf_.Clear();  // the last write is done with it; Serialize needs it empty
   if (!grpc::SerializationTraits<v1::ServerMessage>::Serialize(current_, &out_buf_, &own_buffer)
            .ok()) {
-    return FinishNow(grpc::Status(grpc::StatusCode::INTERNAL, "cannot serialise a reply"));
+    return FinishNow(ToGrpc(absl::InternalError("cannot serialise a reply")));
   }
   writing_ = true;
   StartWrite(&out_buf_);

@@ -117,19 +117,19 @@ class IngestReactor final : public grpc::ServerBidiReactor<grpc::ByteBuffer, grp
   void FinishNow(const grpc::Status& status);
   void UpdateTickDue();
 
-  LiveService* const service_;                // not owned
-  grpc::CallbackServerContext* const ctx_;    // valid until OnDone; used only in Start
+  LiveService* const service_;              // not owned
+  grpc::CallbackServerContext* const ctx_;  // valid until OnDone; used only in Start
   std::shared_ptr<Strand> strand_;
-  std::shared_ptr<IngestReactor> self_;       // keeps this alive until Cleanup
+  std::shared_ptr<IngestReactor> self_;  // keeps this alive until Cleanup
 
   // Set in Start, read-only afterwards.
   std::string peer_;
   std::string peer_host_;
-  std::string metadata_secret_;               // from the authorization metadata
+  std::string metadata_secret_;  // from the authorization metadata
   bool admitted_ = false;
 
   // Read by OnTick on the ticker thread.
-  std::atomic<int64_t> hello_deadline_{0};      // limits clock; INT64_MAX once hello is in
+  std::atomic<int64_t> hello_deadline_{0};         // limits clock; INT64_MAX once hello is in
   std::atomic<int64_t> tick_due_mono_{INT64_MAX};  // service clock
   std::atomic<bool> tick_posted_{false};
 
@@ -137,11 +137,11 @@ class IngestReactor final : public grpc::ServerBidiReactor<grpc::ByteBuffer, grp
   std::string token_id_;
 
   // Buffers owned by gRPC operations in flight.
-  grpc::ByteBuffer in_buf_;                   // the read in flight
-  grpc::ByteBuffer out_buf_;                  // the write in flight
+  grpc::ByteBuffer in_buf_;   // the read in flight
+  grpc::ByteBuffer out_buf_;  // the write in flight
 
   // Strand state.
-  tickmark::v1::ServerMessage current_;       // the message being written
+  tickmark::v1::ServerMessage current_;          // the message being written
   std::deque<tickmark::v1::ServerMessage> out_;  // waiting to be written
   bool reading_ = false;
   bool writing_ = false;
@@ -152,24 +152,24 @@ class IngestReactor final : public grpc::ServerBidiReactor<grpc::ByteBuffer, grp
   Principal principal_;
   tickmark::v1::ClientInfo client_;
   std::shared_ptr<SessionRuntime> runtime_;
-  size_t pending_acks_ = 0;                   // appended, not yet acknowledged
+  size_t pending_acks_ = 0;                    // appended, not yet acknowledged
   std::shared_ptr<TokenBucket> token_bucket_;  // shared by the token's streams
   std::unique_ptr<TokenBucket> stream_bucket_;
 
   ClockModel model_;
-  Duration hello_offset_;                     // client clock − session time from the hello
+  Duration hello_offset_;  // client clock − session time from the hello
   int64_t hello_mono_ns_ = 0;
-  std::deque<Held> held_;                     // payloads waiting for the first probe
+  std::deque<Held> held_;  // payloads waiting for the first probe
   int burst_left_ = 0;
   int64_t next_probe_mono_ = 0;
   uint64_t last_probe_id_ = 0;
   bool outstanding_probe_ = false;
   int64_t outstanding_since_mono_ = 0;
   std::map<uint64_t, SessionTime> sent_probes_;  // probe id -> T1
-  uint64_t udp_tag_ = 0;                      // this stream's tag at the probe port; 0: none
-  int64_t last_step_start_ns_ = 0;            // agent clock; steps must move forward
-  int64_t last_step_end_agent_ns_ = -1;       // explicit end of the last step (agent clock)
-  SessionTime last_step_end_session_;         // ... and where it was mapped
+  uint64_t udp_tag_ = 0;                         // this stream's tag at the probe port; 0: none
+  int64_t last_step_start_ns_ = 0;               // agent clock; steps must move forward
+  int64_t last_step_end_agent_ns_ = -1;          // explicit end of the last step (agent clock)
+  SessionTime last_step_end_session_;            // ... and where it was mapped
 };
 
 // The per-side payload handling (ingest_reactor.cc).

@@ -55,7 +55,8 @@ grpc::ServerBidiReactor<grpc::ByteBuffer, grpc::ByteBuffer>* LiveService::Train(
     grpc::CallbackServerContext* ctx) {
   std::string host = PeerHost(ctx->peer());
   auto r = std::make_shared<IngestReactor<TrainerSide>>(this, ctx);
-  r->Start(Admit(this, host), std::move(host));
+  const absl::Status admitted = Admit(this, host);  // before host is moved
+  r->Start(admitted, std::move(host));
   return r.get();
 }
 
@@ -63,7 +64,8 @@ grpc::ServerBidiReactor<grpc::ByteBuffer, grpc::ByteBuffer>* LiveService::Act(
     grpc::CallbackServerContext* ctx) {
   std::string host = PeerHost(ctx->peer());
   auto r = std::make_shared<IngestReactor<AgentSide>>(this, ctx);
-  r->Start(Admit(this, host), std::move(host));
+  const absl::Status admitted = Admit(this, host);  // before host is moved
+  r->Start(admitted, std::move(host));
   return r.get();
 }
 
@@ -71,7 +73,8 @@ grpc::ServerWriteReactor<tickmark::v1::Record>* LiveService::Subscribe(
     grpc::CallbackServerContext* ctx, const tickmark::v1::SubscribeRequest* req) {
   std::string host = PeerHost(ctx->peer());
   auto r = std::make_shared<SubscribeReactor>(this, ctx, *req);
-  r->Start(Admit(this, host), std::move(host));
+  const absl::Status admitted = Admit(this, host);  // before host is moved
+  r->Start(admitted, std::move(host));
   return r.get();
 }
 

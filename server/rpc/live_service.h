@@ -55,8 +55,8 @@ struct ProbePortHooks {
   std::function<void(uint64_t tag)> remove_stream;
 };
 
-using LiveServiceBase = tickmark::v1::Live::WithRawCallbackMethod_Train<
-    tickmark::v1::Live::WithRawCallbackMethod_Act<
+using LiveServiceBase =
+    tickmark::v1::Live::WithRawCallbackMethod_Train<tickmark::v1::Live::WithRawCallbackMethod_Act<
         tickmark::v1::Live::WithCallbackMethod_Subscribe<tickmark::v1::Live::Service>>>;
 
 class LiveService final : public LiveServiceBase {
@@ -67,10 +67,10 @@ class LiveService final : public LiveServiceBase {
     Duration probe_burst_spacing = Duration::Millis(50);  // between burst probes
     Duration probe_interval = Duration::Seconds(1);       // afterwards
     Duration probe_timeout = Duration::Seconds(2);        // a probe unanswered this long is dropped
-    Duration clock_wait = Duration::Seconds(2);           // longest a message waits for a clock model
-    size_t subscriber_buffer = 4096;                      // live records buffered per subscriber
+    Duration clock_wait = Duration::Seconds(2);  // longest a message waits for a clock model
+    size_t subscriber_buffer = 4096;             // live records buffered per subscriber
     ClockModel::Options clock;
-    ProbePortHooks probe_port;                            // optional UDP probes
+    ProbePortHooks probe_port;  // optional UDP probes
 
     // An ingest stream that sends no hello this long after opening is ended
     // with DEADLINE_EXCEEDED.
@@ -83,9 +83,9 @@ class LiveService final : public LiveServiceBase {
     // pace; steps at an agent's. Past either, the message is answered with
     // an Ack RESOURCE_EXHAUSTED and not stored; the stream stays open.
     // A rate <= 0 turns that limit off.
-    double feedback_rate = 50;     // per second
+    double feedback_rate = 50;  // per second
     double feedback_burst = 100;
-    double step_rate = 2000;       // per second
+    double step_rate = 2000;  // per second
     double step_burst = 4000;
     // Messages a stream may have appended but not yet acknowledged (or
     // acknowledged but not yet written); past it the stream is not read

@@ -31,7 +31,7 @@ class StreamAdmission {
   const size_t max_streams_;
   const size_t max_per_peer_;
   mutable std::mutex mu_;
-  size_t total_ = 0;                      // GUARDED_BY(mu_)
+  size_t total_ = 0;                        // GUARDED_BY(mu_)
   std::map<std::string, size_t> per_peer_;  // GUARDED_BY(mu_)
 };
 

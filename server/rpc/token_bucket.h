@@ -26,8 +26,8 @@ class TokenBucket {
   const double burst_;
   const MonotonicSource* const clock_;  // not owned
   std::mutex mu_;
-  double tokens_;        // GUARDED_BY(mu_)
-  int64_t last_ns_;      // clock reading of the last refill; GUARDED_BY(mu_)
+  double tokens_;    // GUARDED_BY(mu_)
+  int64_t last_ns_;  // clock reading of the last refill; GUARDED_BY(mu_)
 };
 
 }  // namespace tickmark::rpc

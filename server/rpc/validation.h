@@ -35,11 +35,12 @@ absl::Status ValidateFeedback(const tickmark::v1::FeedbackMessage& f, const Limi
 // The fields of one step message (not its time, not its order).
 absl::Status ValidateStep(const tickmark::v1::StepMessage& s, const Limits& limits);
 
-// A probe answer: client stamps present and in order, and every on-wire
-// difference computable in 64 bits (RFC 5905 §8 formulas; an absurd pair
-// such as t2 = INT64_MIN, t3 = INT64_MAX would wrap). `t1` and `t4` are the
-// server's stamps. The message is the reason recorded with the rejected
-// probe.
+// A probe answer: every RFC 5905 §8 on-wire difference must be computable
+// in 64 bits (an absurd pair such as t2 = INT64_MIN, t3 = INT64_MAX would
+// wrap and move the clock model by hours). `t1` and `t4` are the server's
+// stamps. The message ("rejected_out_of_range", in the style of the clock
+// model's verdict names) is the reason recorded with the rejected probe;
+// ordering is left to ClockModel::AddProbe.
 absl::Status ValidateProbeTimes(SessionTime t1, int64_t t2_client_ns, int64_t t3_client_ns,
                                 SessionTime t4);
 
