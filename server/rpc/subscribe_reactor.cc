@@ -52,8 +52,18 @@ void SubscribeReactor::Begin() {
   runtime_ = *runtime;
   for (int k : req_.kinds()) kinds_.insert(k);
   next_ = std::max<uint64_t>(1, req_.from_sequence());
-  if (req_.stop_at_end() || !runtime_->open()) {
-    stop_after_ = service_->hub()->ledger()->CommittedSequence(req_.session_id());
+  ledger::Ledger* ledger = service_->hub()->ledger();
+  bool follow = !req_.stop_at_end();
+  if (follow && !runtime_->open()) {
+    // Closed, or closing: the ledger row is marked closed only after the
+    // "closed" record has committed. Until then follow up to that record
+    // (Pump stops there), so a follower that arrives while the session
+    // closes still gets the final labels.
+    auto row = ledger->GetSession(req_.session_id());
+    follow = row.ok() && row->open;
+  }
+  if (!follow) {
+    stop_after_ = ledger->CommittedSequence(req_.session_id());
   } else {
     token_id_ = principal_.token_id;
     runtime_->AddSink(this);
