@@ -20,6 +20,9 @@ constexpr Duration kHelloMappingUncertainty = Duration::Seconds(1);
 // How many sent probes are remembered for matching late replies.
 constexpr size_t kRememberedProbes = 16;
 constexpr int64_t kNever = std::numeric_limits<int64_t>::max();
+// How long a stream is not read after a message of it was refused by a rate
+// limit (common practice, no source: a short tarpit).
+constexpr Duration kRefusalPause = Duration::Millis(10);
 
 std::string BearerFromMetadata(const grpc::CallbackServerContext& ctx) {
   const auto& md = ctx.client_metadata();
@@ -182,6 +185,7 @@ void IngestReactor<Side>::Tick() {
   if (!held_.empty() && !model_.ready() && now - hello_mono_ns_ >= opt.clock_wait.nanos()) {
     ReleaseHeld();
   }
+  MaybeRead();  // after a rate-limit pause
   UpdateTickDue();
 }
 
@@ -198,6 +202,7 @@ void IngestReactor<Side>::UpdateTickDue() {
   if (!held_.empty() && !model_.ready()) {
     due = std::min(due, hello_mono_ns_ + opt.clock_wait.nanos());
   }
+  if (reads_paused_until_mono_ != 0) due = std::min(due, reads_paused_until_mono_);
   tick_due_mono_.store(due);
 }
 
@@ -221,6 +226,11 @@ void IngestReactor<Side>::HandleMessage(In message, int64_t arrival_mono) {
     const SessionTime arrival = runtime_->Now() - Duration::Nanos(waited > 0 ? waited : 0);
     if (!TakeRateToken()) {
       service_->rate_limiter().NoteLimited(principal_.session_id + "/" + client_.client_id());
+      // Read this stream's next message a little later: a flooding client
+      // then costs the server about one refusal per pause, not one per
+      // message it can push, and other streams keep their share.
+      reads_paused_until_mono_ = service_->mono()->NowNanos() + kRefusalPause.nanos();
+      UpdateTickDue();
       Reject(Side::Sequence(message),
              absl::ResourceExhaustedError(Cat(
                  "rate limit: slow down (", Side::kPayload, " per token and per stream, at most ",
@@ -574,6 +584,10 @@ template <typename Side>
 void IngestReactor<Side>::MaybeRead() {
   if (reading_ || finished_ || read_closed_ || !hello_done_) return;
   if (pending_acks_ + out_.size() >= service_->options().max_in_flight_per_stream) return;
+  if (reads_paused_until_mono_ != 0) {
+    if (service_->mono()->NowNanos() < reads_paused_until_mono_) return;  // Tick resumes
+    reads_paused_until_mono_ = 0;
+  }
   reading_ = true;
   StartRead(&in_buf_);
 }

@@ -153,6 +153,7 @@ class IngestReactor final : public grpc::ServerBidiReactor<grpc::ByteBuffer, grp
   tickmark::v1::ClientInfo client_;
   std::shared_ptr<SessionRuntime> runtime_;
   size_t pending_acks_ = 0;                    // appended, not yet acknowledged
+  int64_t reads_paused_until_mono_ = 0;        // after a rate-limit refusal (tarpit)
   std::shared_ptr<TokenBucket> token_bucket_;  // shared by the token's streams
   std::unique_ptr<TokenBucket> stream_bucket_;
 
