@@ -13,7 +13,9 @@ WorkPool::~WorkPool() { Stop(); }
 bool WorkPool::Submit(std::function<void()> fn) {
   {
     std::lock_guard<std::mutex> lock(mu_);
-    if (stopping_) return false;  // fn is destroyed on return, outside the lock
+    // While Stop drains the queue, work submitted from a running closure
+    // (a strand's next batch, a stream's last clean-up) is still taken.
+    if (joined_) return false;  // fn is destroyed on return, outside the lock
     queue_.push_back(std::move(fn));
   }
   cv_.notify_one();
@@ -29,6 +31,10 @@ void WorkPool::Stop() {
   for (std::thread& t : threads_) {
     if (t.joinable()) t.join();
   }
+  std::deque<std::function<void()>> left;  // submitted after the last thread left
+  std::lock_guard<std::mutex> lock(mu_);
+  joined_ = true;
+  left.swap(queue_);
 }
 
 void WorkPool::Loop() {

@@ -3,9 +3,10 @@
 // must not run on the thread that triggered it (a ledger commit callback, a
 // session runtime calling its streams with its own locks held).
 //
-// Thread safety: Submit and Stop may be called from any thread. Closures
-// submitted after Stop are dropped (destroyed unrun), so whatever they hold
-// is released.
+// Thread safety: Submit and Stop may be called from any thread (Stop not
+// from a pool thread). Stop runs what is queued, including work submitted
+// while it drains; closures submitted once its threads are gone are dropped
+// (destroyed unrun), so whatever they hold is released.
 #ifndef TICKMARK_SERVER_RPC_WORK_POOL_H_
 #define TICKMARK_SERVER_RPC_WORK_POOL_H_
 
@@ -37,6 +38,7 @@ class WorkPool {
   std::condition_variable cv_;
   std::deque<std::function<void()>> queue_;  // GUARDED_BY(mu_)
   bool stopping_ = false;                    // GUARDED_BY(mu_)
+  bool joined_ = false;                      // threads gone: Submit refuses; GUARDED_BY(mu_)
   std::vector<std::thread> threads_;
 };
 
