@@ -5,6 +5,7 @@
 #include <cmath>
 #include <limits>
 #include <set>
+#include <thread>
 
 #include "tests/rpc/test_server.h"
 
@@ -496,6 +497,12 @@ TEST_F(LiveTest, ImpossibleProbeAnswersAreRejectedCountedAndKept) {
   while (rw->Read(&m)) {
   }
   rw->Finish();
+  // The probe record is appended before the stream ends but commits on the
+  // ledger's thread: wait (with a deadline) until the ledger counts it.
+  const auto until = std::chrono::steady_clock::now() + std::chrono::seconds(10);
+  while (Summary().rejected_probe_count() == 0 && std::chrono::steady_clock::now() < until) {
+    std::this_thread::sleep_for(std::chrono::milliseconds(2));
+  }
   // The rejected probe is in the ledger, flagged and counted.
   v1::SubscribeRequest req;
   req.set_session_id(session_);
