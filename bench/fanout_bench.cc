@@ -415,6 +415,9 @@ int Main(int argc, char** argv) {
   options.listen = "127.0.0.1:0";
   options.data_dir = dir;
   options.live.subscriber_buffer = config.buffer;
+  // Measures fan-out, not the limits: no rate limits (the defaults are for humans).
+  options.live.feedback_rate = 0;
+  options.live.step_rate = 0;
   auto server = rpc::TickmarkServer::Start(options);
   if (!server.ok()) {
     std::fprintf(stderr, "fanout_bench: %s\n", std::string(server.status().message()).c_str());

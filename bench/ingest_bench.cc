@@ -159,6 +159,9 @@ Result ServerIngest(const std::string& dir, int streams, const Config& config) {
   rpc::ServerOptions options;
   options.listen = "127.0.0.1:0";
   options.data_dir = dir + "/server-" + std::to_string(streams);
+  // Measures raw durable ingest: no rate limits (the defaults are for humans).
+  options.live.feedback_rate = 0;
+  options.live.step_rate = 0;
   auto server = rpc::TickmarkServer::Start(options);
   if (!server.ok()) {
     std::fprintf(stderr, "ingest_bench: %s\n", std::string(server.status().message()).c_str());

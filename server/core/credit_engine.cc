@@ -274,7 +274,7 @@ void CreditEngine::Settle(EngineOutput& out) {
            agent.steps.front().end <= limit) {
       Step& step = agent.steps.front();
       LabelOut label{step.sequence, name, step.step_id, step.value, step.weight,
-                     {}};
+                     {}, step.start, step.end};
       std::sort(step.parts.begin(), step.parts.end(),
                 [](const Part& a, const Part& b) { return a.trainer < b.trainer; });
       label.parts.reserve(step.parts.size());

@@ -111,6 +111,10 @@ struct LabelOut {
   double value = 0;   // Σ credit × value × weight
   double weight = 0;  // Σ credit
   std::vector<LabelPartOut> parts;  // ordered by trainer
+  // The interval credited: for a step sent without an end, the end used
+  // (its agent's next start, or where the agent was closed).
+  SessionTime start;
+  SessionTime end;
 };
 
 struct UnmatchedOut {

@@ -248,6 +248,8 @@ void CreditDriver::Emit(const EngineOutput& o, int64_t written_ns, std::vector<v
     label->set_value(l.value);
     label->set_weight(l.weight);
     label->set_settled(true);
+    label->set_start_session_ns(l.start.nanos());
+    label->set_end_session_ns(l.end.nanos());
     for (const LabelPartOut& p : l.parts) {
       v1::LabelPart* part = label->add_parts();
       part->set_trainer(p.trainer);

@@ -309,6 +309,9 @@ struct Trainer {
   std::map<uint64_t, uint64_t> acked;  // client seq -> session seq, first life
   std::map<uint64_t, std::vector<uint64_t>> stored;  // after the restart
   uint64_t committed_high = 0;         // highest client sequence the ledger kept
+  // Client seq -> the message first sent: a resend carries the same bytes
+  // (a reused client sequence with other content is refused).
+  std::map<uint64_t, v1::TrainerMessage> sent;  // written by its sender thread only
 };
 
 struct KillPoint {
@@ -424,7 +427,9 @@ TEST_P(Kill9Test, AcknowledgedFeedbackSurvivesAndResendIsDeduplicated) {
           }
           if (t->stream->Snapshot().ended) return;
           t->attempted = seq;
-          if (!t->stream->Send(Feedback(seq, seq % 2 == 0 ? 1.0 : -1.0))) return;
+          const v1::TrainerMessage m = Feedback(seq, seq % 2 == 0 ? 1.0 : -1.0);
+          t->sent[seq] = m;
+          if (!t->stream->Send(m)) return;
         }
       });
     }
@@ -506,7 +511,9 @@ TEST_P(Kill9Test, AcknowledgedFeedbackSurvivesAndResendIsDeduplicated) {
     ASSERT_TRUE(welcome.has_value()) << stream.Finish().error_message();
     EXPECT_EQ(welcome->last_client_sequence(), tr->committed_high);  // stream.proto Welcome
     for (uint64_t cseq : resend) {
-      ASSERT_TRUE(stream.Send(Feedback(cseq, cseq % 2 == 0 ? 1.0 : -1.0)));
+      auto first = tr->sent.find(cseq);
+      ASSERT_TRUE(stream.Send(first != tr->sent.end() ? first->second
+                                                      : Feedback(cseq, cseq % 2 == 0 ? 1.0 : -1.0)));
     }
     ASSERT_TRUE(stream.WaitFor(
         [&](const TrainerStream::State& st) { return st.ended || st.acks.size() >= resend.size(); },

@@ -81,7 +81,13 @@ class CreditTest : public ::testing::Test {
  protected:
   void SetUp() override { StartServer(); }
 
-  void StartServer() { server_ = std::make_unique<TestServer>(dir_.path()); }
+  void StartServer() {
+    // The scenarios script feedback up to ~4.3 s ahead of its arrival, so
+    // that nothing settles while they run.
+    rpc::LiveService::Options o = TestLiveOptions();
+    o.event_future_tolerance = Duration::Seconds(5);
+    server_ = std::make_unique<TestServer>(dir_.path(), o);
+  }
 
   void Restart() {
     server_->Shutdown();

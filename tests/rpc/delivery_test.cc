@@ -20,7 +20,7 @@ constexpr int64_t kMs = 1'000'000;
 class DeliveryTest : public ::testing::Test {
  protected:
   static rpc::LiveService::Options SmallBuffers() {
-    rpc::LiveService::Options o;
+    rpc::LiveService::Options o = TestLiveOptions();
     o.subscriber_buffer = 16;  // overflow into ledger catch-up often
     return o;
   }

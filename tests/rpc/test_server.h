@@ -45,9 +45,21 @@ class TempDir {
   std::string path_;
 };
 
+// Live options for tests: the production defaults, except rate limits far
+// above what a test sends (tests push feedback as fast as they can).
+inline rpc::LiveService::Options TestLiveOptions() {
+  rpc::LiveService::Options o;
+  o.feedback_rate = 1e6;
+  o.feedback_burst = 1e6;
+  o.step_rate = 1e6;
+  o.step_burst = 1e6;
+  return o;
+}
+
 class TestServer {
  public:
-  explicit TestServer(const std::string& dir, rpc::LiveService::Options live = {}) {
+  explicit TestServer(const std::string& dir,
+                      rpc::LiveService::Options live = TestLiveOptions()) {
     rpc::ServerOptions o;
     o.listen = "127.0.0.1:0";
     o.data_dir = dir;

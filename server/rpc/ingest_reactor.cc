@@ -1,0 +1,707 @@
+#include "server/rpc/ingest_reactor.h"
+
+#include <openssl/rand.h>
+
+#include <limits>
+
+#include "server/base/log.h"
+#include "server/base/strings.h"
+#include "server/rpc/status.h"
+#include "server/rpc/validation.h"
+
+namespace tickmark::rpc {
+namespace {
+
+namespace v1 = tickmark::v1;
+
+// Uncertainty stated for a time mapped before any probe came back: the
+// hello's one-way delay is unknown, so only a generous bound can be given.
+constexpr Duration kHelloMappingUncertainty = Duration::Seconds(1);
+// How many sent probes are remembered for matching late replies.
+constexpr size_t kRememberedProbes = 16;
+constexpr int64_t kNever = std::numeric_limits<int64_t>::max();
+// How long a stream is not read after a message of it was refused by a rate
+// limit (common practice, no source: a short tarpit).
+constexpr Duration kRefusalPause = Duration::Millis(10);
+
+std::string BearerFromMetadata(const grpc::CallbackServerContext& ctx) {
+  const auto& md = ctx.client_metadata();
+  auto it = md.find("authorization");
+  if (it == md.end()) return "";
+  return std::string(BearerSecret(std::string_view(it->second.data(), it->second.size())));
+}
+
+}  // namespace
+
+template <typename Side>
+IngestReactor<Side>::IngestReactor(LiveService* service, grpc::CallbackServerContext* ctx)
+    : service_(service),
+      ctx_(ctx),
+      strand_(std::make_shared<Strand>(&service->pool())),
+      model_(service->options().clock) {}
+
+template <typename Side>
+void IngestReactor<Side>::Post(std::function<void(IngestReactor&)> fn) {
+  std::shared_ptr<IngestReactor> self = this->weak_from_this().lock();
+  if (!self) return;
+  strand_->Post([self = std::move(self), fn = std::move(fn)] { fn(*self); });
+}
+
+template <typename Side>
+void IngestReactor<Side>::Start(const absl::Status& admitted, std::string peer_host) {
+  self_ = this->shared_from_this();
+  peer_ = ctx_->peer();
+  peer_host_ = std::move(peer_host);
+  metadata_secret_ = BearerFromMetadata(*ctx_);
+  if (!admitted.ok()) {
+    finished_ = true;
+    end_reason_ = std::string(admitted.message());
+    Finish(ToGrpc(admitted));
+    return;
+  }
+  admitted_ = true;
+  const Duration timeout = service_->options().hello_timeout;
+  hello_deadline_.store(
+      timeout > Duration::Zero() ? service_->limits_clock()->NowNanos() + timeout.nanos() : kNever);
+  service_->ticker().Add(self_);
+  reading_ = true;
+  StartRead(&in_buf_);
+}
+
+template <typename Side>
+void IngestReactor<Side>::End(const grpc::Status& status) {
+  Post([status](IngestReactor& r) { r.FinishNow(status); });
+}
+
+template <typename Side>
+void IngestReactor<Side>::OnReadDone(bool ok) {
+  const int64_t arrival_mono = service_->mono()->NowNanos();
+  if (!ok) {
+    Post([](IngestReactor& r) {
+      r.reading_ = false;
+      r.read_closed_ = true;
+      r.MaybeFinishGracefully();
+    });
+    return;
+  }
+  In message;
+  if (!grpc::SerializationTraits<In>::Deserialize(&in_buf_, &message).ok()) {
+    service_->counters().undecodable.fetch_add(1);
+    Post([](IngestReactor& r) {
+      r.reading_ = false;
+      r.FinishNow(ToGrpc(absl::InvalidArgumentError(
+          Cat("a message did not decode as ", In::descriptor()->full_name()))));
+    });
+    return;
+  }
+  Post([message = std::move(message), arrival_mono](IngestReactor& r) mutable {
+    r.reading_ = false;
+    r.HandleMessage(std::move(message), arrival_mono);
+  });
+}
+
+template <typename Side>
+void IngestReactor<Side>::OnWriteDone(bool ok) {
+  Post([ok](IngestReactor& r) {
+    r.writing_ = false;
+    if (!ok) return;  // the stream is gone; OnDone follows
+    r.WriteNext();
+    r.MaybeRead();
+    r.MaybeFinishGracefully();
+  });
+}
+
+template <typename Side>
+void IngestReactor<Side>::OnCancel() {
+  Post([](IngestReactor& r) { r.FinishNow(grpc::Status::CANCELLED); });
+}
+
+template <typename Side>
+void IngestReactor<Side>::OnDone() {
+  Post([](IngestReactor& r) { r.Cleanup(); });
+}
+
+template <typename Side>
+void IngestReactor<Side>::Cleanup() {
+  service_->ticker().Remove(this);
+  if (udp_tag_ != 0) service_->options().probe_port.remove_stream(udp_tag_);
+  if (admitted_) service_->admission().Release(peer_host_);
+  if (runtime_ && hello_done_) {
+    runtime_->RemoveStream(this);
+    if (runtime_->open()) {
+      v1::Record r;
+      r.set_written_session_ns(runtime_->Now().nanos());
+      auto* e = r.mutable_client_event();
+      *e->mutable_client() = client_;
+      e->set_event(v1::ClientEvent::KIND_DISCONNECTED);
+      e->set_detail(end_reason_);
+      runtime_->AppendRecord(std::move(r)).IgnoreError();
+    }
+  }
+  self_.reset();  // the closure running this still holds a reference
+}
+
+template <typename Side>
+void IngestReactor<Side>::OnTick() {
+  if (tick_posted_.load()) return;
+  const bool hello_late = service_->limits_clock()->NowNanos() >= hello_deadline_.load();
+  const bool due = service_->mono()->NowNanos() >= tick_due_mono_.load();
+  if (!hello_late && !due) return;
+  if (tick_posted_.exchange(true)) return;
+  Post([](IngestReactor& r) {
+    r.tick_posted_.store(false);
+    r.Tick();
+  });
+}
+
+template <typename Side>
+void IngestReactor<Side>::Tick() {
+  if (finished_) return;
+  const auto& opt = service_->options();
+  if (!hello_done_) {
+    if (service_->limits_clock()->NowNanos() >= hello_deadline_.load()) {
+      service_->counters().hello_timeouts.fetch_add(1);
+      FinishNow(ToGrpc(
+          absl::DeadlineExceededError(Cat("no hello within ", opt.hello_timeout.seconds(), " s"))));
+    }
+    return;
+  }
+  const int64_t now = service_->mono()->NowNanos();
+  if (outstanding_probe_ && now - outstanding_since_mono_ > opt.probe_timeout.nanos()) {
+    outstanding_probe_ = false;  // lost; a late reply still matches sent_probes_
+  }
+  if (!outstanding_probe_ && now >= next_probe_mono_) {
+    v1::ServerMessage m;
+    m.mutable_probe()->set_probe_id(++last_probe_id_);
+    // t1 is stamped when the write starts (WriteNext).
+    out_.push_back(std::move(m));
+    outstanding_probe_ = true;
+    outstanding_since_mono_ = now;
+    const Duration gap = burst_left_ > 0 ? opt.probe_burst_spacing : opt.probe_interval;
+    if (burst_left_ > 0) --burst_left_;
+    next_probe_mono_ = now + gap.nanos();
+    WriteNext();
+  }
+  if (!held_.empty() && !model_.ready() && now - hello_mono_ns_ >= opt.clock_wait.nanos()) {
+    ReleaseHeld();
+  }
+  MaybeRead();  // after a rate-limit pause
+  UpdateTickDue();
+}
+
+// The earliest service-clock time at which Tick has something to do.
+template <typename Side>
+void IngestReactor<Side>::UpdateTickDue() {
+  if (finished_ || !hello_done_) {
+    tick_due_mono_.store(kNever);
+    return;
+  }
+  const auto& opt = service_->options();
+  int64_t due = outstanding_probe_ ? outstanding_since_mono_ + opt.probe_timeout.nanos() + 1
+                                   : next_probe_mono_;
+  if (!held_.empty() && !model_.ready()) {
+    due = std::min(due, hello_mono_ns_ + opt.clock_wait.nanos());
+  }
+  if (reads_paused_until_mono_ != 0) due = std::min(due, reads_paused_until_mono_);
+  tick_due_mono_.store(due);
+}
+
+template <typename Side>
+void IngestReactor<Side>::HandleMessage(In message, int64_t arrival_mono) {
+  if (finished_) return;
+  if (!hello_done_) {
+    if (!Side::IsHello(message)) {
+      return FinishNow(
+          ToGrpc(absl::InvalidArgumentError("the first message on a stream must be a hello")));
+    }
+    HandleHello(message.hello());
+  } else if (Side::IsHello(message)) {
+    FinishNow(ToGrpc(absl::InvalidArgumentError("a second hello on one stream")));
+  } else if (Side::IsProbeReply(message)) {
+    HandleProbeReply(message.probe_reply());
+  } else if (Side::IsPayload(message)) {
+    // Arrival on session time: now, less the time the message waited for
+    // this strand.
+    const int64_t waited = service_->mono()->NowNanos() - arrival_mono;
+    const SessionTime arrival = runtime_->Now() - Duration::Nanos(waited > 0 ? waited : 0);
+    if (!TakeRateToken()) {
+      service_->rate_limiter().NoteLimited(principal_.session_id + "/" + client_.client_id());
+      // Read this stream's next message a little later: a flooding client
+      // then costs the server about one refusal per pause, not one per
+      // message it can push, and other streams keep their share.
+      reads_paused_until_mono_ = service_->mono()->NowNanos() + kRefusalPause.nanos();
+      UpdateTickDue();
+      Reject(Side::Sequence(message),
+             absl::ResourceExhaustedError(Cat(
+                 "rate limit: slow down (", Side::kPayload, " per token and per stream, at most ",
+                 Side::kRole == v1::ROLE_TRAINER ? service_->options().feedback_rate
+                                                 : service_->options().step_rate,
+                 "/s); not stored")));
+    } else if (!model_.ready() && (!held_.empty() || arrival_mono - hello_mono_ns_ <
+                                                         service_->options().clock_wait.nanos())) {
+      // Map once the first probe is back (see the header comment).
+      held_.push_back({std::move(message), arrival});
+      UpdateTickDue();
+    } else {
+      HandlePayload(message, arrival);
+    }
+  } else {
+    FinishNow(ToGrpc(absl::InvalidArgumentError("empty message")));
+  }
+  MaybeRead();
+}
+
+template <typename Side>
+bool IngestReactor<Side>::TakeRateToken() {
+  // The stream's own bucket first, so a stream over its limit does not use
+  // up its token's allowance for the token's other streams.
+  if (!stream_bucket_->TryTake()) return false;
+  return token_bucket_->TryTake();
+}
+
+template <typename Side>
+void IngestReactor<Side>::HandleHello(const v1::Hello& hello) {
+  // Look-ups below read the ledger; they run here, on a worker thread with
+  // no lock held, never on a gRPC or ledger thread.
+  if (absl::Status s = CheckTokensAgree(hello.token(), metadata_secret_); !s.ok()) {
+    return FinishNow(ToGrpc(s));
+  }
+  absl::StatusOr<Principal> who =
+      service_->auth()->Authenticate(hello.token().empty() ? metadata_secret_ : hello.token());
+  if (!who.ok()) return FinishNow(ToGrpc(who.status()));
+  principal_ = *who;
+  if (principal_.role != Side::kRole) {
+    return FinishNow(ToGrpc(
+        absl::PermissionDeniedError(Cat("this stream needs a ", Side::kName, " token; this one is ",
+                                        v1::Role_Name(principal_.role)))));
+  }
+  auto runtime = service_->hub()->Get(principal_.session_id);
+  if (!runtime.ok()) return FinishNow(ToGrpc(runtime.status()));
+  if (!(*runtime)->open()) {
+    return FinishNow(ToGrpc(
+        absl::FailedPreconditionError(Cat("session ", principal_.session_id, " is closed"))));
+  }
+  if (absl::Status s = ValidateHello(hello); !s.ok()) return FinishNow(ToGrpc(s));
+  runtime_ = *runtime;
+  auto last = runtime_->LastClientSequence(hello.client_id());
+  if (!last.ok()) return FinishNow(ToGrpc(last.status()));
+
+  const LiveService::Options& opt = service_->options();
+  const bool trainer = Side::kRole == v1::ROLE_TRAINER;
+  const RateLimiter::Rate rate{trainer ? opt.feedback_rate : opt.step_rate,
+                               trainer ? opt.feedback_burst : opt.step_burst};
+  token_bucket_ = service_->rate_limiter().BucketOf(principal_.token_id, rate);
+  stream_bucket_ = service_->rate_limiter().NewBucket(rate);
+
+  client_.set_client_id(hello.client_id());
+  client_.set_role(principal_.role);
+  client_.set_subject(principal_.subject);
+  client_.set_source_kind(hello.source_kind());
+  client_.set_source_description(hello.source_description());
+  client_.set_software(hello.software());
+  token_id_ = principal_.token_id;
+  hello_done_ = true;
+  hello_deadline_.store(kNever);
+  hello_mono_ns_ = service_->mono()->NowNanos();
+  const SessionTime now = runtime_->Now();
+  // Crude mapping until a probe returns: assumes the hello took no time.
+  hello_offset_ = Duration::Nanos(hello.sent_client_ns()) - Duration::Nanos(now.nanos());
+  burst_left_ = opt.probe_burst;
+  next_probe_mono_ = hello_mono_ns_;
+  runtime_->AddStream(this);
+  if (!runtime_->open()) {  // closed between the check above and AddStream
+    return FinishNow(ToGrpc(
+        absl::FailedPreconditionError(Cat("session ", principal_.session_id, " is closed"))));
+  }
+
+  v1::Record r;
+  r.set_written_session_ns(now.nanos());
+  auto* e = r.mutable_client_event();
+  *e->mutable_client() = client_;
+  e->set_event(v1::ClientEvent::KIND_CONNECTED);
+  e->set_detail(peer_);
+  runtime_->AppendRecord(std::move(r)).IgnoreError();
+
+  v1::ServerMessage m;
+  auto* w = m.mutable_welcome();
+  w->set_session_id(principal_.session_id);
+  w->set_role(principal_.role);
+  w->set_subject(principal_.subject);
+  w->set_last_client_sequence(*last);
+  w->set_max_state_bytes(opt.limits.max_state_bytes);
+  w->set_max_features(opt.limits.max_features);
+  OpenProbePort(w);
+  out_.push_back(std::move(m));
+  WriteNext();
+  UpdateTickDue();
+  TM_LOG(kInfo) << Side::kName << " '" << principal_.subject << "' connected to "
+                << principal_.session_id << " as " << hello.client_id() << " from " << peer_;
+}
+
+// Registers this stream at the UDP probe port with a fresh tag and key. The
+// key never repeats across streams: a reconnecting client gets new ones,
+// and the old ones die with the old stream.
+template <typename Side>
+void IngestReactor<Side>::OpenProbePort(v1::Welcome* w) {
+  const ProbePortHooks& port = service_->options().probe_port;
+  if (port.port == 0 || !port.add_stream) return;
+  uint64_t tag = 0;
+  std::string key(32, '\0');
+  auto* key_bytes = reinterpret_cast<unsigned char*>(key.data());
+  if (RAND_bytes(reinterpret_cast<unsigned char*>(&tag), sizeof tag) != 1 ||
+      RAND_bytes(key_bytes, static_cast<int>(key.size())) != 1) {
+    TM_LOG(kWarning) << "no random bytes for a UDP probe key; stream probes only";
+    return;
+  }
+  if (tag == 0) tag = 1;  // 0 means "none"
+  std::weak_ptr<IngestReactor> weak = this->shared_from_this();
+  std::shared_ptr<SessionRuntime> runtime = runtime_;
+  port.add_stream(
+      tag, key, [runtime] { return runtime->Now(); },
+      [weak](uint64_t probe_id, const ProbeTimestamps& ts) {
+        if (auto self = weak.lock()) {
+          self->Post([probe_id, ts](IngestReactor& r) { r.HandleUdpSample(probe_id, ts); });
+        }
+      });
+  udp_tag_ = tag;
+  w->set_udp_probe_port(port.port);
+  w->set_udp_probe_tag(tag);
+  w->set_udp_probe_key(key);
+}
+
+template <typename Side>
+void IngestReactor<Side>::HandleProbeReply(const v1::ProbeReply& reply) {
+  const SessionTime t4 = runtime_->Now();
+  auto sent = sent_probes_.find(reply.probe_id());
+  v1::Record r;
+  r.set_written_session_ns(t4.nanos());
+  v1::Probe* p = r.mutable_probe();
+  p->set_client_id(client_.client_id());
+  p->set_probe_id(reply.probe_id());
+  p->set_t2_client_ns(reply.t2_client_ns());
+  p->set_t3_client_ns(reply.t3_client_ns());
+  p->set_t4_session_ns(t4.nanos());
+  if (sent == sent_probes_.end()) {
+    p->set_t1_session_ns(reply.t1_session_ns());
+    p->set_accepted(false);
+    p->set_reject_reason("unknown probe id");
+    runtime_->AppendRecord(std::move(r)).IgnoreError();
+    return;
+  }
+  if (reply.probe_id() == last_probe_id_) {
+    outstanding_probe_ = false;
+    UpdateTickDue();
+  }
+  ProbeTimestamps ts;
+  ts.t1 = sent->second;
+  ts.t2 = ClientTime::FromNanos(reply.t2_client_ns());
+  ts.t3 = ClientTime::FromNanos(reply.t3_client_ns());
+  ts.t4 = t4;
+  sent_probes_.erase(sent);
+  AddProbe(ts, std::move(r));
+}
+
+// A probe the client started over the UDP probe port (server/net/).
+template <typename Side>
+void IngestReactor<Side>::HandleUdpSample(uint64_t probe_id, const ProbeTimestamps& ts) {
+  if (finished_ || !hello_done_) return;
+  v1::Record r;
+  r.set_written_session_ns(ts.t4.nanos());
+  v1::Probe* p = r.mutable_probe();
+  p->set_client_id(client_.client_id());
+  p->set_probe_id(probe_id);
+  p->set_t2_client_ns(ts.t2.nanos());
+  p->set_t3_client_ns(ts.t3.nanos());
+  p->set_t4_session_ns(ts.t4.nanos());
+  p->set_transport("udp");
+  AddProbe(ts, std::move(r));
+}
+
+// Judges a complete probe, adds it to the model and writes the Probe record
+// `r` (client id, id, T2–T4 already set) and the model update.
+template <typename Side>
+void IngestReactor<Side>::AddProbe(const ProbeTimestamps& ts, v1::Record r) {
+  const SessionTime t4 = ts.t4;
+  v1::Probe* p = r.mutable_probe();
+  p->set_t1_session_ns(ts.t1.nanos());
+  if (absl::Status s = ValidateProbeTimes(ts.t1, ts.t2.nanos(), ts.t3.nanos(), ts.t4); !s.ok()) {
+    // Kept in the ledger with its reason; the model never sees it.
+    p->set_accepted(false);
+    p->set_reject_reason(std::string(s.message()));
+    runtime_->AppendRecord(std::move(r)).IgnoreError();
+    return;
+  }
+  const OnWire w = ComputeOnWire(ts);
+  p->set_offset_ns(w.offset.nanos());
+  p->set_delay_ns(w.delay.nanos());
+  const bool was_ready = model_.ready();
+  const ProbeVerdict verdict = model_.AddProbe(ts);
+  const bool accepted = verdict == ProbeVerdict::kAccepted || verdict == ProbeVerdict::kClockJump;
+  p->set_accepted(accepted);
+  if (!accepted) p->set_reject_reason(ProbeVerdictName(verdict));
+  runtime_->AppendRecord(std::move(r)).IgnoreError();
+  if (!accepted) {  // kept in the ledger and counted there
+    TM_LOG(kDebug) << "probe from " << client_.client_id()
+                   << " rejected: " << ProbeVerdictName(verdict);
+    return;
+  }
+  const ClockEstimate est = model_.estimate();
+  v1::Record m;
+  m.set_written_session_ns(t4.nanos());
+  v1::ClockModelUpdate* u = m.mutable_clock_model();
+  u->set_client_id(client_.client_id());
+  u->set_offset_ns(est.offset.nanos());
+  u->set_drift_ppm(est.drift_ppm);
+  u->set_reference_client_ns(est.reference.nanos());
+  u->set_uncertainty_ns(est.uncertainty.nanos());
+  u->set_min_delay_ns(est.min_delay.nanos());
+  u->set_samples(static_cast<uint32_t>(est.samples));
+  if (verdict == ProbeVerdict::kClockJump) {
+    u->set_reason(Cat("restart: client clock jumped (offset now ", w.offset.seconds(), " s)"));
+    TM_LOG(kWarning) << "client " << client_.client_id() << " clock jumped; model restarted";
+  } else {
+    u->set_reason("probe");
+  }
+  runtime_->AppendRecord(std::move(m)).IgnoreError();
+  if (!was_ready) ReleaseHeld();
+}
+
+template <typename Side>
+void IngestReactor<Side>::ReleaseHeld() {
+  while (!held_.empty()) {
+    Held h = std::move(held_.front());
+    held_.pop_front();
+    HandlePayload(h.message, h.arrival);
+  }
+  UpdateTickDue();
+  MaybeFinishGracefully();
+}
+
+// The session time of a client reading, and its uncertainty.
+template <typename Side>
+std::pair<SessionTime, Duration> IngestReactor<Side>::Map(int64_t client_ns,
+                                                          absl::Status* error) const {
+  if (model_.ready()) {
+    const ClientTime t = ClientTime::FromNanos(client_ns);
+    return {model_.ToSession(t), model_.UncertaintyAt(t)};
+  }
+  auto mapped = MapThroughHelloOffset(client_ns, hello_offset_);
+  if (!mapped.ok()) {
+    *error = mapped.status();
+    return {SessionTime(), kHelloMappingUncertainty};
+  }
+  return {*mapped, kHelloMappingUncertainty};
+}
+
+template <typename Side>
+void IngestReactor<Side>::Reject(uint64_t client_sequence, const absl::Status& s) {
+  v1::ServerMessage m;
+  v1::Ack* ack = m.mutable_ack();
+  ack->set_client_sequence(client_sequence);
+  ack->set_code(static_cast<int32_t>(s.code()));
+  ack->set_message(std::string(s.message()));
+  out_.push_back(std::move(m));
+  WriteNext();
+}
+
+template <typename Side>
+void IngestReactor<Side>::AppendClient(v1::Record record) {
+  ++pending_acks_;
+  auto sent = std::make_shared<const v1::Record>(record);
+  std::weak_ptr<IngestReactor> weak = this->shared_from_this();
+  // May run on the ledger thread or right here (a ledger failing fast):
+  // either way it only posts.
+  runtime_->AppendClientRecord(std::move(record), [weak, sent](const v1::Ack& ack) {
+    if (auto self = weak.lock()) {
+      self->Post([ack, sent](IngestReactor& r) { r.OnAck(ack, sent); });
+    }
+  });
+}
+
+template <typename Side>
+void IngestReactor<Side>::OnAck(v1::Ack ack, std::shared_ptr<const v1::Record> sent) {
+  if (!ack.duplicate() || ack.code() != 0 || finished_) return DeliverAck(ack);
+  // A resend: the stored original must carry the same content. Read it on
+  // the pool (a ledger read), then come back to the strand.
+  std::weak_ptr<IngestReactor> weak = this->shared_from_this();
+  ledger::Ledger* ledger = service_->hub()->ledger();
+  const std::string session = principal_.session_id;
+  service_->pool().Submit([weak, ledger, session, ack, sent]() mutable {
+    auto stored = ledger->Read(session, ack.sequence(), 1);
+    std::optional<std::string> mismatch;
+    if (stored.ok() && !stored->empty() && stored->front().sequence() == ack.sequence()) {
+      mismatch = DescribeContentMismatch(stored->front(), *sent);
+    }
+    if (mismatch) {
+      ack.set_code(static_cast<int32_t>(absl::StatusCode::kAlreadyExists));
+      ack.set_message(Cat("client_sequence ", ack.client_sequence(),
+                          " was used before with different content: ", *mismatch,
+                          "; the new message was not stored"));
+    }
+    if (auto self = weak.lock()) {
+      if (mismatch) self->service_->counters().content_mismatches.fetch_add(1);
+      self->Post([ack](IngestReactor& r) { r.DeliverAck(ack); });
+    }
+  });
+}
+
+template <typename Side>
+void IngestReactor<Side>::DeliverAck(const v1::Ack& ack) {
+  if (pending_acks_ > 0) --pending_acks_;
+  if (finished_) return;
+  v1::ServerMessage m;
+  *m.mutable_ack() = ack;
+  out_.push_back(std::move(m));
+  WriteNext();
+  MaybeRead();
+}
+
+template <typename Side>
+void IngestReactor<Side>::WriteNext() {
+  if (writing_ || finished_ || out_.empty()) return;
+  current_ = std::move(out_.front());
+  out_.pop_front();
+  if (current_.has_probe()) {
+    // T1 as late as possible: the moment the probe goes to the transport.
+    const SessionTime t1 = runtime_->Now();
+    current_.mutable_probe()->set_t1_session_ns(t1.nanos());
+    sent_probes_[current_.probe().probe_id()] = t1;
+    while (sent_probes_.size() > kRememberedProbes) sent_probes_.erase(sent_probes_.begin());
+  }
+  bool own_buffer = false;
+  out_buf_.Clear();  // the last write is done with it; Serialize needs it empty
+  if (!grpc::SerializationTraits<v1::ServerMessage>::Serialize(current_, &out_buf_, &own_buffer)
+           .ok()) {
+    return FinishNow(ToGrpc(absl::InternalError("cannot serialise a reply")));
+  }
+  writing_ = true;
+  StartWrite(&out_buf_);
+}
+
+// Reads the next message unless the stream has too much in flight: then
+// it waits for acks to drain (fairness between streams; see Options).
+template <typename Side>
+void IngestReactor<Side>::MaybeRead() {
+  if (reading_ || finished_ || read_closed_ || !hello_done_) return;
+  if (pending_acks_ + out_.size() >= service_->options().max_in_flight_per_stream) return;
+  if (reads_paused_until_mono_ != 0) {
+    if (service_->mono()->NowNanos() < reads_paused_until_mono_) return;  // Tick resumes
+    reads_paused_until_mono_ = 0;
+  }
+  reading_ = true;
+  StartRead(&in_buf_);
+}
+
+template <typename Side>
+void IngestReactor<Side>::MaybeFinishGracefully() {
+  if (read_closed_ && pending_acks_ == 0 && held_.empty() && out_.empty() && !writing_) {
+    FinishNow(grpc::Status::OK);
+  }
+}
+
+template <typename Side>
+void IngestReactor<Side>::FinishNow(const grpc::Status& status) {
+  if (finished_) return;
+  finished_ = true;
+  tick_due_mono_.store(kNever);
+  hello_deadline_.store(kNever);
+  end_reason_ = status.ok() ? "closed by client" : status.error_message();
+  if (!status.ok() && status.error_code() != grpc::StatusCode::CANCELLED) {
+    TM_LOG(kInfo) << Side::kName << " stream ended: " << status.error_message();
+  }
+  Finish(status);
+}
+
+template <>
+void IngestReactor<TrainerSide>::HandlePayload(const In& message, SessionTime arrival) {
+  const v1::FeedbackMessage& f = message.feedback();
+  const LiveService::Options& opt = service_->options();
+  if (absl::Status s = ValidateFeedback(f, opt.limits); !s.ok()) {
+    return Reject(f.client_sequence(), s);
+  }
+  absl::Status map_error;
+  auto [mapped, mapped_uncertainty] = Map(f.event_source_ns(), &map_error);
+  if (!map_error.ok()) return Reject(f.client_sequence(), map_error);
+  const EventTimeVerdict v = JudgeEventTime(mapped, mapped_uncertainty, arrival, model_.ready(),
+                                            opt.event_future_tolerance, opt.limits);
+  if (!v.status.ok()) {
+    if (v.status.code() == absl::StatusCode::kOutOfRange) {
+      service_->counters().future_events.fetch_add(1);
+    }
+    return Reject(f.client_sequence(), v.status);
+  }
+  if (v.clamped) service_->counters().clamped_events.fetch_add(1);
+  v1::Record r;
+  r.set_written_session_ns(arrival.nanos());
+  v1::Feedback* fb = r.mutable_feedback();
+  fb->set_client_id(client_.client_id());
+  fb->set_client_sequence(f.client_sequence());
+  fb->set_trainer(principal_.subject);
+  fb->set_value(f.value());
+  fb->set_event_source_ns(f.event_source_ns());
+  fb->set_arrival_session_ns(arrival.nanos());
+  fb->set_event_session_ns(v.event.nanos());
+  fb->set_uncertainty_ns(v.uncertainty.nanos());
+  fb->set_event_clamped(v.clamped);
+  fb->set_input(f.input());
+  // Kept either way; a late one may find its steps already settled.
+  fb->set_late(arrival - v.event > runtime_->allowed_lateness());
+  AppendClient(std::move(r));
+}
+
+template <>
+void IngestReactor<AgentSide>::HandlePayload(const In& message, SessionTime arrival) {
+  const v1::StepMessage& s = message.step();
+  const Limits& limits = service_->options().limits;
+  const uint64_t cseq = s.client_sequence();
+  if (absl::Status st = ValidateStep(s, limits); !st.ok()) return Reject(cseq, st);
+  if (s.start_agent_ns() <= last_step_start_ns_) {
+    return Reject(cseq, absl::InvalidArgumentError(
+                            "a step must start after the previous step of this agent"));
+  }
+  absl::Status map_error;
+  auto [start, uncertainty] = Map(s.start_agent_ns(), &map_error);
+  if (!map_error.ok()) return Reject(cseq, map_error);
+  if (s.start_agent_ns() == last_step_end_agent_ns_) {
+    start = last_step_end_session_;  // the same instant maps to the same time
+  }
+  if (absl::Status st = CheckStepTime(start, uncertainty, arrival, limits); !st.ok()) {
+    return Reject(cseq, st);
+  }
+  SessionTime end;
+  if (s.end_agent_ns() != 0) {
+    end = Map(s.end_agent_ns(), &map_error).first;
+    if (!map_error.ok()) return Reject(cseq, map_error);
+  }
+  last_step_start_ns_ = s.start_agent_ns();
+  v1::Record r;
+  r.set_written_session_ns(arrival.nanos());
+  v1::Step* step = r.mutable_step();
+  step->set_client_id(client_.client_id());
+  step->set_client_sequence(cseq);
+  step->set_agent(principal_.subject);
+  step->set_step_id(s.step_id());
+  step->set_episode(s.episode());
+  step->set_start_agent_ns(s.start_agent_ns());
+  step->set_end_agent_ns(s.end_agent_ns());
+  step->set_start_session_ns(start.nanos());
+  SessionTime last_known = start;
+  if (s.end_agent_ns() != 0) {
+    last_known = end;
+    step->set_end_session_ns(end.nanos());
+    last_step_end_agent_ns_ = s.end_agent_ns();
+    last_step_end_session_ = end;
+  }
+  step->set_late(arrival - last_known > runtime_->allowed_lateness());
+  step->set_arrival_session_ns(arrival.nanos());
+  step->set_uncertainty_ns(uncertainty.nanos());
+  step->set_action(s.action());
+  step->set_state(s.state());
+  *step->mutable_features() = s.features();
+  AppendClient(std::move(r));
+}
+
+template class IngestReactor<TrainerSide>;
+template class IngestReactor<AgentSide>;
+
+}  // namespace tickmark::rpc

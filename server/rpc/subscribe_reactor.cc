@@ -1,0 +1,199 @@
+#include "server/rpc/subscribe_reactor.h"
+
+#include "server/rpc/admin_service.h"
+#include "server/rpc/status.h"
+
+namespace tickmark::rpc {
+
+namespace v1 = tickmark::v1;
+
+SubscribeReactor::SubscribeReactor(LiveService* service, grpc::CallbackServerContext* ctx,
+                                   const v1::SubscribeRequest& req)
+    : service_(service),
+      ctx_(ctx),
+      req_(req),
+      strand_(std::make_shared<Strand>(&service->pool())) {}
+
+void SubscribeReactor::Post(std::function<void(SubscribeReactor&)> fn) {
+  std::shared_ptr<SubscribeReactor> self = weak_from_this().lock();
+  if (!self) return;
+  strand_->Post([self = std::move(self), fn = std::move(fn)] { fn(*self); });
+}
+
+void SubscribeReactor::Start(const absl::Status& admitted, std::string peer_host) {
+  self_ = shared_from_this();
+  peer_host_ = std::move(peer_host);
+  const auto& md = ctx_->client_metadata();
+  if (auto it = md.find("authorization"); it != md.end()) {
+    metadata_secret_ =
+        std::string(BearerSecret(std::string_view(it->second.data(), it->second.size())));
+  }
+  if (!admitted.ok()) {
+    finished_ = true;
+    Finish(ToGrpc(admitted));
+    return;
+  }
+  admitted_ = true;
+  Post([](SubscribeReactor& r) { r.Begin(); });
+}
+
+void SubscribeReactor::Begin() {
+  if (finished_) return;
+  auto who = service_->auth()->Authenticate(metadata_secret_);
+  if (!who.ok()) return FinishNow(ToGrpc(who.status()));
+  principal_ = *who;
+  if (absl::Status s = Authorize(principal_, req_.session_id(),
+                                 {v1::ROLE_ADMIN, v1::ROLE_AGENT, v1::ROLE_OBSERVER});
+      !s.ok()) {
+    return FinishNow(ToGrpc(s));
+  }
+  auto runtime = service_->hub()->Get(req_.session_id());
+  if (!runtime.ok()) return FinishNow(ToGrpc(runtime.status()));
+  runtime_ = *runtime;
+  for (int k : req_.kinds()) kinds_.insert(k);
+  next_ = std::max<uint64_t>(1, req_.from_sequence());
+  ledger::Ledger* ledger = service_->hub()->ledger();
+  bool follow = !req_.stop_at_end();
+  if (follow && !runtime_->open()) {
+    // Closed, or closing: the ledger row is marked closed only after the
+    // "closed" record has committed. Until then follow up to that record
+    // (Pump stops there), so a follower that arrives while the session
+    // closes still gets the final labels.
+    auto row = ledger->GetSession(req_.session_id());
+    follow = row.ok() && row->open;
+  }
+  if (!follow) {
+    stop_after_ = ledger->CommittedSequence(req_.session_id());
+  } else {
+    token_id_ = principal_.token_id;
+    runtime_->AddSink(this);
+    runtime_->AddStream(this);
+    registered_ = true;
+  }
+  Pump();
+}
+
+void SubscribeReactor::End(const grpc::Status& status) {
+  if (status.error_code() == grpc::StatusCode::FAILED_PRECONDITION) {
+    // Session closing: keep delivering until its "closed" record has gone
+    // out (Pump), so a follower sees the whole session.
+    return;
+  }
+  Post([status](SubscribeReactor& r) { r.FinishNow(status); });
+}
+
+void SubscribeReactor::OnCommitted(const std::vector<v1::Record>& records) {
+  {
+    std::lock_guard<std::mutex> lock(inbox_mu_);
+    if (inbox_.size() + records.size() <= service_->options().subscriber_buffer) {
+      inbox_.insert(inbox_.end(), records.begin(), records.end());
+    }  // else dropped: Pump refills the gap from the ledger
+  }
+  if (idle_.load()) PostPump();
+}
+
+void SubscribeReactor::PostPump() {
+  if (pump_posted_.exchange(true)) return;
+  Post([](SubscribeReactor& r) {
+    r.pump_posted_.store(false);
+    r.Pump();
+  });
+}
+
+void SubscribeReactor::OnWriteDone(bool ok) {
+  Post([ok](SubscribeReactor& r) {
+    r.writing_ = false;
+    if (ok) r.Pump();
+  });
+}
+
+void SubscribeReactor::OnCancel() {
+  Post([](SubscribeReactor& r) { r.FinishNow(grpc::Status::CANCELLED); });
+}
+
+void SubscribeReactor::OnDone() {
+  Post([](SubscribeReactor& r) { r.Cleanup(); });
+}
+
+void SubscribeReactor::Cleanup() {
+  if (registered_) {
+    runtime_->RemoveSink(this);
+    runtime_->RemoveStream(this);
+  }
+  if (admitted_) service_->admission().Release(peer_host_);
+  self_.reset();  // the closure running this still holds a reference
+}
+
+// Finds the record with sequence next_: from the replay chunk, the live
+// inbox, or a fresh ledger read.
+std::optional<v1::Record> SubscribeReactor::Next() {
+  while (!replay_.empty() && replay_.front().sequence() < next_) replay_.pop_front();
+  if (!replay_.empty() && replay_.front().sequence() == next_) {
+    v1::Record r = std::move(replay_.front());
+    replay_.pop_front();
+    return r;
+  }
+  {
+    std::lock_guard<std::mutex> lock(inbox_mu_);
+    while (!inbox_.empty() && inbox_.front().sequence() < next_) inbox_.pop_front();
+    if (!inbox_.empty() && inbox_.front().sequence() == next_) {
+      v1::Record r = std::move(inbox_.front());
+      inbox_.pop_front();
+      return r;
+    }
+  }
+  ledger::Ledger* ledger = service_->hub()->ledger();
+  if (ledger->CommittedSequence(req_.session_id()) >= next_) {
+    auto chunk = ledger->Read(req_.session_id(), next_, 512);
+    if (!chunk.ok()) {
+      FinishNow(ToGrpc(chunk.status()));
+      return std::nullopt;
+    }
+    replay_.assign(chunk->begin(), chunk->end());
+    if (!replay_.empty() && replay_.front().sequence() == next_) {
+      v1::Record r = std::move(replay_.front());
+      replay_.pop_front();
+      return r;
+    }
+  }
+  return std::nullopt;
+}
+
+void SubscribeReactor::Pump() {
+  if (writing_ || finished_ || !runtime_) return;
+  while (true) {
+    if (next_ > stop_after_) return FinishNow(grpc::Status::OK);
+    std::optional<v1::Record> r = Next();
+    if (finished_) return;
+    if (!r) {
+      if (stop_after_ != kFollow) {
+        // Nothing more is coming.
+        return FinishNow(grpc::Status::OK);
+      }
+      idle_.store(true);
+      // A commit may have landed between the check and idle_ = true.
+      std::lock_guard<std::mutex> lock(inbox_mu_);
+      if (inbox_.empty() || inbox_.front().sequence() > next_) return;
+      idle_.store(false);
+      continue;
+    }
+    idle_.store(false);
+    next_ = r->sequence() + 1;
+    if (r->has_session_event() && r->session_event().event() == v1::SessionEvent::KIND_CLOSED) {
+      stop_after_ = r->sequence();
+    }
+    if (!kinds_.empty() && !kinds_.count(ledger::RecordKindOf(*r))) continue;
+    current_ = std::move(*r);
+    writing_ = true;
+    StartWrite(&current_);
+    return;
+  }
+}
+
+void SubscribeReactor::FinishNow(const grpc::Status& status) {
+  if (finished_) return;
+  finished_ = true;
+  Finish(status);
+}
+
+}  // namespace tickmark::rpc

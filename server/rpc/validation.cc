@@ -1,0 +1,194 @@
+#include "server/rpc/validation.h"
+
+#include <cmath>
+
+#include "absl/status/statusor.h"
+#include "server/base/strings.h"
+#include "server/rpc/auth.h"
+
+namespace tickmark::rpc {
+namespace {
+
+namespace v1 = tickmark::v1;
+
+// a − b, or nullopt if it does not fit in 64 bits.
+std::optional<int64_t> Sub(int64_t a, int64_t b) {
+  int64_t r = 0;
+  if (__builtin_sub_overflow(a, b, &r)) return std::nullopt;
+  return r;
+}
+std::optional<int64_t> Add(int64_t a, int64_t b) {
+  int64_t r = 0;
+  if (__builtin_add_overflow(a, b, &r)) return std::nullopt;
+  return r;
+}
+
+}  // namespace
+
+absl::Status ValidateHello(const v1::Hello& hello) {
+  if (!IsValidName(hello.client_id())) {
+    return absl::InvalidArgumentError("client_id must be 1-64 characters of [A-Za-z0-9._:-]");
+  }
+  if (hello.source_description().size() > 256 || hello.software().size() > 128) {
+    return absl::InvalidArgumentError("source_description (256) or software (128) too long");
+  }
+  return absl::OkStatus();
+}
+
+absl::Status CheckTokensAgree(std::string_view hello_token, std::string_view metadata_token) {
+  if (hello_token.empty() || metadata_token.empty() || hello_token == metadata_token) {
+    return absl::OkStatus();
+  }
+  return absl::UnauthenticatedError(
+      "the hello's token and the call's authorization token differ; send one token");
+}
+
+absl::Status ValidateFeedback(const v1::FeedbackMessage& f, const Limits& limits) {
+  if (f.client_sequence() == 0) return absl::InvalidArgumentError("client_sequence starts at 1");
+  if (!std::isfinite(f.value()) || std::fabs(f.value()) > limits.max_abs_value) {
+    return absl::InvalidArgumentError(
+        Cat("feedback value must be finite and within ±", limits.max_abs_value));
+  }
+  if (f.event_source_ns() <= 0) return absl::InvalidArgumentError("event_source_ns must be > 0");
+  if (f.input().size() > 64) return absl::InvalidArgumentError("input label over 64 bytes");
+  return absl::OkStatus();
+}
+
+absl::Status ValidateStep(const v1::StepMessage& s, const Limits& limits) {
+  if (s.client_sequence() == 0) return absl::InvalidArgumentError("client_sequence starts at 1");
+  if (s.start_agent_ns() <= 0) return absl::InvalidArgumentError("start_agent_ns must be > 0");
+  if (s.end_agent_ns() != 0) {
+    if (s.end_agent_ns() <= s.start_agent_ns()) {
+      return absl::InvalidArgumentError("a step must end after it starts");
+    }
+    // Both positive here, so the difference cannot overflow.
+    if (s.end_agent_ns() - s.start_agent_ns() > limits.max_step_length.nanos()) {
+      return absl::InvalidArgumentError(
+          Cat("a step may last at most ", limits.max_step_length.seconds(), " s"));
+    }
+  }
+  if (s.state().size() > limits.max_state_bytes) {
+    return absl::InvalidArgumentError(
+        Cat("state is ", s.state().size(), " bytes; the limit is ", limits.max_state_bytes));
+  }
+  if (static_cast<uint32_t>(s.features_size()) > limits.max_features) {
+    return absl::InvalidArgumentError(Cat("at most ", limits.max_features, " features per step"));
+  }
+  for (float x : s.features()) {
+    if (!std::isfinite(x)) return absl::InvalidArgumentError("features must be finite");
+  }
+  if (s.action().size() > 128) return absl::InvalidArgumentError("action name over 128 bytes");
+  return absl::OkStatus();
+}
+
+absl::Status ValidateProbeTimes(SessionTime t1, int64_t t2_client_ns, int64_t t3_client_ns,
+                                SessionTime t4) {
+  // RFC 5905 §8: offset = ((T2 − T1) + (T3 − T4)) / 2, delay = (T4 − T1) − (T3 − T2).
+  // Order (T3 < T2, T4 < T1) is the clock model's to judge; here only what
+  // would wrap.
+  const auto a = Sub(t2_client_ns, t1.nanos());
+  const auto b = Sub(t3_client_ns, t4.nanos());
+  const auto turnaround = Sub(t3_client_ns, t2_client_ns);
+  const auto round_trip = Sub(t4.nanos(), t1.nanos());
+  if (!a || !b || !turnaround || !round_trip || !Add(*a, *b) || !Sub(*round_trip, *turnaround)) {
+    return absl::OutOfRangeError("rejected_out_of_range");
+  }
+  return absl::OkStatus();
+}
+
+absl::StatusOr<SessionTime> MapThroughHelloOffset(int64_t client_ns, Duration hello_offset) {
+  const auto mapped = Sub(client_ns, hello_offset.nanos());
+  if (!mapped) return absl::OutOfRangeError("time out of range for this client's clock");
+  return SessionTime::FromNanos(*mapped);
+}
+
+EventTimeVerdict JudgeEventTime(SessionTime event, Duration uncertainty, SessionTime arrival,
+                                bool model_has_probe, Duration tolerance, const Limits& limits) {
+  EventTimeVerdict v{absl::OkStatus(), event, uncertainty, false};
+  const auto ahead_ns = Sub(event.nanos(), arrival.nanos());
+  if (!ahead_ns) {
+    v.status = absl::OutOfRangeError("event time out of range");
+    return v;
+  }
+  const Duration ahead = Duration::Nanos(*ahead_ns);
+  const Duration bound = uncertainty + tolerance;
+  if (ahead > bound) {
+    if (model_has_probe || ahead - bound > limits.max_event_future) {
+      v.status = absl::OutOfRangeError(Cat("event time lies ", ahead.seconds(),
+                                           " s after its arrival, beyond its stated "
+                                           "uncertainty of ",
+                                           uncertainty.seconds(),
+                                           " s: not credited; check the source clock"));
+      return v;
+    }
+    v.event = arrival;
+    v.uncertainty = ahead > uncertainty ? ahead : uncertainty;
+    v.clamped = true;
+    return v;
+  }
+  if (-ahead > limits.max_event_age) {
+    v.status = absl::InvalidArgumentError(Cat("event time is ", (-ahead).seconds(),
+                                              " s before its arrival (limit ",
+                                              limits.max_event_age.seconds(), " s)"));
+  }
+  return v;
+}
+
+absl::Status CheckStepTime(SessionTime start, Duration uncertainty, SessionTime arrival,
+                           const Limits& limits) {
+  const auto ahead_ns = Sub(start.nanos(), arrival.nanos());
+  if (!ahead_ns) return absl::OutOfRangeError("step start out of range");
+  const Duration ahead = Duration::Nanos(*ahead_ns);
+  if (ahead > limits.max_event_future + uncertainty) {
+    return absl::InvalidArgumentError(
+        Cat("step starts ", ahead.seconds(), " s after its arrival (limit ",
+            (limits.max_event_future + uncertainty).seconds(), " s): check the agent clock"));
+  }
+  if (-ahead > limits.max_event_age) {
+    return absl::InvalidArgumentError(Cat("step start is ", (-ahead).seconds(),
+                                          " s before its arrival (limit ",
+                                          limits.max_event_age.seconds(), " s)"));
+  }
+  return absl::OkStatus();
+}
+
+std::optional<std::string> DescribeContentMismatch(const v1::Record& stored,
+                                                   const v1::Record& resent) {
+  if (stored.body_case() != resent.body_case()) return "a different kind of record";
+  if (stored.has_feedback()) {
+    const v1::Feedback& a = stored.feedback();
+    const v1::Feedback& b = resent.feedback();
+    if (a.value() != b.value()) return Cat("value ", b.value(), " (stored: ", a.value(), ")");
+    if (a.event_source_ns() != b.event_source_ns()) {
+      return Cat("event_source_ns ", b.event_source_ns(), " (stored: ", a.event_source_ns(), ")");
+    }
+    if (a.input() != b.input()) return Cat("input '", b.input(), "' (stored: '", a.input(), "')");
+    return std::nullopt;
+  }
+  if (stored.has_step()) {
+    const v1::Step& a = stored.step();
+    const v1::Step& b = resent.step();
+    if (a.step_id() != b.step_id())
+      return Cat("step_id ", b.step_id(), " (stored: ", a.step_id(), ")");
+    if (a.episode() != b.episode())
+      return Cat("episode ", b.episode(), " (stored: ", a.episode(), ")");
+    if (a.start_agent_ns() != b.start_agent_ns()) {
+      return Cat("start_agent_ns ", b.start_agent_ns(), " (stored: ", a.start_agent_ns(), ")");
+    }
+    if (a.end_agent_ns() != b.end_agent_ns()) {
+      return Cat("end_agent_ns ", b.end_agent_ns(), " (stored: ", a.end_agent_ns(), ")");
+    }
+    if (a.action() != b.action())
+      return Cat("action '", b.action(), "' (stored: '", a.action(), "')");
+    if (a.state() != b.state()) return std::string("state bytes");
+    if (a.features_size() != b.features_size()) return std::string("feature count");
+    for (int i = 0; i < a.features_size(); ++i) {
+      // Bitwise, so that a resent NaN-free vector compares exactly.
+      if (a.features(i) != b.features(i)) return Cat("feature ", i);
+    }
+    return std::nullopt;
+  }
+  return std::nullopt;
+}
+
+}  // namespace tickmark::rpc

@@ -1,0 +1,163 @@
+// The pure checks of server/rpc/validation.h and the token bucket, table
+// driven; no server, no clock but a hand-driven one.
+#include <gtest/gtest.h>
+
+#include <limits>
+
+#include "server/rpc/stream_admission.h"
+#include "server/rpc/token_bucket.h"
+#include "server/rpc/validation.h"
+
+namespace tickmark::rpc {
+namespace {
+
+namespace v1 = tickmark::v1;
+constexpr int64_t kMin = std::numeric_limits<int64_t>::min();
+constexpr int64_t kMax = std::numeric_limits<int64_t>::max();
+
+TEST(ValidationTest, ProbeTimesThatWouldOverflowAreRejectedWithAReason) {
+  const SessionTime t1 = SessionTime::FromNanos(1'700'000'000'000'000'000);
+  const SessionTime t4 = t1 + Duration::Millis(2);
+  struct Case {
+    int64_t t2, t3;
+    bool ok;
+  };
+  const Case cases[] = {
+      {1'000'000, 1'000'100, true},
+      {kMin, kMax, false},  // issue 9.5: T3 − T2 wraps
+      {kMax, kMax, false},  // T2 − T1 fine, T3 − T4 fine, their sum wraps
+      {kMin, kMin, false},  // T2 − T1 wraps
+      {5, 4, true},         // reversed, but the clock model judges order
+  };
+  for (const Case& c : cases) {
+    absl::Status s = ValidateProbeTimes(t1, c.t2, c.t3, t4);
+    EXPECT_EQ(s.ok(), c.ok) << c.t2 << " " << c.t3 << ": " << s.message();
+    if (!s.ok()) {
+      EXPECT_EQ(s.message(), "rejected_out_of_range");
+    }
+  }
+}
+
+TEST(ValidationTest, HelloOffsetMappingThatWouldOverflowIsOutOfRange) {
+  EXPECT_FALSE(MapThroughHelloOffset(kMax, Duration::Nanos(-5)).ok());
+  auto ok = MapThroughHelloOffset(1000, Duration::Nanos(400));
+  ASSERT_TRUE(ok.ok());
+  EXPECT_EQ(ok->nanos(), 600);
+}
+
+TEST(ValidationTest, EventTimeAfterArrivalBeyondItsUncertaintyIsRefusedOrClamped) {
+  const Limits limits;
+  const SessionTime arrival = SessionTime::FromNanos(1'000'000'000'000);
+  const Duration u = Duration::Millis(3);
+  // Issue 9.6: 4.5 s ahead with 3 ms uncertainty and a probed model.
+  auto refused =
+      JudgeEventTime(arrival + Duration::Millis(4500), u, arrival, true, Duration::Zero(), limits);
+  EXPECT_EQ(refused.status.code(), absl::StatusCode::kOutOfRange);
+  // Within the uncertainty: kept as mapped.
+  auto within =
+      JudgeEventTime(arrival + Duration::Millis(2), u, arrival, true, Duration::Zero(), limits);
+  EXPECT_TRUE(within.status.ok());
+  EXPECT_FALSE(within.clamped);
+  EXPECT_EQ(within.event, arrival + Duration::Millis(2));
+  // New model (hello mapping): clamped to arrival, uncertainty covers the shift.
+  auto clamped = JudgeEventTime(arrival + Duration::Millis(4500), Duration::Seconds(1), arrival,
+                                false, Duration::Zero(), limits);
+  EXPECT_TRUE(clamped.status.ok());
+  EXPECT_TRUE(clamped.clamped);
+  EXPECT_EQ(clamped.event, arrival);
+  EXPECT_GE(clamped.uncertainty, Duration::Millis(4500));
+  // ... unless absurdly far ahead.
+  auto absurd = JudgeEventTime(arrival + Duration::Seconds(60), Duration::Seconds(1), arrival,
+                               false, Duration::Zero(), limits);
+  EXPECT_FALSE(absurd.status.ok());
+  // A tolerance widens the bound.
+  auto tolerated = JudgeEventTime(arrival + Duration::Millis(4500), u, arrival, true,
+                                  Duration::Seconds(5), limits);
+  EXPECT_TRUE(tolerated.status.ok());
+  EXPECT_FALSE(tolerated.clamped);
+  // Too old.
+  auto old =
+      JudgeEventTime(arrival - Duration::Seconds(601), u, arrival, true, Duration::Zero(), limits);
+  EXPECT_EQ(old.status.code(), absl::StatusCode::kInvalidArgument);
+  // Extreme values never overflow.
+  auto extreme = JudgeEventTime(SessionTime::FromNanos(kMax), u, SessionTime::FromNanos(kMin), true,
+                                Duration::Zero(), limits);
+  EXPECT_FALSE(extreme.status.ok());
+}
+
+TEST(ValidationTest, FeedbackAndStepFieldsAreChecked) {
+  const Limits limits;
+  v1::FeedbackMessage f;
+  f.set_client_sequence(1);
+  f.set_value(1);
+  f.set_event_source_ns(5);
+  EXPECT_TRUE(ValidateFeedback(f, limits).ok());
+  f.set_value(std::numeric_limits<double>::quiet_NaN());
+  EXPECT_FALSE(ValidateFeedback(f, limits).ok());
+  v1::StepMessage s;
+  s.set_client_sequence(1);
+  s.set_start_agent_ns(10);
+  EXPECT_TRUE(ValidateStep(s, limits).ok());
+  s.set_end_agent_ns(5);
+  EXPECT_FALSE(ValidateStep(s, limits).ok());
+  v1::Hello h;
+  h.set_client_id("pad-1");
+  EXPECT_TRUE(ValidateHello(h).ok());
+  h.set_client_id("has space");
+  EXPECT_FALSE(ValidateHello(h).ok());
+}
+
+TEST(ValidationTest, TokensInHelloAndMetadataMustAgree) {
+  EXPECT_TRUE(CheckTokensAgree("tmk_a", "").ok());
+  EXPECT_TRUE(CheckTokensAgree("", "tmk_a").ok());
+  EXPECT_TRUE(CheckTokensAgree("tmk_a", "tmk_a").ok());
+  EXPECT_EQ(CheckTokensAgree("tmk_a", "tmk_b").code(), absl::StatusCode::kUnauthenticated);
+}
+
+TEST(ValidationTest, ContentMismatchNamesTheField) {
+  v1::Record a;
+  a.mutable_feedback()->set_value(1);
+  a.mutable_feedback()->set_arrival_session_ns(5);
+  v1::Record b = a;
+  b.mutable_feedback()->set_arrival_session_ns(9);  // server-stamped: not content
+  EXPECT_FALSE(DescribeContentMismatch(a, b).has_value());
+  b.mutable_feedback()->set_value(-1);
+  auto m = DescribeContentMismatch(a, b);
+  ASSERT_TRUE(m.has_value());
+  EXPECT_NE(m->find("value"), std::string::npos);
+  v1::Record s1, s2;
+  s1.mutable_step()->set_action("north");
+  s2.mutable_step()->set_action("south");
+  EXPECT_TRUE(DescribeContentMismatch(s1, s2).has_value());
+}
+
+TEST(TokenBucketTest, BurstThenRateOnAHandDrivenClock) {
+  FakeMonotonic clock;
+  TokenBucket b(50, 100, &clock);
+  int taken = 0;
+  while (b.TryTake()) ++taken;
+  EXPECT_EQ(taken, 100);
+  clock.Advance(Duration::Millis(100));  // 5 tokens
+  taken = 0;
+  while (b.TryTake()) ++taken;
+  EXPECT_EQ(taken, 5);
+  TokenBucket unlimited(0, 0, &clock);
+  for (int i = 0; i < 1000; ++i) EXPECT_TRUE(unlimited.TryTake());
+}
+
+TEST(StreamAdmissionTest, PeerHostAndCaps) {
+  EXPECT_EQ(PeerHost("ipv4:127.0.0.1:5000"), "127.0.0.1");
+  EXPECT_EQ(PeerHost("ipv6:[::1]:5000"), "::1");
+  EXPECT_EQ(PeerHost("ipv6:%5B::1%5D:5000"), "::1");
+  StreamAdmission a(3, 2);
+  EXPECT_TRUE(a.Admit("h1").ok());
+  EXPECT_TRUE(a.Admit("h1").ok());
+  EXPECT_EQ(a.Admit("h1").code(), absl::StatusCode::kResourceExhausted);
+  EXPECT_TRUE(a.Admit("h2").ok());
+  EXPECT_EQ(a.Admit("h3").code(), absl::StatusCode::kResourceExhausted);
+  a.Release("h1");
+  EXPECT_TRUE(a.Admit("h3").ok());
+}
+
+}  // namespace
+}  // namespace tickmark::rpc
