@@ -95,6 +95,47 @@ void AddServerFlags(CLI::App& app, tickmark::rpc::ServerOptions& o, std::string&
   AddDuration(app, "--allowed-lateness-ms", &o.sessions.allowed_lateness, Duration::Millis, 0,
               3'600'000,
               "how late a record may arrive and still be credited; fixed per session at creation");
+
+  // The ledger at start and when the disk fills (DEVELOPERS.md, "Failure
+  // states and recovery").
+  app.add_flag("--new-ledger", o.new_ledger,
+               "start an empty ledger although the data folder shows one existed (an old WAL "
+               "file is kept aside as tickmark.db-wal.replaced)");
+  app.add_flag("--accept-lost-records", o.accept_lost_records,
+               "start although the ledger holds fewer records than were committed (lost WAL "
+               "frames); the loss is logged");
+  app.add_option("--ledger-reserve-bytes", o.ledger_reserve_bytes,
+                 "space kept in a reserve file beside the ledger, freed when the disk fills so "
+                 "the server can still record it (0: no reserve)")
+      ->check(CLI::Range(uint64_t{0}, uint64_t{1} << 32));
+
+  // Hostile or broken clients (DEVELOPERS.md, "Limits on clients").
+  AddDuration(app, "--hello-timeout-ms", &o.live.hello_timeout, Duration::Millis, 100, 600'000,
+              "a stream that sends no hello this long after opening is ended");
+  app.add_option("--max-streams", o.live.max_streams,
+                 "open streams in total (0: no cap); past it new streams are refused")
+      ->check(CLI::Range(size_t{0}, size_t{10'000'000}));
+  app.add_option("--max-streams-per-peer", o.live.max_streams_per_peer,
+                 "open streams per client host (0: no cap)")
+      ->check(CLI::Range(size_t{0}, size_t{10'000'000}));
+  app.add_option("--feedback-rate", o.live.feedback_rate,
+                 "feedback per second per trainer token and per stream (0: no limit)")
+      ->check(tickmark::Between(0, 1e9));
+  app.add_option("--feedback-burst", o.live.feedback_burst,
+                 "feedback a trainer may send at once above --feedback-rate")
+      ->check(tickmark::Between(1, 1e9));
+  app.add_option("--step-rate", o.live.step_rate,
+                 "steps per second per agent token and per stream (0: no limit)")
+      ->check(tickmark::Between(0, 1e9));
+  app.add_option("--step-burst", o.live.step_burst,
+                 "steps an agent may send at once above --step-rate")
+      ->check(tickmark::Between(1, 1e9));
+  app.add_option("--max-in-flight-per-stream", o.live.max_in_flight_per_stream,
+                 "messages a stream may have waiting for their acks before it is read again")
+      ->check(CLI::Range(size_t{1}, size_t{1'000'000}));
+  app.add_option("--live-workers", o.live.worker_threads,
+                 "threads that run stream work and the ledger look-ups streams need")
+      ->check(CLI::Range(1, 256));
 }
 
 }  // namespace

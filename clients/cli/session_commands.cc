@@ -21,7 +21,19 @@ void PrintSummaryLine(const v1::SessionSummary& s) {
             << StateWord(s.session().state()) << std::setw(28)
             << FormatUtc(s.session().opened_session_ns()) << std::right << std::setw(9)
             << s.feedback_count() << std::setw(9) << s.step_count() << std::setw(7)
-            << s.connected_clients() << "  " << s.session().title() << "\n";
+            << s.connected_clients() << "  " << std::left << std::setw(32)
+            << (s.default_kernel().empty() ? "-" : s.default_kernel()) << " "
+            << s.session().title() << "\n";
+}
+
+// The ledger's write state as operators read it; empty from a server too
+// old to report it.
+std::string LedgerState(const v1::SessionSummary& s) {
+  if (!s.has_ledger_health()) return "";
+  if (s.ledger_health().writable()) return "writable";
+  return "NOT WRITABLE: " + s.ledger_health().reason() +
+         " (writes resume by themselves once the cause is gone; see DEVELOPERS.md, "
+         "Failure states and recovery)";
 }
 
 void AddCreate(CommandTable& table, CLI::App* group) {
@@ -69,8 +81,12 @@ void AddList(CommandTable& table, CLI::App* group) {
               std::cout << std::left << std::setw(12) << "SESSION" << std::setw(8) << "STATE"
                         << std::setw(28) << "OPENED" << std::right << std::setw(9)
                         << "FEEDBACK" << std::setw(9) << "STEPS" << std::setw(7) << "LIVE"
-                        << "  TITLE\n";
+                        << "  " << std::left << std::setw(32) << "KERNEL" << " TITLE\n";
               for (const auto& s : r.sessions()) PrintSummaryLine(s);
+              if (!r.sessions().empty()) {
+                const std::string state = LedgerState(r.sessions(0));
+                if (!state.empty() && state != "writable") std::cout << "ledger " << state << "\n";
+              }
               if (r.sessions().empty()) {
                 std::cout << (req->include_closed() ? "(no sessions)\n"
                                                     : "(no sessions open; --all shows closed "
@@ -94,6 +110,10 @@ void AddShow(CommandTable& table, CLI::App* group) {
                         << "title      " << ss.title() << "\n"
                         << "study      " << (ss.study().empty() ? "-" : ss.study()) << "\n"
                         << "state      " << StateWord(ss.state()) << "\n"
+                        << "kernel     "
+                        << (r.default_kernel().empty() ? "-" : r.default_kernel()) << "\n"
+                        << "ledger     "
+                        << (LedgerState(r).empty() ? "-" : LedgerState(r)) << "\n"
                         << "opened     " << FormatUtc(ss.opened_session_ns()) << "\n"
                         << "closed     " << FormatUtc(ss.closed_session_ns()) << "\n"
                         << "records    " << ss.last_sequence() << "\n"

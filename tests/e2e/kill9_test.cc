@@ -81,7 +81,9 @@ class ServerProcess {
     posix_spawn_file_actions_addopen(&fa, 2, log_path.c_str(), O_WRONLY | O_CREAT | O_APPEND,
                                      0644);
     posix_spawn_file_actions_addopen(&fa, 0, "/dev/null", O_RDONLY, 0);
-    std::vector<std::string> args{path, "--data-dir", data_dir, "--listen", "127.0.0.1:0"};
+    // Scripted trainers send far faster than a human: the rate limit is off.
+    std::vector<std::string> args{path, "--data-dir", data_dir, "--listen", "127.0.0.1:0",
+                                  "--feedback-rate", "0", "--step-rate", "0"};
     std::vector<char*> argv;
     for (std::string& a : args) argv.push_back(a.data());
     argv.push_back(nullptr);

@@ -48,6 +48,11 @@ def test_session_tokens_kernels_markers_and_export(server, tmp_path):
     assert marker["text"] == "block 2 starts"
     shown = tm(server, "session", "show", session, token_file=admin).stdout
     assert "markers    1" in shown
+    # The session's kernel and the ledger's write state are shown (issues 9, 10).
+    assert "kernel     gamma(shape=2,scale=0.28s" in shown
+    assert "ledger     writable" in shown
+    listed = tm(server, "session", "list").stdout
+    assert "KERNEL" in listed and "gamma(shape=2" in listed
 
 
 def test_errors_are_clear_and_exit_non_zero(server, tmp_path):
