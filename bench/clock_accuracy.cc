@@ -1,4 +1,4 @@
-// Clock accuracy (design.md §9, issue 3): how far the server's clock model
+// Clock accuracy (docs/architecture.md §9, issue 3): how far the server's clock model
 // puts a client's event from its true session time, on emulated links, with
 // the client's clock 3.2 s ahead and 80 ppm fast.
 //
@@ -20,7 +20,7 @@
 // already fits for drift, to show what the estimator could reach.
 //
 // Columns: |offset error| p50/p95/max; for the asymmetric link the ratio
-// |error| / |(d_f − d_b)/2|, the asymmetry bound (reference-values.md: an
+// |error| / |(d_f − d_b)/2|, the asymmetry bound (derived from RFC 5905 §8: an
 // estimate from a symmetric-delay assumption is off by exactly that);
 // |drift error| p50/p95 (model only); and how many events fell outside the
 // model's stated uncertainty (expected 0).

@@ -1,4 +1,4 @@
-// Credit precision (design.md §8, §9): the fraction of credit mass that lands
+// Credit precision (docs/architecture.md §8, §9): the fraction of credit mass that lands
 // on the step the trainer actually judged — known only in simulation.
 //
 // A simulated trainer judges steps of a simulated agent at 2, 10 and 50

@@ -1,4 +1,4 @@
-// Step-credits computed per second on one core by CreditEngine (design.md
+// Step-credits computed per second on one core by CreditEngine (docs/architecture.md
 // §9; target >= 5M/s), beside a baseline measured in the same run: a plain
 // loop calling tickmark::Credit() over exactly the (feedback, step) pairs the
 // engine credited. The ratio engine ÷ baseline says what the engine's
@@ -7,7 +7,7 @@
 //
 // Workload: one agent at 50 steps/s (20 ms steps, ends given), a feedback
 // every 100 ms judged 0.5 s earlier, the watermark following the newest
-// event, for each kernel of reference-values.md: uniform 0.2–4 s (Warnell et
+// event, for two kernels from the literature: uniform 0.2–4 s (Warnell et
 // al., AAAI 2018) and gamma shape 2, scale 0.28 s (Knox & Stone, K-CAP 2009 —
 // from memory). Single-threaded; each row runs about --seconds (default 1)
 // of this thread's CPU time, which is also what the rates are divided by.

@@ -1,4 +1,4 @@
-// Fan-out latency (design.md §6, §9), in-process tickmarkd on loopback.
+// Fan-out latency (docs/architecture.md §6, §9), in-process tickmarkd on loopback.
 //
 // 1. One agent publishes steps at a fixed rate to a session with 64
 //    subscribers. Delivery latency = subscriber receipt − the agent's send,

@@ -1,4 +1,4 @@
-// Durable ingest rate (design.md §9): feedback acknowledged per second
+// Durable ingest rate (docs/architecture.md §9): feedback acknowledged per second
 // through trainer streams of an in-process tickmarkd on loopback, against a
 // raw SQLite baseline that inserts the same rows (the same schema — the
 // ledger's own migrations — and the same two rows per feedback: the record

@@ -1,4 +1,4 @@
-// Choosing channel credentials for a server address (design.md §7: TLS for
+// Choosing channel credentials for a server address (docs/architecture.md §7: TLS for
 // gRPC; plaintext only on loopback or when explicitly asked for).
 //
 //   --ca-file PATH   TLS, trusting the PEM roots in PATH;

@@ -1,7 +1,7 @@
 // The client clock: CLOCK_MONOTONIC read with clock_gettime.
 //
 // Clients stamp event times and answer clock probes with the same clock, so
-// the server's clock model for the client (design.md §4) maps exactly the
+// the server's clock model for the client (docs/architecture.md §4) maps exactly the
 // clock that event times are on. CLOCK_MONOTONIC is used because it never
 // steps (NTP only slews it) and because it is the clock Linux can put on
 // input events (evdev EVIOCSCLOCKID), so every source on one machine shares it.

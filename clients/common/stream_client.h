@@ -1,7 +1,7 @@
 // StreamClient: one reconnecting live stream to tickmarkd (stream.proto,
 // service tickmark.v1.Live) that delivers every message exactly once in
 // effect: at-least-once transport, deduplicated by the server on
-// (client_id, client_sequence) (design.md §6).
+// (client_id, client_sequence) (docs/architecture.md §6).
 //
 // One class template serves both stream kinds: StreamClient<TrainerStream>
 // (rpc Train, FeedbackMessage) and StreamClient<AgentStream> (rpc Act,

@@ -1,5 +1,5 @@
 // tickmark-scripted-agent: a stand-in agent for the foundation demo. A dock
-// rover wanders a 10x10 warehouse floor (design.md §8) at a fixed step rate
+// rover wanders a 10x10 warehouse floor (docs/architecture.md §8) at a fixed step rate
 // and publishes every step (action, position as state and features) to
 // tickmarkd through the reconnecting agent stream. It does not learn; the
 // learning demo replaces it.

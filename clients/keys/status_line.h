@@ -20,7 +20,7 @@ struct LastFeedback {
   int64_t uncertainty_ns = 0;
 };
 
-// "HH:MM:SS.mmm" of a session time (UTC, design.md §4).
+// "HH:MM:SS.mmm" of a session time (UTC, docs/architecture.md §4).
 std::string FormatSessionClock(int64_t session_ns);
 
 // The status line, cut to `width` columns (0: no limit) so that it never

@@ -1,4 +1,4 @@
-// Clock models: mapping one client's clock to session time (design.md §4).
+// Clock models: mapping one client's clock to session time (docs/architecture.md §4).
 //
 // The server starts every probe, so it plays the requester ("client") role of
 // RFC 5905 §8 and the device plays the responder ("server") role:

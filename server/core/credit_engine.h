@@ -1,5 +1,5 @@
 // CreditEngine: turns a session's steps and feedback into credit updates,
-// settled labels and unmatched reports (design.md §5).
+// settled labels and unmatched reports (docs/architecture.md §5).
 //
 // The server feeds it, in ledger order, every step and feedback (each with
 // its ledger sequence number) and every watermark advance; each call returns

@@ -1,4 +1,4 @@
-// DelayKernel: a trainer's delay distribution (design.md §2, §5).
+// DelayKernel: a trainer's delay distribution (docs/architecture.md §2, §5).
 //
 // The kernel is the distribution of the time between the moment a trainer
 // judges an agent step and the moment their feedback is timestamped. Credit
@@ -155,7 +155,7 @@ class DelayKernel {
   double cdf_at_horizon_ = 1.0;    // normaliser of the cut CDF
 };
 
-// Credit of step [start, end) from feedback at t_f (design.md §5):
+// Credit of step [start, end) from feedback at t_f (docs/architecture.md §5):
 // CutCdf(t_f - start) - CutCdf(t_f - end), never negative. The credit
 // engine computes exactly this expression, so results agree bit for bit.
 double Credit(const DelayKernel& kernel, SessionTime t_f, SessionTime start,

@@ -1,6 +1,6 @@
 // Maximum-likelihood fit of a gamma distribution to delay samples
 // (Minka 2002, "Estimating a Gamma distribution"), used by calibration
-// (design.md §5) to turn a trainer's reaction-test delays into a gamma
+// (docs/architecture.md §5) to turn a trainer's reaction-test delays into a gamma
 // delay kernel (DelayKernel::Gamma(fit.shape, fit.scale_seconds, shift)).
 //
 // Pure function; thread-safe.

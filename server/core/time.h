@@ -5,7 +5,7 @@
 // instant is expected and an instant on one clock cannot be mixed with an
 // instant on another:
 //   Duration     a signed length of time.
-//   SessionTime  an instant on the session timeline (design.md §4): the
+//   SessionTime  an instant on the session timeline (docs/architecture.md §4): the
 //                server's monotonic clock anchored to UTC when the session
 //                opened, as nanoseconds since the Unix epoch.
 //   ClientTime   an instant on one client's raw clock (a source or agent);
@@ -216,7 +216,7 @@ class SystemMonotonic final : public MonotonicSource {
   static const SystemMonotonic* Get();
 };
 
-// Session time (design.md §4): anchored to UTC once, then advanced only by a
+// Session time (docs/architecture.md §4): anchored to UTC once, then advanced only by a
 // monotonic clock, so a step of the wall clock never moves it.
 // Thread-safe after construction.
 class SessionClock {

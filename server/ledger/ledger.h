@@ -1,5 +1,5 @@
 // tickmark::ledger — the append-only, persisted record of every session
-// (design.md §6).
+// (docs/architecture.md §6).
 //
 // The ledger owns two things that must never disagree with what is on disk:
 // each session's sequence numbers and its hash chain. Append() assigns

@@ -1,4 +1,4 @@
-// Tokens (design.md §7): every call carries a secret token naming one
+// Tokens (docs/architecture.md §7): every call carries a secret token naming one
 // session and one role. Only SHA-256 of the secret is stored; the secret is
 // shown once, when issued.
 //

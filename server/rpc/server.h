@@ -1,6 +1,6 @@
 // The tickmarkd server assembled: ledger, sessions, token authority, the
 // gRPC services, and the operator token. main() only parses flags and calls
-// this (style.md: the binary is wiring only).
+// this (docs/conventions.md: the binary is wiring only).
 //
 // Health: the standard gRPC health service is on; a watcher thread reads
 // Ledger::WriteHealth() every ServerOptions::health_interval and reports

@@ -1,4 +1,4 @@
-// absl::Status <-> grpc::Status, in one place (style.md habit 2). The codes
+// absl::Status <-> grpc::Status, in one place (docs/conventions.md habit 2). The codes
 // are the same numbers on both sides.
 #ifndef TICKMARK_SERVER_RPC_STATUS_H_
 #define TICKMARK_SERVER_RPC_STATUS_H_

@@ -119,7 +119,7 @@ TEST(ChannelTest, TargetHost) {
 }
 
 TEST(ChannelTest, PlaintextOnlyOnLoopbackUnlessAsked) {
-  // design.md §7: plaintext only on loopback or when explicitly asked for.
+  // docs/architecture.md §7: plaintext only on loopback or when explicitly asked for.
   EXPECT_TRUE(MayUsePlaintext("127.0.0.1:7461"));
   EXPECT_TRUE(MayUsePlaintext("127.3.2.1:7461"));  // RFC 1122 §3.2.1.3: 127/8 is loopback
   EXPECT_TRUE(MayUsePlaintext("[::1]:7461"));      // RFC 4291 §2.5.3

@@ -29,7 +29,7 @@ namespace {
 namespace fs = std::filesystem;
 
 // Values as published in include/uapi/linux/input.h and
-// include/uapi/linux/input-event-codes.h (reference-values.md, Devices).
+// include/uapi/linux/input-event-codes.h.
 constexpr uint16_t kEvSyn = 0;       // input-event-codes.h EV_SYN
 constexpr uint16_t kEvKey = 1;       // input-event-codes.h EV_KEY
 constexpr uint16_t kEvMsc = 4;       // input-event-codes.h EV_MSC

@@ -366,7 +366,7 @@ TEST(StreamClientTest, AgentStreamDeliversSteps) {
     tickmark::v1::StepMessage step;
     step.set_step_id(i);
     step.set_start_agent_ns(static_cast<int64_t>(i) * 100'000'000);
-    step.set_action(i % 2 ? "north" : "wait");  // dock rover actions (design.md §8)
+    step.set_action(i % 2 ? "north" : "wait");  // dock rover actions (docs/architecture.md §8)
     ASSERT_TRUE(client.Send(step).ok());
   }
   ASSERT_TRUE(client.Flush(In(seconds(30))).ok());

@@ -145,7 +145,7 @@ TEST(ClockModelTest, SymmetricLinkTracksOffsetAndDrift) {
     ASSERT_EQ(model.AddProbe(p), ProbeVerdict::kAccepted) << "probe " << k;
     accepted.push_back(p);
 
-    // Asymmetry can only be bounded, so never below δ_min/2 (design.md §4,
+    // Asymmetry can only be bounded, so never below δ_min/2 (docs/architecture.md §4,
     // derived from RFC 5905 §8).
     const Duration floor = WindowMinDelay(accepted, 8) / 2;
     EXPECT_GE(model.estimate().uncertainty, floor);  // derived, RFC 5905 §8

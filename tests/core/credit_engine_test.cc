@@ -1,5 +1,5 @@
 // Properties of the CreditEngine. The expected credit of every (feedback,
-// step) pair is the published formula F(t_f - s) - F(t_f - e) (design.md §5)
+// step) pair is the published formula F(t_f - s) - F(t_f - e) (docs/architecture.md §5)
 // evaluated by tickmark::Credit on the steps' final intervals.
 #include "server/core/credit_engine.h"
 
@@ -185,7 +185,7 @@ TEST(CreditEngineTest, RandomSessionMatchesFormulaOnFinalIntervalsExactlyOnce) {
         should_match.insert(fseq);
         auto it = emitted.find({fseq, sseq});
         ASSERT_NE(it, emitted.end()) << "missing credit f=" << fseq << " s=" << sseq;
-        EXPECT_TRUE(SameBits(it->second, c));  // design.md §5 on final intervals
+        EXPECT_TRUE(SameBits(it->second, c));  // docs/architecture.md §5 on final intervals
       }
     }
     EXPECT_EQ(emitted.size(), expected_pairs);
@@ -286,7 +286,7 @@ TEST(CreditEngineTest, CreditOverAPartitionSumsToKernelMass) {
         in_range += c.credit;
       }
     }
-    EXPECT_NEAR(total, 1.0, 1e-12) << kernel;  // the cut kernel has mass 1 (design.md §5)
+    EXPECT_NEAR(total, 1.0, 1e-12) << kernel;  // the cut kernel has mass 1 (docs/architecture.md §5)
     EXPECT_NEAR(in_range, k.CutCdf(t_f - At(3.0)) - k.CutCdf(t_f - At(5.5)), 1e-12)
         << kernel;  // telescoping F(t_f - s) - F(t_f - e)
   }
@@ -313,7 +313,7 @@ TEST(CreditEngineTest, NeverCreditsAStepThatStartsAtOrAfterTheFeedback) {
   Append(all, engine.AdvanceWatermark(SessionTime::FromNanos(INT64_MAX)));
   ASSERT_FALSE(all.credits.empty());
   for (const CreditOut& c : all.credits) {
-    EXPECT_LT(starts[c.step_sequence], events[c.feedback_sequence]);  // design.md §5: support at delay >= 0
+    EXPECT_LT(starts[c.step_sequence], events[c.feedback_sequence]);  // docs/architecture.md §5: support at delay >= 0
   }
 }
 
@@ -346,7 +346,7 @@ TEST(CreditEngineTest, StepsArrivingAfterTheFeedbackAreCredited) {
   out = engine.AddStep({2, "rover", 7, At(3.0), At(4.0)});  // explicit end: credited now
   ASSERT_EQ(out.credits.size(), 1u);
   EXPECT_EQ(out.credits[0].step_id, 7u);
-  EXPECT_EQ(out.credits[0].credit, Credit(k, At(5.0), At(3.0), At(4.0)));  // design.md §5
+  EXPECT_EQ(out.credits[0].credit, Credit(k, At(5.0), At(3.0), At(4.0)));  // docs/architecture.md §5
   EXPECT_EQ(out.credits[0].value, -1.0);
   EXPECT_EQ(out.credits[0].kernel, "uniform(lower=0.2s,upper=4s)");
   out = engine.AddStep({3, "rover", 8, At(4.0), std::nullopt});  // open: held
@@ -383,7 +383,7 @@ TEST(CreditEngineTest, LabelsSettleOnlyAfterEndPlusHorizonPlusLateness) {
   CreditEngine engine(Opts("uniform:0.2,4.0", 0.5));
   engine.AddStep({1, "rover", 1, At(1.0), At(2.0)});
   engine.AddFeedback({2, "trainer", 1.0, At(2.5)});
-  // end 2 s + horizon 4 s + lateness 0.5 s = 6.5 s (design.md §2 "settled").
+  // end 2 s + horizon 4 s + lateness 0.5 s = 6.5 s (docs/architecture.md §2 "settled").
   EXPECT_TRUE(engine.AdvanceWatermark(At(6.5) - Duration::Nanos(1)).labels.empty());
   EngineOutput out = engine.AdvanceWatermark(At(6.5));
   ASSERT_EQ(out.labels.size(), 1u);

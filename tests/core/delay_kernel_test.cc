@@ -81,7 +81,7 @@ TEST(DelayKernelTest, CutCdfIsRenormalisedAndExactAtEnds) {
     const Duration d = Duration::Millis(ms);
     const double cut = k->CutCdf(d);
     if (d < k->Horizon()) {
-      EXPECT_DOUBLE_EQ(cut, k->Cdf(d) / k->CdfAtHorizon());  // definition (design.md §5)
+      EXPECT_DOUBLE_EQ(cut, k->Cdf(d) / k->CdfAtHorizon());  // definition (docs/architecture.md §5)
     }
     EXPECT_GE(cut, previous);  // a CDF never decreases
     previous = cut;
@@ -183,7 +183,7 @@ TEST(DelayKernelTest, CreditIsDifferenceOfCutCdf) {
   const SessionTime t0 = SessionTime::FromNanos(1'700'000'000'000'000'000);
   const SessionTime t_f = t0 + Secs(1.0);
   EXPECT_EQ(Credit(*k, t_f, t0 + Secs(0.2), t0 + Secs(0.6)),
-            k->CutCdf(Secs(0.8)) - k->CutCdf(Secs(0.4)));  // design.md §5
+            k->CutCdf(Secs(0.8)) - k->CutCdf(Secs(0.4)));  // docs/architecture.md §5
   EXPECT_EQ(Credit(*k, t_f, t_f, t_f + Secs(1)), 0.0);  // starts at the feedback
   EXPECT_EQ(Credit(*k, t_f, t_f - Secs(10), t_f - Secs(9)), 0.0);  // beyond horizon
 }

@@ -10,7 +10,7 @@
 // clock is read, and the session's anchor from the ledger's `session` table
 // turns that into the true session time of the event:
 //   true session time = utc_anchor + (CLOCK_MONOTONIC − mono_anchor)
-// (design.md §4). Each stored feedback must lie within its own stated
+// (docs/architecture.md §4). Each stored feedback must lie within its own stated
 // uncertainty of that truth. No timing is asserted; the session really
 // lasts ~16 s because the server's clock is the real one.
 //
@@ -186,7 +186,7 @@ TEST(ClockLinkTest, FeedbackLandsWithinItsUncertaintyBehindAJitteryLinkWithAnOff
   const std::optional<Anchor> anchor = ReadAnchor(server.server().ledger_path(), session);
   ASSERT_TRUE(anchor.has_value());
   auto true_session_ns = [&](int64_t mono_ns) {
-    return anchor->utc_anchor_ns + (mono_ns - anchor->mono_anchor_ns);  // design.md §4
+    return anchor->utc_anchor_ns + (mono_ns - anchor->mono_anchor_ns);  // docs/architecture.md §4
   };
 
   const std::vector<v1::Record> feedback =

@@ -1,5 +1,5 @@
 // tickmarkd killed with SIGKILL while feedback is in flight, then restarted
-// on the same data dir. Checks design.md §6: "every accepted message is
+// on the same data dir. Checks docs/architecture.md §6: "every accepted message is
 // written before it is acknowledged ... the default must lose nothing that
 // was acknowledged if the server process is killed" and "clients resend
 // unacknowledged messages after a reconnect; the server deduplicates by
@@ -237,7 +237,7 @@ void ExpectLedgerSound(LedgerReader& db, const std::string& session) {
   const auto integrity = db.Query("PRAGMA integrity_check");
   ASSERT_EQ(integrity.size(), 1u);
   EXPECT_EQ(integrity[0][0], "ok");  // SQLite documentation, PRAGMA integrity_check
-  // design.md §6: one sequence per session, no gaps (starts at 1).
+  // docs/architecture.md §6: one sequence per session, no gaps (starts at 1).
   const auto seqs = db.Query(
       "SELECT COUNT(*), COALESCE(MIN(seq), 0), COALESCE(MAX(seq), 0) FROM record WHERE "
       "session_id = ?",
@@ -262,7 +262,7 @@ std::vector<char> FromHex(const std::string& hex) {
   return out;
 }
 
-// The hash chain across the crash and restart (ledger.h, design.md §6:
+// The hash chain across the crash and restart (ledger.h, docs/architecture.md §6:
 // hash = SHA-256(previous hash || body), the first from 32 zero bytes),
 // recomputed with coreutils' sha256sum: one file per record under `scratch`.
 void ExpectChainVerifies(LedgerReader& db, const std::string& session,

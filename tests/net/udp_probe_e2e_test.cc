@@ -24,7 +24,7 @@ using std::chrono::steady_clock;
 using testing::MonoNowNs;
 using testing::TempDir;
 
-constexpr int64_t kClientAheadNs = 3'200'000'000;  // design.md §8's dock rover scenario
+constexpr int64_t kClientAheadNs = 3'200'000'000;  // docs/architecture.md §8's dock rover scenario
 
 // A client clock 3.2 s ahead of this process's CLOCK_MONOTONIC (which the
 // server's session time also advances with).

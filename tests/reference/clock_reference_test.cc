@@ -1,5 +1,5 @@
-// Clock estimation checked against outside sources (shared/reference-values.md,
-// "Clock estimation"). Each check names its source on the line.
+// Clock estimation checked against outside sources. Each check names its
+// source on the line.
 //
 // Roles: the server starts probes, so it is RFC 5905's requester ("client":
 // T1, T4 on its clock = session time) and the device is the RFC's responder

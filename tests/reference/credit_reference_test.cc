@@ -1,5 +1,5 @@
-// Credit F(t_f - s) - F(t_f - e) against the vectors in reference-values.md,
-// "Human delay and credit".
+// Credit F(t_f - s) - F(t_f - e) against published and derived vectors;
+// each check names its source on the line.
 #include <gtest/gtest.h>
 
 #include "server/core/delay_kernel.h"
@@ -68,7 +68,7 @@ TEST_F(GammaKnoxStoneTest, HundredMillisecondSteps) {
   for (const Case& c : cases) {
     EXPECT_NEAR(RawCredit(0.5, c.s, c.e), c.credit, 5e-8) << c.s;
     // The engine's credit is cut at the 0.999 quantile and renormalised
-    // (design.md §5), so it is the raw credit divided by F(horizon).
+    // (docs/architecture.md §5), so it is the raw credit divided by F(horizon).
     EXPECT_NEAR(Credit(*kernel_, At(0.5), At(c.s), At(c.e)),
                 c.credit / kernel_->CdfAtHorizon(), 5e-8) << c.s;
   }

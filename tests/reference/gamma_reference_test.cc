@@ -1,5 +1,5 @@
 // The gamma kernel's CDF and the Minka fit against values from outside the
-// project (reference-values.md, "Gamma fitting and functions").
+// project; each check names its source on the line.
 #include <cmath>
 #include <vector>
 

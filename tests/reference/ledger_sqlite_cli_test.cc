@@ -232,7 +232,7 @@ TEST_F(LedgerSqliteCliTest, OutsideReaderSeesWhatWasSent) {
 
   // The file as SQLite itself judges it.
   EXPECT_EQ(Sqlite(db_path, "PRAGMA integrity_check"), Rows({{"ok"}}));  // PRAGMA integrity_check
-  EXPECT_EQ(Sqlite(db_path, "PRAGMA journal_mode"), Rows({{"wal"}}));    // design.md §3: WAL
+  EXPECT_EQ(Sqlite(db_path, "PRAGMA journal_mode"), Rows({{"wal"}}));    // docs/architecture.md §3: WAL
 
   EXPECT_EQ(Sqlite(db_path, "SELECT id, title, state FROM session"),
             Rows({{session_id, kTitle, "open"}}));
@@ -282,7 +282,7 @@ TEST_F(LedgerSqliteCliTest, OutsideReaderSeesWhatWasSent) {
                   {"marker", "1"},
                   {"step", std::to_string(actions.size())}}));
 
-  // Hash chain (ledger.h, design.md §6): hash = SHA-256(previous hash || body),
+  // Hash chain (ledger.h, docs/architecture.md §6): hash = SHA-256(previous hash || body),
   // the first chaining from 32 zero bytes; sequences 1, 2, 3, ... with no gap.
   const Rows chain = Sqlite(db_path,
                             "SELECT seq, hex(body), hex(hash) FROM record WHERE session_id = '" +

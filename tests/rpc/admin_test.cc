@@ -1,5 +1,5 @@
 // SessionAdmin over real gRPC on 127.0.0.1:0: each RPC, and the token rules
-// of design.md §7 (a token of session A can do nothing in session B; tokens
+// of docs/architecture.md §7 (a token of session A can do nothing in session B; tokens
 // are stored hashed).
 #include <grpcpp/generic/generic_stub.h>
 #include <sqlite3.h>

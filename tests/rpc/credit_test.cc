@@ -1,7 +1,7 @@
 // Credit through the whole server on 127.0.0.1:0: an agent publishes steps,
 // trainers send feedback, the session closes, and the credit and label
 // records must be what tickmark::Credit() gives on the stored step intervals
-// and feedback event times (design.md §5). Per-trainer kernels and weights
+// and feedback event times (docs/architecture.md §5). Per-trainer kernels and weights
 // (SetKernel), unmatched feedback, replay into a derived set (same kernels:
 // bit-identical; another kernel: labels change, the session's own records
 // do not), and an engine rebuilt after a server restart.
@@ -279,7 +279,7 @@ void CheckCreditAndLabels(const Checked& c, InForceFn in_force) {
     }
   }
   std::set<std::pair<uint64_t, uint64_t>> seen;
-  // Per step, in the order credits are published (design.md §5 label).
+  // Per step, in the order credits are published (docs/architecture.md §5 label).
   std::map<uint64_t, v1::Label> summed;
   for (const v1::CreditUpdate& u : c.credits) {
     const std::pair<uint64_t, uint64_t> key{u.feedback_sequence(), u.step_sequence()};

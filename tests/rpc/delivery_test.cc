@@ -1,4 +1,4 @@
-// Delivery to subscribers (design.md §6) over real gRPC on 127.0.0.1:0,
+// Delivery to subscribers (docs/architecture.md §6) over real gRPC on 127.0.0.1:0,
 // while an agent and a trainer stream at the same time so that every kind
 // of record is in flight (steps, feedback, probes, clock models, client
 // events, credit, unmatched): a subscriber killed and resumed from its last

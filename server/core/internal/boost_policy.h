@@ -1,7 +1,7 @@
 // Boost.Math error policies for core (internal: only core's .cc files use it).
 //
 // Errors become NaN with errno set, checked by the caller, instead of
-// exceptions, which must not leave core (style.md habit 2).
+// exceptions, which must not leave core (docs/conventions.md habit 2).
 #ifndef TICKMARK_SERVER_CORE_INTERNAL_BOOST_POLICY_H_
 #define TICKMARK_SERVER_CORE_INTERNAL_BOOST_POLICY_H_
 
