@@ -8,6 +8,15 @@ namespace tickmark::rpc {
 
 namespace v1 = tickmark::v1;
 
+namespace {
+// a + b, held at the int64 limits (uncertainties come from the ledger).
+int64_t SaturatingAdd(int64_t a, int64_t b) {
+  int64_t sum = 0;
+  if (__builtin_add_overflow(a, b, &sum)) return a > 0 ? INT64_MAX : INT64_MIN;
+  return sum;
+}
+}  // namespace
+
 v1::DelayKernel KernelToProto(const DelayKernel& k) {
   v1::DelayKernel p;
   switch (k.kind()) {
@@ -164,17 +173,21 @@ void CreditDriver::Feed(const v1::Record& r, std::vector<v1::Record>* out) {
     int64_t start = s.start_session_ns();
     // A step that starts where the previous one ended on the agent's clock
     // may map a hair earlier (the two times went through different clock
-    // model updates, or connections); within the mapping's uncertainty that
-    // is the same instant, not an overlap.
-    if (auto it = last_end_.find(s.agent()); it != last_end_.end() && start < it->second &&
-                                             it->second - start <= std::max<int64_t>(
-                                                 s.uncertainty_ns(), 1'000'000)) {
-      start = it->second;
+    // model updates, or connections). Each mapping lies within its own
+    // stated uncertainty of the truth, so two mappings of one instant can
+    // differ by up to the sum of both: within that it is the same instant,
+    // not an overlap. (Regression: only the new start's uncertainty was
+    // allowed, and a reconnect on a loaded machine overlapped by more.)
+    if (auto it = last_end_.find(s.agent()); it != last_end_.end() && start < it->second.end_ns) {
+      const int64_t allowed =
+          std::max<int64_t>(SaturatingAdd(s.uncertainty_ns(), it->second.uncertainty_ns),
+                            1'000'000);
+      if (it->second.end_ns - start <= allowed) start = it->second.end_ns;
     }
     in.start = SessionTime::FromNanos(start);
     if (s.end_session_ns() != 0) {
       in.end = SessionTime::FromNanos(std::max(s.end_session_ns(), start + 1));
-      last_end_[s.agent()] = in.end->nanos();
+      last_end_[s.agent()] = {in.end->nanos(), s.uncertainty_ns()};
     } else {
       last_end_.erase(s.agent());
     }

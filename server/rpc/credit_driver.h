@@ -71,7 +71,13 @@ class CreditDriver {
   std::unique_ptr<CreditEngine> engine_;  // from the session default on
   int64_t watermark_ns_ = std::numeric_limits<int64_t>::min();
   std::set<std::string> agents_;          // agents with steps, for closing
-  std::map<std::string, int64_t> last_end_;  // agent -> explicit end of its last step
+  // agent -> explicit end of its last step (session ns) and the stated
+  // uncertainty of that mapping.
+  struct MappedEnd {
+    int64_t end_ns = 0;
+    int64_t uncertainty_ns = 0;
+  };
+  std::map<std::string, MappedEnd> last_end_;
   std::map<std::string, std::string> in_force_;  // trainer ("" default) -> description
 };
 
