@@ -49,7 +49,7 @@ absl::Status ValidateProbeTimes(SessionTime t1, int64_t t2_client_ns, int64_t t3
 absl::StatusOr<SessionTime> MapThroughHelloOffset(int64_t client_ns, Duration hello_offset);
 
 // What to do with an event time (a feedback's mapped time) given when it
-// arrived. The rule (docs-notes/live.md):
+// arrived. The rule (DEVELOPERS.md, "Limits on clients"):
 //  - an event may lie after its arrival by at most its stated uncertainty
 //    plus `tolerance` (0 by default); beyond that it is refused with
 //    OUT_OF_RANGE and not credited — when the clock model has had a probe;

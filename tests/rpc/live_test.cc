@@ -149,7 +149,7 @@ TEST_F(LiveTest, BadFeedbackIsRejectedWithAStatusAndChangesNothing) {
     auto ack = t->NextAck();
     ASSERT_TRUE(ack) << c.what;
     // An event after its arrival (beyond its uncertainty) is refused as out
-    // of range (docs-notes/live.md); the rest are invalid arguments.
+    // of range (DEVELOPERS.md, "Limits on clients"); the rest are invalid arguments.
     const grpc::StatusCode want = std::string(c.what) == "event an hour ahead"
                                       ? grpc::StatusCode::OUT_OF_RANGE
                                       : grpc::StatusCode::INVALID_ARGUMENT;
