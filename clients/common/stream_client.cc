@@ -84,6 +84,9 @@ struct StreamClient<Kind>::Connection {
   bool reader_done = false;  // the reader stopped; guarded by mu_
   bool writes_done = false;  // WritesDone() called; guarded by mu_
   std::deque<Request> probe_replies;  // T2 stamped, T3 not yet; guarded by mu_
+  // Set when the server answered UNAVAILABLE (could not store now): the
+  // connection is ended and everything pending sent again later; mu_.
+  absl::Status retry_later;
   // Declared last so it stops first: it reports to the client until then.
   std::unique_ptr<UdpProber> udp;  // when the Welcome offered a probe port
 };
@@ -328,6 +331,14 @@ void StreamClient<Kind>::ReadLoop(Connection* conn, Request hello) {
         // An ack for nothing pending (a server bug, or a second ack for
         // one sequence) changes nothing.
         if (it == pending_.end()) continue;
+        if (ack.code() == static_cast<int32_t>(absl::StatusCode::kUnavailable)) {
+          // The server could not store it now (its disk is full): keep it
+          // pending and end this connection, so that the reconnect, after
+          // a growing backoff, sends everything unacknowledged again.
+          if (conn->retry_later.ok()) conn->retry_later = AckStatus(ack);
+          conn->ctx.TryCancel();
+          continue;
+        }
         request = std::move(it->second.request);
         pending_.erase(it);
         if (ack.code() == 0) {
@@ -477,6 +488,11 @@ absl::Status StreamClient<Kind>::RunConnection(bool* welcomed) {
   absl::Status s = rpc::FromGrpc(conn.stream->Finish());
   lock.lock();
   conn_ = nullptr;
+  if (!conn.retry_later.ok() && !stop_ && !closing_) {
+    // Not a healthy connection: back off as after a failed attempt.
+    *welcomed = false;
+    return conn.retry_later;
+  }
   return s;
 }
 

@@ -520,6 +520,15 @@ void IngestReactor<Side>::AppendClient(v1::Record record) {
 
 template <typename Side>
 void IngestReactor<Side>::OnAck(v1::Ack ack, std::shared_ptr<const v1::Record> sent) {
+  if (ack.code() == static_cast<int32_t>(absl::StatusCode::kResourceExhausted)) {
+    // The ledger could not store it (disk full): a state the server leaves
+    // by itself, so the client should keep the message and send it again
+    // later, not drop it. UNAVAILABLE says exactly that ("retry the failing
+    // call"); RESOURCE_EXHAUSTED stays the answer to a client over its rate
+    // limit, whose message is dropped on purpose.
+    ack.set_code(static_cast<int32_t>(absl::StatusCode::kUnavailable));
+    ack.set_message(Cat(ack.message(), " (not stored; send it again later)"));
+  }
   if (!ack.duplicate() || ack.code() != 0 || finished_) return DeliverAck(ack);
   // A resend: the stored original must carry the same content. Read it on
   // the pool (a ledger read), then come back to the strand.

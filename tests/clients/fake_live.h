@@ -47,6 +47,9 @@ class FakeLive : public tickmark::v1::Live::Service {
     bool store_before_drop = true;
     // Sequences answered with an INVALID_ARGUMENT Ack.
     std::set<uint64_t> reject;
+    // Sequences answered with an UNAVAILABLE Ack (not stored: a server whose
+    // disk is full), each only the first time it arrives.
+    std::set<uint64_t> unavailable_once;
     // ProbeRequests sent right after each Welcome.
     int probes_per_stream = 0;
     // Added to Welcome.last_client_sequence: pretends another program with
@@ -211,6 +214,9 @@ class FakeLive : public tickmark::v1::Live::Service {
       if (script_.reject.count(*seq) != 0) {
         a->set_code(static_cast<int32_t>(grpc::StatusCode::INVALID_ARGUMENT));
         a->set_message("rejected by script");
+      } else if (script_.unavailable_once.erase(*seq) != 0) {
+        a->set_code(static_cast<int32_t>(grpc::StatusCode::UNAVAILABLE));
+        a->set_message("ledger disk full (not stored; send it again later)");
       } else if (!drop || store_before_drop) {
         if (stored_.count(key) != 0) {
           a->set_duplicate(true);

@@ -154,6 +154,34 @@ TEST(StreamClientTest, RejectedMessageIsReportedAndNotResent) {
   EXPECT_EQ(st.acked, 5u);
 }
 
+// Regression: an UNAVAILABLE Ack (the server's disk was full, nothing
+// stored) was handed to on_rejected and the feedback dropped. It is kept and
+// sent again after a reconnect, and only stored once.
+TEST(StreamClientTest, UnavailableAckIsKeptAndResentAfterAReconnect) {
+  FakeLive fake;
+  const std::string target = fake.Start();
+  fake.Edit([](FakeLive::Script& s) { s.unavailable_once = {2, 4}; });
+  Seen seen;
+  TrainerClient client;
+  ASSERT_TRUE(client.Connect(Options(target, "host:test:unavailable"), seen.Callbacks()).ok());
+  for (int i = 0; i < 5; ++i) ASSERT_TRUE(client.Send(Feedback(1.0, i)).ok());
+  ASSERT_TRUE(client.Flush(In(seconds(30))).ok());
+  ASSERT_TRUE(client.Close(In(seconds(10))).ok());
+
+  const auto received = fake.received();
+  EXPECT_GE(received.at({"host:test:unavailable", 2}), 2);  // refused once, sent again
+  EXPECT_GE(received.at({"host:test:unavailable", 4}), 2);
+  for (uint64_t seq = 1; seq <= 5; ++seq) {
+    EXPECT_EQ(fake.stored().count({"host:test:unavailable", seq}), 1u) << seq;
+  }
+  std::lock_guard<std::mutex> l(seen.mu);
+  EXPECT_TRUE(seen.rejects.empty());
+  const StreamStatus st = client.status();
+  EXPECT_EQ(st.rejected, 0u);
+  EXPECT_EQ(st.pending, 0u);
+  EXPECT_GE(st.reconnects, 1u);
+}
+
 TEST(StreamClientTest, ProbesAnsweredOnInjectedClock) {
   FakeLive fake;
   const std::string target = fake.Start();

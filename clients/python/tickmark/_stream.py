@@ -60,6 +60,7 @@ class ReconnectingStream:
         self._on_ack = on_ack
         self._lock = threading.Condition()
         self._pending: "collections.OrderedDict[int, object]" = collections.OrderedDict()
+        self._storage_backoff = False  # the last call ended on an UNAVAILABLE ack
         self._unnumbered: collections.deque = collections.deque()
         self._next_seq: Optional[int] = None  # known after the first Welcome
         self._outbox: Optional[queue.Queue] = None
@@ -153,16 +154,22 @@ class ReconnectingStream:
             outbox: queue.Queue = queue.Queue()
             call = self._call(self._requests(outbox))
             welcomed = False
+            retry_later = False
             try:
                 for reply in call:
                     if reply.HasField("probe"):
                         outbox.put((reply.probe.probe_id, reply.probe.t1_session_ns, self._clock()))
                     elif reply.HasField("welcome"):
                         welcomed = True
-                        backoff = 0.1
+                        if not self._storage_backoff:
+                            backoff = 0.1
                         self._on_welcome(reply.welcome, outbox)
                     elif reply.HasField("ack"):
-                        self._on_ack_message(reply.ack)
+                        if not self._on_ack_message(reply.ack):
+                            # The server could not store it now (disk full):
+                            # end this call; the reconnect sends it again.
+                            retry_later = True
+                            call.cancel()
                 with self._lock:
                     if self._closing:
                         return
@@ -181,6 +188,8 @@ class ReconnectingStream:
                 outbox.put(None)  # ends this connection's request generator
                 self._connected.clear()
             self.reconnects += 1
+            # A server that could not store keeps the backoff growing.
+            self._storage_backoff = retry_later
             time.sleep(backoff * random.uniform(0.8, 1.2))  # backoff before reconnecting
             backoff = min(backoff * 2, 5.0)
 
@@ -197,11 +206,16 @@ class ReconnectingStream:
                 self._number_and_queue(self._unnumbered.popleft())
         self._connected.set()
 
-    def _on_ack_message(self, ack: stream_pb2.Ack) -> None:
+    def _on_ack_message(self, ack: stream_pb2.Ack) -> bool:
+        """Applies one Ack; False when the server could not store the message
+        now (UNAVAILABLE), which stays pending to be sent again."""
         with self._lock:
+            if ack.code == grpc.StatusCode.UNAVAILABLE.value[0] and ack.client_sequence in self._pending:
+                return False
             payload = self._pending.pop(ack.client_sequence, None)
             if payload is None:
-                return
+                return True
+            self._storage_backoff = False
             if ack.code == 0:
                 self.acked += 1
             else:
@@ -209,3 +223,4 @@ class ReconnectingStream:
             self._lock.notify_all()
         if self._on_ack is not None:
             self._on_ack(ack)
+        return True
