@@ -30,7 +30,7 @@ CREATE TABLE token (
 );
 
 -- Every record of every session, in sequence order: the journal that
--- subscribers replay and `audit verify` re-hashes. body is the protobuf
+-- subscribers replay and a chain check re-hashes. body is the protobuf
 -- tickmark.v1.Record (with its hash field empty); hash chains the records.
 CREATE TABLE record (
   session_id         TEXT NOT NULL REFERENCES session(id),

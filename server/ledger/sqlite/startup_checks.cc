@@ -57,7 +57,8 @@ absl::Status DamagedLedger(const std::string& path, const std::string& detail) {
           path,
           ".heads in place: the next start compares it with the recovered ledger "
           "and lists any records the recovery lost (accept them with --accept-lost-records). Then "
-          "run `tickmark audit verify` on each session."));
+          "check each session's hash chain (DEVELOPERS.md, \"The ledger\", gives the exact bytes "
+          "hashed)."));
 }
 
 absl::Status CheckLedgerPresence(const std::string& path, const std::vector<std::string>& evidence,
