@@ -1,6 +1,7 @@
 // The SQLite ledger on its own: sequences, hash chain, reads, dedup
 // lookups, sessions, tokens, migrations, reopening.
 #include "server/ledger/sqlite/sqlite_ledger.h"
+#include "tests/ledger/ledger_test_util.h"
 
 #include <sqlite3.h>
 
@@ -39,27 +40,9 @@ class LedgerTest : public ::testing::Test {
     ASSERT_TRUE(l.ok()) << l.status().message();
     ledger_ = std::move(*l);
   }
-  SessionRow Session(const std::string& id) {
-    SessionRow row;
-    row.id = id;
-    row.title = "t";
-    row.opened_session_ns = 1000;
-    row.utc_anchor_ns = 1000;
-    row.mono_anchor_ns = 5;
-    return row;
-  }
+  static SessionRow Session(const std::string& id) { return testing::Session(id); }
   static v1::Record FeedbackRecord(const std::string& client, uint64_t cseq, double value) {
-    v1::Record r;
-    r.set_written_session_ns(2000 + static_cast<int64_t>(cseq));
-    auto* f = r.mutable_feedback();
-    f->set_client_id(client);
-    f->set_client_sequence(cseq);
-    f->set_trainer("ava");
-    f->set_value(value);
-    f->set_event_source_ns(7);
-    f->set_arrival_session_ns(2000);
-    f->set_event_session_ns(1990);
-    return r;
+    return testing::FeedbackRecord(client, cseq, value);
   }
   // Appends and waits for the commit; returns the committed records.
   std::vector<v1::Record> AppendSync(const std::string& session, std::vector<v1::Record> records) {
