@@ -11,6 +11,7 @@
 #include "server/ledger/sqlite/sqlite_ledger.h"
 #include "server/rpc/auth.h"
 #include "server/rpc/credit_driver.h"
+#include "tests/rpc/forwarding_ledger.h"
 #include "tests/rpc/test_server.h"
 
 namespace tickmark::testing {
@@ -363,9 +364,10 @@ TEST_F(AdminTest, SummaryNamesTheDefaultKernelAlsoAfterARestart) {
 
 // A ledger whose WriteHealth the test sets; everything else is the real
 // SQLite ledger underneath (a fault-injecting wrapper, not a mock).
-class WriteHealthLedger final : public ledger::Ledger {
+class WriteHealthLedger final : public ForwardingLedger {
  public:
-  explicit WriteHealthLedger(std::unique_ptr<ledger::Ledger> inner) : inner_(std::move(inner)) {}
+  explicit WriteHealthLedger(std::unique_ptr<ledger::Ledger> inner)
+      : ForwardingLedger(std::move(inner)) {}
 
   void SetWriteHealth(absl::Status s) {
     std::lock_guard<std::mutex> lock(mu_);
@@ -376,67 +378,7 @@ class WriteHealthLedger final : public ledger::Ledger {
     return health_;
   }
 
-  absl::Status CreateSession(const ledger::SessionRow& row) override {
-    return inner_->CreateSession(row);
-  }
-  absl::StatusOr<ledger::SessionRow> GetSession(std::string_view id) override {
-    return inner_->GetSession(id);
-  }
-  absl::StatusOr<std::vector<ledger::SessionRow>> ListSessions(bool include_closed) override {
-    return inner_->ListSessions(include_closed);
-  }
-  absl::Status CloseSession(std::string_view id, int64_t closed_session_ns) override {
-    return inner_->CloseSession(id, closed_session_ns);
-  }
-  absl::Status ReanchorSession(std::string_view id, int64_t utc_anchor_ns, int64_t mono_anchor_ns,
-                               std::string_view boot_id) override {
-    return inner_->ReanchorSession(id, utc_anchor_ns, mono_anchor_ns, boot_id);
-  }
-  absl::Status PutToken(const ledger::TokenRow& row) override { return inner_->PutToken(row); }
-  absl::StatusOr<ledger::TokenRow> FindTokenByHash(std::string_view hash) override {
-    return inner_->FindTokenByHash(hash);
-  }
-  absl::StatusOr<std::vector<ledger::TokenRow>> ListTokens(std::string_view session_id) override {
-    return inner_->ListTokens(session_id);
-  }
-  absl::StatusOr<ledger::TokenRow> RevokeToken(std::string_view session_id,
-                                               std::string_view token_id) override {
-    return inner_->RevokeToken(session_id, token_id);
-  }
-  absl::StatusOr<uint64_t> Append(std::string_view session_id, std::vector<v1::Record> records,
-                                  ledger::CommitCallback done) override {
-    return inner_->Append(session_id, std::move(records), std::move(done));
-  }
-  void Barrier(std::function<void()> done) override { inner_->Barrier(std::move(done)); }
-  absl::Status Flush() override { return inner_->Flush(); }
-  absl::StatusOr<std::vector<v1::Record>> Read(std::string_view session_id, uint64_t from,
-                                               size_t max) override {
-    return inner_->Read(session_id, from, max);
-  }
-  absl::StatusOr<std::optional<uint64_t>> FindClientSequence(std::string_view session_id,
-                                                             std::string_view client_id,
-                                                             uint64_t client_sequence) override {
-    return inner_->FindClientSequence(session_id, client_id, client_sequence);
-  }
-  absl::StatusOr<uint64_t> LastClientSequence(std::string_view session_id,
-                                              std::string_view client_id) override {
-    return inner_->LastClientSequence(session_id, client_id);
-  }
-  absl::StatusOr<ledger::RecordCounts> Counts(std::string_view session_id) override {
-    return inner_->Counts(session_id);
-  }
-  uint64_t CommittedSequence(std::string_view session_id) override {
-    return inner_->CommittedSequence(session_id);
-  }
-  absl::Status PutDerivedSet(std::string_view session_id, std::string_view name,
-                             std::string_view spec, const std::vector<v1::Record>& records,
-                             bool overwrite) override {
-    return inner_->PutDerivedSet(session_id, name, spec, records, overwrite);
-  }
-  void Close() override { inner_->Close(); }
-
  private:
-  std::unique_ptr<ledger::Ledger> inner_;
   std::mutex mu_;
   absl::Status health_;  // GUARDED_BY(mu_)
 };
