@@ -40,6 +40,52 @@ bool SessionRuntime::open() const {
   return open_;
 }
 
+namespace {
+
+Ack ErrorAck(uint64_t cseq, const absl::Status& s) {
+  Ack ack;
+  ack.set_client_sequence(cseq);
+  ack.set_code(static_cast<int32_t>(s.code()));
+  ack.set_message(std::string(s.message()));
+  return ack;
+}
+
+Ack DuplicateAck(uint64_t cseq, uint64_t sequence) {
+  Ack ack;
+  ack.set_client_sequence(cseq);
+  ack.set_sequence(sequence);
+  ack.set_duplicate(true);
+  ack.set_message("duplicate: already stored");
+  return ack;
+}
+
+}  // namespace
+
+std::optional<std::vector<SessionRuntime::AckCallback>> SessionRuntime::FinishPending(
+    const std::string& client_id, uint64_t cseq,
+    const std::shared_ptr<PendingClientRecord>& pending) {
+  std::lock_guard<std::mutex> lock(mu_);
+  if (pending->finished) return std::nullopt;
+  pending->finished = true;
+  auto& in_flight = clients_[client_id].in_flight;
+  if (auto it = in_flight.find(cseq); it != in_flight.end() && it->second == pending) {
+    in_flight.erase(it);
+  }
+  return std::move(pending->copies);
+}
+
+void SessionRuntime::AnswerPending(const std::string& client_id, uint64_t cseq,
+                                   const std::shared_ptr<PendingClientRecord>& pending,
+                                   const AckCallback& done, const Ack& ack) {
+  auto copies = FinishPending(client_id, cseq, pending);
+  if (!copies) return;
+  if (done) done(ack);
+  // A copy of a stored record is a duplicate of it; a copy of one that
+  // failed was not stored either and gets the same error.
+  const Ack copy_ack = ack.code() == 0 ? DuplicateAck(cseq, ack.sequence()) : ack;
+  for (const AckCallback& copy : *copies) copy(copy_ack);
+}
+
 void SessionRuntime::AppendClientRecord(Record record, AckCallback done) {
   auto key = ledger::ClientKeyOf(record);
   const std::string client_id = key ? key->first : std::string();
@@ -52,73 +98,82 @@ void SessionRuntime::AppendClientRecord(Record record, AckCallback done) {
     event_ns = record.step().start_session_ns();
     uncertainty_ns = record.step().uncertainty_ns();
   }
-  auto reject = [&](const absl::Status& s) {
-    Ack ack;
-    ack.set_client_sequence(cseq);
-    ack.set_code(static_cast<int32_t>(s.code()));
-    ack.set_message(std::string(s.message()));
-    done(ack);
-  };
 
-  std::unique_lock<std::mutex> lock(mu_);
-  if (!open_) return reject(absl::FailedPreconditionError("session is closed"));
-  ClientSeqState& state = clients_[client_id];
-  if (!state.loaded) {
+  // Claim the key under the lock; every ledger call below is made without
+  // it, because a ledger may run the commit callback (which takes the lock)
+  // on this thread before Append returns.
+  auto pending = std::make_shared<PendingClientRecord>();
+  bool loaded = false;
+  uint64_t highest = 0;
+  {
+    std::unique_lock<std::mutex> lock(mu_);
+    if (!open_) {
+      lock.unlock();
+      return done(ErrorAck(cseq, absl::FailedPreconditionError("session is closed")));
+    }
+    ClientSeqState& state = clients_[client_id];
+    if (auto it = state.in_flight.find(cseq); it != state.in_flight.end()) {
+      // The same message is being looked up or stored right now: this copy
+      // is answered when that one finishes, with its committed sequence.
+      it->second->copies.push_back(std::move(done));
+      return;
+    }
+    state.in_flight[cseq] = pending;
+    loaded = state.loaded;
+    highest = state.highest;
+    state.highest = std::max(state.highest, cseq);
+  }
+
+  // A resend of something committed earlier? Nothing else can store this
+  // key meanwhile: we own it until FinishPending.
+  bool maybe_resend = cseq <= highest;
+  if (!loaded) {
     auto last = ledger_->LastClientSequence(id_, client_id);
-    if (!last.ok()) return reject(last.status());
-    state.highest = std::max(state.highest, *last);
-    state.loaded = true;
+    if (!last.ok()) return AnswerPending(client_id, cseq, pending, done, ErrorAck(cseq, last.status()));
+    {
+      std::lock_guard<std::mutex> lock(mu_);
+      ClientSeqState& state = clients_[client_id];
+      state.highest = std::max(state.highest, *last);
+      state.loaded = true;
+    }
+    maybe_resend = maybe_resend || cseq <= *last;
   }
-  // A resend: either still in flight, or committed earlier.
-  std::optional<uint64_t> original;
-  if (auto it = state.in_flight.find(cseq); it != state.in_flight.end()) {
-    original = it->second;
-  } else if (cseq <= state.highest) {
+  if (maybe_resend) {
     auto found = ledger_->FindClientSequence(id_, client_id, cseq);
-    if (!found.ok()) return reject(found.status());
-    original = *found;
-  }
-  if (original) {
-    lock.unlock();
-    // Acknowledge once the original is durable: a barrier fires after
-    // everything appended before it has committed.
-    ledger_->Barrier([done, cseq, seq = *original] {
-      Ack ack;
-      ack.set_client_sequence(cseq);
-      ack.set_sequence(seq);
-      ack.set_duplicate(true);
-      ack.set_message("duplicate: already stored");
-      done(ack);
-    });
-    return;
+    if (!found.ok()) return AnswerPending(client_id, cseq, pending, done, ErrorAck(cseq, found.status()));
+    if (found->has_value()) {
+      // Committed already. Answer after a barrier so that this ack does not
+      // overtake the acks of what the client sent before it.
+      const uint64_t seq = **found;
+      ledger_->Barrier([this, client_id, cseq, pending, done, seq] {
+        AnswerPending(client_id, cseq, pending, done, DuplicateAck(cseq, seq));
+      });
+      return;
+    }
   }
 
   std::vector<Record> batch;
   batch.push_back(std::move(record));
   auto first = ledger_->Append(
       id_, std::move(batch),
-      [this, done, client_id, cseq, event_ns, uncertainty_ns](
+      [this, done, client_id, cseq, pending, event_ns, uncertainty_ns](
           const absl::Status& s, const std::vector<Record>& committed) {
-        {
-          std::lock_guard<std::mutex> l(mu_);
-          clients_[client_id].in_flight.erase(cseq);
-        }
         Ack ack;
-        ack.set_client_sequence(cseq);
-        if (s.ok()) {
+        if (s.ok() && !committed.empty()) {
+          ack.set_client_sequence(cseq);
+          // The committed sequence: the one Append returned is provisional.
           ack.set_sequence(committed.front().sequence());
           ack.set_event_session_ns(event_ns);
           ack.set_uncertainty_ns(uncertainty_ns);
         } else {
-          ack.set_code(static_cast<int32_t>(s.code()));
-          ack.set_message(std::string(s.message()));
+          ack = ErrorAck(cseq, s.ok() ? absl::InternalError("ledger committed no record") : s);
         }
-        done(ack);
+        AnswerPending(client_id, cseq, pending, done, ack);
         Fanout(s, committed);
       });
-  if (!first.ok()) return reject(first.status());
-  state.in_flight[cseq] = *first;
-  state.highest = std::max(state.highest, cseq);
+  // A ledger failing synchronously may or may not have called back; the
+  // pending record is answered once either way.
+  if (!first.ok()) AnswerPending(client_id, cseq, pending, done, ErrorAck(cseq, first.status()));
 }
 
 absl::StatusOr<uint64_t> SessionRuntime::AppendRecord(
@@ -133,11 +188,22 @@ absl::StatusOr<uint64_t> SessionRuntime::AppendRecord(
 }
 
 absl::StatusOr<uint64_t> SessionRuntime::LastClientSequence(const std::string& client_id) {
+  bool loaded = false;
+  {
+    std::lock_guard<std::mutex> lock(mu_);
+    loaded = clients_[client_id].loaded;
+  }
+  // The read is made without the lock (see AppendClientRecord); loading
+  // twice is harmless, the highest wins.
+  std::optional<uint64_t> last;
+  if (!loaded) {
+    auto read = ledger_->LastClientSequence(id_, client_id);
+    if (!read.ok()) return read.status();
+    last = *read;
+  }
   std::lock_guard<std::mutex> lock(mu_);
   ClientSeqState& state = clients_[client_id];
-  if (!state.loaded) {
-    auto last = ledger_->LastClientSequence(id_, client_id);
-    if (!last.ok()) return last.status();
+  if (last) {
     state.highest = std::max(state.highest, *last);
     state.loaded = true;
   }
@@ -209,9 +275,11 @@ absl::Status SessionRuntime::FinishCredit(int64_t end_ns) {
 }
 
 absl::Status SessionRuntime::Rebuild() {
-  std::lock_guard<std::mutex> lock(credit_mu_);
   std::vector<Record> derived;
   std::set<std::tuple<int, uint64_t, uint64_t>> stored;
+  // The engine's lock covers only the replay; the Append below is made
+  // without it, like every ledger call that can call back.
+  std::unique_lock<std::mutex> lock(credit_mu_);
   for (uint64_t next = 1;;) {
     auto chunk = ledger_->Read(id_, next, 4096);
     if (!chunk.ok()) return chunk.status();
@@ -226,6 +294,7 @@ absl::Status SessionRuntime::Rebuild() {
     }
     next = chunk->back().sequence() + 1;
   }
+  lock.unlock();
   std::vector<Record> missing;
   for (Record& r : derived) {
     if (!stored.count(CreditDriver::DerivedKey(r))) missing.push_back(std::move(r));
@@ -291,7 +360,7 @@ SessionHub::SessionHub(ledger::Ledger* ledger, const MonotonicSource* mono,
       options_(std::move(options)) {}
 
 absl::StatusOr<std::shared_ptr<SessionRuntime>> SessionHub::Get(const std::string& id) {
-  std::lock_guard<std::mutex> lock(mu_);
+  std::unique_lock<std::mutex> lock(mu_);
   if (auto it = sessions_.find(id); it != sessions_.end()) return it->second;
   auto row = ledger_->GetSession(id);
   if (!row.ok()) return row.status();
@@ -310,8 +379,11 @@ absl::StatusOr<std::shared_ptr<SessionRuntime>> SessionHub::Get(const std::strin
     reanchored = true;
   }
   auto runtime = std::make_shared<SessionRuntime>(*row, mono_, ledger_);
+  // Loading stays under the hub lock so that a session is replayed (and its
+  // missing derived records written) once; no ledger callback takes it.
   if (absl::Status s = runtime->Rebuild(); !s.ok()) return s;
   sessions_[id] = runtime;
+  lock.unlock();
   if (reanchored && row->open) {
     Record r;
     r.set_written_session_ns(runtime->Now().nanos());

@@ -9,19 +9,25 @@
 //
 // Thread safety: everything here is thread-safe. Sinks and stream handles
 // are called with the runtime's sink/stream lock held; they must not call
-// back into the runtime from those calls.
+// back into the runtime from those calls. No ledger method (and so no
+// commit callback a ledger runs on the caller's thread) and no credit
+// engine call is ever made while the runtime's client-state lock is held,
+// so a ledger may run callbacks on the caller's thread; `done` callbacks
+// given to the runtime may run on the caller's thread too.
 #ifndef TICKMARK_SERVER_RPC_SESSION_HUB_H_
 #define TICKMARK_SERVER_RPC_SESSION_HUB_H_
 
 #include <grpcpp/support/status.h>
 
+#include <atomic>
 #include <functional>
 #include <map>
 #include <memory>
 #include <mutex>
-#include <atomic>
+#include <optional>
 #include <set>
 #include <string>
+#include <vector>
 
 #include "server/core/delay_kernel.h"
 #include "server/core/time.h"
@@ -72,8 +78,12 @@ class SessionRuntime {
 
   using AckCallback = std::function<void(const tickmark::v1::Ack&)>;
   // Appends a feedback or step record; deduplicates by (client id, client
-  // sequence). `done` runs once the record (or, for a duplicate, the
-  // original) is committed, on the ledger thread.
+  // sequence). `done` runs exactly once: when the record (or, for a
+  // duplicate, the original) is committed or has failed, on the ledger
+  // thread or, if the ledger fails synchronously, on the caller's. Acks
+  // carry the committed sequence, never the provisional one Append returns.
+  // Copies of one (client id, client sequence) sent concurrently are stored
+  // once; the others are answered as duplicates of it.
   void AppendClientRecord(tickmark::v1::Record record, AckCallback done);
   // Appends any other record. `done` may be empty.
   absl::StatusOr<uint64_t> AppendRecord(
@@ -109,12 +119,29 @@ class SessionRuntime {
   void EndStreamsOf(const std::string& token_id, const absl::Status& why);
 
  private:
+  // One (client id, client sequence) being looked up or stored. It owns the
+  // key until it finishes, so a copy that arrives meanwhile waits on it
+  // instead of being stored a second time.
+  struct PendingClientRecord {
+    std::vector<AckCallback> copies;  // answered when this one finishes
+    bool finished = false;            // GUARDED_BY(mu_)
+  };
   // Per client id: what is known about its sequence numbers.
   struct ClientSeqState {
     bool loaded = false;        // highest was read from the ledger
     uint64_t highest = 0;       // highest client sequence stored or in flight
-    std::map<uint64_t, uint64_t> in_flight;  // client seq -> session seq, not yet committed
+    // Client seq -> the record that owns it, until committed or failed.
+    std::map<uint64_t, std::shared_ptr<PendingClientRecord>> in_flight;
   };
+  // Releases `pending`'s key and returns the copies to answer; nullopt if it
+  // finished already (a ledger may both call back and return an error).
+  std::optional<std::vector<AckCallback>> FinishPending(
+      const std::string& client_id, uint64_t cseq,
+      const std::shared_ptr<PendingClientRecord>& pending);
+  // Answers the original (if `done`) and its copies, with no lock held.
+  void AnswerPending(const std::string& client_id, uint64_t cseq,
+                     const std::shared_ptr<PendingClientRecord>& pending, const AckCallback& done,
+                     const tickmark::v1::Ack& ack);
   void Fanout(const absl::Status& status, const std::vector<tickmark::v1::Record>& records);
   // Feeds committed input records to the credit engine and appends what it
   // derives. Runs on the ledger thread, in sequence order.

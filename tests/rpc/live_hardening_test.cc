@@ -61,7 +61,7 @@ TEST(LiveHardeningTest, ALedgerFailingOnTheCallersThreadNeverHangsATrainerStream
 // Needs SessionRuntime::AppendClientRecord (session_hub.cc) to stop holding
 // its own mutex around Ledger::Append: a commit callback on the caller's
 // thread takes that mutex again. Enable once that lands.
-TEST(LiveHardeningTest, DISABLED_ClientRecordCallbacksOnTheCallersThreadNeverHang) {
+TEST(LiveHardeningTest, ClientRecordCallbacksOnTheCallersThreadNeverHang) {
   TempDir dir;
   LiveHarness h(dir.path(), Fast());
   const std::string token = h.Token(v1::ROLE_TRAINER, "ava");
