@@ -367,7 +367,7 @@ absl::StatusOr<std::shared_ptr<SessionRuntime>> SessionHub::Get(const std::strin
   bool reanchored = false;
   if (row->boot_id != boot_id_) {
     // The monotonic anchor belongs to an earlier boot: continue session time
-    // from UTC now (design.md §4: the wall clock is read only at anchoring).
+    // from UTC now (docs/architecture.md §4: the wall clock is read only at anchoring).
     row->utc_anchor_ns = utc_now_ns_();
     row->mono_anchor_ns = mono_->NowNanos();
     row->boot_id = boot_id_;

@@ -37,7 +37,7 @@
 
 namespace tickmark::rpc {
 
-// Bounds on what clients may send (design.md §7: validated at the edge).
+// Bounds on what clients may send (docs/architecture.md §7: validated at the edge).
 struct Limits {
   uint32_t max_state_bytes = 64 * 1024;
   uint32_t max_features = 4096;
