@@ -201,4 +201,60 @@ write("jsonl", "label", record(5, label=r.Label(step_sequence=3, agent="rover-1"
                                                 value=0.25, weight=0.8, settled=True,
                                                 parts=[r.LabelPart(trainer="ü", value=1,
                                                                    weight=0.1)])))
+
+# --- live_validation: trainer and agent messages as they come off the stream,
+# with the server's side (arrival, hello offset, uncertainty, tolerance) in
+# the integers; default limits. Layout: see fuzz/live_validation_fuzz.cc.
+from tickmark.v1 import stream_pb2 as st  # noqa: E402
+
+ARRIVAL = 10**18
+
+
+def live(kind, first, second=b"", arrival=ARRIVAL, hello_offset=0, uncertainty=2_000_000,
+         tolerance=0, has_probe=True):
+    fdp = FdpInput().int_in_range(0, 2, kind).boolean(False).i64(arrival).i64(hello_offset)
+    fdp.int_in_range(0, (1 << 63) - 1, uncertainty).int_in_range(0, (1 << 63) - 1, tolerance)
+    fdp.boolean(has_probe).int_in_range(0, 1 << 16, len(first))
+    return fdp.data(first + second).bytes()
+
+
+TRAINER, AGENT, RESEND = 0, 1, 2
+hello = st.Hello(token="tm_3f9c", client_id="dock:ana:tickmark-keys:pts-3",
+                 source_description="keyboard /dev/pts/3", software="tickmark-keys 0.1",
+                 sent_client_ns=5_000_000_000)
+write("live_validation", "trainer-hello",
+      live(TRAINER, st.TrainerMessage(hello=hello).SerializeToString(), b"tm_3f9c"))
+write("live_validation", "agent-hello-token-differs",
+      live(AGENT, st.AgentMessage(hello=hello).SerializeToString(), b"tm_other"))
+# The event 300 ms before its arrival once mapped through the hello offset.
+feedback = st.FeedbackMessage(client_sequence=4, value=-0.5, event_source_ns=5_000_000_000,
+                              input="KEY_F")
+write("live_validation", "trainer-feedback",
+      live(TRAINER, st.TrainerMessage(feedback=feedback).SerializeToString(),
+           hello_offset=5_000_000_000 - (ARRIVAL - 300_000_000)))
+# One second in the future before the first probe: clamped to its arrival.
+write("live_validation", "trainer-feedback-future-clamped",
+      live(TRAINER, st.TrainerMessage(feedback=feedback).SerializeToString(),
+           hello_offset=5_000_000_000 - (ARRIVAL + 1_000_000_000), has_probe=False))
+reply = st.ProbeReply(probe_id=3, t1_session_ns=ARRIVAL - 2_000_000,
+                      t2_client_ns=5_000_000_000, t3_client_ns=5_000_050_000)
+write("live_validation", "trainer-probe-reply",
+      live(TRAINER, st.TrainerMessage(probe_reply=reply).SerializeToString()))
+step = st.StepMessage(client_sequence=1, step_id=9, episode=2, start_agent_ns=7_000_000_000,
+                      end_agent_ns=7_100_000_000, action="left", state=b"\x01\x02",
+                      features=[0.5, -1.0])
+write("live_validation", "agent-step",
+      live(AGENT, st.AgentMessage(step=step).SerializeToString(),
+           hello_offset=7_000_000_000 - (ARRIVAL - 50_000_000)))
+stored_fb = r.Record(session_id="s-1a2b3c", sequence=2, feedback=r.Feedback(
+    client_id="dock:ana", client_sequence=4, trainer="trainer-ana", value=-0.5,
+    event_source_ns=5_000_000_000, input="KEY_F")).SerializeToString()
+resent_fb = r.Record(feedback=r.Feedback(client_id="dock:ana", client_sequence=4, value=0.5,
+                                         event_source_ns=5_000_000_000,
+                                         input="KEY_F")).SerializeToString()
+write("live_validation", "resend-feedback-differs", live(RESEND, stored_fb, resent_fb))
+stored_step = r.Record(session_id="s-1a2b3c", sequence=3, step=r.Step(
+    client_id="rover", client_sequence=1, agent="rover-1", step_id=9, episode=2,
+    start_agent_ns=7_000_000_000, action="left", features=[0.5, -1.0])).SerializeToString()
+write("live_validation", "resend-step-same", live(RESEND, stored_step, stored_step))
 print("seeds written under", CORPUS)
