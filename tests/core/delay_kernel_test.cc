@@ -88,6 +88,20 @@ TEST(DelayKernelTest, CutCdfIsRenormalisedAndExactAtEnds) {
   }
 }
 
+// Regression (found by fuzz/delay_kernel_fuzz.cc): for gamma:.003036,0100002
+// the CDF one nanosecond below the horizon came out an ulp above its value at
+// the horizon, so the cut CDF exceeded 1 and a credit could exceed the whole
+// feedback.
+TEST(DelayKernelTest, CutCdfNeverExceedsOneBelowTheHorizon) {
+  auto k = DelayKernel::Parse("gamma:.003036,0100002");
+  ASSERT_TRUE(k.has_value());
+  for (int64_t back : {1, 2, 10, 1000, 1'000'000}) {
+    const Duration d = k->Horizon() - Duration::Nanos(back);
+    EXPECT_LE(k->CutCdf(d), 1.0) << back << " ns below the horizon";
+    EXPECT_GE(k->CutCdf(d), 0.0);
+  }
+}
+
 TEST(DelayKernelTest, EmpiricalIsPiecewiseLinearThroughBinEdges) {
   // Bins [0.1,0.2) [0.2,0.3) [0.3,0.4) [0.4,0.5) with counts 0,1,2,1.
   auto k = DelayKernel::Empirical(Secs(0.1), Secs(0.1), {0, 1, 2, 1});
