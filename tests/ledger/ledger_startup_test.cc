@@ -3,6 +3,7 @@
 // and each is refused with a message that names the file and the way out.
 // (The old ledger opened all of them: truncated, empty, deleted beside its
 // operator token, or without the WAL that held the last records.)
+#include <gmock/gmock.h>
 #include <gtest/gtest.h>
 #include <sqlite3.h>
 
@@ -188,6 +189,28 @@ TEST_F(LedgerStartupTest, ADamagedLedgerStartsAgainAfterTheRecoveryItsMessageGiv
   }
   ASSERT_TRUE(l.ok()) << l.status().message();
   EXPECT_TRUE((*l)->GetSession("s-b").ok());
+}
+
+// Regression: a small, freshly checkpointed ledger cut by 1,234 bytes lost
+// part of a page PRAGMA quick_check never reads (it said "ok"), and tickmarkd
+// started on it. The file's length is now checked against its own header.
+TEST(LedgerFileLengthTest, ALedgerCutShortIsRefusedEvenWhenQuickCheckPasses) {
+  const std::string dir = MakeTempDir("tm-cut");
+  SqliteLedger::Options o;
+  o.path = dir + "/tickmark.db";
+  {
+    auto l = SqliteLedger::Open(o);
+    ASSERT_TRUE(l.ok()) << l.status().message();
+    ASSERT_TRUE((*l)->CreateSession(Session("s-a")).ok());
+  }
+  const auto size = fs::file_size(o.path);
+  ASSERT_GT(size, 1234u);
+  fs::resize_file(o.path, size - 1234);
+  auto l = SqliteLedger::Open(o);
+  EXPECT_EQ(l.status().code(), absl::StatusCode::kDataLoss);
+  EXPECT_THAT(std::string(l.status().message()), ::testing::HasSubstr("cut short"));
+  EXPECT_THAT(std::string(l.status().message()), ::testing::HasSubstr(".dump"));
+  fs::remove_all(dir);
 }
 
 using absl::StatusCode;

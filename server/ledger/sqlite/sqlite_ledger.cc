@@ -78,6 +78,9 @@ absl::StatusOr<std::unique_ptr<SqliteLedger>> SqliteLedger::Open(const Options& 
     }
     std::filesystem::remove(options.path + "-shm", ec);
   }
+  if (!is_new) {
+    if (absl::Status s = CheckFileLength(options.path); !s.ok()) return s;
+  }
   auto damaged = [&](const absl::Status& s) {
     return absl::IsDataLoss(s) ? DamagedLedger(options.path, std::string(s.message())) : s;
   };

@@ -3,6 +3,7 @@
 #include <sqlite3.h>
 
 #include <filesystem>
+#include <fstream>
 
 #include "server/base/log.h"
 #include "server/base/strings.h"
@@ -59,6 +60,31 @@ absl::Status DamagedLedger(const std::string& path, const std::string& detail) {
           "and lists any records the recovery lost (accept them with --accept-lost-records). Then "
           "check each session's hash chain (DEVELOPERS.md, \"The ledger\", gives the exact bytes "
           "hashed)."));
+}
+
+absl::Status CheckFileLength(const std::string& path) {
+  std::ifstream in(path, std::ios::binary);
+  if (!in) return absl::OkStatus();
+  unsigned char h[100] = {};
+  in.read(reinterpret_cast<char*>(h), sizeof h);
+  if (in.gcount() < static_cast<std::streamsize>(sizeof h)) return absl::OkStatus();
+  auto be32 = [&h](int at) {
+    return (uint64_t{h[at]} << 24) | (uint64_t{h[at + 1]} << 16) | (uint64_t{h[at + 2]} << 8) |
+           uint64_t{h[at + 3]};
+  };
+  uint64_t page_size = (uint64_t{h[16]} << 8) | h[17];
+  if (page_size == 1) page_size = 65536;  // SQLite file format §1.3.2
+  const uint64_t pages = be32(28);
+  if (be32(24) != be32(92) || pages == 0 || page_size < 512) return absl::OkStatus();
+  std::error_code ec;
+  const uint64_t size = std::filesystem::file_size(path, ec);
+  if (ec) return absl::OkStatus();
+  if (size < pages * page_size || size % page_size != 0) {
+    return DamagedLedger(path, Cat("the file is ", size, " bytes, but its header says ", pages,
+                                   " pages of ", page_size, " bytes (", pages * page_size,
+                                   "): it was cut short"));
+  }
+  return absl::OkStatus();
 }
 
 absl::Status CheckLedgerPresence(const std::string& path, const std::vector<std::string>& evidence,

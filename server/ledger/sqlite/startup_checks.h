@@ -34,6 +34,15 @@ absl::Status CheckLedgerPresence(const std::string& path, const std::vector<std:
 // recovery commands when the ledger is damaged.
 absl::Status QuickCheck(sqlite3* db, const std::string& path, std::chrono::milliseconds limit);
 
+// Compares the database file's size with the page count its own header
+// states (SQLite file format §1.3: page size at offset 16, "in-header
+// database size" at offset 28, valid when the change counter at offset 24
+// equals the version-valid-for number at offset 92). A file cut short is
+// DATA_LOSS with the recovery commands, even where PRAGMA quick_check reads
+// only the pages that are left and says "ok". OK for a missing or empty file
+// and for a header whose size field is not valid.
+absl::Status CheckFileLength(const std::string& path);
+
 // The refusal for a ledger SQLite cannot read at all (not a database,
 // malformed), with the recovery commands.
 absl::Status DamagedLedger(const std::string& path, const std::string& detail);
