@@ -18,6 +18,7 @@
 #include <vector>
 
 #include "server/ledger/sqlite/sqlite_ledger.h"
+#include "tests/rpc/forwarding_ledger.h"
 #include "tests/rpc/fault_ledger.h"
 #include "tests/rpc/test_server.h"
 
@@ -30,16 +31,16 @@ namespace v1 = tickmark::v1;
 // Passes everything to `inner`, but keeps the commit callbacks of client
 // records until Release(), and returns a provisional sequence that is not
 // the committed one (the contract allows them to differ).
-class HoldingLedger final : public ledger::Ledger {
+class HoldingLedger final : public ForwardingLedger {
  public:
   static constexpr uint64_t kProvisionalOffset = 1000;
-  explicit HoldingLedger(ledger::Ledger* inner) : inner_(inner) {}
+  explicit HoldingLedger(ledger::Ledger* inner) : ForwardingLedger(inner) {}
 
   absl::StatusOr<uint64_t> Append(std::string_view session_id, std::vector<v1::Record> records,
                                   ledger::CommitCallback done) override {
     const bool client = !records.empty() && ledger::ClientKeyOf(records.front()).has_value();
-    if (!client) return inner_->Append(session_id, std::move(records), std::move(done));
-    auto first = inner_->Append(
+    if (!client) return inner()->Append(session_id, std::move(records), std::move(done));
+    auto first = inner()->Append(
         session_id, std::move(records),
         [this, done](const absl::Status& s, const std::vector<v1::Record>& committed) {
           std::lock_guard<std::mutex> lock(mu_);
@@ -65,63 +66,8 @@ class HoldingLedger final : public ledger::Ledger {
   }
   uint64_t client_appends() const { return client_appends_.load(); }
 
-  absl::Status CreateSession(const ledger::SessionRow& row) override {
-    return inner_->CreateSession(row);
-  }
-  absl::StatusOr<ledger::SessionRow> GetSession(std::string_view id) override {
-    return inner_->GetSession(id);
-  }
-  absl::StatusOr<std::vector<ledger::SessionRow>> ListSessions(bool include_closed) override {
-    return inner_->ListSessions(include_closed);
-  }
-  absl::Status CloseSession(std::string_view id, int64_t closed_session_ns) override {
-    return inner_->CloseSession(id, closed_session_ns);
-  }
-  absl::Status ReanchorSession(std::string_view id, int64_t utc_anchor_ns, int64_t mono_anchor_ns,
-                               std::string_view boot_id) override {
-    return inner_->ReanchorSession(id, utc_anchor_ns, mono_anchor_ns, boot_id);
-  }
-  absl::Status PutToken(const ledger::TokenRow& row) override { return inner_->PutToken(row); }
-  absl::StatusOr<ledger::TokenRow> FindTokenByHash(std::string_view hash) override {
-    return inner_->FindTokenByHash(hash);
-  }
-  absl::StatusOr<std::vector<ledger::TokenRow>> ListTokens(std::string_view session_id) override {
-    return inner_->ListTokens(session_id);
-  }
-  absl::StatusOr<ledger::TokenRow> RevokeToken(std::string_view session_id,
-                                               std::string_view token_id) override {
-    return inner_->RevokeToken(session_id, token_id);
-  }
-  void Barrier(std::function<void()> done) override { inner_->Barrier(std::move(done)); }
-  absl::Status Flush() override { return inner_->Flush(); }
-  absl::StatusOr<std::vector<v1::Record>> Read(std::string_view session_id, uint64_t from,
-                                               size_t max) override {
-    return inner_->Read(session_id, from, max);
-  }
-  absl::StatusOr<std::optional<uint64_t>> FindClientSequence(std::string_view session_id,
-                                                             std::string_view client_id,
-                                                             uint64_t client_sequence) override {
-    return inner_->FindClientSequence(session_id, client_id, client_sequence);
-  }
-  absl::StatusOr<uint64_t> LastClientSequence(std::string_view session_id,
-                                              std::string_view client_id) override {
-    return inner_->LastClientSequence(session_id, client_id);
-  }
-  absl::StatusOr<ledger::RecordCounts> Counts(std::string_view session_id) override {
-    return inner_->Counts(session_id);
-  }
-  uint64_t CommittedSequence(std::string_view session_id) override {
-    return inner_->CommittedSequence(session_id);
-  }
-  absl::Status PutDerivedSet(std::string_view session_id, std::string_view name,
-                             std::string_view spec, const std::vector<v1::Record>& records,
-                             bool overwrite) override {
-    return inner_->PutDerivedSet(session_id, name, spec, records, overwrite);
-  }
-  void Close() override { inner_->Close(); }
 
  private:
-  ledger::Ledger* const inner_;  // not owned
   std::mutex mu_;
   std::condition_variable cv_;
   std::deque<std::function<void()>> held_;  // GUARDED_BY(mu_)
