@@ -5,7 +5,7 @@
 // and hands back key presses and releases stamped with the record's own
 // timestamp — the kernel's time of the event, not the time of the read. With
 // EVIOCSCLOCKID(CLOCK_MONOTONIC) that timestamp is on the clock the client
-// answers probes with (clients/common/monotonic_clock.h).
+// answers probes with (tickmark::SystemMonotonic, server/core/time.h).
 //
 // Rules (kernel Documentation/input/event-codes.rst): events between two
 // SYN_REPORTs form one frame and are applied at the SYN_REPORT; EV_KEY value

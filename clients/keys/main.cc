@@ -30,7 +30,7 @@
 
 #include "clients/common/channel.h"
 #include "clients/common/client_id.h"
-#include "clients/common/monotonic_clock.h"
+#include "server/core/time.h"
 #include "clients/common/stream_client.h"
 #include "clients/common/token.h"
 #include "clients/keys/button_map.h"
@@ -453,7 +453,7 @@ int Main(int argc, char** argv) {
                                              : "lines on stdin";
   options.source.software = std::string(kProgram) + " " + TICKMARK_VERSION;
   options.credentials = channel->credentials;
-  options.clock = client::SystemMonotonic::Get();
+  options.clock = SystemMonotonic::Get();
 
   TrainerClient stream;
   if (device_mode) return RunDevice(stream, std::move(options), *flags, buttons);

@@ -18,7 +18,7 @@
 #include "clients/common/channel.h"
 #include "clients/common/client_id.h"
 #include "clients/common/connection_flags.h"
-#include "clients/common/monotonic_clock.h"
+#include "server/core/time.h"
 #include "clients/common/stream_client.h"
 #include "clients/common/token.h"
 #include "clients/serial/serial_source.h"
@@ -178,7 +178,7 @@ int Main(int argc, char** argv) {
   options.source = {tickmark::v1::SOURCE_KIND_SERIAL, "serial box on " + box.port,
                     std::string(kProgram) + " " + TICKMARK_VERSION};
   options.credentials = channel->credentials;
-  options.clock = client::SystemMonotonic::Get();
+  options.clock = SystemMonotonic::Get();
 
   int wake[2];
   if (pipe2(wake, O_NONBLOCK | O_CLOEXEC) != 0) return Usage("pipe2 failed");
