@@ -138,17 +138,30 @@ absl::Status StreamClient<Kind>::Connect(StreamOptions options,
 }
 
 template <typename Kind>
-void StreamClient<Kind>::EnqueueLocked(Payload payload) {
+void StreamClient<Kind>::EnqueueLocked(Request request) {
   const uint64_t seq = next_sequence_++;
-  auto request = std::make_shared<Request>();
-  Payload* p = Kind::MutablePayload(request.get());
-  *p = std::move(payload);
-  p->set_client_sequence(seq);
-  pending_.emplace(seq, Entry{std::move(request)});
+  auto shared = std::make_shared<Request>(std::move(request));
+  Kind::SetSequence(shared.get(), seq);
+  pending_.emplace(seq, Entry{std::move(shared)});
 }
 
 template <typename Kind>
 absl::Status StreamClient<Kind>::Send(Payload payload) {
+  Request request;
+  *Kind::MutablePayload(&request) = std::move(payload);
+  return Admit(std::move(request));
+}
+
+template <typename Kind>
+absl::Status StreamClient<Kind>::SendRequest(Request request) {
+  if (!Kind::SetSequence(&request, 0)) {
+    return absl::InvalidArgumentError("SendRequest: the message carries no client sequence");
+  }
+  return Admit(std::move(request));
+}
+
+template <typename Kind>
+absl::Status StreamClient<Kind>::Admit(Request request) {
   {
     std::lock_guard<std::mutex> lock(mu_);
     if (!started_) return absl::FailedPreconditionError("not connected yet");
@@ -163,9 +176,9 @@ absl::Status StreamClient<Kind>::Send(Payload payload) {
     }
     ++status_.sent;
     if (numbering_known_) {
-      EnqueueLocked(std::move(payload));
+      EnqueueLocked(std::move(request));
     } else {
-      unnumbered_.push_back(std::move(payload));
+      unnumbered_.push_back(std::move(request));
     }
   }
   cv_.notify_all();
@@ -263,9 +276,9 @@ absl::Status StreamClient<Kind>::OnWelcomeLocked(const tickmark::v1::Welcome& w)
     // Continue above what the server holds for this id (a restarted program).
     numbering_known_ = true;
     next_sequence_ = last + 1;
-    std::vector<Payload> waiting = std::move(unnumbered_);
+    std::vector<Request> waiting = std::move(unnumbered_);
     unnumbered_.clear();
-    for (Payload& p : waiting) EnqueueLocked(std::move(p));
+    for (Request& p : waiting) EnqueueLocked(std::move(p));
   } else if (last >= next_sequence_) {
     return absl::FailedPreconditionError(absl::StrCat(
         "the server holds client sequence ", last, " for client id \"",
@@ -354,15 +367,26 @@ void StreamClient<Kind>::ReadLoop(Connection* conn, Request hello) {
         }
       }
       cv_.notify_all();
+      const bool payload = Kind::HasPayload(*request);
       if (ack.code() == 0) {
-        if (callbacks_.on_ack) callbacks_.on_ack(info, Kind::GetPayload(*request));
-      } else if (callbacks_.on_rejected) {
+        if (payload && callbacks_.on_ack) {
+          callbacks_.on_ack(info, Kind::GetPayload(*request));
+        } else if (!payload && callbacks_.on_request_ack) {
+          callbacks_.on_request_ack(info, *request);
+        }
+      } else if (payload && callbacks_.on_rejected) {
         callbacks_.on_rejected(
             ack.client_sequence(), Kind::GetPayload(*request),
             AckStatus(ack));
+      } else if (!payload && callbacks_.on_request_rejected) {
+        callbacks_.on_request_rejected(ack.client_sequence(), *request, AckStatus(ack));
       }
+    } else if (!msg.has_welcome() &&
+               msg.body_case() != tickmark::v1::ServerMessage::BODY_NOT_SET) {
+      // E.g. the Calibration fitted for a finish, just before its Ack.
+      if (callbacks_.on_server_message) callbacks_.on_server_message(msg);
     }
-    // A second Welcome, or a body from a newer protocol: nothing to do.
+    // A second Welcome, or an empty body: nothing to do.
   }
   std::lock_guard<std::mutex> lock(mu_);
   conn->reader_done = true;

@@ -7,6 +7,15 @@
 // (rpc Train, FeedbackMessage) and StreamClient<AgentStream> (rpc Act,
 // StepMessage). Both are compiled once, in stream_client.cc.
 //
+// Other numbered bodies. Besides its payload a stream may carry other
+// messages that share the client sequences and the resend queue: a trainer
+// stream's CalibrationMessage (a calibration run, docs/calibration.md).
+// SendRequest() queues a whole Request with such a body; its acks and
+// rejections go to on_request_ack / on_request_rejected, and server messages
+// other than Welcome, Ack and ProbeRequest (ServerMessage.calibration, sent
+// just before the Ack of a CalibrationFinish) to on_server_message, on the
+// reader thread, in the order they arrived.
+//
 // Life of a connection: Hello (token, client id, source, software, client
 // clock) → Welcome → messages and Acks, with the server's ProbeRequests
 // answered at once (T2 stamped right after the read, T3 right before the
@@ -83,6 +92,18 @@ struct TrainerStream {
   }
   static Payload* MutablePayload(Request* r) { return r->mutable_feedback(); }
   static const Payload& GetPayload(const Request& r) { return r.feedback(); }
+  static bool HasPayload(const Request& r) { return r.has_feedback(); }
+  // Numbers a body that carries a client sequence; false for others.
+  static bool SetSequence(Request* r, uint64_t seq) {
+    if (r->has_feedback()) {
+      r->mutable_feedback()->set_client_sequence(seq);
+    } else if (r->has_calibration()) {
+      r->mutable_calibration()->set_client_sequence(seq);
+    } else {
+      return false;
+    }
+    return true;
+  }
 };
 
 // Agent streams: rpc Act, payload StepMessage.
@@ -96,6 +117,12 @@ struct AgentStream {
   }
   static Payload* MutablePayload(Request* r) { return r->mutable_step(); }
   static const Payload& GetPayload(const Request& r) { return r.step(); }
+  static bool HasPayload(const Request& r) { return r.has_step(); }
+  static bool SetSequence(Request* r, uint64_t seq) {
+    if (!r->has_step()) return false;
+    r->mutable_step()->set_client_sequence(seq);
+    return true;
+  }
 };
 
 // What the Hello says about the source and the program.
@@ -187,6 +214,14 @@ class StreamClient {
         on_rejected;
     // The state changed (connected, waiting, failed, closed).
     std::function<void(const StreamStatus&)> on_state;
+    // Like on_ack and on_rejected, for messages given to SendRequest().
+    std::function<void(const AckInfo&, const Request&)> on_request_ack;
+    std::function<void(uint64_t client_sequence, const Request&,
+                       const absl::Status&)>
+        on_request_rejected;
+    // A ServerMessage other than Welcome, Ack or ProbeRequest (e.g. the
+    // fitted Calibration), in arrival order with the acks.
+    std::function<void(const tickmark::v1::ServerMessage&)> on_server_message;
   };
 
   StreamClient();
@@ -204,6 +239,13 @@ class StreamClient {
   // connected. FAILED_PRECONDITION after Close() or a permanent error;
   // RESOURCE_EXHAUSTED when max_pending messages are waiting.
   absl::Status Send(Payload payload);
+
+  // Queues a whole message whose body carries a client sequence other than
+  // the payload (a trainer stream's CalibrationMessage); numbered, resent
+  // and acknowledged like payloads, reported through on_request_ack and
+  // on_request_rejected. INVALID_ARGUMENT for a body without a sequence
+  // (hello, probe reply, empty); otherwise as Send().
+  absl::Status SendRequest(Request request);
 
   // Waits until every message given to Send() is acknowledged or rejected.
   // OK then; the permanent error if the client failed; DEADLINE_EXCEEDED
@@ -226,6 +268,7 @@ class StreamClient {
   struct Entry {
     std::shared_ptr<const Request> request;  // shared so writes need no copy
   };
+  absl::Status Admit(Request request);
 
   void Run();
   // One connection attempt, from Hello to Finish: how the call ended.
@@ -237,7 +280,7 @@ class StreamClient {
   void ReadLoop(Connection* conn, Request hello);
   // Applies a Welcome under mu_; a non-OK result is a permanent error.
   absl::Status OnWelcomeLocked(const tickmark::v1::Welcome& w);
-  void EnqueueLocked(Payload payload);
+  void EnqueueLocked(Request request);
   void SetStateLocked(StreamState s);
   void NotifyState();
   bool HasUnwrittenLocked() const;
@@ -258,7 +301,7 @@ class StreamClient {
   bool worker_done_ = false;                // guarded by mu_
   bool numbering_known_ = false;            // first Welcome seen; guarded by mu_
   uint64_t next_sequence_ = 1;              // guarded by mu_
-  std::vector<Payload> unnumbered_;         // sent before first Welcome; mu_
+  std::vector<Request> unnumbered_;         // sent before first Welcome; mu_
   std::map<uint64_t, Entry> pending_;       // by client_sequence; mu_
   uint64_t last_written_ = 0;  // highest sequence written on this connection
   Connection* conn_ = nullptr;              // live attempt; guarded by mu_

@@ -20,6 +20,7 @@
 #include <optional>
 #include <set>
 #include <string>
+#include <type_traits>
 #include <utility>
 #include <vector>
 
@@ -56,6 +57,9 @@ class FakeLive : public tickmark::v1::Live::Service {
     // the same client id stored more.
     uint64_t welcome_extra = 0;
     int64_t probe_t1_session_ns = 1'700'000'000'000'000'000;
+    // Sent before the Ack of every stored CalibrationFinish (a server's
+    // fitted Calibration); its run is set to the finish's run.
+    tickmark::v1::Calibration calibration;
   };
 
   struct ProbeSeen {
@@ -127,11 +131,23 @@ class FakeLive : public tickmark::v1::Live::Service {
                      grpc::ServerReaderWriter<tickmark::v1::ServerMessage,
                                               tickmark::v1::TrainerMessage>*
                          stream) override {
-    return Serve(ctx, stream, [](const tickmark::v1::TrainerMessage& m)
-                     -> std::optional<uint64_t> {
-      if (m.has_feedback()) return m.feedback().client_sequence();
-      return std::nullopt;
-    });
+    return Serve(
+        ctx, stream,
+        [](const tickmark::v1::TrainerMessage& m) -> std::optional<uint64_t> {
+          if (m.has_feedback()) return m.feedback().client_sequence();
+          if (m.has_calibration()) return m.calibration().client_sequence();
+          return std::nullopt;
+        },
+        std::function<std::optional<tickmark::v1::ServerMessage>(
+            const tickmark::v1::TrainerMessage&)>(
+            [this](const tickmark::v1::TrainerMessage& m)
+                -> std::optional<tickmark::v1::ServerMessage> {
+          if (!m.has_calibration() || !m.calibration().has_finish()) return std::nullopt;
+          tickmark::v1::ServerMessage out;
+          *out.mutable_calibration() = script_.calibration;  // under mu_
+          out.mutable_calibration()->set_run(m.calibration().run());
+          return out;
+        }));
   }
 
   grpc::Status Act(grpc::ServerContext* ctx,
@@ -146,10 +162,14 @@ class FakeLive : public tickmark::v1::Live::Service {
   }
 
  private:
+  // before_ack(message), called under mu_ for a stored message: a server
+  // message to write before its Ack, if any.
   template <typename In, typename SeqOf>
-  grpc::Status Serve(grpc::ServerContext*,
-                     grpc::ServerReaderWriter<tickmark::v1::ServerMessage, In>* stream,
-                     SeqOf seq_of) {
+  grpc::Status Serve(
+      grpc::ServerContext*,
+      grpc::ServerReaderWriter<tickmark::v1::ServerMessage, In>* stream, SeqOf seq_of,
+      std::type_identity_t<std::function<std::optional<tickmark::v1::ServerMessage>(const In&)>>
+          before_ack = {}) {
     In in;
     if (!stream->Read(&in) || !in.has_hello()) {
       return grpc::Status(grpc::StatusCode::INVALID_ARGUMENT, "hello first");
@@ -209,6 +229,7 @@ class FakeLive : public tickmark::v1::Live::Service {
       const bool drop = drop_after > 0 && count >= drop_after;
       const bool store_before_drop = script_.store_before_drop;
       tickmark::v1::ServerMessage ack;
+      std::optional<tickmark::v1::ServerMessage> before;
       auto* a = ack.mutable_ack();
       a->set_client_sequence(*seq);
       if (script_.reject.count(*seq) != 0) {
@@ -226,6 +247,7 @@ class FakeLive : public tickmark::v1::Live::Service {
           store_order_.push_back(*seq);
           last_sequence_[client_id] = std::max(last_sequence_[client_id], *seq);
         }
+        if (before_ack) before = before_ack(in);
         a->set_sequence(*seq);
         a->set_event_session_ns(1'700'000'000'000'000'000 + static_cast<int64_t>(*seq));
         a->set_uncertainty_ns(500'000);
@@ -237,6 +259,7 @@ class FakeLive : public tickmark::v1::Live::Service {
       }
       cv_.notify_all();
       lock.unlock();
+      if (before && !stream->Write(*before)) return grpc::Status::OK;
       if (!stream->Write(ack)) return grpc::Status::OK;
     }
     std::lock_guard<std::mutex> lock(mu_);

@@ -403,6 +403,69 @@ TEST(StreamClientTest, AgentStreamDeliversSteps) {
   EXPECT_EQ(client.status().acked, 5u);
 }
 
+// Calibration messages share the feedback's client sequences and resend
+// queue; the fitted Calibration reaches on_server_message before the
+// finish's acknowledgement (stream.proto, CalibrationMessage).
+TEST(StreamClientTest, CalibrationMessagesShareSequencesAndResultPrecedesFinishAck) {
+  FakeLive fake;
+  const std::string target = fake.Start();
+  fake.Edit([](FakeLive::Script& s) {
+    s.drop_after = 2;  // one resend of the second message on the way
+    s.max_drops = 1;
+    s.calibration.set_id("c-0000test");
+    s.calibration.set_valid(3);
+  });
+  std::mutex mu;
+  std::vector<std::string> events;  // in callback order
+  TrainerClient::Callbacks cb;
+  cb.on_ack = [&](const AckInfo& a, const tickmark::v1::FeedbackMessage&) {
+    std::lock_guard<std::mutex> l(mu);
+    events.push_back("feedback-ack " + std::to_string(a.client_sequence));
+  };
+  cb.on_request_ack = [&](const AckInfo& a, const tickmark::v1::TrainerMessage& m) {
+    std::lock_guard<std::mutex> l(mu);
+    EXPECT_TRUE(m.has_calibration());
+    EXPECT_EQ(m.calibration().client_sequence(), a.client_sequence);
+    events.push_back("calibration-ack " + std::to_string(a.client_sequence));
+  };
+  cb.on_server_message = [&](const tickmark::v1::ServerMessage& m) {
+    std::lock_guard<std::mutex> l(mu);
+    ASSERT_TRUE(m.has_calibration());
+    events.push_back("result " + m.calibration().id() + " " + m.calibration().run());
+  };
+  TrainerClient client;
+  ASSERT_TRUE(client.Connect(Options(target, "host:test:calibration"), cb).ok());
+  tickmark::v1::TrainerMessage hello;
+  hello.mutable_hello()->set_client_id("x");
+  EXPECT_EQ(client.SendRequest(hello).code(), absl::StatusCode::kInvalidArgument);
+
+  ASSERT_TRUE(client.Send(Feedback(1.0, 1)).ok());
+  tickmark::v1::TrainerMessage move;
+  move.mutable_calibration()->set_run("cal-1");
+  move.mutable_calibration()->mutable_move()->set_move(1);
+  ASSERT_TRUE(client.SendRequest(move).ok());
+  tickmark::v1::TrainerMessage answer;
+  answer.mutable_calibration()->set_run("cal-1");
+  answer.mutable_calibration()->mutable_answer()->set_approve(true);
+  ASSERT_TRUE(client.SendRequest(answer).ok());
+  tickmark::v1::TrainerMessage finish;
+  finish.mutable_calibration()->set_run("cal-1");
+  finish.mutable_calibration()->mutable_finish()->set_min_answers(3);
+  ASSERT_TRUE(client.SendRequest(finish).ok());
+  ASSERT_TRUE(client.Flush(In(seconds(30))).ok());
+  ASSERT_TRUE(client.Close(In(seconds(10))).ok());
+
+  const auto stored = fake.stored();
+  ASSERT_EQ(stored.size(), 4u);
+  for (uint64_t seq = 1; seq <= 4; ++seq) {
+    EXPECT_EQ(stored.count({"host:test:calibration", seq}), 1u) << seq;
+  }
+  std::lock_guard<std::mutex> l(mu);
+  EXPECT_EQ(events, (std::vector<std::string>{"feedback-ack 1", "calibration-ack 2",
+                                              "calibration-ack 3", "result c-0000test cal-1",
+                                              "calibration-ack 4"}));
+}
+
 TEST(StreamClientTest, ConnectRejectsBadOptions) {
   TrainerClient client;
   StreamOptions o = Options("127.0.0.1:1", "bad id with spaces");
