@@ -34,6 +34,7 @@
 #include "clients/common/stream_client.h"
 #include "clients/common/token.h"
 #include "clients/keys/button_map.h"
+#include "clients/keys/calibrate.h"
 #include "clients/keys/device_pump.h"
 #include "clients/keys/evdev.h"
 #include "clients/keys/key_map.h"
@@ -414,7 +415,11 @@ int Main(int argc, char** argv) {
     std::cerr << kProgram << ": warning: " << w << "\n";
   }
   const bool interactive = !flags->stdin_lines && !device_mode;
-  if (device_mode) {
+  const bool calibrate = flags->calibrate;
+  if (calibrate && (isatty(STDIN_FILENO) == 0 || isatty(STDOUT_FILENO) == 0)) {
+    return Usage("--calibrate needs a terminal on stdin and stdout (it draws the task there)");
+  }
+  if (device_mode && !calibrate) {
     sigset_t set;
     sigemptyset(&set);
     for (int sig : {SIGINT, SIGTERM, SIGHUP, SIGUSR1}) sigaddset(&set, sig);
@@ -425,7 +430,7 @@ int Main(int argc, char** argv) {
   }
   // Before anything starts a thread (creating gRPC credentials starts gRPC's
   // executor threads), so that only the SignalWatcher receives them.
-  if (interactive) BlockTerminalSignals();
+  if (interactive || calibrate) BlockTerminalSignals();
   auto channel = client::ChooseCredentials(flags->connection.channel);
   if (!channel.ok()) return Usage(std::string(channel.status().message()));
   std::string source = interactive ? TtySource() : "stdin";
@@ -456,6 +461,10 @@ int Main(int argc, char** argv) {
   options.clock = SystemMonotonic::Get();
 
   TrainerClient stream;
+  if (calibrate) {
+    return RunCalibration(stream, std::move(options), *flags, std::move(keymap),
+                          device_mode ? &buttons : nullptr);
+  }
   if (device_mode) return RunDevice(stream, std::move(options), *flags, buttons);
   const int code = interactive
              ? RunInteractive(stream, std::move(options), std::move(keymap),

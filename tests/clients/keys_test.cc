@@ -4,6 +4,7 @@
 #include <string>
 #include <vector>
 
+#include "clients/keys/calibration_screen.h"
 #include "clients/keys/key_map.h"
 #include "clients/keys/keys_flags.h"
 #include "clients/keys/line_input.h"
@@ -221,6 +222,87 @@ TEST(StatusLineTest, FormatsAndFitsWidth) {
   st.state = client::StreamState::kWaiting;
   st.reconnects = 4;
   EXPECT_EQ(FormatStatusLine(st, std::nullopt, "", 0).rfind("reconnecting (4)", 0), 0u);
+}
+
+// --calibrate's screen (calibration_screen.h): the track fits 80 columns,
+// the status line is cut, the result names every fit, the id and the plot.
+TEST(CalibrationScreenTest, TrackFitsEightyColumnsWithMarkerOnItsCell) {
+  const std::string t = FormatTrack(21, 20, "practice 5/5");
+  EXPECT_LE(t.size(), 79u);
+  EXPECT_EQ(t.find("[O]"), 1u + 20u * 3u);
+  EXPECT_EQ(FormatTrack(21, 0, "move 7").rfind("|[O] - ", 0), 0u);
+  client::CalibrationMoveView m;
+  m.practice = false;
+  m.index = 12;
+  EXPECT_EQ(MoveLabel(m, 5), "move 12");
+  m.practice = true;
+  m.index = 2;
+  EXPECT_EQ(MoveLabel(m, 5), "practice 2/5");
+}
+
+TEST(CalibrationScreenTest, StatusLine) {
+  client::CalibrationProgress p;
+  p.in_practice = true;
+  p.practice_shown = 2;
+  p.practice_total = 5;
+  EXPECT_EQ(FormatCalibrationStatus(p, 0), "PRACTICE 2/5 (not measured)");
+  p.in_practice = false;
+  p.wanted = 40;
+  p.valid = 5;
+  p.wrong_sign = 1;
+  p.missed = 2;
+  p.moves = 9;
+  p.max_moves = 120;
+  p.last = "valid 0.52 s";
+  EXPECT_EQ(FormatCalibrationStatus(p, 0),
+            "valid 5/40  wrong 1  missed 2  double 0  late 0  moves 9/120 | last: valid 0.52 s");
+  EXPECT_EQ(FormatCalibrationStatus(p, 10).size(), 10u);
+}
+
+TEST(CalibrationScreenTest, ResultListsFitsChosenIntervalsWarningsAndPlot) {
+  tickmark::v1::Calibration c;
+  c.set_id("c-7f3a2c91");
+  c.set_trainer("dock-trainer-1");
+  c.set_run("cal-1");
+  c.set_moves(44);
+  c.set_valid(40);
+  c.set_min_answers(40);
+  auto* g = c.add_fits();
+  g->set_family("gamma");
+  g->set_parameters(2);
+  g->set_aic(12.5);
+  g->set_ks_distance(0.081);
+  g->set_kernel_description("gamma(shape=4,scale=0.15s)");
+  auto* l = c.add_fits();
+  l->set_family("lognormal-mixture");
+  l->set_error("did not converge");
+  c.set_chosen(0);
+  c.set_kernel_description("gamma(shape=4,scale=0.15s)");
+  c.mutable_mean_interval()->set_low_s(0.55);
+  c.mutable_mean_interval()->set_high_s(0.66);
+  c.add_warnings("poor fit");
+  const std::string r = FormatCalibrationResult(c);
+  EXPECT_NE(r.find("c-7f3a2c91"), std::string::npos);
+  EXPECT_NE(r.find("* gamma (k=2): AIC 12.50  KS 0.081"), std::string::npos) << r;
+  EXPECT_NE(r.find("lognormal-mixture (k=0): no fit: did not converge"), std::string::npos) << r;
+  EXPECT_NE(r.find("chosen kernel: gamma(shape=4,scale=0.15s)"), std::string::npos);
+  EXPECT_NE(r.find("0.550 .. 0.660 s"), std::string::npos);
+  EXPECT_NE(r.find("warning: poor fit"), std::string::npos);
+  EXPECT_NE(r.find("tickmark calibrate show c-7f3a2c91 --plot fit.png"), std::string::npos);
+}
+
+TEST(CalibrationFlagsTest, CalibrationFlagsNeedCalibrate) {
+  auto f = ParseKeysFlags({"--calibrate", "--answers", "12", "--practice", "2", "--min-interval",
+                           "0.5", "--max-interval", "0.9", "--rule", "left"});
+  ASSERT_TRUE(f.ok()) << f.status();
+  EXPECT_TRUE(f->calibrate);
+  EXPECT_EQ(f->answers, 12u);
+  EXPECT_EQ(f->practice, 2u);
+  EXPECT_DOUBLE_EQ(f->min_interval_s, 0.5);
+  EXPECT_EQ(f->rule, "left");
+  EXPECT_FALSE(ParseKeysFlags({"--answers", "12"}).ok());
+  EXPECT_FALSE(ParseKeysFlags({"--calibrate", "--rule", "up"}).ok());
+  EXPECT_FALSE(ParseKeysFlags({"--calibrate", "--stdin-lines"}).ok());
 }
 
 }  // namespace

@@ -1,0 +1,411 @@
+#include "clients/keys/calibrate.h"
+
+#include <fcntl.h>
+#include <poll.h>
+#include <unistd.h>
+
+#include <algorithm>
+#include <atomic>
+#include <chrono>
+#include <condition_variable>
+#include <cstdio>
+#include <cstring>
+#include <iostream>
+#include <memory>
+#include <mutex>
+#include <optional>
+#include <random>
+#include <string>
+#include <vector>
+
+#include "clients/common/calibration_task.h"
+#include "clients/keys/calibration_screen.h"
+#include "clients/keys/evdev.h"
+#include "clients/keys/terminal.h"
+
+namespace tickmark::keys {
+namespace {
+
+constexpr char kProgram[] = "tickmark-keys";
+using client::CalibrationInput;
+using client::CalibrationInputAnswer;
+using client::CalibrationMoveView;
+using client::CalibrationProgress;
+
+void WriteAll(const std::string& s) {
+  size_t done = 0;
+  while (done < s.size()) {
+    const ssize_t n = write(STDOUT_FILENO, s.data() + done, s.size() - done);
+    if (n < 0 && errno == EINTR) continue;
+    if (n <= 0) return;
+    done += static_cast<size_t>(n);
+  }
+}
+
+// Inputs of a map, by kind: "f, +" for approve.
+template <typename Map>
+std::string InputsOf(const Map& bindings, int sign, bool quit) {
+  std::string out;
+  for (const auto& [key, b] : bindings) {
+    const bool match = quit ? b.action == Binding::Action::kQuit
+                            : b.action == Binding::Action::kFeedback &&
+                                  ((sign > 0 && b.value > 0) || (sign < 0 && b.value < 0));
+    if (!match) continue;
+    if (!out.empty()) out += ", ";
+    out += key;
+  }
+  return out.empty() ? "(none bound)" : out;
+}
+
+// The terminal as the task's display and input: two lines, the track above
+// the status line; the cursor stays on the status line.
+class TerminalIo final : public client::CalibrationDisplay, public client::CalibrationInputSource {
+ public:
+  TerminalIo(const MonotonicSource* clock, RawTerminal* terminal, KeyMap* keymap,
+             EvdevDevice* device, const ButtonMap* buttons, int wake_fd, std::atomic<bool>* quit,
+             client::TrainerClient* client, uint32_t cells, uint32_t practice_total)
+      : clock_(clock),
+        terminal_(terminal),
+        keymap_(keymap),
+        device_(device),
+        buttons_(buttons),
+        wake_fd_(wake_fd),
+        quit_(quit),
+        client_(client),
+        cells_(cells),
+        practice_total_(practice_total) {}
+
+  void Begin(uint32_t cell) {
+    track_ = FormatTrack(cells_, cell, "ready");
+    WriteAll("\r\n\r\n");  // the two lines the frame redraws
+    WriteAll(Frame());
+  }
+
+  int64_t DrawMove(const CalibrationMoveView& move) override {
+    track_ = FormatTrack(cells_, move.to_cell, MoveLabel(move, practice_total_));
+    WriteAll(Frame());
+    // The presentation time: right after the write returned (see
+    // calibration_task.h for what this leaves out).
+    return clock_->NowNanos();
+  }
+
+  void ShowProgress(const CalibrationProgress& p) override {
+    const size_t cols = terminal_->Columns();
+    std::string s = FormatCalibrationStatus(p, 0);
+    const client::StreamStatus st = client_->status();
+    if (!st.connected()) s += std::string(" | ") + client::StreamStateName(st.state);
+    if (!note_.empty()) s += " | " + note_;
+    if (cols > 1 && s.size() > cols - 1) s.resize(cols - 1);
+    status_ = s;
+    WriteAll(Frame());
+  }
+
+  CalibrationInput Wait(int64_t until_ns) override {
+    CalibrationInput in;
+    const int64_t now = clock_->NowNanos();
+    int timeout_ms = static_cast<int>(std::max<int64_t>(0, (until_ns - now + 999'999) / 1'000'000));
+    if (escape_pending_) timeout_ms = std::min(timeout_ms, 50);
+    bool stdin_ready = false;
+    if (device_ != nullptr) {
+      // The device's Poll also ends when stdin has input; the wake pipe
+      // (signals) is looked at after, so quitting waits at most 100 ms.
+      EvdevDevice::Batch b = device_->Poll(std::min(timeout_ms, 100), STDIN_FILENO);
+      if (b.connected) note_.clear();
+      if (b.disconnected) note_ = "device gone: " + b.note;
+      for (const KeyChange& c : b.changes) {
+        if (c.kind != KeyChange::Kind::kPress) continue;
+        const std::string name = KeyCodeName(c.code);
+        const Binding* binding = buttons_->Find(name);
+        if (binding == nullptr) continue;
+        if (binding->action == Binding::Action::kQuit) {
+          in.quit = true;
+        } else if (binding->value != 0) {
+          in.answers.push_back({c.time_ns, binding->value > 0, "evdev:" + name});
+        }
+      }
+      pollfd p{STDIN_FILENO, POLLIN, 0};
+      stdin_ready = poll(&p, 1, 0) > 0;
+    } else {
+      pollfd fds[2] = {{STDIN_FILENO, POLLIN, 0}, {wake_fd_, POLLIN, 0}};
+      const int ready = poll(fds, 2, timeout_ms);
+      stdin_ready = ready > 0 && (fds[0].revents & (POLLIN | POLLHUP | POLLERR)) != 0;
+      if (ready == 0 && escape_pending_) {
+        keymap_->FlushPending();
+        escape_pending_ = false;
+      }
+    }
+    if (stdin_ready) {
+      char buf[256];
+      const ssize_t n = read(STDIN_FILENO, buf, sizeof buf);
+      const int64_t t = clock_->NowNanos();  // the key's event time
+      if (n == 0) in.quit = true;            // the terminal went away
+      if (n > 0) {
+        escape_pending_ = std::memchr(buf, '\x1b', static_cast<size_t>(n)) != nullptr;
+        for (const KeyEvent& e : keymap_->Feed(std::string_view(buf, static_cast<size_t>(n)))) {
+          if (e.kind == KeyEvent::Kind::kQuit) {
+            in.quit = true;
+          } else if (e.kind == KeyEvent::Kind::kFeedback && e.value != 0 && device_ == nullptr) {
+            in.answers.push_back({t, e.value > 0, e.input()});
+          }
+        }
+      }
+    }
+    char drain[64];
+    while (read(wake_fd_, drain, sizeof drain) > 0) {
+    }
+    if (quit_->load()) in.quit = true;
+    return in;
+  }
+
+  // Waits for any key (or a device press) to start; false if asked to quit.
+  bool WaitForStart() {
+    while (!quit_->load()) {
+      pollfd fds[2] = {{STDIN_FILENO, POLLIN, 0}, {wake_fd_, POLLIN, 0}};
+      if (poll(fds, 2, 500) <= 0) continue;
+      if ((fds[1].revents & POLLIN) != 0) {
+        char drain[64];
+        while (read(wake_fd_, drain, sizeof drain) > 0) {
+        }
+      }
+      if ((fds[0].revents & (POLLIN | POLLHUP | POLLERR)) == 0) continue;
+      char buf[64];
+      const ssize_t n = read(STDIN_FILENO, buf, sizeof buf);
+      if (n <= 0) return false;
+      for (const KeyEvent& e : keymap_->Feed(std::string_view(buf, static_cast<size_t>(n)))) {
+        if (e.kind == KeyEvent::Kind::kQuit) return false;
+      }
+      keymap_->FlushPending();
+      return true;
+    }
+    return false;
+  }
+
+ private:
+  std::string Frame() const { return "\r\033[A\033[K" + track_ + "\r\n\033[K" + status_; }
+
+  const MonotonicSource* clock_;
+  RawTerminal* terminal_;
+  KeyMap* keymap_;
+  EvdevDevice* device_;
+  const ButtonMap* buttons_;
+  int wake_fd_;
+  std::atomic<bool>* quit_;
+  client::TrainerClient* client_;
+  uint32_t cells_;
+  uint32_t practice_total_;
+  std::string track_;
+  std::string status_;
+  std::string note_;
+  bool escape_pending_ = false;
+};
+
+// What the stream's callbacks report about the run.
+struct ResultBox {
+  std::mutex mu;
+  std::condition_variable cv;
+  uint64_t finish_sequence = 0;  // client sequence of the finish, once acked
+  std::optional<tickmark::v1::Calibration> calibration;
+  bool finish_acked = false;
+  absl::Status finish_error;  // the finish's rejection
+  uint64_t rejected = 0;      // moves and answers rejected
+  std::string first_rejection;
+};
+
+}  // namespace
+
+int RunCalibration(client::TrainerClient& client, client::StreamOptions options,
+                   const KeysFlags& flags, KeyMap keymap, const ButtonMap* buttons) {
+  std::random_device entropy;
+  auto random64 = [&] { return (static_cast<uint64_t>(entropy()) << 32) ^ entropy(); };
+  client::CalibrationTaskOptions topt;
+  topt.run = flags.run.empty() ? client::MakeCalibrationRunId(random64()) : flags.run;
+  topt.answers = flags.answers;
+  topt.practice = flags.practice;
+  topt.min_interval_s = flags.min_interval_s;
+  topt.max_interval_s = flags.max_interval_s;
+  topt.max_moves = flags.max_moves;
+  topt.seed = flags.seed != 0 ? flags.seed : random64();
+  topt.approve_right = flags.rule != "left";
+  if (absl::Status s = client::ValidateCalibrationTaskOptions(topt); !s.ok()) {
+    std::cerr << kProgram << ": " << s.message() << "\n";
+    return 2;
+  }
+  if (isatty(STDIN_FILENO) == 0 || isatty(STDOUT_FILENO) == 0) {
+    std::cerr << kProgram << ": --calibrate needs a terminal on stdin and stdout\n";
+    return 2;
+  }
+  client::CalibrationTask task(topt);
+
+  std::unique_ptr<EvdevDevice> device;
+  if (!flags.device.empty()) {
+    device = std::make_unique<EvdevDevice>(
+        EvdevDevice::Options{DeviceSelector{flags.device}, flags.input_dir, flags.grab});
+    if (absl::Status s = device->Open(); !s.ok()) {
+      std::cerr << kProgram << ": " << s.ToString() << "\n";
+      return 1;
+    }
+  }
+
+  RawTerminal terminal(STDIN_FILENO);
+  if (absl::Status s = terminal.Enter(); !s.ok()) {
+    std::cerr << kProgram << ": " << s.ToString() << "\n";
+    return 2;
+  }
+  int wake[2];
+  if (pipe2(wake, O_NONBLOCK | O_CLOEXEC) != 0) {
+    std::cerr << kProgram << ": pipe2 failed\n";
+    return 1;
+  }
+  // Closed last, after the signal watcher and the client's callbacks are gone.
+  struct PipeCloser {
+    int* fds;
+    ~PipeCloser() {
+      close(fds[0]);
+      close(fds[1]);
+    }
+  } pipe_closer{wake};
+  auto poke = [&] { (void)!write(wake[1], "x", 1); };
+  std::atomic<bool> quit{false};
+  SignalWatcher watcher(&terminal, [&] { quit = true; poke(); }, poke);
+
+  ResultBox box;
+  client::TrainerClient::Callbacks cb;
+  cb.on_server_message = [&](const tickmark::v1::ServerMessage& m) {
+    if (!m.has_calibration() || m.calibration().run() != topt.run) return;
+    std::lock_guard<std::mutex> l(box.mu);
+    box.calibration = m.calibration();
+    box.cv.notify_all();
+  };
+  cb.on_request_ack = [&](const client::AckInfo& a, const tickmark::v1::TrainerMessage& m) {
+    if (!m.calibration().has_finish()) return;
+    std::lock_guard<std::mutex> l(box.mu);
+    box.finish_acked = true;
+    box.finish_sequence = a.client_sequence;
+    box.cv.notify_all();
+  };
+  cb.on_request_rejected = [&](uint64_t, const tickmark::v1::TrainerMessage& m,
+                               const absl::Status& s) {
+    std::lock_guard<std::mutex> l(box.mu);
+    if (m.calibration().has_finish()) {
+      box.finish_error = s;
+    } else if (box.rejected++ == 0) {
+      box.first_rejection = s.ToString();
+    }
+    box.cv.notify_all();
+  };
+  cb.on_state = [&](const client::StreamStatus&) {
+    poke();
+    box.cv.notify_all();
+  };
+  if (absl::Status s = client.Connect(std::move(options), std::move(cb)); !s.ok()) {
+    terminal.Restore();
+    std::cerr << kProgram << ": " << s.ToString() << "\n";
+    return 2;
+  }
+
+  KeyMap keys = std::move(keymap);
+  const std::string approve =
+      buttons != nullptr ? InputsOf(buttons->bindings(), +1, false) : InputsOf(keys.bindings(), +1, false);
+  const std::string disapprove =
+      buttons != nullptr ? InputsOf(buttons->bindings(), -1, false) : InputsOf(keys.bindings(), -1, false);
+  std::string quit_inputs = InputsOf(keys.bindings(), 0, true);
+  quit_inputs = (quit_inputs == "(none bound)" ? "" : quit_inputs + " or ") + "Ctrl-C";
+  WriteAll(CalibrationInstructions(task, approve, disapprove, quit_inputs));
+  if (device != nullptr) {
+    WriteAll("Answers come from " + device->info().path + " \"" + device->info().name +
+             "\"; the terminal keys only start and stop.\r\n");
+  }
+
+  TerminalIo io(client.clock(), &terminal, &keys, device.get(), buttons, wake[0], &quit, &client,
+                topt.track_cells, topt.practice);
+  auto cleanup = [&] { terminal.Restore(); };
+  if (!io.WaitForStart()) {
+    cleanup();
+    WriteAll("\n");
+    std::cerr << kProgram << ": calibration not started; nothing was measured\n";
+    (void)client.Close(std::chrono::steady_clock::now() + std::chrono::seconds(2));
+    return 1;
+  }
+  if (client.status().state == client::StreamState::kFailed) {
+    cleanup();
+    std::cerr << kProgram << ": cannot reach the server: " << client.status().last_error.ToString()
+              << "\n";
+    (void)client.Close(std::chrono::steady_clock::now() + std::chrono::seconds(2));
+    return 1;
+  }
+  io.Begin(topt.track_cells / 2);
+  const client::CalibrationRunResult run =
+      task.Run(*client.clock(), io, io, [&](tickmark::v1::CalibrationMessage m) {
+        tickmark::v1::TrainerMessage msg;
+        *msg.mutable_calibration() = std::move(m);
+        return client.SendRequest(std::move(msg));
+      });
+  cleanup();
+  WriteAll("\n");
+  const CalibrationProgress& p = run.progress;
+  std::fprintf(stderr,
+               "%s: %s: %u valid of %u wanted; %u moves, %u wrong sign, %u missed, %u double, "
+               "%u late or stray (live count; the server's matching decides)\n",
+               kProgram, client::CalibrationStopName(run.stop), p.valid, p.wanted, p.moves,
+               p.wrong_sign, p.missed, p.double_answers, p.stray);
+  if (run.stop == client::CalibrationStop::kSendFailed) {
+    std::fprintf(stderr, "%s: %s\n", kProgram, run.send_error.ToString().c_str());
+    (void)client.Close(std::chrono::steady_clock::now() + std::chrono::seconds(2));
+    return 1;
+  }
+
+  tickmark::v1::TrainerMessage finish;
+  *finish.mutable_calibration() = task.Finish();
+  if (absl::Status s = client.SendRequest(std::move(finish)); !s.ok()) {
+    std::fprintf(stderr, "%s: finish not sent: %s\n", kProgram, s.ToString().c_str());
+    (void)client.Close(std::chrono::steady_clock::now() + std::chrono::seconds(2));
+    return 1;
+  }
+  std::fprintf(stderr, "%s: sent the run's %llu messages; waiting up to %gs for the fit\n",
+               kProgram, static_cast<unsigned long long>(client.status().sent),
+               flags.result_timeout_s);
+  const auto deadline = std::chrono::steady_clock::now() +
+                        std::chrono::milliseconds(static_cast<int64_t>(flags.result_timeout_s * 1000));
+  bool failed = false;
+  {
+    std::unique_lock<std::mutex> l(box.mu);
+    box.cv.wait_until(l, deadline, [&] {
+      failed = client.status().state == client::StreamState::kFailed;
+      return box.finish_acked || !box.finish_error.ok() || failed;
+    });
+  }
+  const absl::Status closed =
+      client.Close(std::chrono::steady_clock::now() + std::chrono::seconds(5));
+  std::lock_guard<std::mutex> l(box.mu);
+  if (box.rejected > 0) {
+    std::fprintf(stderr, "%s: warning: %llu calibration messages were rejected; first: %s\n",
+                 kProgram, static_cast<unsigned long long>(box.rejected),
+                 box.first_rejection.c_str());
+  }
+  if (box.finish_acked && box.calibration.has_value()) {
+    std::cout << FormatCalibrationResult(*box.calibration);
+    std::cout.flush();
+    return 0;
+  }
+  if (box.finish_acked) {
+    std::fprintf(stderr,
+                 "%s: the server acknowledged the finish but sent no calibration (does it "
+                 "support calibration?)\n",
+                 kProgram);
+  } else if (!box.finish_error.ok()) {
+    std::fprintf(stderr, "%s: no calibration stored: %s\n", kProgram,
+                 box.finish_error.ToString().c_str());
+  } else if (failed) {
+    std::fprintf(stderr, "%s: no calibration: the stream stopped: %s\n", kProgram,
+                 client.status().last_error.ToString().c_str());
+  } else {
+    std::fprintf(stderr,
+                 "%s: no result from the server within %gs (%s); the moves and answers sent "
+                 "are in the ledger under run %s\n",
+                 kProgram, flags.result_timeout_s, closed.ok() ? "stream closed" : closed.ToString().c_str(),
+                 topt.run.c_str());
+  }
+  return 1;
+}
+
+}  // namespace tickmark::keys
