@@ -96,6 +96,7 @@ class TerminalIo final : public client::CalibrationDisplay, public client::Calib
     if (!st.connected()) s += std::string(" | ") + client::StreamStateName(st.state);
     if (!note_.empty()) s += " | " + note_;
     if (cols > 1 && s.size() > cols - 1) s.resize(cols - 1);
+    if (s == status_) return;  // nothing new to show
     status_ = s;
     WriteAll(Frame());
   }
@@ -374,6 +375,7 @@ int RunCalibration(client::TrainerClient& client, client::StreamOptions options,
       return box.finish_acked || !box.finish_error.ok() || failed;
     });
   }
+  const client::StreamStatus before_close = client.status();
   const absl::Status closed =
       client.Close(std::chrono::steady_clock::now() + std::chrono::seconds(5));
   std::lock_guard<std::mutex> l(box.mu);
@@ -400,10 +402,14 @@ int RunCalibration(client::TrainerClient& client, client::StreamOptions options,
                  client.status().last_error.ToString().c_str());
   } else {
     std::fprintf(stderr,
-                 "%s: no result from the server within %gs (%s); the moves and answers sent "
-                 "are in the ledger under run %s\n",
-                 kProgram, flags.result_timeout_s, closed.ok() ? "stream closed" : closed.ToString().c_str(),
+                 "%s: no result from the server within %gs; %llu of %llu messages "
+                 "acknowledged%s; run %s\n",
+                 kProgram, flags.result_timeout_s,
+                 static_cast<unsigned long long>(before_close.acked),
+                 static_cast<unsigned long long>(before_close.sent),
+                 before_close.acked == 0 ? " (does this server support calibration?)" : "",
                  topt.run.c_str());
+    if (!closed.ok()) std::fprintf(stderr, "%s: closing: %s\n", kProgram, closed.ToString().c_str());
   }
   return 1;
 }

@@ -37,8 +37,8 @@ std::string FormatCalibrationStatus(const client::CalibrationProgress& p, size_t
   if (p.in_practice) {
     s = absl::StrCat("PRACTICE ", p.practice_shown, "/", p.practice_total, " (not measured)");
   } else {
-    s = absl::StrCat("valid ", p.valid, "/", p.wanted, "  wrong ", p.wrong_sign, "  missed ",
-                     p.missed, "  double ", p.double_answers, "  late ", p.stray, "  moves ",
+    s = absl::StrCat("valid ", p.valid, "/", p.wanted, " | wrong ", p.wrong_sign, " missed ",
+                     p.missed, " double ", p.double_answers, " late ", p.stray, " | move ",
                      p.moves, "/", p.max_moves);
   }
   if (!p.last.empty()) s += " | last: " + p.last;

@@ -23,7 +23,7 @@ std::string FormatTrack(uint32_t cells, uint32_t cell, const std::string& label)
 // The label of a move: "practice 2/5" or "move 12".
 std::string MoveLabel(const client::CalibrationMoveView& move, uint32_t practice_total);
 
-// "valid 5/40  wrong 1  missed 2  double 0  late 0 | last: valid 0.52 s",
+// "valid 5/40 | wrong 1 missed 2 double 0 late 0 | move 9/120 | last: valid 0.52 s",
 // cut to `width` columns (0: no limit). In the practice block:
 // "PRACTICE 2/5 (not measured) | last: ...".
 std::string FormatCalibrationStatus(const client::CalibrationProgress& p, size_t width);

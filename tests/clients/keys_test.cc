@@ -255,7 +255,7 @@ TEST(CalibrationScreenTest, StatusLine) {
   p.max_moves = 120;
   p.last = "valid 0.52 s";
   EXPECT_EQ(FormatCalibrationStatus(p, 0),
-            "valid 5/40  wrong 1  missed 2  double 0  late 0  moves 9/120 | last: valid 0.52 s");
+            "valid 5/40 | wrong 1 missed 2 double 0 late 0 | move 9/120 | last: valid 0.52 s");
   EXPECT_EQ(FormatCalibrationStatus(p, 10).size(), 10u);
 }
 
