@@ -18,6 +18,14 @@ std::string Cut(std::string s, size_t width) {
   return s;
 }
 
+// A histogram kernel's text runs to thousands of characters: cut it (the
+// full text is in the record; `tickmark calibrate show` prints it).
+std::string KernelText(const std::string& text) {
+  constexpr size_t kMax = 160;
+  if (text.size() <= kMax) return text;
+  return absl::StrCat(text.substr(0, kMax), "... (", text.size(), " characters)");
+}
+
 }  // namespace
 
 std::string FormatTrack(uint32_t cells, uint32_t cell, const std::string& label) {
@@ -87,9 +95,9 @@ std::string FormatCalibrationResult(const tickmark::v1::Calibration& c) {
     }
     s += absl::StrCat(": AIC ", Fixed(f.aic(), 2), "  KS ", Fixed(f.ks_distance(), 3),
                       "  mean ", Fixed(f.mean_s(), 3), " s  p90 ", Fixed(f.p90_s(), 3), " s\n");
-    s += "        " + f.kernel_description() + "\n";
+    s += "        " + KernelText(f.kernel_description()) + "\n";
   }
-  s += "  chosen kernel: " + c.kernel_description() + "\n";
+  s += "  chosen kernel: " + KernelText(c.kernel_description()) + "\n";
   if (c.has_mean_interval()) {
     s += absl::StrCat("  mean 95% bootstrap interval: ", Fixed(c.mean_interval().low_s(), 3),
                       " .. ", Fixed(c.mean_interval().high_s(), 3), " s\n");
