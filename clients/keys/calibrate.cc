@@ -10,6 +10,8 @@
 #include <condition_variable>
 #include <cstdio>
 #include <cstring>
+#include <errno.h>
+#include <map>
 #include <iostream>
 #include <memory>
 #include <mutex>
@@ -26,7 +28,11 @@
 namespace tickmark::keys {
 namespace {
 
-constexpr char kProgram[] = "tickmark-keys";
+// The program's name for messages (argv[0]'s base name).
+std::string ProgramName() {
+  const char* p = program_invocation_short_name;
+  return p != nullptr && *p != 0 ? p : "tickmark";
+}
 using client::CalibrationInput;
 using client::CalibrationInputAnswer;
 using client::CalibrationMoveView;
@@ -42,9 +48,7 @@ void WriteAll(const std::string& s) {
   }
 }
 
-// Inputs of a map, by kind: "f, +" for approve.
-template <typename Map>
-std::string InputsOf(const Map& bindings, int sign, bool quit) {
+std::string InputsOf(const std::map<std::string, Binding>& bindings, int sign, bool quit) {
   std::string out;
   for (const auto& [key, b] : bindings) {
     const bool match = quit ? b.action == Binding::Action::kQuit
@@ -62,13 +66,12 @@ std::string InputsOf(const Map& bindings, int sign, bool quit) {
 class TerminalIo final : public client::CalibrationDisplay, public client::CalibrationInputSource {
  public:
   TerminalIo(const MonotonicSource* clock, RawTerminal* terminal, KeyMap* keymap,
-             EvdevDevice* device, const ButtonMap* buttons, int wake_fd, std::atomic<bool>* quit,
+             ExternalAnswers* external, int wake_fd, std::atomic<bool>* quit,
              client::TrainerClient* client, uint32_t cells, uint32_t practice_total)
       : clock_(clock),
         terminal_(terminal),
         keymap_(keymap),
-        device_(device),
-        buttons_(buttons),
+        external_(external),
         wake_fd_(wake_fd),
         quit_(quit),
         client_(client),
@@ -94,7 +97,7 @@ class TerminalIo final : public client::CalibrationDisplay, public client::Calib
     std::string s = FormatCalibrationStatus(p, 0);
     const client::StreamStatus st = client_->status();
     if (!st.connected()) s += std::string(" | ") + client::StreamStateName(st.state);
-    if (!note_.empty()) s += " | " + note_;
+    if (external_ != nullptr && !external_->Note().empty()) s += " | " + external_->Note();
     if (cols > 1 && s.size() > cols - 1) s.resize(cols - 1);
     if (s == status_) return;  // nothing new to show
     status_ = s;
@@ -107,23 +110,10 @@ class TerminalIo final : public client::CalibrationDisplay, public client::Calib
     int timeout_ms = static_cast<int>(std::max<int64_t>(0, (until_ns - now + 999'999) / 1'000'000));
     if (escape_pending_) timeout_ms = std::min(timeout_ms, 50);
     bool stdin_ready = false;
-    if (device_ != nullptr) {
-      // The device's Poll also ends when stdin has input; the wake pipe
+    if (external_ != nullptr) {
+      // The external Poll also ends when stdin has input; the wake pipe
       // (signals) is looked at after, so quitting waits at most 100 ms.
-      EvdevDevice::Batch b = device_->Poll(std::min(timeout_ms, 100), STDIN_FILENO);
-      if (b.connected) note_.clear();
-      if (b.disconnected) note_ = "device gone: " + b.note;
-      for (const KeyChange& c : b.changes) {
-        if (c.kind != KeyChange::Kind::kPress) continue;
-        const std::string name = KeyCodeName(c.code);
-        const Binding* binding = buttons_->Find(name);
-        if (binding == nullptr) continue;
-        if (binding->action == Binding::Action::kQuit) {
-          in.quit = true;
-        } else if (binding->value != 0) {
-          in.answers.push_back({c.time_ns, binding->value > 0, "evdev:" + name});
-        }
-      }
+      in = external_->Poll(std::min(timeout_ms, 100), STDIN_FILENO);
       pollfd p{STDIN_FILENO, POLLIN, 0};
       stdin_ready = poll(&p, 1, 0) > 0;
     } else {
@@ -145,7 +135,8 @@ class TerminalIo final : public client::CalibrationDisplay, public client::Calib
         for (const KeyEvent& e : keymap_->Feed(std::string_view(buf, static_cast<size_t>(n)))) {
           if (e.kind == KeyEvent::Kind::kQuit) {
             in.quit = true;
-          } else if (e.kind == KeyEvent::Kind::kFeedback && e.value != 0 && device_ == nullptr) {
+          } else if (e.kind == KeyEvent::Kind::kFeedback && e.value != 0 &&
+                     external_ == nullptr) {
             in.answers.push_back({t, e.value > 0, e.input()});
           }
         }
@@ -187,8 +178,7 @@ class TerminalIo final : public client::CalibrationDisplay, public client::Calib
   const MonotonicSource* clock_;
   RawTerminal* terminal_;
   KeyMap* keymap_;
-  EvdevDevice* device_;
-  const ButtonMap* buttons_;
+  ExternalAnswers* external_;
   int wake_fd_;
   std::atomic<bool>* quit_;
   client::TrainerClient* client_;
@@ -196,8 +186,45 @@ class TerminalIo final : public client::CalibrationDisplay, public client::Calib
   uint32_t practice_total_;
   std::string track_;
   std::string status_;
-  std::string note_;
   bool escape_pending_ = false;
+};
+
+class EvdevAnswers final : public ExternalAnswers {
+ public:
+  EvdevAnswers(EvdevDevice::Options options, const ButtonMap* map)
+      : device_(std::move(options)), map_(map) {}
+  absl::Status Open() { return device_.Open(); }
+
+  CalibrationInput Poll(int timeout_ms, int also_fd) override {
+    CalibrationInput in;
+    EvdevDevice::Batch b = device_.Poll(timeout_ms, also_fd);
+    if (b.connected) note_.clear();
+    if (b.disconnected) note_ = "device gone: " + b.note;
+    for (const KeyChange& c : b.changes) {
+      if (c.kind != KeyChange::Kind::kPress) continue;  // the judgement is the press
+      const std::string name = KeyCodeName(c.code);
+      const Binding* binding = map_->Find(name);
+      if (binding == nullptr) continue;
+      if (binding->action == Binding::Action::kQuit) {
+        in.quit = true;
+      } else if (binding->value != 0) {
+        // The kernel's timestamp of the press (evdev.h), not the read.
+        in.answers.push_back({c.time_ns, binding->value > 0, "evdev:" + name});
+      }
+    }
+    return in;
+  }
+  std::string Describe() const override {
+    return device_.info().path + " \"" + device_.info().name + "\"";
+  }
+  std::string ApproveInputs() const override { return InputsOf(map_->bindings(), +1, false); }
+  std::string DisapproveInputs() const override { return InputsOf(map_->bindings(), -1, false); }
+  std::string Note() const override { return note_; }
+
+ private:
+  EvdevDevice device_;
+  const ButtonMap* map_;
+  std::string note_;
 };
 
 // What the stream's callbacks report about the run.
@@ -214,8 +241,21 @@ struct ResultBox {
 
 }  // namespace
 
+std::string InputsWithSign(const std::map<std::string, Binding>& bindings, int sign) {
+  return InputsOf(bindings, sign, false);
+}
+
+absl::StatusOr<std::unique_ptr<ExternalAnswers>> DeviceAnswers(EvdevDevice::Options options,
+                                                              const ButtonMap* map) {
+  auto answers = std::make_unique<EvdevAnswers>(std::move(options), map);
+  if (absl::Status s = answers->Open(); !s.ok()) return s;
+  return std::unique_ptr<ExternalAnswers>(std::move(answers));
+}
+
 int RunCalibration(client::TrainerClient& client, client::StreamOptions options,
-                   const KeysFlags& flags, KeyMap keymap, const ButtonMap* buttons) {
+                   const CalibrationFlags& flags, KeyMap keymap, ExternalAnswers* external) {
+  const std::string program = ProgramName();
+  const char* kProgram = program.c_str();
   std::random_device entropy;
   auto random64 = [&] { return (static_cast<uint64_t>(entropy()) << 32) ^ entropy(); };
   client::CalibrationTaskOptions topt;
@@ -236,16 +276,6 @@ int RunCalibration(client::TrainerClient& client, client::StreamOptions options,
     return 2;
   }
   client::CalibrationTask task(topt);
-
-  std::unique_ptr<EvdevDevice> device;
-  if (!flags.device.empty()) {
-    device = std::make_unique<EvdevDevice>(
-        EvdevDevice::Options{DeviceSelector{flags.device}, flags.input_dir, flags.grab});
-    if (absl::Status s = device->Open(); !s.ok()) {
-      std::cerr << kProgram << ": " << s.ToString() << "\n";
-      return 1;
-    }
-  }
 
   RawTerminal terminal(STDIN_FILENO);
   if (absl::Status s = terminal.Enter(); !s.ok()) {
@@ -306,18 +336,18 @@ int RunCalibration(client::TrainerClient& client, client::StreamOptions options,
 
   KeyMap keys = std::move(keymap);
   const std::string approve =
-      buttons != nullptr ? InputsOf(buttons->bindings(), +1, false) : InputsOf(keys.bindings(), +1, false);
+      external != nullptr ? external->ApproveInputs() : InputsOf(keys.bindings(), +1, false);
   const std::string disapprove =
-      buttons != nullptr ? InputsOf(buttons->bindings(), -1, false) : InputsOf(keys.bindings(), -1, false);
+      external != nullptr ? external->DisapproveInputs() : InputsOf(keys.bindings(), -1, false);
   std::string quit_inputs = InputsOf(keys.bindings(), 0, true);
   quit_inputs = (quit_inputs == "(none bound)" ? "" : quit_inputs + " or ") + "Ctrl-C";
   WriteAll(CalibrationInstructions(task, approve, disapprove, quit_inputs));
-  if (device != nullptr) {
-    WriteAll("Answers come from " + device->info().path + " \"" + device->info().name +
-             "\"; the terminal keys only start and stop.\r\n");
+  if (external != nullptr) {
+    WriteAll("Answers come from " + external->Describe() +
+             "; the terminal keys only start and stop.\r\n");
   }
 
-  TerminalIo io(client.clock(), &terminal, &keys, device.get(), buttons, wake[0], &quit, &client,
+  TerminalIo io(client.clock(), &terminal, &keys, external, wake[0], &quit, &client,
                 topt.track_cells, topt.practice);
   auto cleanup = [&] { terminal.Restore(); };
   if (!io.WaitForStart()) {

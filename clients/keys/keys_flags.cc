@@ -10,7 +10,7 @@ constexpr char kDescription[] =
     "tickmark session (a trainer source).";
 
 std::string Footer(const std::string& legend) {
-  return "Default keys: " + legend +
+  std::string text = "Default keys: " + legend +
          R"(
 Ctrl-C quits too; Ctrl-Z suspends (the terminal is restored meanwhile).
 
@@ -29,26 +29,7 @@ returns its byte; the server maps that clock to session time by probing it.
 Terminals deliver no kernel timestamp, so terminal scheduling and key
 autorepeat add error; use an input-device source for precise timing.
 
-Calibration (--calibrate): measures your evaluative delay, the time from
-seeing something to having judged it and pressed a key, so that your
-feedback is credited to the agent steps you actually judged. A marker on a
-track jumps left or right at random intervals (--min-interval to
---max-interval seconds apart); a rule is shown ("approve moves to the RIGHT,
-disapprove moves to the LEFT"); you answer every move with your usual
-approve and disapprove keys (or, with --device, buttons). First --practice
-moves (not measured), then moves until --answers valid answers (at most
---max-moves moves), or until you press q / Ctrl-C (what was measured is still
-fitted). Each move and answer is sent as it happens; at the end the server
-fits delay kernels (gamma, shifted gamma, lognormal, ex-Gaussian, ...),
-stores the calibration for your trainer pseudonym, and the result is
-printed: counts, each fit (kernel, AIC, KS distance), the chosen kernel, its
-bootstrap intervals and the calibration id. Move times are read right after
-the terminal write returns, so the display latency (terminal emulator and
-monitor refresh, typically one to a few frames, about 10-50 ms) is part of
-every measured delay; the result notes this. Exit status 0 when the
-calibration was stored, 1 when none was (e.g. too few valid answers).
-Example: tickmark-keys --server HOST:7461 --token-file trainer.token --calibrate
-
+%CALIBRATION%
 Exit status: 0 when everything sent was acknowledged; 1 when something stayed
 unacknowledged, was rejected, an input line was bad, or the server refused
 the connection; 2 for usage and configuration errors.
@@ -56,6 +37,13 @@ the connection; 2 for usage and configuration errors.
 tickmark is not a safety system: a robot trained with it needs an
 independent emergency stop. Studies with people need ethics-board approval.
 )";
+  const std::string mark = "%CALIBRATION%\n";
+  text.replace(text.find(mark), mark.size(),
+               CalibrationHelp("keys (or, with --device, buttons)",
+                               "tickmark-keys --server HOST:7461 --token-file trainer.token "
+                               "--calibrate") +
+                   "\n");
+  return text;
 }
 
 void Define(CLI::App& app, KeysFlags* f, const std::string& legend) {
@@ -97,48 +85,7 @@ void Define(CLI::App& app, KeysFlags* f, const std::string& legend) {
       ->group(devices);
   lines->excludes(device);
 
-  const std::string cal = "Calibration (measure your evaluative delay; see below)";
-  CLI::Option* calibrate =
-      app.add_flag("--calibrate", f->calibrate,
-                   "run the calibration task instead of sending feedback, then print the fit")
-          ->group(cal);
-  calibrate->excludes(lines);
-  app.add_option("--answers", f->answers, "valid answers wanted (3..1000)")
-      ->capture_default_str()
-      ->needs(calibrate)
-      ->group(cal);
-  app.add_option("--practice", f->practice, "practice moves first, not measured")
-      ->capture_default_str()
-      ->needs(calibrate)
-      ->group(cal);
-  app.add_option("--min-interval", f->min_interval_s, "shortest time between moves, seconds")
-      ->capture_default_str()
-      ->needs(calibrate)
-      ->group(cal);
-  app.add_option("--max-interval", f->max_interval_s, "longest time between moves, seconds")
-      ->capture_default_str()
-      ->needs(calibrate)
-      ->group(cal);
-  app.add_option("--max-moves", f->max_moves, "stop after this many measured moves (0: 3 x --answers)")
-      ->capture_default_str()
-      ->needs(calibrate)
-      ->group(cal);
-  app.add_option("--rule", f->rule, "the direction to approve")
-      ->check(CLI::IsMember({"right", "left"}))
-      ->capture_default_str()
-      ->needs(calibrate)
-      ->group(cal);
-  app.add_option("--seed", f->seed, "schedule seed (0: random)")->needs(calibrate)->group(cal);
-  app.add_option("--run", f->run, "run id (default: a fresh cal-XXXXXXXXXXXX)")
-      ->type_name("ID")
-      ->needs(calibrate)
-      ->group(cal);
-  app.add_option("--result-timeout", f->result_timeout_s,
-                 "seconds to wait for the server's fit after the last move")
-      ->capture_default_str()
-      ->check(CLI::PositiveNumber)
-      ->needs(calibrate)
-      ->group(cal);
+  AddCalibrationFlags(app, &f->calibration)->excludes(lines);
 }
 
 }  // namespace

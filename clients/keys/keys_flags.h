@@ -9,6 +9,7 @@
 
 #include "absl/status/statusor.h"
 #include "clients/common/connection_flags.h"
+#include "clients/keys/calibration_flags.h"
 
 namespace tickmark::keys {
 
@@ -25,17 +26,8 @@ struct KeysFlags {
   bool list_devices = false;
   bool grab = false;
   bool verbose = false;
-  // Calibration (--calibrate; clients/common/calibration_task.h).
-  bool calibrate = false;
-  uint32_t answers = 40;
-  uint32_t practice = 5;
-  double min_interval_s = 0.8;
-  double max_interval_s = 3.0;
-  uint32_t max_moves = 0;  // 0: 3 x answers
-  uint64_t seed = 0;       // 0: a random seed
-  std::string rule = "right";
-  std::string run;         // empty: a fresh run id
-  double result_timeout_s = 60.0;
+  // --calibrate and its options (calibration_flags.h).
+  CalibrationFlags calibration;
 };
 
 // INVALID_ARGUMENT naming the flag for unknown flags, missing or bad values.

@@ -22,6 +22,7 @@
 #include <cstdio>
 #include <cstring>
 #include <iostream>
+#include <memory>
 #include <mutex>
 #include <optional>
 #include <string>
@@ -415,7 +416,7 @@ int Main(int argc, char** argv) {
     std::cerr << kProgram << ": warning: " << w << "\n";
   }
   const bool interactive = !flags->stdin_lines && !device_mode;
-  const bool calibrate = flags->calibrate;
+  const bool calibrate = flags->calibration.calibrate;
   if (calibrate && (isatty(STDIN_FILENO) == 0 || isatty(STDOUT_FILENO) == 0)) {
     return Usage("--calibrate needs a terminal on stdin and stdout (it draws the task there)");
   }
@@ -462,8 +463,18 @@ int Main(int argc, char** argv) {
 
   TrainerClient stream;
   if (calibrate) {
-    return RunCalibration(stream, std::move(options), *flags, std::move(keymap),
-                          device_mode ? &buttons : nullptr);
+    std::unique_ptr<ExternalAnswers> device;
+    if (device_mode) {
+      auto opened = DeviceAnswers({DeviceSelector{flags->device}, flags->input_dir, flags->grab},
+                                  &buttons);
+      if (!opened.ok()) {
+        std::cerr << kProgram << ": " << opened.status().ToString() << "\n";
+        return kExitIncomplete;
+      }
+      device = *std::move(opened);
+    }
+    return RunCalibration(stream, std::move(options), flags->calibration, std::move(keymap),
+                          device.get());
   }
   if (device_mode) return RunDevice(stream, std::move(options), *flags, buttons);
   const int code = interactive

@@ -295,11 +295,11 @@ TEST(CalibrationFlagsTest, CalibrationFlagsNeedCalibrate) {
   auto f = ParseKeysFlags({"--calibrate", "--answers", "12", "--practice", "2", "--min-interval",
                            "0.5", "--max-interval", "0.9", "--rule", "left"});
   ASSERT_TRUE(f.ok()) << f.status();
-  EXPECT_TRUE(f->calibrate);
-  EXPECT_EQ(f->answers, 12u);
-  EXPECT_EQ(f->practice, 2u);
-  EXPECT_DOUBLE_EQ(f->min_interval_s, 0.5);
-  EXPECT_EQ(f->rule, "left");
+  EXPECT_TRUE(f->calibration.calibrate);
+  EXPECT_EQ(f->calibration.answers, 12u);
+  EXPECT_EQ(f->calibration.practice, 2u);
+  EXPECT_DOUBLE_EQ(f->calibration.min_interval_s, 0.5);
+  EXPECT_EQ(f->calibration.rule, "left");
   EXPECT_FALSE(ParseKeysFlags({"--answers", "12"}).ok());
   EXPECT_FALSE(ParseKeysFlags({"--calibrate", "--rule", "up"}).ok());
   EXPECT_FALSE(ParseKeysFlags({"--calibrate", "--stdin-lines"}).ok());
