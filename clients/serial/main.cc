@@ -21,6 +21,9 @@
 #include "server/core/time.h"
 #include "clients/common/stream_client.h"
 #include "clients/common/token.h"
+#include "clients/keys/calibrate.h"
+#include "clients/keys/calibration_flags.h"
+#include "clients/keys/terminal.h"
 #include "clients/serial/serial_source.h"
 #include "server/base/flags.h"
 
@@ -47,6 +50,7 @@ stays as a small constant late bias. Lines without a time, and raw bytes,
 are stamped with the time read() returned them: later than the press by the
 transmission time and USB-serial latency, which is not corrected.
 
+%CALIBRATION%
 Exit status: 0 when everything sent was acknowledged; 1 otherwise; 2 for
 usage and configuration errors. Ctrl-C quits.
 
@@ -108,6 +112,55 @@ void DefineBoxFlags(CLI::App& app, BoxFlags* b) {
       ->group(box);
 }
 
+std::string Footer() {
+  std::string text = kFooter;
+  const std::string mark = "%CALIBRATION%\n";
+  text.replace(text.find(mark), mark.size(),
+               keys::CalibrationHelp("box buttons (the terminal keys start and stop)",
+                                     "tickmark-serial --port /dev/ttyUSB0 --token-file "
+                                     "trainer.token \\\n  --profile "
+                                     "clients/serial/profiles/line-box.toml --calibrate") +
+                   "\n");
+  return text;
+}
+
+// The box as the calibration's answers (keys/calibrate.h).
+class SerialAnswers final : public keys::ExternalAnswers {
+ public:
+  SerialAnswers(SerialSource* port, const keys::ButtonMap* map, std::string path)
+      : port_(port), map_(map), path_(std::move(path)) {}
+
+  client::CalibrationInput Poll(int timeout_ms, int also_fd) override {
+    client::CalibrationInput in;
+    SerialSource::Batch b = port_->Poll(timeout_ms, also_fd);
+    if (b.connected) note_.clear();
+    if (b.disconnected) note_ = "box gone";
+    for (const TimedPress& t : b.presses) {
+      if (!t.event.pressed) continue;  // the judgement is the press
+      const keys::Binding* bind = map_->Find(t.event.button);
+      if (bind == nullptr) continue;
+      if (bind->action == keys::Binding::Action::kQuit) {
+        in.quit = true;
+      } else if (bind->value != 0) {
+        in.answers.push_back({t.event_ns, bind->value > 0, "serial:" + t.event.button});
+      }
+    }
+    return in;
+  }
+  std::string Describe() const override { return "the serial box on " + path_; }
+  std::string ApproveInputs() const override { return keys::InputsWithSign(map_->bindings(), +1); }
+  std::string DisapproveInputs() const override {
+    return keys::InputsWithSign(map_->bindings(), -1);
+  }
+  std::string Note() const override { return note_; }
+
+ private:
+  SerialSource* port_;
+  const keys::ButtonMap* map_;
+  std::string path_;
+  std::string note_;
+};
+
 int Usage(const std::string& message) {
   std::cerr << kProgram << ": " << message << "\n";
   return 2;
@@ -125,8 +178,9 @@ int Main(int argc, char** argv) {
   double flush_timeout_s = 10;
   bool quiet = false;
   bool verbose = false;
+  keys::CalibrationFlags calibration;
   CLI::App app(kDescription, kProgram);
-  ConfigureApp(app, kFooter);
+  ConfigureApp(app, Footer());
   DefineBoxFlags(app, &box);
   client::AddConnectionFlags(app, &connection);
   const std::string output = "Output";
@@ -134,6 +188,7 @@ int Main(int argc, char** argv) {
   app.add_flag("--quiet", quiet, "print only errors")->group(output);
   app.add_flag("--verbose", verbose, "one line per event; at exit the timing report")
       ->group(output);
+  keys::AddCalibrationFlags(app, &calibration);
   if (auto exit = ParseCommandLine(app, argc, argv)) return *exit;
 
   auto profile = LoadSerialProfile(box.profile);
@@ -156,6 +211,13 @@ int Main(int argc, char** argv) {
   if (!token.ok()) return Usage(std::string(token.status().message()));
   for (const std::string& w : token->warnings) std::cerr << kProgram << ": warning: " << w << "\n";
 
+  if (calibration.calibrate) {
+    if (isatty(STDIN_FILENO) == 0 || isatty(STDOUT_FILENO) == 0) {
+      return Usage("--calibrate needs a terminal on stdin and stdout (it draws the task there)");
+    }
+    // Before gRPC starts threads: only the calibration's watcher takes them.
+    keys::BlockTerminalSignals();
+  }
   // Block the quit signals before gRPC starts threads; one thread sigwaits.
   sigset_t set;
   sigemptyset(&set);
@@ -179,6 +241,18 @@ int Main(int argc, char** argv) {
                     std::string(kProgram) + " " + TICKMARK_VERSION};
   options.credentials = channel->credentials;
   options.clock = SystemMonotonic::Get();
+
+  if (calibration.calibrate) {
+    SerialSource port(box.port, ps);
+    if (absl::Status s = port.Open(); !s.ok()) {
+      std::fprintf(stderr, "%s: %s\n", kProgram, s.ToString().c_str());
+      return 1;
+    }
+    SerialAnswers answers(&port, &profile->buttons, box.port);
+    client::TrainerClient stream;
+    return keys::RunCalibration(stream, std::move(options), calibration,
+                                keys::KeyMap::Defaults(), &answers);
+  }
 
   int wake[2];
   if (pipe2(wake, O_NONBLOCK | O_CLOEXEC) != 0) return Usage("pipe2 failed");

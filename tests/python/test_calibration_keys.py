@@ -23,6 +23,7 @@ import struct
 import subprocess
 import termios
 import time
+import tty
 
 import pytest
 
@@ -115,6 +116,50 @@ class Pty:
         return self.proc.returncode, self.out.decode(errors="replace")
 
 
+def play(term, approve_right, plan, answer):
+    """Watches the track and answers each move through answer(sign) by the
+    rule, or as plan says for measured move N ("wrong", "miss", "double").
+    Returns the moves seen (label, direction), the signs sent, what was done."""
+    seen_moves, pressed = [], []
+    done = {"wrong": 0, "miss": 0, "double": 0}
+    position = last_label = None
+    scan_from = 0
+    deadline = time.monotonic() + 180
+    while time.monotonic() < deadline and term.proc.poll() is None:
+        term.pump(0.05)
+        for m in TRACK.finditer(term.out, scan_from):
+            scan_from = m.end()
+            cell = m.group(1).index(b"[O]") // 3
+            label = m.group(2)
+            if label == last_label:
+                continue  # a redraw of the same move
+            last_label = label
+            if label == b"ready":
+                position = cell
+                continue
+            right = cell > position
+            position = cell
+            seen_moves.append((label.decode(), "right" if right else "left"))
+            approve = right == approve_right
+            practice = m.group(3) is not None
+            what = "right" if practice else plan.get(int(m.group(4)), "right")
+            if what == "miss":
+                done["miss"] += 1
+                continue
+            sign = approve if what != "wrong" else not approve
+            time.sleep(0.2)  # the scripted delay
+            answer(sign)
+            pressed.append(sign)
+            if what == "wrong":
+                done["wrong"] += 1
+            if what == "double":
+                time.sleep(0.15)
+                answer(sign)
+                pressed.append(sign)
+                done["double"] += 1
+    return seen_moves, pressed, done
+
+
 # What the script does on each measured move (by its number); others: answer
 # right. Worked out by the matching rule of server/core/calibration_match.h.
 PLAN = {3: "wrong", 5: "miss", 6: "double", 7: "wrong"}
@@ -135,45 +180,8 @@ def test_calibration_in_a_terminal_is_stored_fitted_and_applied(server, tmp_path
     approve_right = rule == b"RIGHT"
     term.send(b" ")
 
-    seen_moves = []       # (label, direction) in screen order
-    pressed = []          # answer signs sent, in order
-    done = {"wrong": 0, "miss": 0, "double": 0}
-    position = None
-    last_label = None
-    scan_from = 0
-    deadline = time.monotonic() + 180
-    while time.monotonic() < deadline and term.proc.poll() is None:
-        term.pump(0.05)
-        for m in TRACK.finditer(term.out, scan_from):
-            scan_from = m.end()
-            cell = m.group(1).index(b"[O]") // 3
-            label = m.group(2)
-            if label == last_label:
-                continue  # a redraw of the same move
-            last_label = label
-            if label == b"ready":
-                position = cell
-                continue
-            right = cell > position
-            position = cell
-            seen_moves.append((label.decode(), "right" if right else "left"))
-            approve = right == approve_right
-            practice = m.group(3) is not None
-            what = "right" if practice else PLAN.get(int(m.group(4)), "right")
-            if what == "miss":
-                done["miss"] += 1
-                continue
-            sign = approve if what != "wrong" else not approve
-            time.sleep(0.2)  # the scripted delay
-            term.send(b"f" if sign else b"j")
-            pressed.append(sign)
-            if what == "wrong":
-                done["wrong"] += 1
-            if what == "double":
-                time.sleep(0.15)
-                term.send(b"f" if sign else b"j")
-                pressed.append(sign)
-                done["double"] += 1
+    seen_moves, pressed, done = play(term, approve_right, PLAN,
+                                     lambda sign: term.send(b"f" if sign else b"j"))
     code, screen = term.finish()
     assert code == 0, screen
     assert done == {"wrong": 2, "miss": 1, "double": 1}, (done, screen)
@@ -271,3 +279,40 @@ def test_quitting_before_enough_answers_reports_no_calibration(server, tmp_path)
     assert code == 1, screen
     assert "stopped by the trainer" in screen
     assert "no calibration stored" in screen and "FAILED_PRECONDITION" in screen, screen
+
+
+def test_serial_box_calibration(server, tmp_path):
+    """tickmark-serial --calibrate: the same task in the terminal, answered
+    with a line-protocol box on a second pseudo-terminal."""
+    require_calibration_support(server)
+    session, token = session_with_trainer(server, tmp_path, "serial", "cai")
+    box_master, box_slave = pty.openpty()
+    tty.setraw(box_slave)
+    profile = os.path.join(os.path.dirname(__file__), "..", "..", "clients", "serial",
+                           "profiles", "line-box.toml")
+    term = Pty([os.path.join(BIN, "tickmark-serial"), "--server", server.address,
+                "--token-file", token, "--port", os.ttyname(box_slave), "--profile", profile,
+                "--calibrate", "--answers", "5", "--practice", "1", "--min-interval", "1.5",
+                "--max-interval", "2.0", "--run", "cal-serial", "--client-id", "pytest:cai:box"])
+    try:
+        term.wait_for(rb"Press space")
+        assert b"approve:    B1" in term.out and b"disapprove: B2" in term.out
+        term.send(b" ")
+        seen, pressed, _ = play(term, True, {}, lambda sign: os.write(
+            box_master, b"B1 down\nB1 up\n" if sign else b"B2 down\nB2 up\n"))
+        code, screen = term.finish()
+    finally:
+        os.close(box_master)
+        os.close(box_slave)
+    assert code == 0, screen
+    assert len(seen) == 6 and len(pressed) == 6
+    cal_id = re.search(r"Calibration (c-[0-9a-f]+) stored for trainer cai", screen).group(1)
+    with ledger(server) as db:
+        answers = db.execute("SELECT approve, detail FROM calibration_event WHERE session_id = ? "
+                             "AND run = 'cal-serial' AND kind = 'answer' ORDER BY seq",
+                             (session,)).fetchall()
+        valid, source = db.execute("SELECT valid, source_kind FROM calibration WHERE id = ?",
+                                   (cal_id,)).fetchone()
+    assert [bool(a[0]) for a in answers] == pressed
+    assert all(a[1] in ("serial:B1", "serial:B2") for a in answers)
+    assert valid == 5 and "SERIAL" in source.upper()
