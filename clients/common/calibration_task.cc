@@ -11,8 +11,8 @@ namespace tickmark::client {
 namespace {
 
 bool IsRunChar(char c) {
-  return (c >= 'a' && c <= 'z') || (c >= 'A' && c <= 'Z') || (c >= '0' && c <= '9') ||
-         c == '-' || c == '_' || c == '.';
+  return (c >= 'a' && c <= 'z') || (c >= 'A' && c <= 'Z') || (c >= '0' && c <= '9') || c == '-' ||
+         c == '_' || c == '.';
 }
 
 std::string Seconds(double s) {
@@ -35,21 +35,21 @@ uint64_t SplitMix64(uint64_t* state) {
 
 absl::Status ValidateCalibrationTaskOptions(const CalibrationTaskOptions& o) {
   if (o.run.empty() || o.run.size() > 64 || !std::all_of(o.run.begin(), o.run.end(), IsRunChar)) {
-    return absl::InvalidArgumentError(absl::StrCat(
-        "run id \"", o.run, "\": use 1 to 64 letters, digits, '-', '_' or '.'"));
+    return absl::InvalidArgumentError(
+        absl::StrCat("run id \"", o.run, "\": use 1 to 64 letters, digits, '-', '_' or '.'"));
   }
   if (o.answers < 3 || o.answers > 1000) {
-    return absl::InvalidArgumentError(
-        absl::StrCat("--answers ", o.answers, ": must be in [3, 1000] (3 is the fewest a fit takes)"));
+    return absl::InvalidArgumentError(absl::StrCat(
+        "--answers ", o.answers, ": must be in [3, 1000] (3 is the fewest a fit takes)"));
   }
   if (o.practice > 100) {
     return absl::InvalidArgumentError(absl::StrCat("--practice ", o.practice, ": at most 100"));
   }
   if (!(o.min_interval_s >= 0.2) || !(o.max_interval_s <= 60) ||
       !(o.min_interval_s <= o.max_interval_s)) {
-    return absl::InvalidArgumentError(absl::StrCat(
-        "move interval [", o.min_interval_s, ", ", o.max_interval_s,
-        "] s: need 0.2 <= min <= max <= 60"));
+    return absl::InvalidArgumentError(absl::StrCat("move interval [", o.min_interval_s, ", ",
+                                                   o.max_interval_s,
+                                                   "] s: need 0.2 <= min <= max <= 60"));
   }
   if (o.max_moves != 0 && o.max_moves < o.answers) {
     return absl::InvalidArgumentError(absl::StrCat(
@@ -57,9 +57,9 @@ absl::Status ValidateCalibrationTaskOptions(const CalibrationTaskOptions& o) {
   }
   if (o.track_cells < 3 || o.track_cells > 200 || o.step_cells < 1 ||
       o.step_cells * 2 >= o.track_cells) {
-    return absl::InvalidArgumentError(absl::StrCat(
-        "track of ", o.track_cells, " cells with steps of ", o.step_cells,
-        ": need 3..200 cells and a step under half the track"));
+    return absl::InvalidArgumentError(
+        absl::StrCat("track of ", o.track_cells, " cells with steps of ", o.step_cells,
+                     ": need 3..200 cells and a step under half the track"));
   }
   if (!(o.window_s > 0)) return absl::InvalidArgumentError("matching window must be positive");
   return absl::OkStatus();
@@ -74,10 +74,14 @@ std::string MakeCalibrationRunId(uint64_t entropy) {
 
 const char* CalibrationStopName(CalibrationStop stop) {
   switch (stop) {
-    case CalibrationStop::kEnoughAnswers: return "enough valid answers";
-    case CalibrationStop::kMoveCap: return "move limit reached";
-    case CalibrationStop::kQuit: return "stopped by the trainer";
-    case CalibrationStop::kSendFailed: return "sending failed";
+    case CalibrationStop::kEnoughAnswers:
+      return "enough valid answers";
+    case CalibrationStop::kMoveCap:
+      return "move limit reached";
+    case CalibrationStop::kQuit:
+      return "stopped by the trainer";
+    case CalibrationStop::kSendFailed:
+      return "sending failed";
   }
   return "unknown";
 }
@@ -188,10 +192,18 @@ CalibrationProgress CalibrationTask::Progress(int64_t now_ns) const {
   if (!r.answers.empty()) {
     const MatchedAnswer& last = r.answers.back();
     switch (last.outcome) {
-      case AnswerOutcome::kValid: p.last = "valid " + Seconds(last.delay.seconds()); break;
-      case AnswerOutcome::kWrongSign: p.last = "WRONG SIGN"; break;
-      case AnswerOutcome::kDouble: p.last = "double (move already answered)"; break;
-      case AnswerOutcome::kStray: p.last = "late or stray"; break;
+      case AnswerOutcome::kValid:
+        p.last = "valid " + Seconds(last.delay.seconds());
+        break;
+      case AnswerOutcome::kWrongSign:
+        p.last = "WRONG SIGN";
+        break;
+      case AnswerOutcome::kDouble:
+        p.last = "double (move already answered)";
+        break;
+      case AnswerOutcome::kStray:
+        p.last = "late or stray";
+        break;
       case AnswerOutcome::kPractice: {
         const bool right_sign =
             last.move.has_value() && moves_[*last.move].approve == answers_[last.answer].approve;
@@ -216,8 +228,7 @@ std::optional<CalibrationStop> CalibrationTask::Done(int64_t now_ns) const {
   return std::nullopt;
 }
 
-CalibrationRunResult CalibrationTask::Run(const MonotonicSource& clock,
-                                          CalibrationDisplay& display,
+CalibrationRunResult CalibrationTask::Run(const MonotonicSource& clock, CalibrationDisplay& display,
                                           CalibrationInputSource& input, const Send& send) {
   CalibrationRunResult result;
   Start(clock.NowNanos());
@@ -230,9 +241,9 @@ CalibrationRunResult CalibrationTask::Run(const MonotonicSource& clock,
       result.stop = *stop;
       break;
     }
-    const int64_t until =
-        MoreMoves() ? next_due_ns_
-                    : (moves_.empty() ? now : moves_.back().shown.nanos() + window_ns);
+    const int64_t until = MoreMoves()
+                              ? next_due_ns_
+                              : (moves_.empty() ? now : moves_.back().shown.nanos() + window_ns);
     if (now < until) {
       CalibrationInput in = input.Wait(std::min(until, now + slice_ns));
       bool failed = false;

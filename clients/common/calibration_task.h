@@ -73,8 +73,8 @@ inline constexpr char kDisplayLatencyNote[] =
 struct CalibrationTaskOptions {
   // The run id (letters, digits, '-', '_', '.'; at most 64 characters).
   std::string run;
-  uint32_t answers = 40;   // valid answers wanted
-  uint32_t practice = 5;   // practice moves before the measured ones
+  uint32_t answers = 40;  // valid answers wanted
+  uint32_t practice = 5;  // practice moves before the measured ones
   double min_interval_s = 0.8;
   double max_interval_s = 3.0;
   // Real moves at most; 0: 3 × answers.
@@ -96,7 +96,7 @@ std::string MakeCalibrationRunId(uint64_t entropy);
 
 // One move, as the display draws it.
 struct CalibrationMoveView {
-  uint32_t number = 0;     // from 1, over practice and real moves
+  uint32_t number = 0;  // from 1, over practice and real moves
   bool practice = false;
   uint32_t index = 0;      // from 1 within its block (practice or real)
   bool right = false;      // the direction
@@ -113,13 +113,13 @@ struct CalibrationProgress {
   uint32_t wrong_sign = 0;
   uint32_t missed = 0;  // real moves passed without an answer
   uint32_t double_answers = 0;
-  uint32_t stray = 0;   // late (after the window) or before any move
+  uint32_t stray = 0;  // late (after the window) or before any move
   uint32_t practice_answers = 0;
-  uint32_t moves = 0;   // real moves shown
+  uint32_t moves = 0;  // real moves shown
   uint32_t max_moves = 0;
   uint32_t practice_shown = 0;
   uint32_t practice_total = 0;
-  uint32_t answers = 0;  // answers given (all kinds)
+  uint32_t answers = 0;     // answers given (all kinds)
   bool in_practice = true;  // no real move shown yet
   // About the latest answer: "valid 0.52 s", "WRONG SIGN", "double",
   // "late or stray", "practice ok 0.61 s", "practice: wrong sign"; empty

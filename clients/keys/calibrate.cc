@@ -1,5 +1,6 @@
 #include "clients/keys/calibrate.h"
 
+#include <errno.h>
 #include <fcntl.h>
 #include <poll.h>
 #include <unistd.h>
@@ -10,9 +11,8 @@
 #include <condition_variable>
 #include <cstdio>
 #include <cstring>
-#include <errno.h>
-#include <map>
 #include <iostream>
+#include <map>
 #include <memory>
 #include <mutex>
 #include <optional>
@@ -135,8 +135,7 @@ class TerminalIo final : public client::CalibrationDisplay, public client::Calib
         for (const KeyEvent& e : keymap_->Feed(std::string_view(buf, static_cast<size_t>(n)))) {
           if (e.kind == KeyEvent::Kind::kQuit) {
             in.quit = true;
-          } else if (e.kind == KeyEvent::Kind::kFeedback && e.value != 0 &&
-                     external_ == nullptr) {
+          } else if (e.kind == KeyEvent::Kind::kFeedback && e.value != 0 && external_ == nullptr) {
             in.answers.push_back({t, e.value > 0, e.input()});
           }
         }
@@ -246,7 +245,7 @@ std::string InputsWithSign(const std::map<std::string, Binding>& bindings, int s
 }
 
 absl::StatusOr<std::unique_ptr<ExternalAnswers>> DeviceAnswers(EvdevDevice::Options options,
-                                                              const ButtonMap* map) {
+                                                               const ButtonMap* map) {
   auto answers = std::make_unique<EvdevAnswers>(std::move(options), map);
   if (absl::Status s = answers->Open(); !s.ok()) return s;
   return std::unique_ptr<ExternalAnswers>(std::move(answers));
@@ -297,7 +296,13 @@ int RunCalibration(client::TrainerClient& client, client::StreamOptions options,
   } pipe_closer{wake};
   auto poke = [&] { (void)!write(wake[1], "x", 1); };
   std::atomic<bool> quit{false};
-  SignalWatcher watcher(&terminal, [&] { quit = true; poke(); }, poke);
+  SignalWatcher watcher(
+      &terminal,
+      [&] {
+        quit = true;
+        poke();
+      },
+      poke);
 
   ResultBox box;
   client::TrainerClient::Callbacks cb;
@@ -395,8 +400,9 @@ int RunCalibration(client::TrainerClient& client, client::StreamOptions options,
   std::fprintf(stderr, "%s: sent the run's %llu messages; waiting up to %gs for the fit\n",
                kProgram, static_cast<unsigned long long>(client.status().sent),
                flags.result_timeout_s);
-  const auto deadline = std::chrono::steady_clock::now() +
-                        std::chrono::milliseconds(static_cast<int64_t>(flags.result_timeout_s * 1000));
+  const auto deadline =
+      std::chrono::steady_clock::now() +
+      std::chrono::milliseconds(static_cast<int64_t>(flags.result_timeout_s * 1000));
   bool failed = false;
   {
     std::unique_lock<std::mutex> l(box.mu);
@@ -439,7 +445,8 @@ int RunCalibration(client::TrainerClient& client, client::StreamOptions options,
                  static_cast<unsigned long long>(before_close.sent),
                  before_close.acked == 0 ? " (does this server support calibration?)" : "",
                  topt.run.c_str());
-    if (!closed.ok()) std::fprintf(stderr, "%s: closing: %s\n", kProgram, closed.ToString().c_str());
+    if (!closed.ok())
+      std::fprintf(stderr, "%s: closing: %s\n", kProgram, closed.ToString().c_str());
   }
   return 1;
 }

@@ -45,7 +45,7 @@ class ExternalAnswers {
 // An input device's buttons through a button map (tickmark-keys --device).
 // Open()s the device; the error if it cannot.
 absl::StatusOr<std::unique_ptr<ExternalAnswers>> DeviceAnswers(EvdevDevice::Options options,
-                                                              const ButtonMap* map);
+                                                               const ButtonMap* map);
 
 // The inputs of a map that approve (sign > 0) or disapprove (sign < 0):
 // "f, +"; "(none bound)" when there are none.

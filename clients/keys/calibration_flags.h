@@ -19,7 +19,7 @@ struct CalibrationFlags {
   uint32_t max_moves = 0;  // 0: 3 x answers
   uint64_t seed = 0;       // 0: a random seed
   std::string rule = "right";
-  std::string run;         // empty: a fresh run id
+  std::string run;  // empty: a fresh run id
   double result_timeout_s = 60.0;
 };
 

@@ -46,8 +46,8 @@ std::string FormatCalibrationStatus(const client::CalibrationProgress& p, size_t
     s = absl::StrCat("PRACTICE ", p.practice_shown, "/", p.practice_total, " (not measured)");
   } else {
     s = absl::StrCat("valid ", p.valid, "/", p.wanted, " | wrong ", p.wrong_sign, " missed ",
-                     p.missed, " double ", p.double_answers, " late ", p.stray, " | move ",
-                     p.moves, "/", p.max_moves);
+                     p.missed, " double ", p.double_answers, " late ", p.stray, " | move ", p.moves,
+                     "/", p.max_moves);
   }
   if (!p.last.empty()) s += " | last: " + p.last;
   return Cut(s, width);
@@ -78,8 +78,8 @@ std::string CalibrationInstructions(const client::CalibrationTask& task,
 
 std::string FormatCalibrationResult(const tickmark::v1::Calibration& c) {
   std::string s;
-  s += absl::StrCat("Calibration ", c.id(), " stored for trainer ", c.trainer(), " (run ",
-                    c.run(), ")\n");
+  s += absl::StrCat("Calibration ", c.id(), " stored for trainer ", c.trainer(), " (run ", c.run(),
+                    ")\n");
   s += absl::StrCat("  moves ", c.moves(), "  valid ", c.valid(), " (wanted ", c.min_answers(),
                     ")  wrong sign ", c.wrong_sign(), "  missed ", c.missed(), "  double ",
                     c.double_answers(), "  late/stray ", c.stray(), "  practice answers ",
@@ -93,8 +93,8 @@ std::string FormatCalibrationResult(const tickmark::v1::Calibration& c) {
       s += ": no fit: " + f.error() + "\n";
       continue;
     }
-    s += absl::StrCat(": AIC ", Fixed(f.aic(), 2), "  KS ", Fixed(f.ks_distance(), 3),
-                      "  mean ", Fixed(f.mean_s(), 3), " s  p90 ", Fixed(f.p90_s(), 3), " s\n");
+    s += absl::StrCat(": AIC ", Fixed(f.aic(), 2), "  KS ", Fixed(f.ks_distance(), 3), "  mean ",
+                      Fixed(f.mean_s(), 3), " s  p90 ", Fixed(f.p90_s(), 3), " s\n");
     s += "        " + KernelText(f.kernel_description()) + "\n";
   }
   s += "  chosen kernel: " + KernelText(c.kernel_description()) + "\n";
@@ -103,8 +103,8 @@ std::string FormatCalibrationResult(const tickmark::v1::Calibration& c) {
                       " .. ", Fixed(c.mean_interval().high_s(), 3), " s\n");
   }
   if (c.has_p90_interval()) {
-    s += absl::StrCat("  p90  95% bootstrap interval: ", Fixed(c.p90_interval().low_s(), 3),
-                      " .. ", Fixed(c.p90_interval().high_s(), 3), " s\n");
+    s += absl::StrCat("  p90  95% bootstrap interval: ", Fixed(c.p90_interval().low_s(), 3), " .. ",
+                      Fixed(c.p90_interval().high_s(), 3), " s\n");
   }
   for (const std::string& w : c.warnings()) s += "  warning: " + w + "\n";
   if (!c.display_note().empty()) s += "  note: " + c.display_note() + "\n";

@@ -203,11 +203,16 @@ TEST(CalibrationTaskTest, LiveCountsFollowTheMatchingRule) {
   FakeTrainer trainer(&clock, [](const CalibrationMoveView& m) -> std::vector<Plan> {
     if (m.practice) return {{0.4, !m.approve}};  // practice: wrong, not counted
     switch (m.index) {
-      case 1: return {{0.5, !m.approve}};                   // wrong sign
-      case 2: return {};                                    // missed
-      case 3: return {{0.6, m.approve}, {0.9, m.approve}};  // valid + double
-      case 4: return {{4.5, m.approve}};                    // late: stray, move missed
-      default: return {{0.7, m.approve}};                   // valid
+      case 1:
+        return {{0.5, !m.approve}};  // wrong sign
+      case 2:
+        return {};  // missed
+      case 3:
+        return {{0.6, m.approve}, {0.9, m.approve}};  // valid + double
+      case 4:
+        return {{4.5, m.approve}};  // late: stray, move missed
+      default:
+        return {{0.7, m.approve}};  // valid
     }
   });
   Recorder rec;
@@ -288,7 +293,7 @@ TEST(CalibrationTaskTest, PracticeProgressAndMissedNotCountedWhileOpen) {
   CalibrationProgress p = task.Progress(kSecond);
   EXPECT_TRUE(p.in_practice);
   EXPECT_EQ(p.practice_shown, 1u);
-  task.MoveShown(3 * kSecond);  // real move 1, unanswered
+  task.MoveShown(3 * kSecond);                       // real move 1, unanswered
   EXPECT_EQ(task.Progress(4 * kSecond).missed, 0u);  // still open
   EXPECT_EQ(task.Progress(7 * kSecond).missed, 1u);  // window (4 s) passed
   task.Answer({7 * kSecond + 1, true, "key:f"});
@@ -306,7 +311,10 @@ TEST(CalibrationTaskTest, OptionsAreChecked) {
   EXPECT_TRUE(bad([](CalibrationTaskOptions& o) { o.run = "has space"; }));
   EXPECT_TRUE(bad([](CalibrationTaskOptions& o) { o.answers = 2; }));
   EXPECT_TRUE(bad([](CalibrationTaskOptions& o) { o.min_interval_s = 0.1; }));
-  EXPECT_TRUE(bad([](CalibrationTaskOptions& o) { o.min_interval_s = 4; o.max_interval_s = 3; }));
+  EXPECT_TRUE(bad([](CalibrationTaskOptions& o) {
+    o.min_interval_s = 4;
+    o.max_interval_s = 3;
+  }));
   EXPECT_TRUE(bad([](CalibrationTaskOptions& o) { o.max_moves = 3; }));
   EXPECT_TRUE(bad([](CalibrationTaskOptions& o) { o.step_cells = 11; }));
   EXPECT_EQ(MakeCalibrationRunId(0xabcdef), "cal-000000abcdef");
@@ -314,7 +322,8 @@ TEST(CalibrationTaskTest, OptionsAreChecked) {
                 CalibrationTaskOptions o = Small();
                 o.run = MakeCalibrationRunId(~0ULL);
                 return o;
-              }()).ok());
+              }())
+                  .ok());
 }
 
 }  // namespace
