@@ -18,6 +18,7 @@
 #include <vector>
 
 #include "clients/keys/button_map.h"
+#include "clients/keys/calibrate.h"
 #include "clients/keys/device_pump.h"
 #include "clients/keys/evdev.h"
 #include "gtest/gtest.h"
@@ -367,6 +368,45 @@ TEST(DevicePump, EveryPressArrivesOnceWhileTheStreamDrops) {
   }
   EXPECT_NE(pump.Report().find("read time - event time"), std::string::npos);
   EXPECT_TRUE(client.Close(Clock::now() + std::chrono::seconds(5)).ok());
+}
+
+// tickmark-keys --calibrate --device: presses become calibration answers
+// stamped with the records' own (kernel) times, not the read time; releases
+// and unbound keys give nothing; a quit button quits.
+TEST(CalibrationDeviceAnswers, PressesAreAnswersAtTheirKernelTimes) {
+  TempDir dir;
+  const std::string path = dir.path() + "/event0";
+  constexpr uint16_t kKeyPageUp = 104;  // input-event-codes.h KEY_PAGEUP
+  constexpr uint16_t kKeyEsc = 1;       // input-event-codes.h KEY_ESC
+  Append(path, KeyFrame(7, 250, kKeyPageDown, 1) + KeyFrame(7, 300, kKeyPageDown, 0) +
+                   KeyFrame(8, 0, kKeyA, 1) + KeyFrame(8, 10, kKeyA, 0) +
+                   KeyFrame(9, 500, kKeyPageUp, 1) + KeyFrame(9, 600, kKeyPageUp, 0) +
+                   KeyFrame(10, 0, kKeyEsc, 1));
+  auto map = ButtonMap::FromToml(
+      "[[binding]]\nbuttons = [\"KEY_PAGEDOWN\"]\nvalue = 1.0\nlabel = \"approve\"\n"
+      "[[binding]]\nbuttons = [\"KEY_PAGEUP\"]\nvalue = -1.0\nlabel = \"disapprove\"\n"
+      "[[binding]]\nbuttons = [\"KEY_ESC\"]\naction = \"quit\"\n",
+      "test", ButtonMap::EvdevNamer());
+  ASSERT_TRUE(map.ok()) << map.status();
+  auto answers = DeviceAnswers({DeviceSelector{path}, dir.path(), false}, &*map);
+  ASSERT_TRUE(answers.ok()) << answers.status();
+  EXPECT_EQ((*answers)->ApproveInputs(), "KEY_PAGEDOWN");
+  EXPECT_EQ((*answers)->DisapproveInputs(), "KEY_PAGEUP");
+  std::vector<client::CalibrationInputAnswer> got;
+  bool quit = false;
+  const auto deadline = Clock::now() + std::chrono::seconds(20);
+  while (Clock::now() < deadline && !quit) {
+    client::CalibrationInput in = (*answers)->Poll(50, -1);
+    got.insert(got.end(), in.answers.begin(), in.answers.end());
+    quit = quit || in.quit;
+  }
+  EXPECT_TRUE(quit);
+  ASSERT_EQ(got.size(), 2u);
+  EXPECT_TRUE(got[0].approve);
+  EXPECT_EQ(got[0].at_ns, 7'000'250'000);
+  EXPECT_EQ(got[0].input, "evdev:KEY_PAGEDOWN");
+  EXPECT_FALSE(got[1].approve);
+  EXPECT_EQ(got[1].at_ns, 9'000'500'000);
 }
 
 }  // namespace
