@@ -21,9 +21,11 @@ std::string Seconds(double s) {
   return buf;
 }
 
-// SplitMix64 (Steele, Lea and Flood, "Fast splittable pseudorandom number
-// generators", OOPSLA 2014): a fixed algorithm, so a seed gives the same
-// schedule on every platform (the standard distributions do not promise that).
+// SplitMix64 ("Fast splittable pseudorandom number generators", OOPSLA
+// 2014; constants as published, written from memory): a fixed algorithm, so a
+// seed gives the same schedule on every platform (the standard
+// distributions do not promise that). The tests check bounds and
+// determinism, not these constants.
 uint64_t SplitMix64(uint64_t* state) {
   uint64_t z = (*state += 0x9e3779b97f4a7c15ULL);
   z = (z ^ (z >> 30)) * 0xbf58476d1ce4e5b9ULL;
