@@ -151,7 +151,20 @@ Finished ReadFinish(TrainerStream& t) {
 
 class CalibrationTest : public ::testing::Test {
  protected:
-  void SetUp() override { server_ = std::make_unique<TestServer>(dir_.path()); }
+  void SetUp() override { StartServer(); }
+
+  void StartServer() {
+    rpc::LiveService::Options o = TestLiveOptions();
+    // Fewer bootstrap resamples than the default 1000 keep the sanitizer
+    // builds quick; the counts and delays checked here do not depend on it.
+    o.calibration_resamples = 200;
+    server_ = std::make_unique<TestServer>(dir_.path(), o);
+  }
+  void Restart() {
+    server_->Shutdown();
+    server_.reset();
+    StartServer();
+  }
 
   struct Session {
     std::string id, admin;
@@ -529,6 +542,91 @@ TEST_F(CalibrationTest, JoiningASessionAppliesTheCalibrationUnlessKernelsArePinn
     EXPECT_EQ(server_->admin().ApplyCalibration(ctx2.get(), req, &resp).error_code(),
               grpc::StatusCode::FAILED_PRECONDITION);
   }
+}
+
+TEST_F(CalibrationTest, AfterARestartJoiningStillAppliesItButNotOverAnAdminsKernel) {
+  const v1::Calibration c = Calibrate();
+  ASSERT_FALSE(c.id().empty());
+  Restart();
+  // The calibration index survives a restart.
+  Session s = NewSession("dock rover, after restart", false);
+  const std::string ava = server_->IssueToken(s.id, v1::ROLE_TRAINER, "ava", s.admin);
+  const std::string ben = server_->IssueToken(s.id, v1::ROLE_TRAINER, "ben", s.admin);
+  {
+    auto t = Join(ava, "keys:ava:9");
+    SendFeedback(*t, 1);
+    EXPECT_TRUE(t->Close().ok());
+  }
+  auto settings = KernelSettings(s, "ava");
+  ASSERT_EQ(settings.size(), 1u);
+  EXPECT_EQ(settings[0].kernel().calibration(), c.id());
+
+  // A trainer whose kernel an admin set in the session before she joined
+  // keeps it: the calibration is applied only where she has no setting.
+  Session set_first = NewSession("admin kernel first", false);
+  const std::string ava2 = server_->IssueToken(set_first.id, v1::ROLE_TRAINER, "ava", set_first.admin);
+  {
+    v1::SetKernelRequest req;
+    req.set_session_id(set_first.id);
+    req.set_trainer("ava");
+    req.set_kernel("gamma:2,0.28");
+    v1::SetKernelResponse resp;
+    auto ctx = server_->Context(set_first.admin);
+    ASSERT_TRUE(server_->admin().SetKernel(ctx.get(), req, &resp).ok());
+  }
+  {
+    auto t = Join(ava2, "keys:ava:10");
+    SendFeedback(*t, 1);
+    EXPECT_TRUE(t->Close().ok());
+  }
+  settings = KernelSettings(set_first, "ava");
+  ASSERT_EQ(settings.size(), 1u);
+  EXPECT_EQ(settings[0].kernel().calibration(), "");
+  EXPECT_EQ(settings[0].kernel().description(), rpc::ParseKernel("gamma:2,0.28")->Describe());
+  // ben has no calibration: nothing is applied for him.
+  {
+    auto t = Join(ben, "keys:ben:9");
+    SendFeedback(*t, 1);
+    EXPECT_TRUE(t->Close().ok());
+  }
+  EXPECT_TRUE(KernelSettings(s, "ben").empty());
+}
+
+TEST_F(CalibrationTest, AResentEventWithOtherContentIsRefused) {
+  Session s = NewSession("resend", false);
+  const std::string token = server_->IssueToken(s.id, v1::ROLE_TRAINER, "cleo", s.admin);
+  auto t = Join(token, "keys:cleo:1");
+  const int64_t base = t->Now() - 10 * kSecond;
+  Scripted move;
+  move.at_ns = kSecond;
+  move.is_move = true;
+  move.move = 1;
+  move.approve = true;
+  ASSERT_TRUE(t->Write(CalibrationMsg(1, "r", move, base)));
+  auto first = t->NextAck();
+  ASSERT_TRUE(first);
+  ASSERT_EQ(first->code(), 0) << first->message();
+  // The same bytes again: a duplicate with the original's sequence.
+  ASSERT_TRUE(t->Write(CalibrationMsg(1, "r", move, base)));
+  auto again = t->NextAck();
+  ASSERT_TRUE(again);
+  EXPECT_EQ(again->code(), 0);
+  EXPECT_TRUE(again->duplicate());
+  EXPECT_EQ(again->sequence(), first->sequence());
+  // Other content under the same client sequence: refused, not stored.
+  move.move = 2;
+  ASSERT_TRUE(t->Write(CalibrationMsg(1, "r", move, base)));
+  auto other = t->NextAck();
+  ASSERT_TRUE(other);
+  EXPECT_EQ(other->code(), static_cast<int>(grpc::StatusCode::ALREADY_EXISTS));
+  EXPECT_NE(other->message().find("move 2"), std::string::npos) << other->message();
+  // A finish under a client sequence a move holds: refused too.
+  ASSERT_TRUE(t->Write(FinishMsg(1, "r")));
+  Finished f = ReadFinish(*t);
+  EXPECT_FALSE(f.calibration);
+  ASSERT_TRUE(f.ack);
+  EXPECT_EQ(f.ack->code(), static_cast<int>(grpc::StatusCode::ALREADY_EXISTS));
+  EXPECT_TRUE(t->Close().ok());
 }
 
 TEST_F(CalibrationTest, ListAndGetFollowTheTokens) {
