@@ -695,5 +695,55 @@ TEST(CalibrationSeedTest, DependsOnClientAndRun) {
             (14695981039346656037ull ^ 0x2full) * 1099511628211ull);
 }
 
+// The builder alone: three valid answers with one and the same delay give
+// no fit (every family needs spread), so nothing would be stored.
+TEST(CalibrationBuilderTest, EqualDelaysFitNoFamily) {
+  std::vector<v1::Record> events;
+  uint64_t seq = 1;
+  for (int i = 0; i < 3; ++i) {
+    v1::Record move;
+    move.set_sequence(seq++);
+    move.mutable_calibration_event()->set_kind(v1::CalibrationEvent::KIND_MOVE);
+    move.mutable_calibration_event()->set_move(static_cast<uint32_t>(i + 1));
+    move.mutable_calibration_event()->set_at_source_ns((i + 1) * 3 * kSecond);
+    move.mutable_calibration_event()->set_approve(true);
+    events.push_back(move);
+    v1::Record answer;
+    answer.set_sequence(seq++);
+    answer.mutable_calibration_event()->set_kind(v1::CalibrationEvent::KIND_ANSWER);
+    answer.mutable_calibration_event()->set_at_source_ns((i + 1) * 3 * kSecond + kSecond / 2);
+    answer.mutable_calibration_event()->set_approve(true);
+    events.push_back(answer);
+  }
+  rpc::CalibrationRequest req;
+  req.run = "flat";
+  req.bootstrap_resamples = 0;
+  auto c = rpc::BuildCalibration(events, req);
+  ASSERT_FALSE(c.ok());
+  EXPECT_EQ(c.status().code(), absl::StatusCode::kFailedPrecondition);
+  EXPECT_NE(c.status().message().find("no delay family fits"), std::string::npos)
+      << c.status().message();
+  // One more answer with another delay: now it fits, with no intervals
+  // (bootstrap off) and a too-few-answers warning (4 < 40).
+  v1::Record move;
+  move.set_sequence(seq++);
+  move.mutable_calibration_event()->set_kind(v1::CalibrationEvent::KIND_MOVE);
+  move.mutable_calibration_event()->set_move(4);
+  move.mutable_calibration_event()->set_at_source_ns(12 * kSecond);
+  events.push_back(move);
+  v1::Record answer;
+  answer.set_sequence(seq++);
+  answer.mutable_calibration_event()->set_kind(v1::CalibrationEvent::KIND_ANSWER);
+  answer.mutable_calibration_event()->set_at_source_ns(12 * kSecond + 700'000'000);
+  events.push_back(answer);
+  c = rpc::BuildCalibration(events, req);
+  ASSERT_TRUE(c.ok()) << c.status().message();
+  EXPECT_EQ(c->valid(), 4u);
+  EXPECT_FALSE(c->has_mean_interval());
+  EXPECT_EQ(c->warnings_size() >= 1, true);
+  EXPECT_EQ(c->matches(3).move_sequence(), 7u);
+  EXPECT_EQ(c->matches(3).answer_sequence(), 8u);
+}
+
 }  // namespace
 }  // namespace tickmark::testing
