@@ -284,8 +284,9 @@ class CalibrationTest : public ::testing::Test {
     Finished again = ReadFinish(*t);
     EXPECT_TRUE(again.ack && again.ack->duplicate()) << (again.ack ? again.ack->message() : "");
     EXPECT_TRUE(again.calibration);
-    if (again.calibration) EXPECT_EQ(again.calibration->SerializeAsString(),
-                                     f.calibration->SerializeAsString());
+    if (again.calibration) {
+      EXPECT_EQ(again.calibration->SerializeAsString(), f.calibration->SerializeAsString());
+    }
     EXPECT_TRUE(t->Close().ok());
     return *f.calibration;
   }
