@@ -11,13 +11,13 @@
 // fits themselves are checked against SciPy in
 // tests/reference/delay_fit_reference_test.cc; here only that they are
 // present and consistent.
+#include <gtest/gtest.h>
+
 #include <algorithm>
 #include <cmath>
 #include <map>
 #include <string>
 #include <vector>
-
-#include <gtest/gtest.h>
 
 #include "server/rpc/calibration_builder.h"
 #include "server/rpc/credit_driver.h"
@@ -52,8 +52,8 @@ struct Scripted {
 //   (missed).
 // So: moves 15, valid 12, wrong_sign 1, double 1, stray 1, practice 1,
 // missed 2.
-constexpr int64_t kDelays[] = {412'345'678, 523'456'789, 634'567'891, 487'654'321,
-                               745'678'912, 398'765'432, 856'789'123, 567'891'234,
+constexpr int64_t kDelays[] = {412'345'678, 523'456'789,   634'567'891, 487'654'321,
+                               745'678'912, 398'765'432,   856'789'123, 567'891'234,
                                689'123'456, 1'012'345'678, 478'912'345, 591'234'567};
 
 std::vector<Scripted> WorkedExample() {
@@ -337,8 +337,8 @@ TEST_F(CalibrationTest, ScriptedRunGivesTheWorkedExampleAndAFit) {
     SCOPED_TRACE(::testing::Message() << "answer " << k << " at " << e.at_ns << " ns");
     EXPECT_EQ(m.answer_sequence(), seqs_[answers[k]]);
     EXPECT_EQ(m.outcome(), e.outcome);
-    EXPECT_EQ(m.move_sequence(), e.matched_move ? move_seq[static_cast<uint32_t>(e.matched_move)]
-                                                : 0u);
+    EXPECT_EQ(m.move_sequence(),
+              e.matched_move ? move_seq[static_cast<uint32_t>(e.matched_move)] : 0u);
     EXPECT_EQ(m.delay_ns(), e.delay_ns);  // to the nanosecond: source clock differences
     if (e.outcome == "valid") valid_delays.push_back(e.delay_ns);
   }
@@ -352,8 +352,7 @@ TEST_F(CalibrationTest, ScriptedRunGivesTheWorkedExampleAndAFit) {
 
   // Every family, in a fixed order; the chosen one has the lowest AIC.
   ASSERT_EQ(c.fits_size(), 5);
-  const char* families[] = {"gamma", "shifted-gamma", "lognormal", "exgauss",
-                            "lognormal-mixture"};
+  const char* families[] = {"gamma", "shifted-gamma", "lognormal", "exgauss", "lognormal-mixture"};
   double best = INFINITY;
   for (int i = 0; i < 5; ++i) {
     EXPECT_EQ(c.fits(i).family(), families[i]);
@@ -565,7 +564,8 @@ TEST_F(CalibrationTest, AfterARestartJoiningStillAppliesItButNotOverAnAdminsKern
   // A trainer whose kernel an admin set in the session before she joined
   // keeps it: the calibration is applied only where she has no setting.
   Session set_first = NewSession("admin kernel first", false);
-  const std::string ava2 = server_->IssueToken(set_first.id, v1::ROLE_TRAINER, "ava", set_first.admin);
+  const std::string ava2 =
+      server_->IssueToken(set_first.id, v1::ROLE_TRAINER, "ava", set_first.admin);
   {
     v1::SetKernelRequest req;
     req.set_session_id(set_first.id);
@@ -688,12 +688,13 @@ TEST_F(CalibrationTest, ListAndGetFollowTheTokens) {
 // The bootstrap seed depends on the client and the run only, so a run's
 // intervals are reproducible.
 TEST(CalibrationSeedTest, DependsOnClientAndRun) {
-  EXPECT_EQ(rpc::CalibrationSeed("keys:ava:1", "run-1"), rpc::CalibrationSeed("keys:ava:1", "run-1"));
-  EXPECT_NE(rpc::CalibrationSeed("keys:ava:1", "run-1"), rpc::CalibrationSeed("keys:ava:1", "run-2"));
+  EXPECT_EQ(rpc::CalibrationSeed("keys:ava:1", "run-1"),
+            rpc::CalibrationSeed("keys:ava:1", "run-1"));
+  EXPECT_NE(rpc::CalibrationSeed("keys:ava:1", "run-1"),
+            rpc::CalibrationSeed("keys:ava:1", "run-2"));
   // FNV-1a 64 of the empty string plus "/" is the basis run through '/':
   // (14695981039346656037 ^ 0x2f) * 1099511628211 mod 2^64 (FNV spec, from memory).
-  EXPECT_EQ(rpc::CalibrationSeed("", ""),
-            (14695981039346656037ull ^ 0x2full) * 1099511628211ull);
+  EXPECT_EQ(rpc::CalibrationSeed("", ""), (14695981039346656037ull ^ 0x2full) * 1099511628211ull);
 }
 
 // The builder alone: three valid answers with one and the same delay give
