@@ -786,13 +786,10 @@ void IngestReactor<Side>::StartCalibrationFinish(const v1::CalibrationMessage& m
     const auto fit_ms = std::chrono::duration_cast<std::chrono::milliseconds>(
                             std::chrono::steady_clock::now() - fit_start)
                             .count();
-    if (built.ok()) {
-      TM_LOG(kInfo) << "calibration " << built->id() << " of trainer '" << req.trainer << "' (run "
-                    << req.run << "): " << built->valid() << " valid answers, kernel "
-                    << built->kernel_description() << "; matched and fitted in " << fit_ms
-                    << " ms";
-    }
     if (!built.ok()) return answer(std::nullopt, ErrorAck(cseq, built.status()));
+    TM_LOG(kInfo) << "calibration " << built->id() << " of trainer '" << req.trainer << "' (run "
+                  << req.run << "): " << built->valid() << " valid answers, kernel "
+                  << built->kernel_description() << "; matched and fitted in " << fit_ms << " ms";
     v1::Record r;
     r.set_written_session_ns(runtime->Now().nanos());
     *r.mutable_calibration() = *built;
