@@ -18,6 +18,7 @@
 #include <optional>
 #include <random>
 #include <string>
+#include <thread>
 #include <vector>
 
 #include "clients/common/calibration_task.h"
@@ -355,19 +356,34 @@ int RunCalibration(client::TrainerClient& client, client::StreamOptions options,
   TerminalIo io(client.clock(), &terminal, &keys, external, wake[0], &quit, &client,
                 topt.track_cells, topt.practice);
   auto cleanup = [&] { terminal.Restore(); };
-  if (!io.WaitForStart()) {
-    cleanup();
-    WriteAll("\n");
-    std::cerr << kProgram << ": calibration not started; nothing was measured\n";
-    (void)client.Close(std::chrono::steady_clock::now() + std::chrono::seconds(2));
-    return 1;
-  }
-  if (client.status().state == client::StreamState::kFailed) {
-    cleanup();
-    std::cerr << kProgram << ": cannot reach the server: " << client.status().last_error.ToString()
-              << "\n";
-    (void)client.Close(std::chrono::steady_clock::now() + std::chrono::seconds(2));
-    return 1;
+  // Start only once connected: the moves' times must reach the server with
+  // a clock model, and a trainer should not do the task for an unreachable
+  // server (messages would wait in the queue).
+  while (true) {
+    if (!io.WaitForStart()) {
+      cleanup();
+      WriteAll("\n");
+      std::cerr << kProgram << ": calibration not started; nothing was measured\n";
+      (void)client.Close(std::chrono::steady_clock::now() + std::chrono::seconds(2));
+      return 1;
+    }
+    const auto wait_until = std::chrono::steady_clock::now() + std::chrono::seconds(5);
+    client::StreamStatus st = client.status();
+    while (!st.connected() && st.state != client::StreamState::kFailed && !quit.load() &&
+           std::chrono::steady_clock::now() < wait_until) {
+      std::this_thread::sleep_for(std::chrono::milliseconds(50));
+      st = client.status();
+    }
+    if (st.state == client::StreamState::kFailed) {
+      cleanup();
+      std::cerr << kProgram << ": cannot use the server: " << st.last_error.ToString() << "\n";
+      (void)client.Close(std::chrono::steady_clock::now() + std::chrono::seconds(2));
+      return 1;
+    }
+    if (st.connected()) break;
+    WriteAll(std::string("Not connected to the server yet (") + client::StreamStateName(st.state) +
+             (st.last_error.ok() ? "" : ": " + st.last_error.ToString()) +
+             "); press a key to try again, q to quit.\r\n");
   }
   io.Begin(topt.track_cells / 2);
   const client::CalibrationRunResult run =
