@@ -1,0 +1,116 @@
+"""Compares label sets of one demo session: credit precision and what a rover learns.
+
+For each derived set (the live labels, and the sets `tickmark replay`
+stored with other kernels) it reads the credit rows from the ledger file
+(read-only; SQLite, tables credit, feedback and step) and reports
+
+  credit precision  the share of all credit that landed on the step the
+                    simulated trainer judged (its feedback's "judged:<step id>"
+                    input; simulation only, no real trainer says this),
+  dock success      the demo's approval model trained offline from that
+                    set's credit alone, its greedy policy evaluated on the
+                    same seeded episodes (model.evaluate).
+
+    python3 -m tickmark.demo.compare --ledger DIR/tickmark.db --session s-... \\
+        --set default=default-kernel --set calibrated=calibrated
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sqlite3
+import sys
+
+from tickmark.demo import model
+
+
+def analyse(db: sqlite3.Connection, session: str, derived_set: str) -> dict:
+    """Precision and greedy success of one derived set."""
+    steps = {}
+    for seq, state, action in db.execute(
+            "SELECT seq, state, action FROM step WHERE session_id = ?", (session,)):
+        try:
+            x, y = (int(v) for v in bytes(state).decode().split(","))
+        except ValueError:
+            continue
+        steps[seq] = ((x, y), action)
+    feedback = {}
+    for seq, value, text in db.execute(
+            "SELECT seq, value, input FROM feedback WHERE session_id = ?", (session,)):
+        judged = int(text.split(":")[1]) if text.startswith("judged:") else -1
+        feedback[seq] = (judged, value)
+    shares = {}
+    on_target = total = 0.0
+    kernels = set()
+    for fseq, sseq, step_id, credit, kernel in db.execute(
+            "SELECT feedback_seq, step_seq, step_id, credit, kernel FROM credit "
+            "WHERE session_id = ? AND derived_set = ?", (session, derived_set)):
+        kernels.add(kernel)
+        total += credit
+        if fseq in feedback and feedback[fseq][0] == step_id:
+            on_target += credit
+        shares.setdefault(fseq, []).append((sseq, credit))
+    learned = model.ApprovalModel()
+    for fseq, parts in shares.items():
+        if fseq not in feedback:
+            continue
+        keys = [(model.key_of(*steps[s]), c) for s, c in parts if s in steps]
+        learned.add(feedback[fseq][1], keys)
+    learned.fit()
+    return {
+        "set": derived_set,
+        "kernels": sorted(kernels),
+        "credits": len([c for parts in shares.values() for c in parts]),
+        "feedback_credited": len(shares),
+        "credit_precision": on_target / total if total > 0 else float("nan"),
+        "dock_success": model.evaluate(lambda s, r: learned.greedy(s, r)),
+    }
+
+
+def table(results: dict) -> str:
+    """The side-by-side text: one column per label set."""
+    names = list(results)
+    width = max(14, *(len(n) + 2 for n in names))
+    rows = [("", names),
+            ("credit precision", [f"{results[n]['credit_precision']:.2f}" for n in names]),
+            ("greedy dock success", [f"{100 * results[n]['dock_success']:.0f}%" for n in names]),
+            ("feedback credited", [str(results[n]["feedback_credited"]) for n in names])]
+    lines = ["".join([f"{label:<22}"] + [f"{v:>{width}}" for v in values]) for label, values in rows]
+    for n in names:
+        lines.append(f"{'kernel, ' + n:<22}  " + "; ".join(results[n]["kernels"] or ["-"]))
+    return "\n".join(lines)
+
+
+def main(argv=None) -> int:
+    p = argparse.ArgumentParser(prog="python3 -m tickmark.demo.compare", description=__doc__,
+                                formatter_class=argparse.RawDescriptionHelpFormatter)
+    p.add_argument("--ledger", required=True, help="the server's tickmark.db")
+    p.add_argument("--session", required=True)
+    p.add_argument("--set", action="append", default=[], metavar="COLUMN=DERIVED_SET",
+                   help="a column and the derived set it shows ('live' for the live labels)")
+    p.add_argument("--json", help="also write the figures here")
+    args = p.parse_args(argv)
+    if not args.set:
+        p.error("give at least one --set COLUMN=DERIVED_SET")
+    columns = []
+    for item in args.set:
+        column, sep, name = item.partition("=")
+        if not sep or not column or not name:
+            p.error(f"--set {item!r}: want COLUMN=DERIVED_SET")
+        columns.append((column, name))
+    try:
+        db = sqlite3.connect(f"file:{args.ledger}?mode=ro", uri=True)
+        results = {column: analyse(db, args.session, name) for column, name in columns}
+    except sqlite3.Error as e:
+        print(f"compare: {args.ledger}: {e}", file=sys.stderr)
+        return 1
+    print(table(results))
+    if args.json:
+        with open(args.json, "w", encoding="utf-8") as f:
+            json.dump(results, f, indent=2)
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
