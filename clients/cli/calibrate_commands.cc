@@ -150,7 +150,15 @@ void AddNew(CommandTable& table, CLI::App* group) {
         issue.set_subject(f->trainer);
         v1::IssueTokenResponse token;
         ctx = conn->Context();
-        if (auto s = stub.IssueToken(ctx.get(), issue, &token); !s.ok()) return conn->Fail(s);
+        if (auto s = stub.IssueToken(ctx.get(), issue, &token); !s.ok()) {
+          // Leave no empty calibration session behind (best effort).
+          v1::CloseSessionRequest close;
+          close.set_session_id(session.session().id());
+          v1::Session closed;
+          auto close_ctx = conn->Context();
+          (void)stub.CloseSession(close_ctx.get(), close, &closed);
+          return conn->Fail(s);
+        }
         const std::string token_file =
             f->token_out.empty() ? f->trainer + ".calibration.token" : f->token_out;
         if (!WriteSecretFile(token_file, token.secret())) return kExitError;

@@ -108,6 +108,12 @@ class ReconnectingStream:
         return self._connected.wait(timeout)
 
     @property
+    def error(self) -> Optional[StreamError]:
+        """Why the stream stopped for good; None while it is up or retrying."""
+        with self._lock:
+            return self._error
+
+    @property
     def pending(self) -> int:
         with self._lock:
             return len(self._pending) + len(self._unnumbered)

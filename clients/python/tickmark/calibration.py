@@ -120,8 +120,9 @@ class CalibrationRun:
                 if left <= 0:
                     raise TimeoutError(f"no result for calibration run {self.run} in {timeout} s")
                 self._lock.wait(min(left, 0.5))
-                if self._stream._error:  # the stream stopped for good
-                    raise self._stream._error
+                error = self._stream.error
+                if error is not None:  # the stream stopped for good
+                    raise error
             ack = self._acks[seq]
             if ack.code != 0:
                 raise CalibrationFailed(ack.code, ack.message)
