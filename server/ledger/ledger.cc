@@ -24,6 +24,8 @@ std::string_view RecordKindName(const Record& record) {
     case Record::kLabel: return "label";
     case Record::kUnmatched: return "unmatched";
     case Record::kKernel: return "kernel";
+    case Record::kCalibrationEvent: return "calibration_event";
+    case Record::kCalibration: return "calibration";
     case Record::BODY_NOT_SET: break;
   }
   return "unknown";
@@ -43,6 +45,8 @@ tickmark::v1::RecordKind RecordKindOf(const Record& record) {
     case Record::kLabel: return RECORD_KIND_LABEL;
     case Record::kUnmatched: return RECORD_KIND_UNMATCHED;
     case Record::kKernel: return RECORD_KIND_KERNEL;
+    case Record::kCalibrationEvent: return RECORD_KIND_CALIBRATION_EVENT;
+    case Record::kCalibration: return RECORD_KIND_CALIBRATION;
     case Record::BODY_NOT_SET: break;
   }
   return RECORD_KIND_UNSPECIFIED;
@@ -54,6 +58,14 @@ std::optional<std::pair<std::string, uint64_t>> ClientKeyOf(const Record& record
   }
   if (record.has_step()) {
     return std::make_pair(record.step().client_id(), record.step().client_sequence());
+  }
+  if (record.has_calibration_event()) {
+    return std::make_pair(record.calibration_event().client_id(),
+                          record.calibration_event().client_sequence());
+  }
+  if (record.has_calibration()) {
+    return std::make_pair(record.calibration().client_id(),
+                          record.calibration().client_sequence());
   }
   return std::nullopt;
 }

@@ -44,6 +44,24 @@ struct SessionRow {
   int64_t mono_anchor_ns = 0;     // CLOCK_MONOTONIC reading at the anchor
   std::string boot_id;            // kernel boot id the monotonic reading belongs to
   uint64_t last_sequence = 0;     // highest committed sequence (filled on read)
+  // Trainers credit with the session's kernels only: a calibrated trainer
+  // joining does not get their calibration (Session.pin_kernels).
+  bool pin_kernels = false;
+};
+
+// A calibration as the server-wide index (table `calibration`) lists it; the
+// full Calibration is its record's body.
+struct CalibrationRow {
+  std::string id;  // "c-7f3a2c91"
+  std::string trainer;
+  std::string session_id;  // where it was measured
+  uint64_t sequence = 0;   // its Calibration record there
+  int64_t created_session_ns = 0;
+  std::string family;  // the chosen family
+  std::string kernel_description;
+  uint32_t valid = 0;
+  bool warning = false;
+  tickmark::v1::SourceKind source_kind = tickmark::v1::SOURCE_KIND_UNSPECIFIED;
 };
 
 // A token as stored: only the SHA-256 of the secret is kept.
@@ -125,6 +143,21 @@ class Ledger {
   // Highest committed sequence of a session (0 if none).
   virtual uint64_t CommittedSequence(std::string_view session_id) = 0;
 
+  // The CalibrationEvent records (moves and answers) of one calibration run
+  // of one client in a session, committed ones only, in sequence order.
+  virtual absl::StatusOr<std::vector<tickmark::v1::Record>> ReadCalibrationEvents(
+      std::string_view session_id, std::string_view client_id, std::string_view run) = 0;
+  // The server's calibrations, newest first (by created_session_ns, then
+  // id); only `trainer`'s when it is not empty.
+  virtual absl::StatusOr<std::vector<CalibrationRow>> ListCalibrations(
+      std::string_view trainer) = 0;
+  // One calibration's record (its body is the full Calibration); NOT_FOUND
+  // for an unknown id.
+  virtual absl::StatusOr<tickmark::v1::Record> GetCalibration(std::string_view id) = 0;
+  // The newest calibration of a trainer, if any.
+  virtual absl::StatusOr<std::optional<tickmark::v1::Record>> LatestCalibration(
+      std::string_view trainer) = 0;
+
   // Stores a derived set (credit, label and unmatched records computed by a
   // replay) under `name`, with `spec` describing how it was made. The
   // session's records are not touched. ALREADY_EXISTS unless overwrite.
@@ -151,7 +184,8 @@ class Ledger {
 std::string_view RecordKindName(const tickmark::v1::Record& record);
 tickmark::v1::RecordKind RecordKindOf(const tickmark::v1::Record& record);
 
-// The client id and client sequence a record carries (feedback, steps), if any.
+// The client id and client sequence a record carries (feedback, steps,
+// calibration events, and a calibration: its finish message's key), if any.
 std::optional<std::pair<std::string, uint64_t>> ClientKeyOf(const tickmark::v1::Record& record);
 
 // The bytes stored as a record's body and hashed: its deterministic

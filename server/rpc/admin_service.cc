@@ -2,6 +2,7 @@
 
 #include <cmath>
 #include <deque>
+#include <set>
 #include <thread>
 
 #include "server/base/log.h"
@@ -47,6 +48,7 @@ v1::Session ToProto(const ledger::SessionRow& row) {
   s.set_opened_session_ns(row.opened_session_ns);
   s.set_closed_session_ns(row.closed_session_ns);
   s.set_last_sequence(row.last_sequence);
+  s.set_pin_kernels(row.pin_kernels);
   return s;
 }
 
@@ -137,7 +139,7 @@ grpc::ServerUnaryReactor* AdminService::CreateSession(grpc::CallbackServerContex
   if (req->title().size() > 256 || req->study().size() > 128) {
     return Done(ctx, absl::InvalidArgumentError("title (256) or study (128) too long"));
   }
-  auto rt = hub_->Create(req->title(), req->study(), req->default_kernel());
+  auto rt = hub_->Create(req->title(), req->study(), req->default_kernel(), req->pin_kernels());
   if (!rt.ok()) return Done(ctx, rt.status());
   auto issued = auth_->Issue((*rt)->id(), v1::ROLE_ADMIN, "", (*rt)->Now().nanos());
   if (!issued.ok()) return Done(ctx, issued.status());
@@ -341,6 +343,137 @@ grpc::ServerUnaryReactor* AdminService::SetKernel(grpc::CallbackServerContext* c
 
 namespace {
 
+// The trainers a principal may see calibrations of: nullopt for the
+// operator (all); for a session admin, the subjects of the trainer tokens
+// of its session.
+absl::StatusOr<std::optional<std::set<std::string>>> VisibleTrainers(SessionHub* hub,
+                                                                     const Principal& who) {
+  if (who.operator_token()) return std::optional<std::set<std::string>>();
+  if (who.role != v1::ROLE_ADMIN) {
+    return absl::PermissionDeniedError(
+        Cat("a ", v1::Role_Name(who.role), " token may not read calibrations"));
+  }
+  auto tokens = hub->ledger()->ListTokens(who.session_id);
+  if (!tokens.ok()) return tokens.status();
+  std::set<std::string> trainers;
+  for (const auto& t : *tokens) {
+    if (t.role == v1::ROLE_TRAINER) trainers.insert(t.subject);
+  }
+  return std::optional<std::set<std::string>>(std::move(trainers));
+}
+
+v1::CalibrationSummary ToProto(const ledger::CalibrationRow& row) {
+  v1::CalibrationSummary c;
+  c.set_id(row.id);
+  c.set_trainer(row.trainer);
+  c.set_session_id(row.session_id);
+  c.set_sequence(row.sequence);
+  c.set_created_session_ns(row.created_session_ns);
+  c.set_family(row.family);
+  c.set_kernel_description(row.kernel_description);
+  c.set_valid(row.valid);
+  c.set_warning(row.warning);
+  c.set_source_kind(row.source_kind);
+  return c;
+}
+
+}  // namespace
+
+grpc::ServerUnaryReactor* AdminService::ListCalibrations(grpc::CallbackServerContext* ctx,
+                                                         const v1::ListCalibrationsRequest* req,
+                                                         v1::ListCalibrationsResponse* resp) {
+  auto who = AuthenticateContext(*ctx, *auth_);
+  if (!who.ok()) return Done(ctx, who.status());
+  auto visible = VisibleTrainers(hub_, *who);
+  if (!visible.ok()) return Done(ctx, visible.status());
+  auto rows = hub_->ledger()->ListCalibrations(req->trainer());
+  if (!rows.ok()) return Done(ctx, rows.status());
+  for (const auto& row : *rows) {
+    if (*visible && !(*visible)->count(row.trainer)) continue;
+    *resp->add_calibrations() = ToProto(row);
+  }
+  return Done(ctx, absl::OkStatus());
+}
+
+grpc::ServerUnaryReactor* AdminService::GetCalibration(grpc::CallbackServerContext* ctx,
+                                                       const v1::GetCalibrationRequest* req,
+                                                       v1::Calibration* resp) {
+  auto who = AuthenticateContext(*ctx, *auth_);
+  if (!who.ok()) return Done(ctx, who.status());
+  auto visible = VisibleTrainers(hub_, *who);
+  if (!visible.ok()) return Done(ctx, visible.status());
+  std::optional<v1::Record> record;
+  if (!req->id().empty()) {
+    auto r = hub_->ledger()->GetCalibration(req->id());
+    if (!r.ok()) return Done(ctx, r.status());
+    record = *std::move(r);
+  } else if (!req->trainer().empty()) {
+    auto r = hub_->ledger()->LatestCalibration(req->trainer());
+    if (!r.ok()) return Done(ctx, r.status());
+    if (!r->has_value()) {
+      return Done(ctx, absl::NotFoundError(Cat("trainer '", req->trainer(),
+                                               "' has no calibration on this server")));
+    }
+    record = **std::move(r);
+  } else {
+    return Done(ctx, absl::InvalidArgumentError("name a calibration id or a trainer"));
+  }
+  if (*visible && !(*visible)->count(record->calibration().trainer())) {
+    // As for an unknown id: never reveal another session's trainers.
+    return Done(ctx, absl::NotFoundError(
+                         Cat("no calibration '", req->id().empty() ? req->trainer() : req->id(),
+                             "' for the trainers of this session")));
+  }
+  *resp = record->calibration();
+  return Done(ctx, absl::OkStatus());
+}
+
+grpc::ServerUnaryReactor* AdminService::ApplyCalibration(grpc::CallbackServerContext* ctx,
+                                                         const v1::ApplyCalibrationRequest* req,
+                                                         v1::SetKernelResponse* resp) {
+  auto who = AuthenticateContext(*ctx, *auth_);
+  if (!who.ok()) return Done(ctx, who.status());
+  if (absl::Status s = Authorize(*who, req->session_id(), {v1::ROLE_ADMIN}); !s.ok()) {
+    return Done(ctx, s);
+  }
+  if (!std::isfinite(req->weight()) || req->weight() < 0 || req->weight() > 1e6) {
+    return Done(ctx, absl::InvalidArgumentError("weight must be finite and in [0, 1e6]"));
+  }
+  if (req->calibration_id().empty()) {
+    return Done(ctx, absl::InvalidArgumentError("name the calibration to apply"));
+  }
+  auto record = hub_->ledger()->GetCalibration(req->calibration_id());
+  if (!record.ok()) return Done(ctx, record.status());
+  const v1::Calibration& c = record->calibration();
+  if (!who->operator_token()) {
+    auto visible = VisibleTrainers(hub_, *who);
+    if (!visible.ok()) return Done(ctx, visible.status());
+    if (*visible && !(*visible)->count(c.trainer())) {
+      return Done(ctx, absl::NotFoundError(Cat("no calibration '", req->calibration_id(),
+                                               "' for the trainers of this session")));
+    }
+  }
+  auto kernel = KernelFromProto(c.kernel());
+  if (!kernel.ok()) return Done(ctx, kernel.status());
+  auto rt = hub_->Get(req->session_id());
+  if (!rt.ok()) return Done(ctx, rt.status());
+  if (!(*rt)->open()) return Done(ctx, absl::FailedPreconditionError("session is closed"));
+  v1::Record r;
+  r.set_written_session_ns((*rt)->Now().nanos());
+  v1::KernelSetting* ks = r.mutable_kernel();
+  ks->set_trainer(c.trainer());
+  *ks->mutable_kernel() = c.kernel();
+  ks->set_weight(req->weight() == 0 ? 1.0 : req->weight());
+  ks->set_description(c.kernel_description());
+  ks->set_author(who->subject.empty() ? who->token_id : who->subject);
+  ks->set_calibration(c.id());
+  *resp->mutable_setting() = *ks;
+  return AppendThenFinish(ctx, **rt, std::move(r),
+                          [resp](uint64_t sequence) { resp->set_sequence(sequence); });
+}
+
+namespace {
+
 // Streams messages produced by a worker thread. The worker calls Push() and
 // then End(); the reactor writes one message at a time.
 class ReplayReactor final : public grpc::ServerWriteReactor<v1::ReplayProgress> {
@@ -420,6 +553,31 @@ absl::Status RunReplay(SessionHub* hub, const v1::ReplayRequest& req, ReplayReac
     overrides.trainers.insert_or_assign(trainer, *k);
   }
   ledger::Ledger* ledger = hub->ledger();
+  // The session's trainers: the subjects of its trainer tokens.
+  std::set<std::string> trainers;
+  {
+    auto tokens = ledger->ListTokens(req.session_id());
+    if (!tokens.ok()) return tokens.status();
+    for (const auto& t : *tokens) {
+      if (t.role == v1::ROLE_TRAINER) trainers.insert(t.subject);
+    }
+  }
+  // --calibrated: each trainer's latest calibration (all made before now),
+  // unless an explicit kernel names that trainer's kernel already.
+  std::map<std::string, std::string> calibration_of;
+  if (req.calibrated() && req.kernel().empty()) {
+    for (const std::string& trainer : trainers) {
+      if (overrides.trainers.count(trainer)) continue;
+      auto latest = ledger->LatestCalibration(trainer);
+      if (!latest.ok()) return latest.status();
+      if (!latest->has_value()) continue;
+      const v1::Calibration& c = (*latest)->calibration();
+      auto k = KernelFromProto(c.kernel());
+      if (!k.ok()) return k.status();
+      overrides.trainers.insert_or_assign(trainer, *k);
+      calibration_of[trainer] = c.id();
+    }
+  }
   const uint64_t total = ledger->CommittedSequence(req.session_id());
   CreditDriver driver(std::move(overrides));
   std::vector<v1::Record> derived;
@@ -471,6 +629,14 @@ absl::Status RunReplay(SessionHub* hub, const v1::ReplayRequest& req, ReplayReac
     if (!replayed.count(step)) cmp.set_only_live(cmp.only_live() + 1);
   }
   if (cmp.labels() > 0) cmp.set_mean_abs_difference(sum_abs / static_cast<double>(cmp.labels()));
+  for (const std::string& trainer : trainers) {
+    (*cmp.mutable_trainer_kernels())[trainer] = driver.KernelOf(trainer);
+    if (auto it = calibration_of.find(trainer); it != calibration_of.end()) {
+      (*cmp.mutable_trainer_calibrations())[trainer] = it->second;
+    } else if (std::string c = driver.CalibrationOf(trainer); !c.empty()) {
+      (*cmp.mutable_trainer_calibrations())[trainer] = c;
+    }
+  }
   const std::string spec = Cat("replay of sequences 1..", total, " with ", driver.Describe());
   if (absl::Status s =
           ledger->PutDerivedSet(req.session_id(), req.name(), spec, derived, req.overwrite());

@@ -41,6 +41,15 @@ class AdminService final : public tickmark::v1::SessionAdmin::CallbackService {
   grpc::ServerUnaryReactor* SetKernel(grpc::CallbackServerContext* ctx,
                                       const tickmark::v1::SetKernelRequest* req,
                                       tickmark::v1::SetKernelResponse* resp) override;
+  grpc::ServerUnaryReactor* ListCalibrations(grpc::CallbackServerContext* ctx,
+                                             const tickmark::v1::ListCalibrationsRequest* req,
+                                             tickmark::v1::ListCalibrationsResponse* resp) override;
+  grpc::ServerUnaryReactor* GetCalibration(grpc::CallbackServerContext* ctx,
+                                           const tickmark::v1::GetCalibrationRequest* req,
+                                           tickmark::v1::Calibration* resp) override;
+  grpc::ServerUnaryReactor* ApplyCalibration(grpc::CallbackServerContext* ctx,
+                                             const tickmark::v1::ApplyCalibrationRequest* req,
+                                             tickmark::v1::SetKernelResponse* resp) override;
   grpc::ServerWriteReactor<tickmark::v1::ReplayProgress>* Replay(
       grpc::CallbackServerContext* ctx, const tickmark::v1::ReplayRequest* req) override;
 

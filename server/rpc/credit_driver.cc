@@ -137,6 +137,17 @@ std::string CreditDriver::Describe() const {
   return out.str();
 }
 
+std::string CreditDriver::KernelOf(const std::string& trainer) const {
+  if (auto it = in_force_.find(trainer); it != in_force_.end()) return it->second;
+  if (auto it = in_force_.find(""); it != in_force_.end()) return it->second;
+  return "";
+}
+
+std::string CreditDriver::CalibrationOf(const std::string& trainer) const {
+  auto it = calibration_of_.find(trainer);
+  return it == calibration_of_.end() ? "" : it->second;
+}
+
 void CreditDriver::Feed(const v1::Record& r, std::vector<v1::Record>* out) {
   if (!IsInput(r)) return;
   const int64_t t = r.written_session_ns();
@@ -158,8 +169,15 @@ void CreditDriver::Feed(const v1::Record& r, std::vector<v1::Record>* out) {
         }
       }
     } else if (engine_) {
+      const bool overridden =
+          overrides_.trainers.count(ks.trainer()) > 0 || overrides_.all.has_value();
       DelayKernel k = Choose(ks.trainer(), *recorded);
       in_force_[ks.trainer()] = k.Describe();
+      if (overridden || ks.calibration().empty()) {
+        calibration_of_.erase(ks.trainer());
+      } else {
+        calibration_of_[ks.trainer()] = ks.calibration();
+      }
       engine_->SetTrainer(ks.trainer(), std::move(k), weight);
     }
   }

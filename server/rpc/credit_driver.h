@@ -62,6 +62,12 @@ class CreditDriver {
 
   // Kernel descriptions in force (for replay specs).
   std::string Describe() const;
+  // The kernel a trainer is credited with now (canonical text): their own
+  // setting or override, else the session default's; "" before the default.
+  std::string KernelOf(const std::string& trainer) const;
+  // The calibration the trainer's recorded kernel in force came from ("" if
+  // none, or if an override replaced it).
+  std::string CalibrationOf(const std::string& trainer) const;
 
  private:
   void Emit(const EngineOutput& o, int64_t written_ns, std::vector<tickmark::v1::Record>* out);
@@ -79,6 +85,7 @@ class CreditDriver {
   };
   std::map<std::string, MappedEnd> last_end_;
   std::map<std::string, std::string> in_force_;  // trainer ("" default) -> description
+  std::map<std::string, std::string> calibration_of_;  // trainer -> recorded calibration id
 };
 
 }  // namespace tickmark::rpc

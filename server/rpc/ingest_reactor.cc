@@ -6,6 +6,8 @@
 
 #include "server/base/log.h"
 #include "server/base/strings.h"
+#include "server/rpc/calibration_builder.h"
+#include "server/rpc/credit_driver.h"
 #include "server/rpc/status.h"
 #include "server/rpc/validation.h"
 
@@ -23,6 +25,23 @@ constexpr int64_t kNever = std::numeric_limits<int64_t>::max();
 // How long a stream is not read after a message of it was refused by a rate
 // limit (common practice, no source: a short tarpit).
 constexpr Duration kRefusalPause = Duration::Millis(10);
+
+v1::Ack ErrorAck(uint64_t cseq, const absl::Status& s) {
+  v1::Ack ack;
+  ack.set_client_sequence(cseq);
+  ack.set_code(static_cast<int32_t>(s.code()));
+  ack.set_message(std::string(s.message()));
+  return ack;
+}
+
+// An ack for a record the ledger could not store for lack of space: the
+// client should keep the message and send it again later (see OnAck).
+void RetryableIfStoreFull(v1::Ack* ack) {
+  if (ack->code() == static_cast<int32_t>(absl::StatusCode::kResourceExhausted)) {
+    ack->set_code(static_cast<int32_t>(absl::StatusCode::kUnavailable));
+    ack->set_message(Cat(ack->message(), " (not stored; send it again later)"));
+  }
+}
 
 std::string BearerFromMetadata(const grpc::CallbackServerContext& ctx) {
   const auto& md = ctx.client_metadata();
@@ -313,6 +332,8 @@ void IngestReactor<Side>::HandleHello(const v1::Hello& hello) {
     return FinishNow(ToGrpc(
         absl::FailedPreconditionError(Cat("session ", principal_.session_id, " is closed"))));
   }
+  // Before anything this trainer sends can be credited.
+  if (Side::kRole == v1::ROLE_TRAINER) MaybeApplyCalibration();
 
   v1::Record r;
   r.set_written_session_ns(now.nanos());
@@ -520,15 +541,12 @@ void IngestReactor<Side>::AppendClient(v1::Record record) {
 
 template <typename Side>
 void IngestReactor<Side>::OnAck(v1::Ack ack, std::shared_ptr<const v1::Record> sent) {
-  if (ack.code() == static_cast<int32_t>(absl::StatusCode::kResourceExhausted)) {
-    // The ledger could not store it (disk full): a state the server leaves
-    // by itself, so the client should keep the message and send it again
-    // later, not drop it. UNAVAILABLE says exactly that ("retry the failing
-    // call"); RESOURCE_EXHAUSTED stays the answer to a client over its rate
-    // limit, whose message is dropped on purpose.
-    ack.set_code(static_cast<int32_t>(absl::StatusCode::kUnavailable));
-    ack.set_message(Cat(ack.message(), " (not stored; send it again later)"));
-  }
+  // The ledger could not store it (disk full): a state the server leaves by
+  // itself, so the client should keep the message and send it again later,
+  // not drop it. UNAVAILABLE says exactly that ("retry the failing call");
+  // RESOURCE_EXHAUSTED stays the answer to a client over its rate limit,
+  // whose message is dropped on purpose.
+  RetryableIfStoreFull(&ack);
   if (!ack.duplicate() || ack.code() != 0 || finished_) return DeliverAck(ack);
   // A resend: the stored original must carry the same content. Read it on
   // the pool (a ledger read), then come back to the strand.
@@ -621,8 +639,187 @@ void IngestReactor<Side>::FinishNow(const grpc::Status& status) {
   Finish(status);
 }
 
+template <typename Side>
+void IngestReactor<Side>::MaybeApplyCalibration() {
+  if (runtime_->pin_kernels() || runtime_->HasKernelFor(principal_.subject)) return;
+  ledger::Ledger* ledger = service_->hub()->ledger();
+  auto latest = ledger->LatestCalibration(principal_.subject);
+  if (!latest.ok()) {
+    TM_LOG(kWarning) << "trainer '" << principal_.subject
+                     << "': calibration look-up failed: " << latest.status().message();
+    return;
+  }
+  if (!latest->has_value()) return;
+  const v1::Calibration& c = (*latest)->calibration();
+  if (!KernelFromProto(c.kernel()).ok()) {
+    TM_LOG(kWarning) << "calibration " << c.id() << " holds no usable kernel; not applied";
+    return;
+  }
+  // Once per trainer per session, even with several streams saying hello.
+  if (!runtime_->ClaimAutoKernel(principal_.subject)) return;
+  v1::Record r;
+  r.set_written_session_ns(runtime_->Now().nanos());
+  v1::KernelSetting* ks = r.mutable_kernel();
+  ks->set_trainer(principal_.subject);
+  *ks->mutable_kernel() = c.kernel();
+  ks->set_weight(1.0);
+  ks->set_description(c.kernel_description());
+  ks->set_author("calibration");
+  ks->set_calibration(c.id());
+  runtime_->AppendRecord(std::move(r)).IgnoreError();
+  TM_LOG(kInfo) << "trainer '" << principal_.subject << "' in " << principal_.session_id
+                << ": kernel " << c.kernel_description() << " from calibration " << c.id();
+}
+
+template <typename Side>
+void IngestReactor<Side>::HandleCalibration(const v1::CalibrationMessage& m, SessionTime arrival) {
+  const LiveService::Options& opt = service_->options();
+  const uint64_t cseq = m.client_sequence();
+  if (absl::Status s = ValidateCalibration(m); !s.ok()) return Reject(cseq, s);
+  if (m.has_finish()) return StartCalibrationFinish(m);
+  const bool move = m.has_move();
+  const int64_t at = move ? m.move().shown_source_ns() : m.answer().event_source_ns();
+  // Mapped exactly like a feedback's event time.
+  absl::Status map_error;
+  auto [mapped, mapped_uncertainty] = Map(at, &map_error);
+  if (!map_error.ok()) return Reject(cseq, map_error);
+  const EventTimeVerdict v = JudgeEventTime(mapped, mapped_uncertainty, arrival, model_.ready(),
+                                            opt.event_future_tolerance, opt.limits);
+  if (!v.status.ok()) return Reject(cseq, v.status);
+  v1::Record r;
+  r.set_written_session_ns(arrival.nanos());
+  v1::CalibrationEvent* e = r.mutable_calibration_event();
+  e->set_client_id(client_.client_id());
+  e->set_client_sequence(cseq);
+  e->set_trainer(principal_.subject);
+  e->set_run(m.run());
+  if (move) {
+    e->set_kind(v1::CalibrationEvent::KIND_MOVE);
+    e->set_move(m.move().move());
+    e->set_approve(m.move().approve());
+    e->set_practice(m.move().practice());
+    e->set_detail(m.move().detail());
+  } else {
+    e->set_kind(v1::CalibrationEvent::KIND_ANSWER);
+    e->set_approve(m.answer().approve());
+    e->set_detail(m.answer().input());
+  }
+  e->set_at_source_ns(at);
+  e->set_at_session_ns(v.event.nanos());
+  e->set_uncertainty_ns(v.uncertainty.nanos());
+  e->set_arrival_session_ns(arrival.nanos());
+  AppendClient(std::move(r));
+}
+
+namespace {
+
+// The pool half of a calibration finish (see StartCalibrationFinish).
+// `answer` posts the result back to the stream.
+using CalibrationAnswerFn = std::function<void(std::optional<v1::Calibration>, v1::Ack)>;
+
+// A finish whose client key is stored at `sequence` already: the same
+// calibration again, or ALREADY_EXISTS if that key holds something else.
+void AnswerStoredCalibration(ledger::Ledger* ledger, const std::string& session,
+                             const CalibrationRequest& req, uint64_t sequence,
+                             const CalibrationAnswerFn& answer) {
+  auto stored = ledger->Read(session, sequence, 1);
+  if (!stored.ok()) return answer(std::nullopt, ErrorAck(req.client_sequence, stored.status()));
+  if (stored->empty() || !stored->front().has_calibration() ||
+      stored->front().calibration().run() != req.run) {
+    return answer(std::nullopt,
+                  ErrorAck(req.client_sequence,
+                           absl::AlreadyExistsError(Cat(
+                               "client_sequence ", req.client_sequence,
+                               " was used before with different content (not the finish of run '",
+                               req.run, "'); the new message was not stored"))));
+  }
+  v1::Ack ack;
+  ack.set_client_sequence(req.client_sequence);
+  ack.set_sequence(sequence);
+  ack.set_duplicate(true);
+  ack.set_message("duplicate: already stored");
+  answer(stored->front().calibration(), ack);
+}
+
+}  // namespace
+
+template <typename Side>
+void IngestReactor<Side>::StartCalibrationFinish(const v1::CalibrationMessage& m) {
+  ++pending_acks_;
+  CalibrationRequest req;
+  req.trainer = principal_.subject;
+  req.client_id = client_.client_id();
+  req.client_sequence = m.client_sequence();
+  req.run = m.run();
+  req.source_kind = client_.source_kind();
+  req.source_description = client_.source_description();
+  req.min_answers = m.finish().min_answers();
+  req.display_note = m.finish().display_note();
+  req.bootstrap_resamples = service_->options().calibration_resamples;
+  std::weak_ptr<IngestReactor> weak = this->shared_from_this();
+  const std::string session = principal_.session_id;
+  std::shared_ptr<SessionRuntime> runtime = runtime_;
+  ledger::Ledger* ledger = service_->hub()->ledger();
+  CalibrationAnswerFn answer = [weak](std::optional<v1::Calibration> c, v1::Ack ack) {
+    if (auto self = weak.lock()) {
+      self->Post([c = std::move(c), ack = std::move(ack)](IngestReactor& r) mutable {
+        r.DeliverCalibration(std::move(c), std::move(ack));
+      });
+    }
+  };
+  // Runs on the pool: ledger reads and the fit (a bootstrap of 1000
+  // refits) never run on a gRPC thread, the ledger thread or this strand.
+  auto work = [weak, session, runtime, ledger, req, answer]() mutable {
+    const uint64_t cseq = req.client_sequence;
+    auto found = ledger->FindClientSequence(session, req.client_id, cseq);
+    if (!found.ok()) return answer(std::nullopt, ErrorAck(cseq, found.status()));
+    if (found->has_value()) return AnswerStoredCalibration(ledger, session, req, **found, answer);
+    auto events = ledger->ReadCalibrationEvents(session, req.client_id, req.run);
+    if (!events.ok()) return answer(std::nullopt, ErrorAck(cseq, events.status()));
+    auto hex = RandomHex(4);
+    if (!hex.ok()) return answer(std::nullopt, ErrorAck(cseq, hex.status()));
+    req.id = "c-" + *hex;
+    auto built = BuildCalibration(*events, req);
+    if (!built.ok()) return answer(std::nullopt, ErrorAck(cseq, built.status()));
+    v1::Record r;
+    r.set_written_session_ns(runtime->Now().nanos());
+    *r.mutable_calibration() = *built;
+    auto calibration = std::make_shared<const v1::Calibration>(*std::move(built));
+    runtime->AppendClientRecord(
+        std::move(r), [weak, session, ledger, req, answer, calibration](const v1::Ack& ack) {
+          if (ack.code() != 0) return answer(std::nullopt, ack);
+          if (!ack.duplicate()) return answer(*calibration, ack);
+          // A copy of this finish (another stream) was stored first: send that.
+          if (auto self = weak.lock()) {
+            self->service_->pool().Submit([session, ledger, req, answer, seq = ack.sequence()] {
+              AnswerStoredCalibration(ledger, session, req, seq, answer);
+            });
+          }
+        });
+  };
+  // The run's moves and answers were appended before this finish (same
+  // stream, in order): once the barrier passes they are committed and
+  // readable. The barrier runs on the ledger thread, so it only submits.
+  ledger->Barrier([weak, work = std::move(work)]() mutable {
+    if (auto self = weak.lock()) self->service_->pool().Submit(std::move(work));
+  });
+}
+
+template <typename Side>
+void IngestReactor<Side>::DeliverCalibration(std::optional<v1::Calibration> calibration,
+                                             v1::Ack ack) {
+  RetryableIfStoreFull(&ack);
+  if (calibration && ack.code() == 0 && !finished_) {
+    v1::ServerMessage m;
+    *m.mutable_calibration() = *std::move(calibration);
+    out_.push_back(std::move(m));
+  }
+  DeliverAck(ack);  // after the calibration: the proto promises that order
+}
+
 template <>
 void IngestReactor<TrainerSide>::HandlePayload(const In& message, SessionTime arrival) {
+  if (message.has_calibration()) return HandleCalibration(message.calibration(), arrival);
   const v1::FeedbackMessage& f = message.feedback();
   const LiveService::Options& opt = service_->options();
   if (absl::Status s = ValidateFeedback(f, opt.limits); !s.ok()) {

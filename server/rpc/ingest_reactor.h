@@ -43,8 +43,12 @@ struct TrainerSide {
   static constexpr const char* kPayload = "feedback";
   static bool IsHello(const In& m) { return m.has_hello(); }
   static bool IsProbeReply(const In& m) { return m.has_probe_reply(); }
-  static bool IsPayload(const In& m) { return m.has_feedback(); }
-  static uint64_t Sequence(const In& m) { return m.feedback().client_sequence(); }
+  // Feedback, and the messages of a calibration run (moves, answers, finish).
+  static bool IsPayload(const In& m) { return m.has_feedback() || m.has_calibration(); }
+  static uint64_t Sequence(const In& m) {
+    return m.has_calibration() ? m.calibration().client_sequence()
+                               : m.feedback().client_sequence();
+  }
 };
 
 struct AgentSide {
@@ -101,6 +105,18 @@ class IngestReactor final : public grpc::ServerBidiReactor<grpc::ByteBuffer, grp
   void AddProbe(const ProbeTimestamps& ts, tickmark::v1::Record r);
   void ReleaseHeld();
   void HandlePayload(const In& message, SessionTime arrival);
+  // A calibration run (trainer streams): moves and answers are stored like
+  // feedback; a finish waits for the run's earlier events to be committed,
+  // fits the calibration on the pool and stores it (calibration_builder.h).
+  void HandleCalibration(const tickmark::v1::CalibrationMessage& m, SessionTime arrival);
+  void StartCalibrationFinish(const tickmark::v1::CalibrationMessage& m);
+  // Sends the fitted (or stored) calibration, if any, then the finish's Ack.
+  void DeliverCalibration(std::optional<tickmark::v1::Calibration> calibration,
+                          tickmark::v1::Ack ack);
+  // On a trainer's hello: gives the trainer their latest calibration's
+  // kernel in this session, unless the session pins kernels or the trainer
+  // has a kernel setting there already.
+  void MaybeApplyCalibration();
   void Tick();
   void OnAck(tickmark::v1::Ack ack, std::shared_ptr<const tickmark::v1::Record> sent);
   void DeliverAck(const tickmark::v1::Ack& ack);

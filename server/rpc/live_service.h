@@ -98,6 +98,8 @@ class LiveService final : public LiveServiceBase {
     Duration event_future_tolerance = Duration::Zero();
     // Threads that run stream work and the ledger look-ups streams need.
     int worker_threads = 4;
+    // Bootstrap resamples for a calibration's intervals (0: none).
+    int calibration_resamples = 1000;
     // Clock for rate limits and the hello timeout; null: the service's
     // monotonic clock. Tests drive it by hand.
     const MonotonicSource* limits_clock = nullptr;

@@ -33,7 +33,8 @@ SessionRuntime::SessionRuntime(const ledger::SessionRow& row, const MonotonicSou
     : id_(row.id),
       clock_(row.utc_anchor_ns, row.mono_anchor_ns, mono),
       ledger_(ledger),
-      open_(row.open) {}
+      open_(row.open),
+      pin_kernels_(row.pin_kernels) {}
 
 bool SessionRuntime::open() const {
   std::lock_guard<std::mutex> lock(mu_);
@@ -97,6 +98,9 @@ void SessionRuntime::AppendClientRecord(Record record, AckCallback done) {
   } else if (record.has_step()) {
     event_ns = record.step().start_session_ns();
     uncertainty_ns = record.step().uncertainty_ns();
+  } else if (record.has_calibration_event()) {
+    event_ns = record.calibration_event().at_session_ns();
+    uncertainty_ns = record.calibration_event().uncertainty_ns();
   }
 
   // Claim the key under the lock; every ledger call below is made without
@@ -231,7 +235,21 @@ std::string SessionRuntime::default_kernel() const {
   return default_kernel_;
 }
 
+bool SessionRuntime::HasKernelFor(const std::string& trainer) const {
+  std::lock_guard<std::mutex> lock(kernel_mu_);
+  return kernel_trainers_.count(trainer) > 0;
+}
+
+bool SessionRuntime::ClaimAutoKernel(const std::string& trainer) {
+  std::lock_guard<std::mutex> lock(kernel_mu_);
+  return kernel_trainers_.insert(trainer).second;
+}
+
 void SessionRuntime::NoteKernel(const Record& r) {
+  if (r.has_kernel() && !r.kernel().trainer().empty()) {
+    std::lock_guard<std::mutex> lock(kernel_mu_);
+    kernel_trainers_.insert(r.kernel().trainer());
+  }
   if (r.has_kernel() && r.kernel().trainer().empty()) {
     lateness_ns_.store(r.kernel().allowed_lateness_ns());
     std::lock_guard<std::mutex> lock(kernel_mu_);
@@ -403,7 +421,8 @@ std::shared_ptr<SessionRuntime> SessionHub::Find(const std::string& id) {
 
 absl::StatusOr<std::shared_ptr<SessionRuntime>> SessionHub::Create(const std::string& title,
                                                                    const std::string& study,
-                                                                   const std::string& kernel) {
+                                                                   const std::string& kernel,
+                                                                   bool pin_kernels) {
   DelayKernel k = options_.default_kernel;
   if (!kernel.empty()) {
     auto parsed = ParseKernel(kernel);
@@ -420,6 +439,7 @@ absl::StatusOr<std::shared_ptr<SessionRuntime>> SessionHub::Create(const std::st
   row.mono_anchor_ns = mono_->NowNanos();
   row.opened_session_ns = row.utc_anchor_ns;
   row.boot_id = boot_id_;
+  row.pin_kernels = pin_kernels;
   if (absl::Status s = ledger_->CreateSession(row); !s.ok()) return s;
   auto runtime = std::make_shared<SessionRuntime>(row, mono_, ledger_);
   {

@@ -103,6 +103,14 @@ class SessionRuntime {
   // The session default kernel's canonical text (its KernelSetting record's
   // description); empty until that record was seen.
   std::string default_kernel() const;
+  // Session.pin_kernels: no calibration is applied to trainers joining.
+  bool pin_kernels() const { return pin_kernels_; }
+  // Whether a KernelSetting for this trainer has been committed (or claimed
+  // by ClaimAutoKernel) in this session.
+  bool HasKernelFor(const std::string& trainer) const;
+  // Claims the one automatic (calibration) kernel setting of a trainer in
+  // this session: true once, and only while HasKernelFor is false.
+  bool ClaimAutoKernel(const std::string& trainer);
 
   // Feeds the credit engine with everything the ledger holds for this
   // session and writes the derived records that are missing (after a
@@ -161,6 +169,8 @@ class SessionRuntime {
   std::atomic<int64_t> lateness_ns_{0};  // from the session's default kernel record
   mutable std::mutex kernel_mu_;
   std::string default_kernel_;      // GUARDED_BY(kernel_mu_)
+  std::set<std::string> kernel_trainers_;  // GUARDED_BY(kernel_mu_): set or claimed
+  const bool pin_kernels_;
 
   std::mutex streams_mu_;
   std::set<StreamHandle*> streams_;  // GUARDED_BY(streams_mu_)
@@ -185,10 +195,12 @@ class SessionHub {
   // this never loads (loading replays the ledger into the credit engine).
   std::shared_ptr<SessionRuntime> Find(const std::string& id);
   // Creates and opens a session anchored to UTC now, with `kernel` (text
-  // form; empty: the server default) as its default delay kernel.
+  // form; empty: the server default) as its default delay kernel;
+  // `pin_kernels` as in SessionRuntime::pin_kernels.
   absl::StatusOr<std::shared_ptr<SessionRuntime>> Create(const std::string& title,
                                                          const std::string& study,
-                                                         const std::string& kernel = "");
+                                                         const std::string& kernel = "",
+                                                         bool pin_kernels = false);
   // Closes a session: records the event, ends its streams.
   absl::Status Close(const std::string& id);
   // Time on the server's own timeline (for tokens of no session).

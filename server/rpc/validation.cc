@@ -54,6 +54,53 @@ absl::Status ValidateFeedback(const v1::FeedbackMessage& f, const Limits& limits
   return absl::OkStatus();
 }
 
+bool IsValidRunId(std::string_view run) {
+  if (run.empty() || run.size() > 64) return false;
+  for (char c : run) {
+    const bool ok = (c >= 'a' && c <= 'z') || (c >= 'A' && c <= 'Z') || (c >= '0' && c <= '9') ||
+                    c == '.' || c == '_' || c == '-';
+    if (!ok) return false;
+  }
+  return true;
+}
+
+absl::Status ValidateCalibration(const v1::CalibrationMessage& m) {
+  if (m.client_sequence() == 0) return absl::InvalidArgumentError("client_sequence starts at 1");
+  if (!IsValidRunId(m.run())) {
+    return absl::InvalidArgumentError("calibration run must be 1-64 characters of [A-Za-z0-9._-]");
+  }
+  switch (m.body_case()) {
+    case v1::CalibrationMessage::kMove:
+      if (m.move().move() == 0) return absl::InvalidArgumentError("move numbers start at 1");
+      if (m.move().shown_source_ns() <= 0) {
+        return absl::InvalidArgumentError("shown_source_ns must be > 0");
+      }
+      if (m.move().detail().size() > 64) {
+        return absl::InvalidArgumentError("move detail over 64 bytes");
+      }
+      return absl::OkStatus();
+    case v1::CalibrationMessage::kAnswer:
+      if (m.answer().event_source_ns() <= 0) {
+        return absl::InvalidArgumentError("event_source_ns must be > 0");
+      }
+      if (m.answer().input().size() > 64) {
+        return absl::InvalidArgumentError("input label over 64 bytes");
+      }
+      return absl::OkStatus();
+    case v1::CalibrationMessage::kFinish:
+      if (m.finish().min_answers() > 100'000) {
+        return absl::InvalidArgumentError("min_answers must be at most 100000");
+      }
+      if (m.finish().display_note().size() > 1024) {
+        return absl::InvalidArgumentError("display_note over 1024 bytes");
+      }
+      return absl::OkStatus();
+    case v1::CalibrationMessage::BODY_NOT_SET:
+      break;
+  }
+  return absl::InvalidArgumentError("a calibration message needs a move, an answer or a finish");
+}
+
 absl::Status ValidateStep(const v1::StepMessage& s, const Limits& limits) {
   if (s.client_sequence() == 0) return absl::InvalidArgumentError("client_sequence starts at 1");
   if (s.start_agent_ns() <= 0) return absl::InvalidArgumentError("start_agent_ns must be > 0");
@@ -186,6 +233,20 @@ std::optional<std::string> DescribeContentMismatch(const v1::Record& stored,
       // Bitwise, so that a resent NaN-free vector compares exactly.
       if (a.features(i) != b.features(i)) return Cat("feature ", i);
     }
+    return std::nullopt;
+  }
+  if (stored.has_calibration_event()) {
+    const v1::CalibrationEvent& a = stored.calibration_event();
+    const v1::CalibrationEvent& b = resent.calibration_event();
+    if (a.run() != b.run()) return Cat("run '", b.run(), "' (stored: '", a.run(), "')");
+    if (a.kind() != b.kind()) return std::string("a move against an answer");
+    if (a.move() != b.move()) return Cat("move ", b.move(), " (stored: ", a.move(), ")");
+    if (a.at_source_ns() != b.at_source_ns()) {
+      return Cat("source time ", b.at_source_ns(), " (stored: ", a.at_source_ns(), ")");
+    }
+    if (a.approve() != b.approve()) return std::string("approve");
+    if (a.practice() != b.practice()) return std::string("practice");
+    if (a.detail() != b.detail()) return Cat("detail '", b.detail(), "' (stored: '", a.detail(), "')");
     return std::nullopt;
   }
   return std::nullopt;

@@ -32,6 +32,14 @@ absl::Status CheckTokensAgree(std::string_view hello_token, std::string_view met
 // The fields of one feedback message (not its time; see JudgeEventTime).
 absl::Status ValidateFeedback(const tickmark::v1::FeedbackMessage& f, const Limits& limits);
 
+// A calibration run id: 1-64 of [A-Za-z0-9._-].
+bool IsValidRunId(std::string_view run);
+
+// The fields of one calibration message (not its times; see JudgeEventTime):
+// client sequence, run id, one body; a move's number >= 1 and shown time
+// > 0; an answer's event time > 0; labels and the display note bounded.
+absl::Status ValidateCalibration(const tickmark::v1::CalibrationMessage& m);
+
 // The fields of one step message (not its time, not its order).
 absl::Status ValidateStep(const tickmark::v1::StepMessage& s, const Limits& limits);
 

@@ -71,6 +71,21 @@ class ForwardingLedger : public ledger::Ledger {
   uint64_t CommittedSequence(std::string_view session_id) override {
     return inner_->CommittedSequence(session_id);
   }
+  absl::StatusOr<std::vector<tickmark::v1::Record>> ReadCalibrationEvents(
+      std::string_view session_id, std::string_view client_id, std::string_view run) override {
+    return inner_->ReadCalibrationEvents(session_id, client_id, run);
+  }
+  absl::StatusOr<std::vector<ledger::CalibrationRow>> ListCalibrations(
+      std::string_view trainer) override {
+    return inner_->ListCalibrations(trainer);
+  }
+  absl::StatusOr<tickmark::v1::Record> GetCalibration(std::string_view id) override {
+    return inner_->GetCalibration(id);
+  }
+  absl::StatusOr<std::optional<tickmark::v1::Record>> LatestCalibration(
+      std::string_view trainer) override {
+    return inner_->LatestCalibration(trainer);
+  }
   absl::Status PutDerivedSet(std::string_view session_id, std::string_view name,
                              std::string_view spec,
                              const std::vector<tickmark::v1::Record>& records,

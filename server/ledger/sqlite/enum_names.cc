@@ -30,6 +30,18 @@ std::string SourceKindWord(tickmark::v1::SourceKind kind) {
   return Word(tickmark::v1::SourceKind_Name(kind), "SOURCE_KIND_");
 }
 
+tickmark::v1::SourceKind SourceKindFromWord(std::string_view word) {
+  std::string name = "SOURCE_KIND_";
+  for (char c : word) name += static_cast<char>(std::toupper(static_cast<unsigned char>(c)));
+  tickmark::v1::SourceKind kind = tickmark::v1::SOURCE_KIND_UNSPECIFIED;
+  if (!tickmark::v1::SourceKind_Parse(name, &kind)) return tickmark::v1::SOURCE_KIND_UNSPECIFIED;
+  return kind;
+}
+
+std::string CalibrationEventWord(tickmark::v1::CalibrationEvent::Kind kind) {
+  return Word(tickmark::v1::CalibrationEvent::Kind_Name(kind), "KIND_");
+}
+
 std::string ClientEventWord(tickmark::v1::ClientEvent::Kind kind) {
   return Word(tickmark::v1::ClientEvent::Kind_Name(kind), "KIND_");
 }

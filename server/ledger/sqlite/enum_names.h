@@ -17,6 +17,10 @@ std::string RoleWord(tickmark::v1::Role role);
 // ROLE_UNSPECIFIED for a word that names no role.
 tickmark::v1::Role RoleFromWord(std::string_view word);
 std::string SourceKindWord(tickmark::v1::SourceKind kind);
+// SOURCE_KIND_UNSPECIFIED for a word that names no source kind.
+tickmark::v1::SourceKind SourceKindFromWord(std::string_view word);
+// "move", "answer".
+std::string CalibrationEventWord(tickmark::v1::CalibrationEvent::Kind kind);
 std::string ClientEventWord(tickmark::v1::ClientEvent::Kind kind);
 std::string SessionEventWord(tickmark::v1::SessionEvent::Kind kind);
 

@@ -226,6 +226,55 @@ CREATE TABLE ledger_event (
   detail TEXT NOT NULL
 );
 )sql"},
+    {3, "calibration: calibration_event and calibration tables, session.pin_kernels, "
+        "kernel_setting.calibration",
+     R"sql(
+-- One row per CalibrationEvent record: a move shown by a calibration task or
+-- a trainer's answer (kind 'move' / 'answer'). move is 0 for answers;
+-- approve is the move's rule verdict or the answer's sign.
+CREATE TABLE calibration_event (
+  session_id         TEXT NOT NULL, seq INTEGER NOT NULL,
+  client_id          TEXT NOT NULL,
+  client_seq         INTEGER NOT NULL,
+  trainer            TEXT NOT NULL,
+  run                TEXT NOT NULL,
+  kind               TEXT NOT NULL CHECK (kind IN ('move', 'answer')),
+  move               INTEGER NOT NULL,
+  at_source_ns       INTEGER NOT NULL,
+  approve            INTEGER NOT NULL,
+  practice           INTEGER NOT NULL,
+  detail             TEXT NOT NULL,
+  at_session_ns      INTEGER NOT NULL,
+  uncertainty_ns     INTEGER NOT NULL,
+  arrival_session_ns INTEGER NOT NULL,
+  PRIMARY KEY (session_id, seq)
+) WITHOUT ROWID;
+CREATE INDEX calibration_event_by_run ON calibration_event (session_id, client_id, run, seq);
+
+-- One row per Calibration record, server-wide: a calibration belongs to the
+-- trainer pseudonym on this server, not only to the session it was measured
+-- in. The full record (every family's fit, the matches) is the body of the
+-- record (session_id, seq).
+CREATE TABLE calibration (
+  id                 TEXT PRIMARY KEY,
+  trainer            TEXT NOT NULL,
+  session_id         TEXT NOT NULL,
+  seq                INTEGER NOT NULL,
+  created_session_ns INTEGER NOT NULL,
+  family             TEXT NOT NULL,
+  kernel_description TEXT NOT NULL,
+  valid              INTEGER NOT NULL,
+  warning            INTEGER NOT NULL,
+  source_kind        TEXT NOT NULL
+);
+CREATE INDEX calibration_by_trainer ON calibration (trainer, created_session_ns);
+
+-- 1: trainers credit with the session's kernels only (no calibration is
+-- applied when a calibrated trainer joins).
+ALTER TABLE session ADD COLUMN pin_kernels INTEGER NOT NULL DEFAULT 0;
+-- The calibration a kernel setting came from ('' when none).
+ALTER TABLE kernel_setting ADD COLUMN calibration TEXT NOT NULL DEFAULT '';
+)sql"},
 };
 
 }  // namespace

@@ -23,13 +23,14 @@ SessionRow SessionFromRow(const Statement& q) {
   row.mono_anchor_ns = q.Int(7);
   row.boot_id = q.Text(8);
   row.last_sequence = static_cast<uint64_t>(q.Int(9));
+  row.pin_kernels = q.Int(10) != 0;
   return row;
 }
 
 constexpr const char* kSessionColumns =
     "id, title, study, state, opened_session_ns, closed_session_ns, utc_anchor_ns, "
     "mono_anchor_ns, boot_id, (SELECT COALESCE(MAX(seq), 0) FROM record r WHERE r.session_id = "
-    "session.id)";
+    "session.id), pin_kernels";
 
 TokenRow TokenFromRow(const Statement& q) {
   TokenRow t;
@@ -41,6 +42,31 @@ TokenRow TokenFromRow(const Statement& q) {
   t.issued_session_ns = q.Int(5);
   t.revoked = q.Int(6) != 0;
   return t;
+}
+
+// A record's body and hash from the current row (columns `body_col`, +1).
+absl::StatusOr<Record> RecordFromRow(const Statement& q, int body_col, std::string_view session_id) {
+  Record r;
+  if (!r.ParseFromString(q.Blob(body_col))) {
+    return absl::DataLossError(Cat("record body does not parse in session ", session_id));
+  }
+  r.set_hash(q.Blob(body_col + 1));
+  return r;
+}
+
+CalibrationRow CalibrationFromRow(const Statement& q) {
+  CalibrationRow c;
+  c.id = q.Text(0);
+  c.trainer = q.Text(1);
+  c.session_id = q.Text(2);
+  c.sequence = static_cast<uint64_t>(q.Int(3));
+  c.created_session_ns = q.Int(4);
+  c.family = q.Text(5);
+  c.kernel_description = q.Text(6);
+  c.valid = static_cast<uint32_t>(q.Int(7));
+  c.warning = q.Int(8) != 0;
+  c.source_kind = SourceKindFromWord(q.Text(9));
+  return c;
 }
 
 constexpr const char* kTokenColumns =
@@ -189,6 +215,73 @@ absl::StatusOr<RecordCounts> ReadConnection::Counts(std::string_view session_id)
   c.unmatched = static_cast<uint64_t>(q.Int(6));
   c.rejected_probes = static_cast<uint64_t>(q.Int(7));
   return c;
+}
+
+absl::StatusOr<std::vector<Record>> ReadConnection::ReadCalibrationEvents(
+    std::string_view session_id, std::string_view client_id, std::string_view run) {
+  std::lock_guard<std::mutex> lock(mu_);
+  if (db_ == nullptr) return absl::UnavailableError("ledger is closed");
+  Statement q(db_,
+              "SELECT r.body, r.hash FROM calibration_event e JOIN record r ON r.session_id = "
+              "e.session_id AND r.seq = e.seq WHERE e.session_id = ? AND e.client_id = ? AND "
+              "e.run = ? ORDER BY e.seq");
+  q.Bind(session_id).Bind(client_id).Bind(run);
+  std::vector<Record> out;
+  while (true) {
+    auto row = q.Step();
+    if (!row.ok()) return row.status();
+    if (!*row) break;
+    auto r = RecordFromRow(q, 0, session_id);
+    if (!r.ok()) return r.status();
+    out.push_back(*std::move(r));
+  }
+  return out;
+}
+
+absl::StatusOr<std::vector<CalibrationRow>> ReadConnection::ListCalibrations(
+    std::string_view trainer) {
+  std::lock_guard<std::mutex> lock(mu_);
+  if (db_ == nullptr) return absl::UnavailableError("ledger is closed");
+  Statement q(db_,
+              "SELECT id, trainer, session_id, seq, created_session_ns, family, "
+              "kernel_description, valid, warning, source_kind FROM calibration WHERE ?1 = '' OR "
+              "trainer = ?1 ORDER BY created_session_ns DESC, id DESC");
+  q.Bind(trainer);
+  std::vector<CalibrationRow> out;
+  while (true) {
+    auto row = q.Step();
+    if (!row.ok()) return row.status();
+    if (!*row) break;
+    out.push_back(CalibrationFromRow(q));
+  }
+  return out;
+}
+
+absl::StatusOr<Record> ReadConnection::GetCalibration(std::string_view id) {
+  std::lock_guard<std::mutex> lock(mu_);
+  if (db_ == nullptr) return absl::UnavailableError("ledger is closed");
+  Statement q(db_,
+              "SELECT r.body, r.hash, c.session_id FROM calibration c JOIN record r ON "
+              "r.session_id = c.session_id AND r.seq = c.seq WHERE c.id = ?");
+  auto row = q.Bind(id).Step();
+  if (!row.ok()) return row.status();
+  if (!*row) return absl::NotFoundError(Cat("no calibration '", id, "'"));
+  return RecordFromRow(q, 0, q.Text(2));
+}
+
+absl::StatusOr<std::optional<Record>> ReadConnection::LatestCalibration(std::string_view trainer) {
+  std::lock_guard<std::mutex> lock(mu_);
+  if (db_ == nullptr) return absl::UnavailableError("ledger is closed");
+  Statement q(db_,
+              "SELECT r.body, r.hash, c.session_id FROM calibration c JOIN record r ON "
+              "r.session_id = c.session_id AND r.seq = c.seq WHERE c.trainer = ? ORDER BY "
+              "c.created_session_ns DESC, c.id DESC LIMIT 1");
+  auto row = q.Bind(trainer).Step();
+  if (!row.ok()) return row.status();
+  if (!*row) return std::optional<Record>();
+  auto r = RecordFromRow(q, 0, q.Text(2));
+  if (!r.ok()) return r.status();
+  return std::optional<Record>(*std::move(r));
 }
 
 absl::StatusOr<TokenRow> ReadConnection::FindToken(std::string_view token_id) {

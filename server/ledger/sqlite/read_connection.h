@@ -40,6 +40,11 @@ class ReadConnection {
   absl::StatusOr<uint64_t> LastClientSequence(std::string_view session_id,
                                               std::string_view client_id);
   absl::StatusOr<RecordCounts> Counts(std::string_view session_id);
+  absl::StatusOr<std::vector<tickmark::v1::Record>> ReadCalibrationEvents(
+      std::string_view session_id, std::string_view client_id, std::string_view run);
+  absl::StatusOr<std::vector<CalibrationRow>> ListCalibrations(std::string_view trainer);
+  absl::StatusOr<tickmark::v1::Record> GetCalibration(std::string_view id);
+  absl::StatusOr<std::optional<tickmark::v1::Record>> LatestCalibration(std::string_view trainer);
 
   // Whether closing this connection may checkpoint the WAL (off while
   // writes fail for lack of space; see SqliteLedger).

@@ -508,7 +508,7 @@ absl::Status SqliteLedger::CreateSession(const SessionRow& row) {
   return RunSync([&row](sqlite3* db) {
     Statement q(db,
                 "INSERT INTO session (id, title, study, state, opened_session_ns, utc_anchor_ns, "
-                "mono_anchor_ns, boot_id) VALUES (?, ?, ?, 'open', ?, ?, ?, ?)");
+                "mono_anchor_ns, boot_id, pin_kernels) VALUES (?, ?, ?, 'open', ?, ?, ?, ?, ?)");
     return q.Bind(row.id)
         .Bind(row.title)
         .Bind(row.study)
@@ -516,6 +516,7 @@ absl::Status SqliteLedger::CreateSession(const SessionRow& row) {
         .Bind(row.utc_anchor_ns)
         .Bind(row.mono_anchor_ns)
         .Bind(row.boot_id)
+        .Bind(row.pin_kernels)
         .Run();
   });
 }
@@ -604,6 +605,25 @@ absl::StatusOr<uint64_t> SqliteLedger::LastClientSequence(std::string_view sessi
 
 absl::StatusOr<RecordCounts> SqliteLedger::Counts(std::string_view session_id) {
   return reads_->Counts(session_id);
+}
+
+absl::StatusOr<std::vector<tickmark::v1::Record>> SqliteLedger::ReadCalibrationEvents(
+    std::string_view session_id, std::string_view client_id, std::string_view run) {
+  return reads_->ReadCalibrationEvents(session_id, client_id, run);
+}
+
+absl::StatusOr<std::vector<CalibrationRow>> SqliteLedger::ListCalibrations(
+    std::string_view trainer) {
+  return reads_->ListCalibrations(trainer);
+}
+
+absl::StatusOr<tickmark::v1::Record> SqliteLedger::GetCalibration(std::string_view id) {
+  return reads_->GetCalibration(id);
+}
+
+absl::StatusOr<std::optional<tickmark::v1::Record>> SqliteLedger::LatestCalibration(
+    std::string_view trainer) {
+  return reads_->LatestCalibration(trainer);
 }
 
 absl::Status SqliteLedger::PutDerivedSet(std::string_view session_id, std::string_view name,

@@ -116,6 +116,12 @@ class SqliteLedger final : public Ledger {
                                               std::string_view client_id) override;
   absl::StatusOr<RecordCounts> Counts(std::string_view session_id) override;
   uint64_t CommittedSequence(std::string_view session_id) override;
+  absl::StatusOr<std::vector<tickmark::v1::Record>> ReadCalibrationEvents(
+      std::string_view session_id, std::string_view client_id, std::string_view run) override;
+  absl::StatusOr<std::vector<CalibrationRow>> ListCalibrations(std::string_view trainer) override;
+  absl::StatusOr<tickmark::v1::Record> GetCalibration(std::string_view id) override;
+  absl::StatusOr<std::optional<tickmark::v1::Record>> LatestCalibration(
+      std::string_view trainer) override;
   absl::Status PutDerivedSet(std::string_view session_id, std::string_view name,
                              std::string_view spec,
                              const std::vector<tickmark::v1::Record>& records,

@@ -173,9 +173,31 @@ absl::Status TypedTables::Insert(const Record& r) {
       return InsertDerived("live", seq, r);
     case Record::kKernel: {
       const auto& k = r.kernel();
-      return Prepared("INSERT INTO kernel_setting VALUES (?,?,?,?,?,?)")
+      return Prepared(
+                 "INSERT INTO kernel_setting (session_id, seq, trainer, description, weight, "
+                 "author, calibration) VALUES (?,?,?,?,?,?,?)")
           .Bind(sid).Bind(seq).Bind(k.trainer()).Bind(k.description()).Bind(k.weight())
-          .Bind(k.author())
+          .Bind(k.author()).Bind(k.calibration())
+          .Run();
+    }
+    case Record::kCalibrationEvent: {
+      const auto& e = r.calibration_event();
+      return Prepared("INSERT INTO calibration_event VALUES (?,?,?,?,?,?,?,?,?,?,?,?,?,?,?)")
+          .Bind(sid).Bind(seq).Bind(e.client_id()).Bind(e.client_sequence()).Bind(e.trainer())
+          .Bind(e.run()).Bind(CalibrationEventWord(e.kind())).Bind(static_cast<int64_t>(e.move()))
+          .Bind(e.at_source_ns()).Bind(e.approve()).Bind(e.practice()).Bind(e.detail())
+          .Bind(e.at_session_ns()).Bind(e.uncertainty_ns()).Bind(e.arrival_session_ns())
+          .Run();
+    }
+    case Record::kCalibration: {
+      const auto& c = r.calibration();
+      const std::string family =
+          c.chosen() < static_cast<uint32_t>(c.fits_size()) ? c.fits(static_cast<int>(c.chosen())).family()
+                                                            : std::string();
+      return Prepared("INSERT INTO calibration VALUES (?,?,?,?,?,?,?,?,?,?)")
+          .Bind(c.id()).Bind(c.trainer()).Bind(sid).Bind(seq).Bind(r.written_session_ns())
+          .Bind(family).Bind(c.kernel_description()).Bind(static_cast<int64_t>(c.valid()))
+          .Bind(c.warnings_size() > 0).Bind(SourceKindWord(c.source_kind()))
           .Run();
     }
     case Record::kSessionEvent: {
