@@ -2,6 +2,7 @@
 // (docs/calibration.md). `new` prepares a calibration run, `show` prints the
 // fit table and can draw the fits (plot/calibration_plot.h), `apply` sets a
 // trainer's kernel in a session to a calibration's.
+#include <algorithm>
 #include <cmath>
 #include <cstdio>
 #include <fstream>
@@ -47,6 +48,20 @@ std::string Pad(const std::string& s, size_t width, bool right = false) {
   return right ? fill + s : s + fill;
 }
 
+// A kernel's text for a table: an empirical kernel's counts (hundreds of
+// numbers for a mixture fit) become their number; --json shows them all.
+std::string ShortKernel(const std::string& description) {
+  const std::string open = "counts=[";
+  const size_t begin = description.find(open);
+  if (begin == std::string::npos) return description;
+  const size_t end = description.find(']', begin);
+  if (end == std::string::npos) return description;
+  const std::string counts = description.substr(begin + open.size(), end - begin - open.size());
+  const size_t bins = counts.empty() ? 0 : 1 + static_cast<size_t>(std::count(counts.begin(), counts.end(), ','));
+  return description.substr(0, begin) + "counts=<" + std::to_string(bins) + " bins>" +
+         description.substr(end + 1);
+}
+
 // Writes the calibration's plot to `path`; prints why on failure.
 bool WritePlot(const v1::Calibration& cal, const std::string& path) {
   std::string note;
@@ -84,7 +99,8 @@ void PrintCalibration(const v1::Calibration& c) {
             << ", double " << c.double_answers() << ", stray " << c.stray() << ", practice "
             << c.practice_answers() << ", missed " << c.missed() << " (of " << c.moves()
             << " moves; " << c.min_answers() << " valid wanted)\n"
-            << "kernel       " << (c.kernel_description().empty() ? "-" : c.kernel_description())
+            << "kernel       "
+            << (c.kernel_description().empty() ? "-" : ShortKernel(c.kernel_description()))
             << "\n";
   if (c.chosen() < static_cast<uint32_t>(c.fits_size())) {
     const auto& f = c.fits(static_cast<int>(c.chosen()));
@@ -114,7 +130,7 @@ void PrintCalibration(const v1::Calibration& c) {
     std::cout << Pad(Fmt("%.2f", f.log_likelihood()), 11, true) << Pad(Fmt("%.2f", f.aic()), 10, true)
               << Pad(Fmt("%.2f", f.aic() - best), 8, true) << Pad(Fmt("%.3f", f.ks_distance()), 7, true)
               << Pad(Fmt("%.3f", f.mean_s()), 9, true) << Pad(Fmt("%.3f", f.p90_s()), 8, true) << "  "
-              << f.kernel_description() << "\n";
+              << ShortKernel(f.kernel_description()) << "\n";
   }
   std::cout << "(* chosen: lowest AIC; KS above " << Fmt("%.3g", c.ks_threshold())
             << " is called a poor fit)\n";
@@ -203,7 +219,8 @@ void AddList(CommandTable& table, CLI::App* group) {
                 std::cout << Pad(c.id(), 13) << Pad(c.trainer(), 16)
                           << Pad(FormatUtc(c.created_session_ns()), 28) << Pad(c.family(), 19)
                           << Pad(std::to_string(c.valid()), 6, true) << "  "
-                          << Pad(c.warning() ? "yes" : "-", 6) << c.kernel_description() << "\n";
+                          << Pad(c.warning() ? "yes" : "-", 6) << ShortKernel(c.kernel_description())
+                          << "\n";
               }
               if (r.calibrations().empty()) std::cout << "(no calibrations)\n";
               return kExitOk;

@@ -30,6 +30,8 @@ def test_demo_calibrates_then_compares_default_and_calibrated_kernels(tmp_path):
     values = [float(v) for v in row.split()[2:]]
     assert len(values) == 2 and all(0 <= v <= 1 for v in values)
     assert any(line.startswith("greedy dock success") for line in out.splitlines())
+    learned = [line for line in out.splitlines() if line.startswith("  from ")]
+    assert learned and all(len(line.split()[-2:]) == 2 for line in learned)
 
 
 def test_compare_reads_precision_of_each_derived_set_from_a_ledger(tmp_path):

@@ -8,8 +8,9 @@ stored with other kernels) it reads the credit rows from the ledger file
                     simulated trainer judged (its feedback's "judged:<step id>"
                     input; simulation only, no real trainer says this),
   dock success      the demo's approval model trained offline from that
-                    set's credit alone, its greedy policy evaluated on the
-                    same seeded episodes (model.evaluate).
+                    set's credit alone (from its first feedback, then all),
+                    its greedy policy evaluated on the same seeded episodes
+                    (model.evaluate).
 
     python3 -m tickmark.demo.compare --ledger DIR/tickmark.db --session s-... \\
         --set default=default-kernel --set calibrated=calibrated
@@ -23,6 +24,9 @@ import sqlite3
 import sys
 
 from tickmark.demo import model
+
+# Feedback counts at which the learning outcome is shown (and at all feedback).
+CURVE = (20, 40, 80)
 
 
 def analyse(db: sqlite3.Connection, session: str, derived_set: str) -> dict:
@@ -51,20 +55,25 @@ def analyse(db: sqlite3.Connection, session: str, derived_set: str) -> dict:
         if fseq in feedback and feedback[fseq][0] == step_id:
             on_target += credit
         shares.setdefault(fseq, []).append((sseq, credit))
-    learned = model.ApprovalModel()
-    for fseq, parts in shares.items():
-        if fseq not in feedback:
-            continue
-        keys = [(model.key_of(*steps[s]), c) for s, c in parts if s in steps]
-        learned.add(feedback[fseq][1], keys)
-    learned.fit()
+    # What a rover learns from this set: the model trained on the first k
+    # feedback (in ledger order), for a few k, then on all of it.
+    order = sorted(f for f in shares if f in feedback)
+    curve = []
+    for k in [k for k in CURVE if k < len(order)] + [len(order)]:
+        learned = model.ApprovalModel()
+        for fseq in order[:k]:
+            keys = [(model.key_of(*steps[s]), c) for s, c in shares[fseq] if s in steps]
+            learned.add(feedback[fseq][1], keys)
+        learned.fit()
+        curve.append((k, model.evaluate(lambda s, r: learned.greedy(s, r))))
     return {
         "set": derived_set,
         "kernels": sorted(kernels),
         "credits": len([c for parts in shares.values() for c in parts]),
         "feedback_credited": len(shares),
         "credit_precision": on_target / total if total > 0 else float("nan"),
-        "dock_success": model.evaluate(lambda s, r: learned.greedy(s, r)),
+        "dock_success": curve[-1][1],
+        "curve": curve,
     }
 
 
@@ -72,13 +81,19 @@ def table(results: dict) -> str:
     """The side-by-side text: one column per label set."""
     names = list(results)
     width = max(14, *(len(n) + 2 for n in names))
+    first = results[names[0]]
     rows = [("", names),
             ("credit precision", [f"{results[n]['credit_precision']:.2f}" for n in names]),
-            ("greedy dock success", [f"{100 * results[n]['dock_success']:.0f}%" for n in names]),
-            ("feedback credited", [str(results[n]["feedback_credited"]) for n in names])]
-    lines = ["".join([f"{label:<22}"] + [f"{v:>{width}}" for v in values]) for label, values in rows]
+            ("greedy dock success", ["" for _ in names])]
+    for k, _ in first["curve"]:
+        label = f"  from all {k} feedback" if k == first["feedback_credited"] else \
+            f"  from first {k} feedback"
+        rows.append((label, [f"{100 * dict(results[n]['curve']).get(k, float('nan')):.0f}%"
+                             for n in names]))
+    lines = ["".join([f"{label:<26}"] + [f"{v:>{width}}" for v in values]).rstrip()
+             for label, values in rows]
     for n in names:
-        lines.append(f"{'kernel, ' + n:<22}  " + "; ".join(results[n]["kernels"] or ["-"]))
+        lines.append(f"{'kernel, ' + n:<26}" + "; ".join(results[n]["kernels"] or ["-"]))
     return "\n".join(lines)
 
 
