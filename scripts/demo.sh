@@ -110,8 +110,9 @@ say "Replaying the session: the default kernel for everyone, then each trainer's
 say "Default kernel vs calibrated kernel: the same feedback on the same steps"
 $PY -m tickmark.demo.compare --ledger "$DIR/tickmark.db" --session "$SESSION" \
   --set "default kernel=default-kernel" --set "calibrated=calibrated" --json "$DIR/compare.json"
-echo "(credit precision: share of credit on the step the trainer judged; greedy dock success:"
-echo " the approval model trained offline from that label set alone, 100 seeded episodes)"
+echo "(credit precision: the share of credit on the step the trainer judged; greedy dock success:"
+echo " the rover's approval model trained offline from that label set alone, from its first"
+echo " feedback and from all of it, its greedy policy on 100 seeded episodes)"
 
 say "Files"
 echo "plot:    $DIR/dock-rover.png"
