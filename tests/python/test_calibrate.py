@@ -158,3 +158,17 @@ def test_calibrate_new_run_show_list_apply_and_pin(server, tmp_path):
     pinned_id = pinned.split()[1]
     assert "kernels    pinned" in tm(server, "session", "show", pinned_id).stdout
     assert "pinned" not in tm(server, "session", "show", session).stdout
+
+
+def test_a_run_with_too_few_answers_raises_calibration_failed(server, tmp_path):
+    token = tmp_path / "ben.token"
+    tm(server, "calibrate", "new", "--trainer", "ben", "--token-out", str(token))
+    with tickmark.CalibrationRun(server.address, token_file=str(token)) as run:
+        shown = run.clock() - 1_000_000_000  # a second ago: both times are in the past
+        run.move(True, shown_ns=shown)
+        run.answer(True, at_ns=shown + 400_000_000)
+        with pytest.raises(tickmark.CalibrationFailed) as failed:
+            run.finish()
+    assert failed.value.code != 0 and failed.value.message
+    listed = tm(server, "calibrate", "list", "--trainer", "ben").stdout
+    assert "(no calibrations)" in listed
