@@ -2,6 +2,8 @@
 // (docs/calibration.md). `new` prepares a calibration run, `show` prints the
 // fit table and can draw the fits (plot/calibration_plot.h), `apply` sets a
 // trainer's kernel in a session to a calibration's.
+#include <google/protobuf/util/json_util.h>
+
 #include <algorithm>
 #include <cmath>
 #include <cstdio>
@@ -9,8 +11,6 @@
 #include <iostream>
 #include <memory>
 #include <sstream>
-
-#include <google/protobuf/util/json_util.h>
 
 #include "clients/cli/commands.h"
 #include "clients/cli/output.h"
@@ -46,20 +46,6 @@ std::string Pad(const std::string& s, size_t width, bool right = false) {
   if (cols >= width) return s;
   const std::string fill(width - cols, ' ');
   return right ? fill + s : s + fill;
-}
-
-// A kernel's text for a table: an empirical kernel's counts (hundreds of
-// numbers for a mixture fit) become their number; --json shows them all.
-std::string ShortKernel(const std::string& description) {
-  const std::string open = "counts=[";
-  const size_t begin = description.find(open);
-  if (begin == std::string::npos) return description;
-  const size_t end = description.find(']', begin);
-  if (end == std::string::npos) return description;
-  const std::string counts = description.substr(begin + open.size(), end - begin - open.size());
-  const size_t bins = counts.empty() ? 0 : 1 + static_cast<size_t>(std::count(counts.begin(), counts.end(), ','));
-  return description.substr(0, begin) + "counts=<" + std::to_string(bins) + " bins>" +
-         description.substr(end + 1);
 }
 
 // Writes the calibration's plot to `path`; prints why on failure.
@@ -100,7 +86,7 @@ void PrintCalibration(const v1::Calibration& c) {
             << c.practice_answers() << ", missed " << c.missed() << " (of " << c.moves()
             << " moves; " << c.min_answers() << " valid wanted)\n"
             << "kernel       "
-            << (c.kernel_description().empty() ? "-" : ShortKernel(c.kernel_description()))
+            << (c.kernel_description().empty() ? "-" : ShortKernelText(c.kernel_description()))
             << "\n";
   if (c.chosen() < static_cast<uint32_t>(c.fits_size())) {
     const auto& f = c.fits(static_cast<int>(c.chosen()));
@@ -115,7 +101,8 @@ void PrintCalibration(const v1::Calibration& c) {
 
   // The fit table: chosen marked '*', ΔAIC against the chosen (lowest) AIC.
   double best = 0;
-  if (c.chosen() < static_cast<uint32_t>(c.fits_size())) best = c.fits(static_cast<int>(c.chosen())).aic();
+  if (c.chosen() < static_cast<uint32_t>(c.fits_size()))
+    best = c.fits(static_cast<int>(c.chosen())).aic();
   std::cout << Pad("  FAMILY", 21) << Pad("K", 3, true) << Pad("LOG-LIK", 11, true)
             << Pad("AIC", 10, true) << Pad("ΔAIC", 8, true) << Pad("KS", 7, true)
             << Pad("MEAN s", 9, true) << Pad("P90 s", 8, true) << "  KERNEL\n";
@@ -127,10 +114,11 @@ void PrintCalibration(const v1::Calibration& c) {
       std::cout << "  did not fit: " << f.error() << "\n";
       continue;
     }
-    std::cout << Pad(Fmt("%.2f", f.log_likelihood()), 11, true) << Pad(Fmt("%.2f", f.aic()), 10, true)
-              << Pad(Fmt("%.2f", f.aic() - best), 8, true) << Pad(Fmt("%.3f", f.ks_distance()), 7, true)
-              << Pad(Fmt("%.3f", f.mean_s()), 9, true) << Pad(Fmt("%.3f", f.p90_s()), 8, true) << "  "
-              << ShortKernel(f.kernel_description()) << "\n";
+    std::cout << Pad(Fmt("%.2f", f.log_likelihood()), 11, true)
+              << Pad(Fmt("%.2f", f.aic()), 10, true) << Pad(Fmt("%.2f", f.aic() - best), 8, true)
+              << Pad(Fmt("%.3f", f.ks_distance()), 7, true) << Pad(Fmt("%.3f", f.mean_s()), 9, true)
+              << Pad(Fmt("%.3f", f.p90_s()), 8, true) << "  "
+              << ShortKernelText(f.kernel_description()) << "\n";
   }
   std::cout << "(* chosen: lowest AIC; KS above " << Fmt("%.3g", c.ks_threshold())
             << " is called a poor fit)\n";
@@ -207,8 +195,8 @@ void AddNew(CommandTable& table, CLI::App* group) {
 
 void AddList(CommandTable& table, CLI::App* group) {
   auto req = std::make_shared<v1::ListCalibrationsRequest>();
-  CLI::App* cmd = table.AddCommand(
-      group, "list", "Lists calibrations, newest first.", [&table, req] {
+  CLI::App* cmd =
+      table.AddCommand(group, "list", "Lists calibrations, newest first.", [&table, req] {
         return CallAdmin<v1::ListCalibrationsRequest, v1::ListCalibrationsResponse>(
             table.common(), &Admin::ListCalibrations, *req,
             [](const v1::ListCalibrationsResponse& r) {
@@ -219,8 +207,8 @@ void AddList(CommandTable& table, CLI::App* group) {
                 std::cout << Pad(c.id(), 13) << Pad(c.trainer(), 16)
                           << Pad(FormatUtc(c.created_session_ns()), 28) << Pad(c.family(), 19)
                           << Pad(std::to_string(c.valid()), 6, true) << "  "
-                          << Pad(c.warning() ? "yes" : "-", 6) << ShortKernel(c.kernel_description())
-                          << "\n";
+                          << Pad(c.warning() ? "yes" : "-", 6)
+                          << ShortKernelText(c.kernel_description()) << "\n";
               }
               if (r.calibrations().empty()) std::cout << "(no calibrations)\n";
               return kExitOk;
@@ -276,8 +264,8 @@ void AddPlot(CommandTable& table, CLI::App* group) {
   };
   auto f = std::make_shared<Flags>();
   CLI::App* cmd = table.AddCommand(
-      group, "plot",
-      "Draws a calibration saved with 'calibrate show --json' (no server needed).", [f] {
+      group, "plot", "Draws a calibration saved with 'calibrate show --json' (no server needed).",
+      [f] {
         std::ifstream in(f->in);
         std::stringstream text;
         text << in.rdbuf();
@@ -333,8 +321,8 @@ void AddApply(CommandTable& table, CLI::App* group) {
 }  // namespace
 
 void AddCalibrateCommands(CommandTable& table) {
-  CLI::App* group = table.AddGroup(
-      "calibrate", "measure a trainer's reaction delays and fit their delay kernel");
+  CLI::App* group =
+      table.AddGroup("calibrate", "measure a trainer's reaction delays and fit their delay kernel");
   AddNew(table, group);
   AddList(table, group);
   AddShow(table, group);

@@ -7,6 +7,7 @@
 #include <sstream>
 
 #include "clients/cli/commands.h"
+#include "clients/cli/output.h"
 
 namespace tickmark::cli {
 namespace {
@@ -67,7 +68,7 @@ int RunReplay(const CommonFlags& common, ReplayFlags& f) {
                                              result.trainer_kernels().end());
   for (const auto& [trainer, kernel] : kernels) {
     auto cal = result.trainer_calibrations().find(trainer);
-    std::cout << "trainer " << trainer << ": " << kernel;
+    std::cout << "trainer " << trainer << ": " << ShortKernelText(kernel);
     if (cal != result.trainer_calibrations().end() && !cal->second.empty()) {
       std::cout << " (calibration " << cal->second << ")";
     } else if (f.req.calibrated()) {

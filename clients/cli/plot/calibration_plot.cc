@@ -187,9 +187,8 @@ Canvas DrawCalibration(const v1::Calibration& cal, std::string* error) {
     if (curves[static_cast<size_t>(i)].empty()) continue;
     char daic[32];
     std::snprintf(daic, sizeof daic, "%.1f", cal.fits(i).aic() - best_aic);
-    entries.push_back({cal.fits(i).family() + (i == chosen ? " (chosen)" : "") +
-                           "  dAIC " + daic,
-                       i});
+    entries.push_back(
+        {cal.fits(i).family() + (i == chosen ? " (chosen)" : "") + "  dAIC " + daic, i});
   }
   int text_w = 0;
   for (const auto& e : entries) text_w = std::max(text_w, Canvas::TextWidth(e.first));

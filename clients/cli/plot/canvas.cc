@@ -31,7 +31,8 @@ Canvas::Canvas(int width, int height, Rgb background)
 
 void Canvas::Set(int x, int y, Rgb c) {
   if (x < 0 || y < 0 || x >= width_ || y >= height_) return;
-  const size_t i = (static_cast<size_t>(y) * static_cast<size_t>(width_) + static_cast<size_t>(x)) * 3;
+  const size_t i =
+      (static_cast<size_t>(y) * static_cast<size_t>(width_) + static_cast<size_t>(x)) * 3;
   rgb_[i] = c.r;
   rgb_[i + 1] = c.g;
   rgb_[i + 2] = c.b;
@@ -39,7 +40,8 @@ void Canvas::Set(int x, int y, Rgb c) {
 
 Rgb Canvas::Get(int x, int y) const {
   if (x < 0 || y < 0 || x >= width_ || y >= height_) return {};
-  const size_t i = (static_cast<size_t>(y) * static_cast<size_t>(width_) + static_cast<size_t>(x)) * 3;
+  const size_t i =
+      (static_cast<size_t>(y) * static_cast<size_t>(width_) + static_cast<size_t>(x)) * 3;
   return {rgb_[i], rgb_[i + 1], rgb_[i + 2]};
 }
 
@@ -66,7 +68,8 @@ void Canvas::Line(double x0, double y0, double x1, double y1, Rgb c, int thickne
   x1 = std::clamp(x1, -lim, lim);
   y0 = std::clamp(y0, -lim, lim);
   y1 = std::clamp(y1, -lim, lim);
-  const int steps = static_cast<int>(std::ceil(std::max(std::fabs(x1 - x0), std::fabs(y1 - y0)))) + 1;
+  const int steps =
+      static_cast<int>(std::ceil(std::max(std::fabs(x1 - x0), std::fabs(y1 - y0)))) + 1;
   const int lo = -(thickness - 1) / 2, hi = thickness / 2;
   for (int i = 0; i <= steps; ++i) {
     const double t = static_cast<double>(i) / steps;

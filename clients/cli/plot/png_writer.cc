@@ -57,11 +57,11 @@ std::string EncodePng(uint32_t width, uint32_t height, const std::vector<uint8_t
   std::string header;
   PutU32(&header, width);
   PutU32(&header, height);
-  header.push_back(8);     // bit depth
-  header.push_back(2);     // colour type: truecolour (RGB)
-  header.push_back(0);     // compression: deflate
-  header.push_back(0);     // filter method 0
-  header.push_back(0);     // no interlace
+  header.push_back(8);  // bit depth
+  header.push_back(2);  // colour type: truecolour (RGB)
+  header.push_back(0);  // compression: deflate
+  header.push_back(0);  // filter method 0
+  header.push_back(0);  // no interlace
   PutChunk(&out, "IHDR", header);
   PutChunk(&out, "IDAT", packed);
   PutChunk(&out, "IEND", "");
