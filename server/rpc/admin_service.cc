@@ -637,7 +637,11 @@ absl::Status RunReplay(SessionHub* hub, const v1::ReplayRequest& req, ReplayReac
       (*cmp.mutable_trainer_calibrations())[trainer] = c;
     }
   }
-  const std::string spec = Cat("replay of sequences 1..", total, " with ", driver.Describe());
+  std::string spec = Cat("replay of sequences 1..", total, " with ", driver.Describe());
+  if (!calibration_of.empty()) {
+    spec += "; calibrated:";
+    for (const auto& [trainer, id] : calibration_of) spec += Cat(" ", trainer, "=", id);
+  }
   if (absl::Status s =
           ledger->PutDerivedSet(req.session_id(), req.name(), spec, derived, req.overwrite());
       !s.ok()) {

@@ -59,9 +59,9 @@ absl::StatusOr<v1::Calibration> BuildCalibration(const std::vector<v1::Record>& 
   std::string error;
   auto report = FitDelays(m.delays_seconds, options, &error);
   if (!report) {
-    return absl::FailedPreconditionError(
-        Cat("run '", request.run, "': no delay family fits its ", m.valid, " valid delays (",
-            error, "): nothing stored"));
+    return absl::FailedPreconditionError(Cat("run '", request.run, "': no delay family fits its ",
+                                             m.valid, " valid delays (", error,
+                                             "): nothing stored"));
   }
 
   v1::Calibration c;
@@ -126,8 +126,8 @@ absl::StatusOr<v1::Calibration> BuildCalibration(const std::vector<v1::Record>& 
   if (report->poor_fit) {
     const FamilyFit& chosen = report->fits[report->chosen];
     c.add_warnings(Cat("the chosen family (", DelayFamilyName(chosen.family),
-                       ") fits poorly: Kolmogorov-Smirnov distance ", chosen.ks_distance,
-                       " above ", report->ks_threshold));
+                       ") fits poorly: Kolmogorov-Smirnov distance ", chosen.ks_distance, " above ",
+                       report->ks_threshold));
   }
   c.set_display_note(request.display_note);
   return c;

@@ -2,6 +2,7 @@
 
 #include <openssl/rand.h>
 
+#include <chrono>
 #include <limits>
 
 #include "server/base/log.h"
@@ -767,8 +768,9 @@ void IngestReactor<Side>::StartCalibrationFinish(const v1::CalibrationMessage& m
       });
     }
   };
-  // Runs on the pool: ledger reads and the fit (a bootstrap of 1000
-  // refits) never run on a gRPC thread, the ledger thread or this strand.
+  // Runs on the fit pool: ledger reads and the fit (a bootstrap of 1000
+  // refits, seconds for the ex-Gaussian) never run on a gRPC thread, the
+  // ledger thread, this strand or the workers other streams share.
   auto work = [weak, session, runtime, ledger, req, answer]() mutable {
     const uint64_t cseq = req.client_sequence;
     auto found = ledger->FindClientSequence(session, req.client_id, cseq);
@@ -779,8 +781,15 @@ void IngestReactor<Side>::StartCalibrationFinish(const v1::CalibrationMessage& m
     auto hex = RandomHex(4);
     if (!hex.ok()) return answer(std::nullopt, ErrorAck(cseq, hex.status()));
     req.id = "c-" + *hex;
+    const auto fit_start = std::chrono::steady_clock::now();
     auto built = BuildCalibration(*events, req);
+    const auto fit_ms = std::chrono::duration_cast<std::chrono::milliseconds>(
+                            std::chrono::steady_clock::now() - fit_start)
+                            .count();
     if (!built.ok()) return answer(std::nullopt, ErrorAck(cseq, built.status()));
+    TM_LOG(kInfo) << "calibration " << built->id() << " of trainer '" << req.trainer << "' (run "
+                  << req.run << "): " << built->valid() << " valid answers, kernel "
+                  << built->kernel_description() << "; matched and fitted in " << fit_ms << " ms";
     v1::Record r;
     r.set_written_session_ns(runtime->Now().nanos());
     *r.mutable_calibration() = *built;
@@ -801,7 +810,7 @@ void IngestReactor<Side>::StartCalibrationFinish(const v1::CalibrationMessage& m
   // stream, in order): once the barrier passes they are committed and
   // readable. The barrier runs on the ledger thread, so it only submits.
   ledger->Barrier([weak, work = std::move(work)]() mutable {
-    if (auto self = weak.lock()) self->service_->pool().Submit(std::move(work));
+    if (auto self = weak.lock()) self->service_->fit_pool().Submit(std::move(work));
   });
 }
 

@@ -1,5 +1,7 @@
 #include "server/rpc/live_service.h"
 
+#include <algorithm>
+
 #include "server/rpc/ingest_reactor.h"
 #include "server/rpc/subscribe_reactor.h"
 
@@ -14,12 +16,14 @@ LiveService::LiveService(SessionHub* hub, TokenAuthority* auth, const MonotonicS
       limits_clock_(options_.limits_clock ? options_.limits_clock : mono),
       rate_limiter_(limits_clock_),
       admission_(options_.max_streams, options_.max_streams_per_peer),
-      pool_(options_.worker_threads) {}
+      pool_(options_.worker_threads),
+      fit_pool_(std::max(1, options_.calibration_threads)) {}
 
 LiveService::~LiveService() { Stop(); }
 
 void LiveService::Stop() {
   ticker_.Stop();
+  fit_pool_.Stop();  // before pool_: finished fits post to the streams' strands
   pool_.Stop();
 }
 

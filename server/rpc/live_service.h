@@ -100,6 +100,9 @@ class LiveService final : public LiveServiceBase {
     int worker_threads = 4;
     // Bootstrap resamples for a calibration's intervals (0: none).
     int calibration_resamples = 1000;
+    // Threads that fit calibrations (a fit with its bootstrap takes seconds,
+    // so it never runs on the stream workers); at least 1.
+    int calibration_threads = 1;
     // Clock for rate limits and the hello timeout; null: the service's
     // monotonic clock. Tests drive it by hand.
     const MonotonicSource* limits_clock = nullptr;
@@ -142,6 +145,7 @@ class LiveService final : public LiveServiceBase {
   const Options& options() const { return options_; }
   Ticker& ticker() { return ticker_; }
   WorkPool& pool() { return pool_; }
+  WorkPool& fit_pool() { return fit_pool_; }
   RateLimiter& rate_limiter() { return rate_limiter_; }
   StreamAdmission& admission() { return admission_; }
   struct Counters {
@@ -165,6 +169,7 @@ class LiveService final : public LiveServiceBase {
   RateLimiter rate_limiter_;
   StreamAdmission admission_;
   WorkPool pool_;  // before ticker_: the ticker posts to strands that run here
+  WorkPool fit_pool_;  // calibration fits (LiveService::Options::calibration_threads)
   Ticker ticker_;
 };
 

@@ -246,7 +246,9 @@ std::optional<std::string> DescribeContentMismatch(const v1::Record& stored,
     }
     if (a.approve() != b.approve()) return std::string("approve");
     if (a.practice() != b.practice()) return std::string("practice");
-    if (a.detail() != b.detail()) return Cat("detail '", b.detail(), "' (stored: '", a.detail(), "')");
+    if (a.detail() != b.detail()) {
+      return Cat("detail '", b.detail(), "' (stored: '", a.detail(), "')");
+    }
     return std::nullopt;
   }
   return std::nullopt;

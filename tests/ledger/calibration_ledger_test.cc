@@ -4,12 +4,11 @@
 // client key of both kinds is deduplicated, and session.pin_kernels and
 // kernel_setting.calibration are stored. The typed tables are read back with
 // Debian's sqlite3 CLI, which shares no code with the ledger.
+#include <gtest/gtest.h>
 #include <stdio.h>
 
 #include <filesystem>
 #include <string>
-
-#include <gtest/gtest.h>
 
 #include "server/ledger/sqlite/sqlite_ledger.h"
 #include "tests/ledger/ledger_test_util.h"

@@ -45,7 +45,8 @@ TokenRow TokenFromRow(const Statement& q) {
 }
 
 // A record's body and hash from the current row (columns `body_col`, +1).
-absl::StatusOr<Record> RecordFromRow(const Statement& q, int body_col, std::string_view session_id) {
+absl::StatusOr<Record> RecordFromRow(const Statement& q, int body_col,
+                                     std::string_view session_id) {
   Record r;
   if (!r.ParseFromString(q.Blob(body_col))) {
     return absl::DataLossError(Cat("record body does not parse in session ", session_id));

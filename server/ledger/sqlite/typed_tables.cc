@@ -191,9 +191,9 @@ absl::Status TypedTables::Insert(const Record& r) {
     }
     case Record::kCalibration: {
       const auto& c = r.calibration();
+      const bool has_chosen = c.chosen() < static_cast<uint32_t>(c.fits_size());
       const std::string family =
-          c.chosen() < static_cast<uint32_t>(c.fits_size()) ? c.fits(static_cast<int>(c.chosen())).family()
-                                                            : std::string();
+          has_chosen ? c.fits(static_cast<int>(c.chosen())).family() : std::string();
       return Prepared("INSERT INTO calibration VALUES (?,?,?,?,?,?,?,?,?,?)")
           .Bind(c.id()).Bind(c.trainer()).Bind(sid).Bind(seq).Bind(r.written_session_ns())
           .Bind(family).Bind(c.kernel_description()).Bind(static_cast<int64_t>(c.valid()))
