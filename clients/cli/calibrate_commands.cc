@@ -178,6 +178,7 @@ void AddNew(CommandTable& table, CLI::App* group) {
         std::cout << "run the task (about two minutes) on the trainer's own screen and keys:\n"
                   << "  tickmark-keys --calibrate --token-file " << token_file << " --server "
                   << table.common().connection.channel.target << "\n"
+                  << "  (a serial response box: tickmark-serial --calibrate, same token)\n"
                   << "then see the fit:\n"
                   << "  tickmark calibrate show --trainer " << f->trainer << " --plot "
                   << f->trainer << "-calibration.png\n";
