@@ -101,6 +101,16 @@ wait "$LEARNER"
 say "Summary"
 cat "$DIR/learner.out"
 "${ADMIN[@]}" session show "$SESSION" | sed -n '/^records/,$p'
+# The kernel settings of the session, from its ledger: the default, then the
+# trainer's calibrated kernel set when it joined.
+"${ADMIN[@]}" export --session "$SESSION" --kinds kernel | $PY -c '
+import json, sys
+for line in sys.stdin:
+    r = json.loads(line)
+    who = r.get("trainer") or "(session default)"
+    came = " from calibration " + r["calibration"] if r.get("calibration") else ""
+    desc = r.get("description", "?")
+    print(f"kernel of {who}: {desc}{came}")'
 
 say "Replaying the session: the default kernel for everyone, then each trainer's calibration"
 "${TM[@]}" replay --session "$SESSION" --name default-kernel --kernel uniform:0.2,4.0 \
