@@ -24,6 +24,10 @@ def test_demo_calibrates_then_compares_default_and_calibrated_kernels(tmp_path):
     out = p.stdout
     assert "emergency stop" in out  # the safety note stays
     assert "FAMILY" in out and "* " in out  # the fit table of the calibration
+    # The trainer joined the session (default kernel uniform) and got its calibration.
+    assert "kernel of (session default): uniform(" in out
+    assert any(line.startswith("kernel of trainer-sim: ") and " from calibration c-" in line
+               for line in out.splitlines())
     # Both precision columns, side by side on one row.
     assert any(line.split() == ["default", "kernel", "calibrated"] for line in out.splitlines())
     row = next(line for line in out.splitlines() if line.startswith("credit precision"))
