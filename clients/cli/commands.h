@@ -17,6 +17,7 @@ void AddMarkerCommands(CommandTable& table);   // marker add
 void AddKernelCommands(CommandTable& table);   // kernel set|load
 void AddReplayCommand(CommandTable& table);    // replay
 void AddExportCommand(CommandTable& table);    // export
+void AddCalibrateCommands(CommandTable& table);  // calibrate new|list|show|plot|apply
 
 }  // namespace tickmark::cli
 

@@ -36,6 +36,7 @@ int main(int argc, char** argv) {
   AddKernelCommands(table);
   AddReplayCommand(table);
   AddExportCommand(table);
+  AddCalibrateCommands(table);
 
   if (argc < 2) {
     std::cerr << app.help();

@@ -4,6 +4,7 @@
 #include <sys/stat.h>
 #include <unistd.h>
 
+#include <algorithm>
 #include <cctype>
 #include <cstdio>
 #include <ctime>
@@ -43,6 +44,19 @@ std::optional<v1::Role> ParseRoleWord(const std::string& word) {
   v1::Role role;
   if (!v1::Role_Parse(name, &role) || role == v1::ROLE_UNSPECIFIED) return std::nullopt;
   return role;
+}
+
+std::string ShortKernelText(const std::string& description) {
+  const std::string open = "counts=[";
+  const size_t begin = description.find(open);
+  if (begin == std::string::npos) return description;
+  const size_t end = description.find(']', begin);
+  if (end == std::string::npos) return description;
+  const std::string counts = description.substr(begin + open.size(), end - begin - open.size());
+  const size_t bins =
+      counts.empty() ? 0 : 1 + static_cast<size_t>(std::count(counts.begin(), counts.end(), ','));
+  return description.substr(0, begin) + "counts=<" + std::to_string(bins) + " bins>" +
+         description.substr(end + 1);
 }
 
 bool WriteSecretFile(const std::string& path, const std::string& secret) {

@@ -22,6 +22,10 @@ std::string RoleWord(tickmark::v1::Role role);
 // (including "unspecified").
 std::optional<tickmark::v1::Role> ParseRoleWord(const std::string& word);
 
+// A kernel's canonical text for a table: an empirical kernel's counts
+// (hundreds of numbers for a fitted mixture) become "counts=<N bins>".
+std::string ShortKernelText(const std::string& description);
+
 // Writes `secret` and a newline to a new file only its owner can read;
 // prints why on failure.
 bool WriteSecretFile(const std::string& path, const std::string& secret);

@@ -2,10 +2,12 @@
 #include <unistd.h>
 
 #include <iostream>
+#include <map>
 #include <memory>
 #include <sstream>
 
 #include "clients/cli/commands.h"
+#include "clients/cli/output.h"
 
 namespace tickmark::cli {
 namespace {
@@ -59,8 +61,22 @@ int RunReplay(const CommonFlags& common, ReplayFlags& f) {
     std::cerr << "tickmark: the server ended the replay without a result\n";
     return kExitError;
   }
-  std::cout << "derived set '" << f.req.name() << "' stored for " << f.req.session_id() << "\n"
-            << "labels compared     " << result.labels() << "\n"
+  std::cout << "derived set '" << f.req.name() << "' stored for " << f.req.session_id() << "\n";
+  // Which kernel each trainer was credited with, and the calibration it came
+  // from (sorted by trainer: the map's order is not stable).
+  std::map<std::string, std::string> kernels(result.trainer_kernels().begin(),
+                                             result.trainer_kernels().end());
+  for (const auto& [trainer, kernel] : kernels) {
+    auto cal = result.trainer_calibrations().find(trainer);
+    std::cout << "trainer " << trainer << ": " << ShortKernelText(kernel);
+    if (cal != result.trainer_calibrations().end() && !cal->second.empty()) {
+      std::cout << " (calibration " << cal->second << ")";
+    } else if (f.req.calibrated()) {
+      std::cout << " (no calibration)";
+    }
+    std::cout << "\n";
+  }
+  std::cout << "labels compared     " << result.labels() << "\n"
             << "labels changed      " << result.changed() << "\n"
             << "mean |difference|   " << result.mean_abs_difference() << "\n"
             << "max |difference|    " << result.max_abs_difference() << "\n"
@@ -95,6 +111,10 @@ void AddReplayCommand(CommandTable& table) {
       "kernel for every trainer (e.g. gamma:2,0.28); default: as recorded");
   cmd->add_option("--trainer-kernels", f->trainer_kernels,
                   "per-trainer kernels: NAME=KERNEL;NAME=KERNEL");
+  cmd->add_flag_callback(
+      "--calibrated", [&req] { req.set_calibrated(true); },
+      "credit each calibrated trainer with their latest calibration (made before the replay); "
+      "--kernel and --trainer-kernels still take precedence");
   cmd->add_flag_callback("--overwrite", [&req] { req.set_overwrite(true); },
                          "replace a derived set of the same name");
 }

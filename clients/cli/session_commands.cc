@@ -67,6 +67,10 @@ void AddCreate(CommandTable& table, CLI::App* group) {
       "--kernel", [req](const std::string& v) { req->set_default_kernel(v); },
       "default delay kernel, e.g. uniform:0.2,4.0 or gamma:2,0.28 (seconds); default: the "
       "server's");
+  cmd->add_flag_callback(
+      "--pin-kernels", [req] { req->set_pin_kernels(true); },
+      "trainers credit with the session's kernels only: a calibrated trainer joining does not "
+      "get their calibration");
   cmd->add_option("--token-out", *token_out,
                   "write the session's admin token to this file (0600)")
       ->type_name("FILE");
@@ -112,6 +116,9 @@ void AddShow(CommandTable& table, CLI::App* group) {
                         << "state      " << StateWord(ss.state()) << "\n"
                         << "kernel     "
                         << (r.default_kernel().empty() ? "-" : r.default_kernel()) << "\n"
+                        << (ss.pin_kernels() ? "kernels    pinned (calibrations are not applied "
+                                               "on joining)\n"
+                                             : "")
                         << "ledger     "
                         << (LedgerState(r).empty() ? "-" : LedgerState(r)) << "\n"
                         << "opened     " << FormatUtc(ss.opened_session_ns()) << "\n"

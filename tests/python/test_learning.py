@@ -33,7 +33,10 @@ def test_rover_learns_from_tickmark_labels_and_beats_naive_credit(server, links,
     trainer = subprocess.Popen(
         [PY, "-m", "tickmark.demo.trainer", "--server", link.address,
          "--token-file", str(trainer_token), "--watch-server", server.address,
-         "--watch-token-file", str(observer_token), "--seconds", str(seconds + 1), "--seed", "3"],
+         "--watch-token-file", str(observer_token), "--seconds", str(seconds + 1), "--seed", "3",
+         # The session's kernel is the trainer's true delay here (the demo's
+         # default trainer is lognormal and calibrated instead).
+         "--delay", "gamma:2,0.28"],
         env=env, stderr=subprocess.PIPE, text=True)
     summary = tmp_path / "summary.json"
     learner_log = open(tmp_path / "learner.err", "w")  # a file, not a terminal

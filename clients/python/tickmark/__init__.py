@@ -6,12 +6,17 @@
         for label in agent.labels():
             print(label.step_id, label.value, label.weight)
 
+A trainer's delay calibration from a program: tickmark.CalibrationRun
+(tickmark/calibration.py, docs/calibration.md).
+
 Needs Debian's python3-grpcio and python3-protobuf; numpy is optional.
 """
 
 from tickmark._stream import Rejected, StreamError
 from tickmark.agent import Agent, run_episode
+from tickmark.calibration import CalibrationFailed, CalibrationRun
 from tickmark.subscription import KINDS, Subscription
 
-__all__ = ["Agent", "KINDS", "Rejected", "StreamError", "Subscription", "run_episode"]
+__all__ = ["Agent", "CalibrationFailed", "CalibrationRun", "KINDS", "Rejected", "StreamError",
+           "Subscription", "run_episode"]
 __version__ = "0.1.0"

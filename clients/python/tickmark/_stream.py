@@ -49,7 +49,8 @@ class ReconnectingStream:
     def __init__(self, channel: grpc.Channel, kind: str, token: str, client_id: str,
                  source_kind: int, description: str, software: str,
                  clock: Callable[[], int] = time.monotonic_ns,
-                 on_ack: Optional[Callable[[stream_pb2.Ack], None]] = None):
+                 on_ack: Optional[Callable[[stream_pb2.Ack], None]] = None,
+                 on_calibration: Optional[Callable[[records_pb2.Calibration], None]] = None):
         stub = stream_pb2_grpc.LiveStub(channel)
         self._call = stub.Train if kind == "train" else stub.Act
         self._message = stream_pb2.TrainerMessage if kind == "train" else stream_pb2.AgentMessage
@@ -58,6 +59,7 @@ class ReconnectingStream:
                                        source_description=description, software=software)
         self._clock = clock
         self._on_ack = on_ack
+        self._on_calibration = on_calibration
         self._lock = threading.Condition()
         self._pending: "collections.OrderedDict[int, object]" = collections.OrderedDict()
         self._storage_backoff = False  # the last call ended on an UNAVAILABLE ack
@@ -77,7 +79,8 @@ class ReconnectingStream:
 
     # -- public -----------------------------------------------------------
     def send(self, payload) -> None:
-        """Queues a FeedbackMessage or StepMessage; its client_sequence is set here."""
+        """Queues a FeedbackMessage or StepMessage (or, on a Train stream, a
+        CalibrationMessage); its client_sequence is set here."""
         with self._lock:
             if self._error:
                 raise self._error
@@ -105,6 +108,12 @@ class ReconnectingStream:
         return self._connected.wait(timeout)
 
     @property
+    def error(self) -> Optional[StreamError]:
+        """Why the stream stopped for good; None while it is up or retrying."""
+        with self._lock:
+            return self._error
+
+    @property
     def pending(self) -> int:
         with self._lock:
             return len(self._pending) + len(self._unnumbered)
@@ -126,7 +135,13 @@ class ReconnectingStream:
         self._next_seq += 1
         self._pending[payload.client_sequence] = payload
         if self._outbox is not None:
-            self._outbox.put(self._message(**{self._field: payload}))
+            self._outbox.put(self._wrap(payload))
+
+    def _wrap(self, payload):
+        """The stream message carrying `payload` (feedback, step or calibration)."""
+        if isinstance(payload, stream_pb2.CalibrationMessage):
+            return self._message(calibration=payload)
+        return self._message(**{self._field: payload})
 
     def _requests(self, outbox: queue.Queue):
         hello = stream_pb2.Hello()
@@ -164,6 +179,10 @@ class ReconnectingStream:
                         if not self._storage_backoff:
                             backoff = 0.1
                         self._on_welcome(reply.welcome, outbox)
+                    elif reply.HasField("calibration"):
+                        # A finished calibration run's result, just before its Ack.
+                        if self._on_calibration is not None:
+                            self._on_calibration(reply.calibration)
                     elif reply.HasField("ack"):
                         if not self._on_ack_message(reply.ack):
                             # The server could not store it now (disk full):
@@ -200,7 +219,7 @@ class ReconnectingStream:
             if self._next_seq is None:
                 self._next_seq = welcome.last_client_sequence + 1
             for payload in self._pending.values():  # resend in order
-                outbox.put(self._message(**{self._field: payload}))
+                outbox.put(self._wrap(payload))
             self._outbox = outbox
             while self._unnumbered:
                 self._number_and_queue(self._unnumbered.popleft())

@@ -1,8 +1,9 @@
 """The simulated trainer: watches the rover's steps and approves or disapproves.
 
 It approves moves that bring the rover closer to its dock (and waiting on
-the dock) and disapproves the rest, after a gamma-distributed reaction
-delay, with occasional misses and mistakes. Its source clock is offset and
+the dock) and disapproves the rest, after a reaction delay drawn from
+--delay (lognormal by default; tickmark/demo/delays.py), with occasional
+misses and mistakes. Its source clock is offset and
 drifting, and its feedback goes to the server through whatever link --server
 names (the demo puts a delay/jitter emulator there). Each feedback's input
 label says which step it judged ("judged:<step id>"), so credit precision can
@@ -24,7 +25,7 @@ import time
 import tickmark
 from tickmark._connect import open_channel, read_token
 from tickmark._stream import ReconnectingStream
-from tickmark.demo import world
+from tickmark.demo import delays, world
 from tickmark.subscription import Subscription
 from tickmark.v1 import records_pb2, stream_pb2
 
@@ -51,8 +52,9 @@ def main(argv=None) -> int:
     p.add_argument("--token-file", required=True, help="trainer token")
     p.add_argument("--watch-server", default=None, help="where steps are watched (default --server)")
     p.add_argument("--watch-token-file", required=True, help="observer token of the session")
-    p.add_argument("--delay-shape", type=float, default=2.0, help="gamma shape of reaction delay")
-    p.add_argument("--delay-scale", type=float, default=0.28, help="gamma scale (s)")
+    p.add_argument("--delay", default=delays.DEFAULT,
+                   help="reaction delay: lognormal:MU,SIGMA[,SHIFT] | exgauss:MU,SIGMA,TAU | "
+                        "gamma:SHAPE,SCALE[,SHIFT] (seconds; default %(default)s)")
     p.add_argument("--delay-min", type=float, default=0.15, help="no press faster than this (s)")
     p.add_argument("--miss", type=float, default=0.1, help="probability of not reacting")
     p.add_argument("--mistake", type=float, default=0.05, help="probability of the wrong judgement")
@@ -64,15 +66,17 @@ def main(argv=None) -> int:
     for name in ("miss", "mistake"):
         if not 0 <= getattr(args, name) <= 1:
             p.error(f"--{name} must be in [0, 1]")
-    if args.delay_shape <= 0 or args.delay_scale <= 0:
-        p.error("--delay-shape and --delay-scale must be > 0")
+    try:
+        sample = delays.parse(args.delay)
+    except ValueError as e:
+        p.error(str(e))
 
     rng = random.Random(args.seed)
     clock = DriftingClock(args.clock_offset, args.clock_drift_ppm)
     channel = open_channel(args.server)
     stream = ReconnectingStream(channel, "train", read_token(token_file=args.token_file),
                                 "sim-trainer", records_pb2.SOURCE_KIND_SCRIPT,
-                                "simulated trainer (gamma reaction delay)",
+                                f"simulated trainer ({args.delay})",
                                 "tickmark-demo-trainer 0.1", clock)
     if not stream.wait_connected(10):
         print("trainer: could not connect", file=sys.stderr)
@@ -118,7 +122,7 @@ def main(argv=None) -> int:
         good = world.approves((x, y), step.action)
         if rng.random() < args.mistake:
             good = not good
-        delay = max(args.delay_min, rng.gammavariate(args.delay_shape, args.delay_scale))
+        delay = max(args.delay_min, sample(rng))
         # The agent's clock is this machine's monotonic clock (same host).
         with cv:
             heapq.heappush(presses, (step.start_agent_ns + int(delay * 1e9), step.step_id,
