@@ -102,6 +102,7 @@ absl::Status Summarize(SessionHub* hub, const ledger::SessionRow& row, v1::Sessi
   // avoids loading it (and replaying its ledger) just to say so.
   if (auto rt = hub->Find(row.id)) {
     out->set_connected_clients(static_cast<uint32_t>(rt->StreamCount()));
+    for (v1::ClientClock& c : rt->Clocks()) *out->add_clocks() = std::move(c);
   }
   return absl::OkStatus();
 }

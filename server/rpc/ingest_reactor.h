@@ -25,12 +25,15 @@
 #include <deque>
 #include <map>
 #include <memory>
+#include <mutex>
+#include <optional>
 #include <string>
 
 #include "server/core/clock_model.h"
 #include "server/rpc/live_service.h"
 #include "server/rpc/strand.h"
 #include "server/rpc/token_bucket.h"
+#include "tickmark/v1/admin.pb.h"
 #include "tickmark/v1/stream.pb.h"
 
 namespace tickmark::rpc {
@@ -79,6 +82,7 @@ class IngestReactor final : public grpc::ServerBidiReactor<grpc::ByteBuffer, grp
   // StreamHandle (session runtime; any thread).
   const std::string& token_id() const override { return token_id_; }
   void End(const grpc::Status& status) override;
+  std::optional<tickmark::v1::ClientClock> Clock(SessionTime now) const override;
 
   // gRPC reactions.
   void OnReadDone(bool ok) override;
@@ -132,6 +136,23 @@ class IngestReactor final : public grpc::ServerBidiReactor<grpc::ByteBuffer, grp
   void MaybeFinishGracefully();
   void FinishNow(const grpc::Status& status);
   void UpdateTickDue();
+
+  // What operators see of the clock model (Clock()): copied on the strand
+  // when the model or the probe counts change, read from any thread.
+  struct ClockView {
+    tickmark::v1::ClientInfo client;
+    bool probed = false;
+    Duration hello_offset;
+    ClockEstimate estimate;
+    SessionTime reference;  // session time of estimate.reference
+    double growth = 0;      // uncertainty added per unit of distance from it
+    SessionTime updated;    // the last accepted probe's T4, or the hello
+    uint64_t probes = 0;    // answered probes of this stream (stream and UDP)
+    uint64_t rejected = 0;  // of which rejected
+    uint64_t udp_tag = 0;
+  };
+  // Counts a probe record and, when the model took it, copies the model.
+  void NoteProbe(bool accepted, SessionTime t4);
 
   LiveService* const service_;              // not owned
   grpc::CallbackServerContext* const ctx_;  // valid until OnDone; used only in Start
@@ -187,6 +208,9 @@ class IngestReactor final : public grpc::ServerBidiReactor<grpc::ByteBuffer, grp
   int64_t last_step_start_ns_ = 0;               // agent clock; steps must move forward
   int64_t last_step_end_agent_ns_ = -1;          // explicit end of the last step (agent clock)
   SessionTime last_step_end_session_;            // ... and where it was mapped
+
+  mutable std::mutex clock_view_mu_;
+  ClockView clock_view_;  // GUARDED_BY(clock_view_mu_)
 };
 
 // The per-side payload handling (ingest_reactor.cc).
