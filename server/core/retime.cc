@@ -56,7 +56,7 @@ std::optional<Usable> MakeUsable(size_t index, const ProbeTimestamps& p) {
 // delays and the drift bound over their distance explain (the rule of
 // ClockModel's jump confirmation).
 bool Disagree(const Usable& a, const Usable& b, const RetimeOptions& o) {
-  const double gap_s = std::abs(static_cast<double>(b.mid - a.mid)) * 1e-9;
+  const double gap_s = std::abs(static_cast<double>(static_cast<__int128>(b.mid) - a.mid)) * 1e-9;
   const double allowed = static_cast<double>(o.jump_threshold.nanos()) +
                          static_cast<double>(a.delay) + static_cast<double>(b.delay) +
                          gap_s * 2 * o.max_drift_ppm * 1e3;
@@ -215,6 +215,9 @@ class SegmentRetimer {
       if (!b) return std::nullopt;
       used_x = x;
       const double mid = 0.5 * (b->low + b->high);
+      // An absurd reading (far beyond every probe) can leave the bounds
+      // beyond int64: nothing to say about it.
+      if (!(std::abs(mid) < 9e18) || !(b->high - b->low < 1.8e19)) return std::nullopt;
       s = Clamp64(static_cast<__int128>(tc) - b->theta_ref - std::llround(mid));
       const __int128 moved = static_cast<__int128>(s) - x;
       if (moved < 1000 && moved > -1000) break;
@@ -315,8 +318,8 @@ class SegmentRetimer {
     // The reference: the probe nearest x, so the residuals stay small.
     size_t ref = lo;
     for (size_t k = lo; k < hi; ++k) {
-      if (std::abs(static_cast<double>(p_[k].mid - x)) <
-          std::abs(static_cast<double>(p_[ref].mid - x))) {
+      if (std::abs(static_cast<double>(static_cast<__int128>(p_[k].mid) - x)) <
+          std::abs(static_cast<double>(static_cast<__int128>(p_[ref].mid) - x))) {
         ref = k;
       }
     }

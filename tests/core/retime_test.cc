@@ -11,6 +11,7 @@
 #include <algorithm>
 #include <cmath>
 #include <cstdint>
+#include <limits>
 #include <optional>
 #include <random>
 #include <vector>
@@ -302,6 +303,22 @@ TEST(RetimeTest, EventsBeforeTheFirstProbeWidenWithTheDriftBound) {
   ASSERT_EQ(out[0].outcome, RetimeOutcome::kRetimed);
   EXPECT_LE(Abs(out[0].session - truth), out[0].uncertainty);
   EXPECT_GT(out[0].uncertainty, Duration::Millis(15));  // more than the probes' own δ/2
+}
+
+TEST(RetimeTest, AbsurdReadingsGiveADefinedAnswer) {
+  // Event times come from clients: any int64 must give a defined result
+  // (kept, or retimed with an uncertainty that still holds), never a crash
+  // or an overflow (run under the sanitizers by ./run test).
+  SimRun run = Simulate(Options{}, 2);
+  for (int64_t c : {std::numeric_limits<int64_t>::min(), std::numeric_limits<int64_t>::max(),
+                    int64_t{0}, int64_t{-1}}) {
+    RetimeEvent e{ClientTime::FromNanos(c), kOrigin, Duration::Seconds(1), run.probes.size(),
+                  kOrigin + Duration::Seconds(200)};
+    const std::vector<RetimedTime> out =
+        RetimeClock(run.probes, std::span<const RetimeEvent>(&e, 1));
+    ASSERT_EQ(out.size(), 1u);
+    EXPECT_GE(out[0].uncertainty, Duration::Zero());
+  }
 }
 
 TEST(RetimeTest, OptionsAreDescribedAsJson) {
