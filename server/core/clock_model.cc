@@ -52,10 +52,10 @@ std::optional<OnWire> CheckedOnWire(const ProbeTimestamps& p) {
   // Roles: the server is the RFC's requester, the device its responder, so
   // the RFC's θ (responder clock − requester clock) is client − session.
   int64_t forward = 0, backward = 0, round_trip = 0, hold = 0, delay = 0;
-  if (!CheckedSub(p.t2.nanos(), p.t1.nanos(), &forward) ||      // T2 − T1
-      !CheckedSub(p.t3.nanos(), p.t4.nanos(), &backward) ||     // T3 − T4
-      !CheckedSub(p.t4.nanos(), p.t1.nanos(), &round_trip) ||   // T4 − T1
-      !CheckedSub(p.t3.nanos(), p.t2.nanos(), &hold) ||         // T3 − T2
+  if (!CheckedSub(p.t2.nanos(), p.t1.nanos(), &forward) ||     // T2 − T1
+      !CheckedSub(p.t3.nanos(), p.t4.nanos(), &backward) ||    // T3 − T4
+      !CheckedSub(p.t4.nanos(), p.t1.nanos(), &round_trip) ||  // T4 − T1
+      !CheckedSub(p.t3.nanos(), p.t2.nanos(), &hold) ||        // T3 − T2
       !CheckedSub(round_trip, hold, &delay)) {
     return std::nullopt;
   }
@@ -90,8 +90,7 @@ const char* ProbeVerdictName(ProbeVerdict v) {
 
 OnWire MinDelaySample(std::span<const OnWire> samples) {
   if (samples.empty()) return OnWire{Duration::Zero(), Duration::Max()};
-  return samples[MinDelayIndex(0, samples.size(),
-                               [&](size_t i) { return samples[i].delay; })];
+  return samples[MinDelayIndex(0, samples.size(), [&](size_t i) { return samples[i].delay; })];
 }
 
 Line LowerEnvelopeFit(std::span<const double> x, std::span<const double> y) {
@@ -100,9 +99,8 @@ Line LowerEnvelopeFit(std::span<const double> x, std::span<const double> y) {
 
   std::vector<size_t> order(n);
   std::iota(order.begin(), order.end(), size_t{0});
-  std::sort(order.begin(), order.end(), [&](size_t a, size_t b) {
-    return x[a] != x[b] ? x[a] < x[b] : y[a] < y[b];
-  });
+  std::sort(order.begin(), order.end(),
+            [&](size_t a, size_t b) { return x[a] != x[b] ? x[a] < x[b] : y[a] < y[b]; });
 
   // Andrew's monotone chain, lower half. Of several points with the same x
   // only the lowest (first after sorting) can touch the envelope.
@@ -116,8 +114,7 @@ Line LowerEnvelopeFit(std::span<const double> x, std::span<const double> y) {
     while (hull.size() >= 2) {
       const P& o = hull[hull.size() - 2];
       const P& a = hull.back();
-      const double cross =
-          (a.x - o.x) * (p.y - o.y) - (a.y - o.y) * (p.x - o.x);
+      const double cross = (a.x - o.x) * (p.y - o.y) - (a.y - o.y) * (p.x - o.x);
       if (cross > 0) break;  // strictly convex turn: a stays
       hull.pop_back();
     }
@@ -243,8 +240,8 @@ ProbeVerdict ClockModel::AddProbe(const ProbeTimestamps& p) {
       if (!jump_candidate_) return false;
       const Sample& c = *jump_candidate_;
       const Duration apart = Abs(p.t4 - c.t.t4);
-      const Duration drift_allowance = Duration::FromSeconds(
-          apart.seconds() * 2 * options_.max_drift_ppm * 1e-6);
+      const Duration drift_allowance =
+          Duration::FromSeconds(apart.seconds() * 2 * options_.max_drift_ppm * 1e-6);
       return Abs(w.offset - c.w.offset) <=
              options_.jump_threshold + w.delay + c.w.delay + drift_allowance;
     }();
@@ -281,8 +278,7 @@ void ClockModel::Refit() {
   const size_t n = history_.size();
   const size_t stages = static_cast<size_t>(options_.filter_stages);
   const size_t chosen =
-      MinDelayIndex(n > stages ? n - stages : 0, n,
-                    [&](size_t i) { return history_[i].w.delay; });
+      MinDelayIndex(n > stages ? n - stages : 0, n, [&](size_t i) { return history_[i].w.delay; });
   const Sample& c = history_[chosen];
   ref_client_ = c.t.t2 + (c.t.t3 - c.t.t2) / 2;
   offset_ = c.w.offset;
@@ -331,12 +327,9 @@ void ClockModel::Refit() {
   // Each slope's own error bounds. The drift is half the difference of the
   // slopes, so it is too high by at most half of (forward too steep +
   // backward too shallow), too low by at most half the other pair.
-  const SlopeErrorBound fb =
-      EnvelopeSlopeErrorBound(fx, fy, forward, options_.slope_bound_miss);
-  const SlopeErrorBound bb =
-      EnvelopeSlopeErrorBound(bx, by, backward, options_.slope_bound_miss);
-  const double drift_bound =
-      0.5 * std::max(fb.steep + bb.shallow, fb.shallow + bb.steep);
+  const SlopeErrorBound fb = EnvelopeSlopeErrorBound(fx, fy, forward, options_.slope_bound_miss);
+  const SlopeErrorBound bb = EnvelopeSlopeErrorBound(bx, by, backward, options_.slope_bound_miss);
+  const double drift_bound = 0.5 * std::max(fb.steep + bb.shallow, fb.shallow + bb.steep);
   // A fitted drift is used only once it is known better than the prior.
   if (drift_bound < prior) {
     drift_ = std::clamp(0.5 * (forward.slope - backward.slope), -max_drift, max_drift);
@@ -372,9 +365,9 @@ void ClockModel::Refit() {
   }
   const double envelope_asymmetry = std::max(0.5 * envelope_delay, 0.0);
   const __int128 base = static_cast<__int128>(f0) - b0;  // fits: |f0|, |b0| < 2^63
-  const Duration envelope_offset = Duration::Nanos(ClampToInt64(base / 2)) +
-                                   SaturatingNanos(0.5 * (fwd - bwd) +
-                                                   0.5 * static_cast<double>(base % 2));
+  const Duration envelope_offset =
+      Duration::Nanos(ClampToInt64(base / 2)) +
+      SaturatingNanos(0.5 * (fwd - bwd) + 0.5 * static_cast<double>(base % 2));
   // The chosen probe's interval carried to `mid` is a valid bound too; the
   // envelope offset lies |Δθ| from its centre, so the truth is within that
   // bound + |Δθ| of it. The smaller of the two is stated.
@@ -422,7 +415,7 @@ ClockEstimate ClockModel::estimate() const {
   e.samples = static_cast<int>(history_.size());
   e.asymmetry = asymmetry_;
   e.offset_scatter = scatter_;
-  e.drift_error_ppm = drift_error_ * 1e6;
+  e.drift_error_ppm = drift_fitted_ ? drift_error_ * 1e6 : options_.drift_prior_ppm;
   e.drift_fitted = drift_fitted_;
   return e;
 }

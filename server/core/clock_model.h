@@ -192,17 +192,17 @@ class ClockModel {
   bool LooksLikeJump(ClientTime mid_client, const OnWire& w) const;
 
   Options options_;
-  std::deque<Sample> history_;  // accepted probes, oldest first
+  std::deque<Sample> history_;            // accepted probes, oldest first
   std::optional<Sample> jump_candidate_;  // a suspected jump awaiting confirmation
   // Cached by Refit(), valid when ready():
-  SessionTime ref_session_;  // session midpoint (T1+T4)/2 of the chosen probe
-  ClientTime ref_client_;    // client midpoint (T2+T3)/2 of the chosen probe
-  Duration offset_;          // ref_client_ − ref_session_
-  Duration min_delay_;       // the chosen probe's (clamped) delay
-  Duration asymmetry_;       // ClockEstimate::asymmetry
-  Duration scatter_;         // ClockEstimate::offset_scatter
-  double drift_ = 0;         // rate error in use, as a fraction (80 ppm -> 80e-6)
-  double drift_error_ = 0;   // its error bound, as a fraction; see UncertaintyAt()
+  SessionTime ref_session_;    // session midpoint (T1+T4)/2 of the chosen probe
+  ClientTime ref_client_;      // client midpoint (T2+T3)/2 of the chosen probe
+  Duration offset_;            // ref_client_ − ref_session_
+  Duration min_delay_;         // the chosen probe's (clamped) delay
+  Duration asymmetry_;         // ClockEstimate::asymmetry
+  Duration scatter_;           // ClockEstimate::offset_scatter
+  double drift_ = 0;           // rate error in use, as a fraction (80 ppm -> 80e-6)
+  double drift_error_ = 0;     // its error bound, as a fraction; see UncertaintyAt()
   bool drift_fitted_ = false;  // drift_ is fitted (else 0 under the prior)
 };
 

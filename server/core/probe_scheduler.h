@@ -32,16 +32,16 @@ namespace tickmark {
 class ProbeScheduler {
  public:
   struct Options {
-    bool adaptive = true;                              // else burst, then steady
-    Duration steady_interval = Duration::Seconds(1);   // a settled model's period
-    int burst = 8;                                     // (adaptive off) probes after the start
-    Duration burst_interval = Duration::Millis(50);    // (adaptive off) between burst probes
-    Duration fast_for = Duration::Seconds(10);         // fast this long after a (re)start
-    Duration fast_interval = Duration::Millis(50);     // while fast (20 probes/s)
-    Duration boost_interval = Duration::Millis(100);   // while the model is loose
-    Duration target_scatter = Duration::Micros(500);   // loose above this offset scatter
-    double target_drift_ppm = 10;                      // loose above this drift error bound
-    Duration min_interval = Duration::Millis(50);      // per-client cap: never closer
+    bool adaptive = true;                             // else burst, then steady
+    Duration steady_interval = Duration::Seconds(1);  // a settled model's period
+    int burst = 8;                                    // (adaptive off) probes after the start
+    Duration burst_interval = Duration::Millis(50);   // (adaptive off) between burst probes
+    Duration fast_for = Duration::Seconds(10);        // fast this long after a (re)start
+    Duration fast_interval = Duration::Millis(50);    // while fast (20 probes/s)
+    Duration boost_interval = Duration::Millis(100);  // while the model is loose
+    Duration target_scatter = Duration::Micros(500);  // loose above this offset scatter
+    double target_drift_ppm = 10;                     // loose above this drift error bound
+    Duration min_interval = Duration::Millis(50);     // per-client cap: never closer
   };
 
   // How the next probe was paced.
