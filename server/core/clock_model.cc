@@ -52,10 +52,10 @@ std::optional<OnWire> CheckedOnWire(const ProbeTimestamps& p) {
   // Roles: the server is the RFC's requester, the device its responder, so
   // the RFC's θ (responder clock − requester clock) is client − session.
   int64_t forward = 0, backward = 0, round_trip = 0, hold = 0, delay = 0;
-  if (!CheckedSub(p.t2.nanos(), p.t1.nanos(), &forward) ||     // T2 − T1
-      !CheckedSub(p.t3.nanos(), p.t4.nanos(), &backward) ||    // T3 − T4
-      !CheckedSub(p.t4.nanos(), p.t1.nanos(), &round_trip) ||  // T4 − T1
-      !CheckedSub(p.t3.nanos(), p.t2.nanos(), &hold) ||        // T3 − T2
+  if (!CheckedSub(p.t2.nanos(), p.t1.nanos(), &forward) ||      // T2 − T1
+      !CheckedSub(p.t3.nanos(), p.t4.nanos(), &backward) ||     // T3 − T4
+      !CheckedSub(p.t4.nanos(), p.t1.nanos(), &round_trip) ||   // T4 − T1
+      !CheckedSub(p.t3.nanos(), p.t2.nanos(), &hold) ||         // T3 − T2
       !CheckedSub(round_trip, hold, &delay)) {
     return std::nullopt;
   }
@@ -90,7 +90,8 @@ const char* ProbeVerdictName(ProbeVerdict v) {
 
 OnWire MinDelaySample(std::span<const OnWire> samples) {
   if (samples.empty()) return OnWire{Duration::Zero(), Duration::Max()};
-  return samples[MinDelayIndex(0, samples.size(), [&](size_t i) { return samples[i].delay; })];
+  return samples[MinDelayIndex(0, samples.size(),
+                               [&](size_t i) { return samples[i].delay; })];
 }
 
 Line LowerEnvelopeFit(std::span<const double> x, std::span<const double> y) {
@@ -99,8 +100,9 @@ Line LowerEnvelopeFit(std::span<const double> x, std::span<const double> y) {
 
   std::vector<size_t> order(n);
   std::iota(order.begin(), order.end(), size_t{0});
-  std::sort(order.begin(), order.end(),
-            [&](size_t a, size_t b) { return x[a] != x[b] ? x[a] < x[b] : y[a] < y[b]; });
+  std::sort(order.begin(), order.end(), [&](size_t a, size_t b) {
+    return x[a] != x[b] ? x[a] < x[b] : y[a] < y[b];
+  });
 
   // Andrew's monotone chain, lower half. Of several points with the same x
   // only the lowest (first after sorting) can touch the envelope.
@@ -114,7 +116,8 @@ Line LowerEnvelopeFit(std::span<const double> x, std::span<const double> y) {
     while (hull.size() >= 2) {
       const P& o = hull[hull.size() - 2];
       const P& a = hull.back();
-      const double cross = (a.x - o.x) * (p.y - o.y) - (a.y - o.y) * (p.x - o.x);
+      const double cross =
+          (a.x - o.x) * (p.y - o.y) - (a.y - o.y) * (p.x - o.x);
       if (cross > 0) break;  // strictly convex turn: a stays
       hull.pop_back();
     }
@@ -240,8 +243,8 @@ ProbeVerdict ClockModel::AddProbe(const ProbeTimestamps& p) {
       if (!jump_candidate_) return false;
       const Sample& c = *jump_candidate_;
       const Duration apart = Abs(p.t4 - c.t.t4);
-      const Duration drift_allowance =
-          Duration::FromSeconds(apart.seconds() * 2 * options_.max_drift_ppm * 1e-6);
+      const Duration drift_allowance = Duration::FromSeconds(
+          apart.seconds() * 2 * options_.max_drift_ppm * 1e-6);
       return Abs(w.offset - c.w.offset) <=
              options_.jump_threshold + w.delay + c.w.delay + drift_allowance;
     }();
@@ -278,7 +281,8 @@ void ClockModel::Refit() {
   const size_t n = history_.size();
   const size_t stages = static_cast<size_t>(options_.filter_stages);
   const size_t chosen =
-      MinDelayIndex(n > stages ? n - stages : 0, n, [&](size_t i) { return history_[i].w.delay; });
+      MinDelayIndex(n > stages ? n - stages : 0, n,
+                    [&](size_t i) { return history_[i].w.delay; });
   const Sample& c = history_[chosen];
   ref_client_ = c.t.t2 + (c.t.t3 - c.t.t2) / 2;
   offset_ = c.w.offset;

@@ -192,7 +192,7 @@ class ClockModel {
   bool LooksLikeJump(ClientTime mid_client, const OnWire& w) const;
 
   Options options_;
-  std::deque<Sample> history_;            // accepted probes, oldest first
+  std::deque<Sample> history_;  // accepted probes, oldest first
   std::optional<Sample> jump_candidate_;  // a suspected jump awaiting confirmation
   // Cached by Refit(), valid when ready():
   SessionTime ref_session_;    // session midpoint (T1+T4)/2 of the chosen probe
