@@ -17,8 +17,10 @@
 // ClockModel keeps the accepted probes of one client, picks the minimum-delay
 // probe of the most recent ones (RFC 5905 §10 clock filter) for the offset,
 // fits the client's rate error (drift) from the lower envelopes of the two
-// one-way series (Moon, Skelly & Towsley, INFOCOM 1999), and detects clock
-// steps of the device ("jumps"), after which it starts again.
+// one-way series (Moon, Skelly & Towsley, INFOCOM 1999) with a bound on the
+// fit's own error, states an uncertainty meant to hold (asymmetry + offset
+// scatter + growth at PHI + the drift's error bound or a prior), and detects
+// clock steps of the device ("jumps"), after which it starts again.
 // docs/time-model.md explains the model for newcomers.
 //
 // Pure logic, no I/O. ClockModel is a value type; thread-compatible (callers
