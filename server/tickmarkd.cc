@@ -79,6 +79,8 @@ void AddServerFlags(CLI::App& app, tickmark::rpc::ServerOptions& o, std::string&
               60'000, "probe period while fast");
   AddDuration(app, "--probe-boost-interval-ms", &o.live.probing.boost_interval, Duration::Millis, 1,
               3'600'000, "probe period while a clock model misses a target");
+  AddDuration(app, "--probe-boost-within-ms", &o.live.probing.boost_within, Duration::Millis, 0,
+              86'400'000, "boost a clock model's probing only this long after it starts");
   AddDuration(app, "--probe-target-us", &o.live.probing.target_scatter, Duration::Micros, 1,
               10'000'000, "target for a clock model's offset scatter (microseconds)");
   app.add_option("--probe-target-drift-ppm", o.live.probing.target_drift_ppm,

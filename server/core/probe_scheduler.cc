@@ -49,7 +49,7 @@ Duration ProbeScheduler::Sent(Duration at, const ClockEstimate& model) {
   } else if (at - started_ < options_.fast_for) {
     interval = options_.fast_interval;
     pace_ = Pace::kFast;
-  } else if (Loose(model)) {
+  } else if (at - started_ < options_.boost_within && Loose(model)) {
     interval = options_.boost_interval;
     pace_ = Pace::kBoost;
   }

@@ -7,7 +7,9 @@
 // is young (fast_interval for fast_for after the model starts or restarts),
 // at boost_interval while the model is loose (its offset scatter above
 // target_scatter, or no fitted drift, or a drift error bound above
-// target_drift_ppm), and at steady_interval otherwise; never closer than
+// target_drift_ppm) and younger than boost_within (a link whose model still
+// misses its targets then is as good as probing makes it; every probe is
+// stored), and at steady_interval otherwise; never closer than
 // min_interval (the per-client cap). A probe sooner than the steady rate is
 // an extra: Admit asks the caller's server-wide budget for it and, refused,
 // puts it off to the steady slot, so the server's total probe rate stays
@@ -39,6 +41,7 @@ class ProbeScheduler {
     Duration fast_for = Duration::Seconds(10);        // fast this long after a (re)start
     Duration fast_interval = Duration::Millis(50);    // while fast (20 probes/s)
     Duration boost_interval = Duration::Millis(100);  // while the model is loose
+    Duration boost_within = Duration::Seconds(120);   // ... and this young at most
     Duration target_scatter = Duration::Micros(500);  // loose above this offset scatter
     double target_drift_ppm = 10;                     // loose above this drift error bound
     Duration min_interval = Duration::Millis(50);     // per-client cap: never closer

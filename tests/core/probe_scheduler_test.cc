@@ -87,6 +87,16 @@ TEST(ProbeSchedulerTest, BoostedWhileTheModelIsLoose) {
   EXPECT_FALSE(ProbeScheduler().Loose(Tight()));
 }
 
+TEST(ProbeSchedulerTest, NoBoostBeyondItsWindowEvenWhenLoose) {
+  ProbeScheduler s;  // boost_within 120 s
+  s.Restart(Duration::Zero());
+  const std::vector<Duration> sent =
+      SendAllDue(s, Duration::Zero(), Duration::Seconds(150), [](Duration) { return Scattered(); });
+  EXPECT_EQ(CountIn(sent, Duration::Seconds(100), Duration::Seconds(110)), 100);
+  EXPECT_EQ(CountIn(sent, Duration::Seconds(121), Duration::Seconds(150)), 29);
+  EXPECT_EQ(s.pace(), Pace::kSteady);
+}
+
 TEST(ProbeSchedulerTest, BackToSteadyOnceTheTargetsAreMet) {
   ProbeScheduler s;
   s.Restart(Duration::Zero());
