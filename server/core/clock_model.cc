@@ -102,11 +102,10 @@ Line LowerEnvelopeFit(std::span<const double> x, std::span<const double> y) {
   std::vector<size_t> order(n);
   std::iota(order.begin(), order.end(), size_t{0});
   // Probes arrive in time order: strictly increasing x needs no sort.
-  if (std::adjacent_find(x.begin(), x.begin() + static_cast<std::ptrdiff_t>(n),
-                         std::greater_equal<double>()) != x.begin() + static_cast<std::ptrdiff_t>(n)) {
-    std::sort(order.begin(), order.end(), [&](size_t a, size_t b) {
-      return x[a] != x[b] ? x[a] < x[b] : y[a] < y[b];
-    });
+  const auto x_end = x.begin() + static_cast<std::ptrdiff_t>(n);
+  if (std::adjacent_find(x.begin(), x_end, std::greater_equal<double>()) != x_end) {
+    std::sort(order.begin(), order.end(),
+              [&](size_t a, size_t b) { return x[a] != x[b] ? x[a] < x[b] : y[a] < y[b]; });
   }
 
   // Andrew's monotone chain, lower half. Of several points with the same x
@@ -184,8 +183,7 @@ SlopeErrorBound EnvelopeSlopeErrorBound(std::span<const double> x, std::span<con
   // r < σ·Δ; two pointers count them in one pass over `low`, the smallest
   // residuals in ascending order.
   const double need = std::log(1 / miss) * static_cast<double>(n);
-  auto enough = [&](const std::vector<double>& deltas, std::span<const double> low,
-                    double sigma) {
+  auto enough = [&](const std::vector<double>& deltas, std::span<const double> low, double sigma) {
     double pairs = 0;
     size_t below = 0;
     for (double d : deltas) {
