@@ -92,8 +92,8 @@ std::optional<Anchor> ReadAnchor(const std::string& ledger_path, const std::stri
   }
   std::optional<Anchor> out;
   sqlite3_stmt* st = nullptr;
-  if (sqlite3_prepare_v2(db, "SELECT utc_anchor_ns, mono_anchor_ns FROM session WHERE id = ?", -1,
-                         &st, nullptr) == SQLITE_OK) {
+  if (sqlite3_prepare_v2(db, "SELECT utc_anchor_ns, mono_anchor_ns FROM session WHERE id = ?",
+                         -1, &st, nullptr) == SQLITE_OK) {
     sqlite3_bind_text(st, 1, session.c_str(), -1, SQLITE_TRANSIENT);
     if (sqlite3_step(st) == SQLITE_ROW) {
       out = Anchor{sqlite3_column_int64(st, 0), sqlite3_column_int64(st, 1)};
@@ -262,9 +262,9 @@ TEST(ClockLinkTest, FeedbackLandsWithinItsUncertaintyBehindAJitteryLinkWithAnOff
     std::ofstream t(token_file);
     t << admin_token << "\n";
   }
-  const std::string cmd =
-      BinDir() + "/tickmark export --server 127.0.0.1:" + std::to_string(server.server().port()) +
-      " --token-file " + token_file + " --session " + session + " --kinds feedback 2>/dev/null";
+  const std::string cmd = BinDir() + "/tickmark export --server 127.0.0.1:" +
+                          std::to_string(server.server().port()) + " --token-file " + token_file +
+                          " --session " + session + " --kinds feedback 2>/dev/null";
   FILE* p = popen(cmd.c_str(), "r");
   ASSERT_NE(p, nullptr);
   std::string out;
