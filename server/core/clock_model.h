@@ -197,8 +197,10 @@ class ClockModel {
   std::deque<Sample> history_;  // accepted probes, oldest first
   std::optional<Sample> jump_candidate_;  // a suspected jump awaiting confirmation
   // Cached by Refit(), valid when ready():
-  SessionTime ref_session_;    // session midpoint (T1+T4)/2 of the chosen probe
-  ClientTime ref_client_;      // client midpoint (T2+T3)/2 of the chosen probe
+  // The reference point: the chosen probe's midpoints, or the newest
+  // probe's once the envelopes give the offset.
+  SessionTime ref_session_;    // session midpoint (T1+T4)/2
+  ClientTime ref_client_;      // client midpoint (T2+T3)/2
   Duration offset_;            // ref_client_ − ref_session_
   Duration min_delay_;         // the chosen probe's (clamped) delay
   Duration asymmetry_;         // ClockEstimate::asymmetry
