@@ -192,16 +192,20 @@ void IngestReactor<Side>::Tick() {
     outstanding_probe_ = false;  // lost; a late reply still matches sent_probes_
   }
   if (!outstanding_probe_ && now >= next_probe_mono_) {
-    v1::ServerMessage m;
-    m.mutable_probe()->set_probe_id(++last_probe_id_);
-    // t1 is stamped when the write starts (WriteNext).
-    out_.push_back(std::move(m));
-    outstanding_probe_ = true;
-    outstanding_since_mono_ = now;
-    const Duration gap = burst_left_ > 0 ? opt.probe_burst_spacing : opt.probe_interval;
-    if (burst_left_ > 0) --burst_left_;
-    next_probe_mono_ = now + gap.nanos();
-    WriteNext();
+    // The schedule runs on time since the hello (probe_scheduler.h); a
+    // probe sooner than the steady rate needs a token of the server's budget.
+    const Duration at = Duration::Nanos(now - hello_mono_ns_);
+    if (probes_.Admit(at, [this] { return service_->probe_budget().TryTake(); })) {
+      v1::ServerMessage m;
+      m.mutable_probe()->set_probe_id(++last_probe_id_);
+      // t1 is stamped when the write starts (WriteNext).
+      out_.push_back(std::move(m));
+      outstanding_probe_ = true;
+      outstanding_since_mono_ = now;
+      probes_.Sent(at, model_.estimate());
+      WriteNext();
+    }
+    next_probe_mono_ = hello_mono_ns_ + probes_.due().nanos();
   }
   if (!held_.empty() && !model_.ready() && now - hello_mono_ns_ >= opt.clock_wait.nanos()) {
     ReleaseHeld();
@@ -327,7 +331,8 @@ void IngestReactor<Side>::HandleHello(const v1::Hello& hello) {
   const SessionTime now = runtime_->Now();
   // Crude mapping until a probe returns: assumes the hello took no time.
   hello_offset_ = Duration::Nanos(hello.sent_client_ns()) - Duration::Nanos(now.nanos());
-  burst_left_ = opt.probe_burst;
+  probes_ = ProbeScheduler(service_->probe_schedule());
+  probes_.Restart(Duration::Zero());
   next_probe_mono_ = hello_mono_ns_;
   runtime_->AddStream(this);
   if (!runtime_->open()) {  // closed between the check above and AddStream
@@ -489,9 +494,17 @@ void IngestReactor<Side>::AddProbe(const ProbeTimestamps& ts, v1::Record r) {
   u->set_uncertainty_ns(est.uncertainty.nanos());
   u->set_min_delay_ns(est.min_delay.nanos());
   u->set_samples(static_cast<uint32_t>(est.samples));
+  u->set_drift_error_ppm(est.drift_error_ppm);
+  u->set_asymmetry_ns(est.asymmetry.nanos());
+  u->set_offset_scatter_ns(est.offset_scatter.nanos());
+  u->set_drift_fitted(est.drift_fitted);
   if (verdict == ProbeVerdict::kClockJump) {
     u->set_reason(Cat("restart: client clock jumped (offset now ", w.offset.seconds(), " s)"));
     TM_LOG(kWarning) << "client " << client_.client_id() << " clock jumped; model restarted";
+    // A new model: probe fast again, from now.
+    probes_.Restart(Duration::Nanos(service_->mono()->NowNanos() - hello_mono_ns_));
+    next_probe_mono_ = hello_mono_ns_ + probes_.due().nanos();
+    UpdateTickDue();
   } else {
     u->set_reason("probe");
   }

@@ -2,7 +2,8 @@
 // feedback or step is rate-limited, validated (validation.h), mapped to
 // session time with the client's clock model, appended to the ledger and
 // acknowledged after commit. The server probes the client's clock on the
-// stream: a burst after the hello, then periodically. Until the first probe
+// stream as its ProbeScheduler says: fast after the hello, then as the
+// client's clock model needs. Until the first probe
 // comes back, messages wait (at most Options::clock_wait) so they can be
 // mapped; after that they are mapped with the hello's clock reading and a
 // wide uncertainty.
@@ -30,6 +31,7 @@
 #include <string>
 
 #include "server/core/clock_model.h"
+#include "server/core/probe_scheduler.h"
 #include "server/rpc/live_service.h"
 #include "server/rpc/strand.h"
 #include "server/rpc/token_bucket.h"
@@ -198,7 +200,7 @@ class IngestReactor final : public grpc::ServerBidiReactor<grpc::ByteBuffer, grp
   Duration hello_offset_;  // client clock − session time from the hello
   int64_t hello_mono_ns_ = 0;
   std::deque<Held> held_;  // payloads waiting for the first probe
-  int burst_left_ = 0;
+  ProbeScheduler probes_;  // when to probe next (adaptive probing)
   int64_t next_probe_mono_ = 0;
   uint64_t last_probe_id_ = 0;
   bool outstanding_probe_ = false;

@@ -32,11 +32,13 @@
 #include <string>
 
 #include "server/core/clock_model.h"
+#include "server/core/probe_scheduler.h"
 #include "server/rpc/auth.h"
 #include "server/rpc/rate_limiter.h"
 #include "server/rpc/session_hub.h"
 #include "server/rpc/stream_admission.h"
 #include "server/rpc/ticker.h"
+#include "server/rpc/token_bucket.h"
 #include "server/rpc/work_pool.h"
 #include "tickmark/v1/stream.grpc.pb.h"
 
@@ -74,6 +76,16 @@ class LiveService final : public LiveServiceBase {
     size_t subscriber_buffer = 4096;             // live records buffered per subscriber
     ClockModel::Options clock;
     ProbePortHooks probe_port;  // optional UDP probes
+    // Adaptive probing (docs/time-model.md, "Adaptive probing"): its steady
+    // interval, burst and burst spacing are probe_interval, probe_burst and
+    // probe_burst_spacing above (those fields of `probing` are not read).
+    ProbeScheduler::Options probing;
+    // Probes a second, all streams together (a token bucket holding one
+    // second's worth; 0: no limit). Every probe takes a token if there is
+    // one; past the budget only probes at the steady rate go
+    // (ProbeScheduler::Admit). Each probe stores a Probe and a
+    // ClockModelUpdate record.
+    double probe_budget = 500;
 
     // An ingest stream that sends no hello this long after opening is ended
     // with DEADLINE_EXCEEDED.
@@ -150,6 +162,10 @@ class LiveService final : public LiveServiceBase {
   WorkPool& pool() { return pool_; }
   WorkPool& fit_pool() { return fit_pool_; }
   RateLimiter& rate_limiter() { return rate_limiter_; }
+  TokenBucket& probe_budget() { return probe_budget_; }
+  // The probe schedule of a new stream (Options::probing with the steady
+  // interval and burst filled in).
+  ProbeScheduler::Options probe_schedule() const;
   StreamAdmission& admission() { return admission_; }
   struct Counters {
     std::atomic<uint64_t> undecodable{0};
@@ -170,6 +186,7 @@ class LiveService final : public LiveServiceBase {
 
   Counters counters_;
   RateLimiter rate_limiter_;
+  TokenBucket probe_budget_;  // Options::probe_budget, shared by every stream
   StreamAdmission admission_;
   WorkPool pool_;  // before ticker_: the ticker posts to strands that run here
   WorkPool fit_pool_;  // calibration fits (LiveService::Options::calibration_threads)

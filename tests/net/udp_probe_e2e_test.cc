@@ -56,6 +56,7 @@ class UdpProbeE2e : public ::testing::Test {
     // beyond one sample came over UDP.
     o.live.probe_burst = 1;
     o.live.probe_interval = Duration::Seconds(3600);
+    o.live.probing.adaptive = false;
     auto s = rpc::TickmarkServer::Start(o);
     ASSERT_TRUE(s.ok()) << s.status().message();
     server_ = std::move(*s);
