@@ -2,8 +2,10 @@
 
 #include <openssl/rand.h>
 
+#include <algorithm>
 #include <chrono>
 #include <limits>
+#include <tuple>
 
 #include "server/base/log.h"
 #include "server/base/strings.h"
@@ -42,6 +44,18 @@ void RetryableIfStoreFull(v1::Ack* ack) {
     ack->set_code(static_cast<int32_t>(absl::StatusCode::kUnavailable));
     ack->set_message(Cat(ack->message(), " (not stored; send it again later)"));
   }
+}
+
+// How a feedback's or step's time was mapped (records.proto, Feedback
+// fields 12-17, Step 16-21); the client's reading is set by the caller.
+template <typename R>
+void SetTimeSource(R* r, const MappedEvent& m, const RealtimeReading& reading) {
+  const bool realtime = m.decision.source == TimeSourceChoice::kRealtime;
+  r->set_time_source(realtime ? v1::TIME_SOURCE_REALTIME : v1::TIME_SOURCE_ROUND_TRIP);
+  r->set_client_realtime_bound_ns(reading.bound.nanos());
+  r->set_server_realtime_bound_ns(m.server_bound.nanos());
+  r->set_round_trip_uncertainty_ns(m.round_trip_uncertainty.nanos());
+  r->set_time_source_reason(TimeSourceReasonName(m.decision.reason));
 }
 
 std::string BearerFromMetadata(const grpc::CallbackServerContext& ctx) {
@@ -515,6 +529,46 @@ std::pair<SessionTime, Duration> IngestReactor<Side>::Map(int64_t client_ns,
   return {*mapped, kHelloMappingUncertainty};
 }
 
+// The server's real-time/session pair is read between two session readings,
+// so a preemption between the reads widens the bound (read_spread) rather
+// than shifting the mapping unseen.
+template <typename Side>
+MappedEvent IngestReactor<Side>::MapEventTime(int64_t client_ns, const RealtimeReading& reading,
+                                              Duration span, absl::Status* error) {
+  MappedEvent m;
+  std::tie(m.at, m.uncertainty) = Map(client_ns, error);
+  m.round_trip_uncertainty = m.uncertainty;
+  m.decision.uncertainty = m.uncertainty;
+  if (!error->ok()) return m;
+  TimeSourceInputs in;
+  in.enabled = service_->options().realtime_mapping;
+  in.client = reading;
+  in.round_trip_uncertainty = m.uncertainty;
+  std::optional<SessionTime> through_realtime;
+  if (in.enabled && reading.realtime_ns > 0 && reading.synced) {
+    const DisciplineCache::Snapshot server = service_->discipline().Get();
+    in.server = server.state;
+    in.server_state_age = server.age;
+    m.server_bound = server.state.max_error;
+    const SessionTime before = runtime_->Now();
+    const int64_t realtime_ns = service_->discipline().source()->RealtimeNanos();
+    const SessionTime after = runtime_->Now();
+    in.read_spread = (after - before) / 2;
+    const SessionTime anchor = before + in.read_spread;
+    through_realtime = RealtimeToSession(reading.realtime_ns, anchor, realtime_ns);
+    if (through_realtime) {
+      in.event_age = std::max(Abs(anchor - *through_realtime), Abs(anchor - m.at)) + Abs(span);
+      in.disagreement = *through_realtime - m.at;
+    }
+  }
+  m.decision = ChooseTimeSource(in);
+  if (m.decision.source == TimeSourceChoice::kRealtime) {
+    m.at = *through_realtime;
+    m.uncertainty = m.decision.uncertainty;
+  }
+  return m;
+}
+
 template <typename Side>
 void IngestReactor<Side>::Reject(uint64_t client_sequence, const absl::Status& s) {
   v1::ServerMessage m;
@@ -835,9 +889,14 @@ void IngestReactor<TrainerSide>::HandlePayload(const In& message, SessionTime ar
     return Reject(f.client_sequence(), s);
   }
   absl::Status map_error;
-  auto [mapped, mapped_uncertainty] = Map(f.event_source_ns(), &map_error);
+  const RealtimeReading reading{f.event_realtime_ns(), Duration::Nanos(f.realtime_bound_ns()),
+                                f.realtime_synced()};
+  const MappedEvent mapped =
+      MapEventTime(f.event_source_ns(), reading, Duration::Zero(), &map_error);
   if (!map_error.ok()) return Reject(f.client_sequence(), map_error);
-  const EventTimeVerdict v = JudgeEventTime(mapped, mapped_uncertainty, arrival, model_.ready(),
+  // A real-time mapping is as firm as a probed model: no clamping.
+  const bool firm = model_.ready() || mapped.decision.source == TimeSourceChoice::kRealtime;
+  const EventTimeVerdict v = JudgeEventTime(mapped.at, mapped.uncertainty, arrival, firm,
                                             opt.event_future_tolerance, opt.limits);
   if (!v.status.ok()) {
     if (v.status.code() == absl::StatusCode::kOutOfRange) {
@@ -859,6 +918,8 @@ void IngestReactor<TrainerSide>::HandlePayload(const In& message, SessionTime ar
   fb->set_uncertainty_ns(v.uncertainty.nanos());
   fb->set_event_clamped(v.clamped);
   fb->set_input(f.input());
+  SetTimeSource(fb, mapped, reading);
+  fb->set_event_realtime_ns(f.event_realtime_ns());
   // Kept either way; a late one may find its steps already settled.
   fb->set_late(arrival - v.event > runtime_->allowed_lateness());
   AppendClient(std::move(r));
@@ -875,20 +936,56 @@ void IngestReactor<AgentSide>::HandlePayload(const In& message, SessionTime arri
                             "a step must start after the previous step of this agent"));
   }
   absl::Status map_error;
-  auto [start, uncertainty] = Map(s.start_agent_ns(), &map_error);
+  const RealtimeReading reading{s.start_realtime_ns(), Duration::Nanos(s.realtime_bound_ns()),
+                                s.realtime_synced()};
+  // Both positive and ordered (ValidateStep), so the difference fits.
+  const Duration length =
+      s.end_agent_ns() != 0 ? Duration::Nanos(s.end_agent_ns() - s.start_agent_ns()) : Duration();
+  const MappedEvent mapped = MapEventTime(s.start_agent_ns(), reading, length, &map_error);
   if (!map_error.ok()) return Reject(cseq, map_error);
-  if (s.start_agent_ns() == last_step_end_agent_ns_) {
+  const bool realtime = mapped.decision.source == TimeSourceChoice::kRealtime;
+  SessionTime start = mapped.at;
+  Duration uncertainty = mapped.uncertainty;
+  const bool same_instant = s.start_agent_ns() == last_step_end_agent_ns_;
+  if (same_instant && !realtime && !last_step_realtime_) {
     start = last_step_end_session_;  // the same instant maps to the same time
+  }
+  SessionTime end;
+  if (s.end_agent_ns() != 0) {
+    if (realtime) {
+      // The agent's clock and its CLOCK_REALTIME advance together (both
+      // slewed alike by the kernel; clock_gettime(2)), so the end is the
+      // start plus the step's length.
+      end = start + length;
+    } else {
+      end = Map(s.end_agent_ns(), &map_error).first;
+      if (!map_error.ok()) return Reject(cseq, map_error);
+    }
+  }
+  // Step order when real time is involved (this step's mapping or the last
+  // one's): the two routes err differently, so a step could land before the
+  // end of the step before it. The whole step is moved to that end (to it
+  // exactly when it starts at the same agent instant) and its uncertainty
+  // widened by the move, so the stated interval still covers where it was
+  // mapped; the reason says so.
+  std::string moved;
+  if (last_step_start_ns_ != 0 && (realtime || last_step_realtime_)) {
+    const SessionTime target =
+        same_instant ? last_step_end_session_ : std::max(start, last_step_floor_);
+    const Duration shift = target - start;
+    if (shift != Duration::Zero()) {
+      start = start + shift;
+      if (s.end_agent_ns() != 0) end = end + shift;
+      uncertainty = uncertainty + Abs(shift);
+      moved = Cat("; moved ", shift.nanos(), " ns to keep step order");
+    }
   }
   if (absl::Status st = CheckStepTime(start, uncertainty, arrival, limits); !st.ok()) {
     return Reject(cseq, st);
   }
-  SessionTime end;
-  if (s.end_agent_ns() != 0) {
-    end = Map(s.end_agent_ns(), &map_error).first;
-    if (!map_error.ok()) return Reject(cseq, map_error);
-  }
   last_step_start_ns_ = s.start_agent_ns();
+  last_step_floor_ = s.end_agent_ns() != 0 ? end : start;
+  last_step_realtime_ = realtime;
   v1::Record r;
   r.set_written_session_ns(arrival.nanos());
   v1::Step* step = r.mutable_step();
@@ -913,6 +1010,9 @@ void IngestReactor<AgentSide>::HandlePayload(const In& message, SessionTime arri
   step->set_action(s.action());
   step->set_state(s.state());
   *step->mutable_features() = s.features();
+  SetTimeSource(step, mapped, reading);
+  step->set_start_realtime_ns(s.start_realtime_ns());
+  if (!moved.empty()) step->set_time_source_reason(step->time_source_reason() + moved);
   AppendClient(std::move(r));
 }
 

@@ -14,6 +14,8 @@ LiveService::LiveService(SessionHub* hub, TokenAuthority* auth, const MonotonicS
       mono_(mono),
       options_(std::move(options)),
       limits_clock_(options_.limits_clock ? options_.limits_clock : mono),
+      discipline_(options_.discipline ? options_.discipline : KernelDiscipline::Get(), mono,
+                  options_.discipline_refresh),
       rate_limiter_(limits_clock_),
       admission_(options_.max_streams, options_.max_streams_per_peer),
       pool_(options_.worker_threads),
