@@ -172,6 +172,28 @@ TimeSourceDecision ChooseTimeSource(const TimeSourceInputs& in) {
   return d;
 }
 
+std::optional<RealtimeReading> ReadRealtimeAt(int64_t event_ns, const MonotonicSource& clock,
+                                              const ClockDiscipline& discipline) {
+  if (event_ns <= 0) return std::nullopt;
+  const DisciplineState state = discipline.Read();
+  if (!state.synced || !SaneBound(state.max_error)) return std::nullopt;
+  const int64_t before = discipline.RealtimeNanos();
+  const int64_t now = clock.NowNanos();
+  const int64_t after = discipline.RealtimeNanos();
+  int64_t spread = 0;
+  if (!time_internal::CheckedSub(after, before, &spread) || spread < 0) return std::nullopt;
+  const int64_t realtime_now = before + spread / 2;
+  int64_t since = 0;
+  int64_t at = 0;
+  if (!time_internal::CheckedSub(now, event_ns, &since) ||
+      !time_internal::CheckedSub(realtime_now, since, &at) || at <= 0) {
+    return std::nullopt;
+  }
+  const Duration bound = state.max_error + Duration::Nanos(spread - spread / 2);
+  if (!SaneBound(bound)) return std::nullopt;
+  return RealtimeReading{at, bound, true};
+}
+
 std::optional<SessionTime> RealtimeToSession(int64_t realtime_ns, SessionTime anchor_session,
                                              int64_t anchor_realtime_ns) {
   int64_t since = 0;

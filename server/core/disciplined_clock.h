@@ -23,7 +23,8 @@
 //
 // Thread safety: KernelDiscipline and FakeDiscipline may be read from any
 // thread; FakeDiscipline's setters too. DisciplineCache is thread-safe.
-// ChooseTimeSource and RealtimeBound are pure.
+// ChooseTimeSource, RealtimeBound and RealtimeToSession are pure;
+// ReadRealtimeAt reads the clocks it is given.
 #ifndef TICKMARK_SERVER_CORE_DISCIPLINED_CLOCK_H_
 #define TICKMARK_SERVER_CORE_DISCIPLINED_CLOCK_H_
 
@@ -197,6 +198,17 @@ Duration RealtimeBound(Duration client_bound, Duration server_bound, Duration se
 // of their bounds (if they do not, one bound is false, and the round trip's
 // δ/2 rests on physics, not on a daemon's claim). Otherwise the round trip.
 TimeSourceDecision ChooseTimeSource(const TimeSourceInputs& in);
+
+// The client side: what to send with an event stamped `event_ns` on
+// `clock` — CLOCK_REALTIME at that instant and the kernel's bound — or
+// nullopt when the kernel does not say synchronised (then nothing is sent),
+// the event time is not positive, or the result does not fit. The real time
+// at the event is realtime_now − (clock_now − event_ns): the client's clock
+// and its CLOCK_REALTIME advance together (CLOCK_MONOTONIC is slewed with
+// CLOCK_REALTIME; clock_gettime(2)). clock_now is read between two real-time
+// readings; half their spread is added to the bound.
+std::optional<RealtimeReading> ReadRealtimeAt(int64_t event_ns, const MonotonicSource& clock,
+                                              const ClockDiscipline& discipline);
 
 // The session time of a real-time reading, given a pair read together on
 // the server: `anchor_session` (session time) and `anchor_realtime_ns` (its

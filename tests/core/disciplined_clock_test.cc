@@ -200,6 +200,29 @@ TEST(RealtimeToSessionTest, MapsThroughThePairAndRefusesWhatDoesNotFit) {
                    .has_value());
 }
 
+TEST(ReadRealtimeAtTest, BackdatesTheRealTimeReadingToTheEvent) {
+  FakeMonotonic mono(50'000'000'000);  // the client's event clock
+  FakeMonotonic realtime(1'700'000'000'000'000'000);
+  FakeDiscipline d(&realtime);
+  // Unsynchronised: nothing to send.
+  d.SetUnsynced();
+  EXPECT_FALSE(ReadRealtimeAt(49'000'000'000, mono, d).has_value());
+  d.SetSynced(Duration::Micros(800));
+  // An event 1 s before now on the event clock was 1 s before now in real
+  // time; the clocks stand still here, so there is no spread to add.
+  const auto r = ReadRealtimeAt(49'000'000'000, mono, d);
+  ASSERT_TRUE(r.has_value());
+  EXPECT_EQ(r->realtime_ns, 1'700'000'000'000'000'000 - 1'000'000'000);
+  EXPECT_EQ(r->bound, Duration::Micros(800));
+  EXPECT_TRUE(r->synced);
+  // No event time, or one that backdates before the epoch: nothing.
+  EXPECT_FALSE(ReadRealtimeAt(0, mono, d).has_value());
+  EXPECT_FALSE(ReadRealtimeAt(std::numeric_limits<int64_t>::min(), mono, d).has_value());
+  // A bound the kernel would clamp: nothing.
+  d.SetSynced(Duration::Seconds(16));
+  EXPECT_FALSE(ReadRealtimeAt(49'000'000'000, mono, d).has_value());
+}
+
 TEST(DisciplineCacheTest, ReadsTheKernelAtMostOncePerRefresh) {
   FakeMonotonic clock;
   FakeDiscipline source;
