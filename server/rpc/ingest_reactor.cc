@@ -965,9 +965,11 @@ void IngestReactor<AgentSide>::HandlePayload(const In& message, SessionTime arri
   // Step order when real time is involved (this step's mapping or the last
   // one's): the two routes err differently, so a step could land before the
   // end of the step before it. The whole step is moved to that end (to it
-  // exactly when it starts at the same agent instant) and its uncertainty
-  // widened by the move, so the stated interval still covers where it was
-  // mapped; the reason says so.
+  // exactly when it starts at the same agent instant). Between two
+  // real-time steps that is only the read jitter of one instant, as between
+  // two round-trip steps; across a change of route, or past an earlier end,
+  // the uncertainty is widened by the move, so the stated interval still
+  // covers where the step was mapped, and the reason says so.
   std::string moved;
   if (last_step_start_ns_ != 0 && (realtime || last_step_realtime_)) {
     const SessionTime target =
@@ -976,8 +978,10 @@ void IngestReactor<AgentSide>::HandlePayload(const In& message, SessionTime arri
     if (shift != Duration::Zero()) {
       start = start + shift;
       if (s.end_agent_ns() != 0) end = end + shift;
-      uncertainty = uncertainty + Abs(shift);
-      moved = Cat("; moved ", shift.nanos(), " ns to keep step order");
+      if (!same_instant || realtime != last_step_realtime_) {
+        uncertainty = uncertainty + Abs(shift);
+        moved = Cat("; moved ", shift.nanos(), " ns to keep step order");
+      }
     }
   }
   if (absl::Status st = CheckStepTime(start, uncertainty, arrival, limits); !st.ok()) {
