@@ -132,6 +132,8 @@ const char* TimeSourceReasonName(TimeSourceReason reason) {
       return "disagrees";
     case TimeSourceReason::kOutOfRange:
       return "out_of_range";
+    case TimeSourceReason::kImplausible:
+      return "implausible";
   }
   return "unknown";
 }

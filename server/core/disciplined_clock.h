@@ -152,6 +152,10 @@ enum class TimeSourceReason {
   kNotTighter,      // "not_tighter": the real-time bound does not beat the round trip
   kDisagrees,       // "disagrees": the two routes lie further apart than both bounds allow
   kOutOfRange,      // "out_of_range": the reading cannot be mapped (int64 overflow)
+  // "implausible": set by the caller, not by ChooseTimeSource: the real-time
+  // mapping failed the server's plausibility checks (an event after its
+  // arrival beyond its bound, say), so one of the bounds was false.
+  kImplausible,
 };
 const char* TimeSourceReasonName(TimeSourceReason reason);
 

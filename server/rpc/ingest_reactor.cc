@@ -58,6 +58,23 @@ void SetTimeSource(R* r, const MappedEvent& m, const RealtimeReading& reading) {
   r->set_time_source_reason(TimeSourceReasonName(m.decision.reason));
 }
 
+bool ThroughRealtime(const MappedEvent& m) {
+  return m.decision.source == TimeSourceChoice::kRealtime;
+}
+
+// A real-time mapping the plausibility checks refuse (an event after its
+// arrival beyond its bound, or older than any allowed) had a false bound
+// (docs/time-model.md, "Disciplined clocks"): the round trip's mapping
+// replaces it, and is judged in its turn, so nothing is refused for it.
+MappedEvent AsRoundTrip(MappedEvent m) {
+  m.at = m.round_trip_at;
+  m.uncertainty = m.round_trip_uncertainty;
+  m.decision.source = TimeSourceChoice::kRoundTrip;
+  m.decision.reason = TimeSourceReason::kImplausible;
+  m.decision.uncertainty = m.round_trip_uncertainty;
+  return m;
+}
+
 std::string BearerFromMetadata(const grpc::CallbackServerContext& ctx) {
   const auto& md = ctx.client_metadata();
   auto it = md.find("authorization");
@@ -537,6 +554,7 @@ MappedEvent IngestReactor<Side>::MapEventTime(int64_t client_ns, const RealtimeR
                                               Duration span, absl::Status* error) {
   MappedEvent m;
   std::tie(m.at, m.uncertainty) = Map(client_ns, error);
+  m.round_trip_at = m.at;
   m.round_trip_uncertainty = m.uncertainty;
   m.decision.uncertainty = m.uncertainty;
   if (!error->ok()) return m;
@@ -891,13 +909,18 @@ void IngestReactor<TrainerSide>::HandlePayload(const In& message, SessionTime ar
   absl::Status map_error;
   const RealtimeReading reading{f.event_realtime_ns(), Duration::Nanos(f.realtime_bound_ns()),
                                 f.realtime_synced()};
-  const MappedEvent mapped =
-      MapEventTime(f.event_source_ns(), reading, Duration::Zero(), &map_error);
+  MappedEvent mapped = MapEventTime(f.event_source_ns(), reading, Duration::Zero(), &map_error);
   if (!map_error.ok()) return Reject(f.client_sequence(), map_error);
-  // A real-time mapping is as firm as a probed model: no clamping.
-  const bool firm = model_.ready() || mapped.decision.source == TimeSourceChoice::kRealtime;
-  const EventTimeVerdict v = JudgeEventTime(mapped.at, mapped.uncertainty, arrival, firm,
-                                            opt.event_future_tolerance, opt.limits);
+  auto judge = [&](const MappedEvent& m) {
+    // A real-time mapping is as firm as a probed model: no clamping.
+    return JudgeEventTime(m.at, m.uncertainty, arrival, model_.ready() || ThroughRealtime(m),
+                          opt.event_future_tolerance, opt.limits);
+  };
+  EventTimeVerdict v = judge(mapped);
+  if (!v.status.ok() && ThroughRealtime(mapped)) {
+    mapped = AsRoundTrip(mapped);
+    v = judge(mapped);
+  }
   if (!v.status.ok()) {
     if (v.status.code() == absl::StatusCode::kOutOfRange) {
       service_->counters().future_events.fetch_add(1);
@@ -941,52 +964,69 @@ void IngestReactor<AgentSide>::HandlePayload(const In& message, SessionTime arri
   // Both positive and ordered (ValidateStep), so the difference fits.
   const Duration length =
       s.end_agent_ns() != 0 ? Duration::Nanos(s.end_agent_ns() - s.start_agent_ns()) : Duration();
-  const MappedEvent mapped = MapEventTime(s.start_agent_ns(), reading, length, &map_error);
+  MappedEvent mapped = MapEventTime(s.start_agent_ns(), reading, length, &map_error);
   if (!map_error.ok()) return Reject(cseq, map_error);
-  const bool realtime = mapped.decision.source == TimeSourceChoice::kRealtime;
-  SessionTime start = mapped.at;
-  Duration uncertainty = mapped.uncertainty;
   const bool same_instant = s.start_agent_ns() == last_step_end_agent_ns_;
-  if (same_instant && !realtime && !last_step_realtime_) {
-    start = last_step_end_session_;  // the same instant maps to the same time
-  }
-  SessionTime end;
-  if (s.end_agent_ns() != 0) {
-    if (realtime) {
-      // The agent's clock and its CLOCK_REALTIME advance together (both
-      // slewed alike by the kernel; clock_gettime(2)), so the end is the
-      // start plus the step's length.
-      end = start + length;
-    } else {
-      end = Map(s.end_agent_ns(), &map_error).first;
-      if (!map_error.ok()) return Reject(cseq, map_error);
+  // Where the step lands through `m`'s route.
+  struct Placed {
+    SessionTime start;
+    SessionTime end;  // when the step has one
+    Duration uncertainty;
+    std::string moved;  // the order guard's note, if it moved the step
+  };
+  auto place = [&](const MappedEvent& m, absl::Status* error) {
+    const bool realtime = ThroughRealtime(m);
+    Placed p{m.at, SessionTime(), m.uncertainty, ""};
+    if (same_instant && !realtime && !last_step_realtime_) {
+      p.start = last_step_end_session_;  // the same instant maps to the same time
     }
-  }
-  // Step order when real time is involved (this step's mapping or the last
-  // one's): the two routes err differently, so a step could land before the
-  // end of the step before it. The whole step is moved to that end (to it
-  // exactly when it starts at the same agent instant). Between two
-  // real-time steps that is only the read jitter of one instant, as between
-  // two round-trip steps; across a change of route, or past an earlier end,
-  // the uncertainty is widened by the move, so the stated interval still
-  // covers where the step was mapped, and the reason says so.
-  std::string moved;
-  if (last_step_start_ns_ != 0 && (realtime || last_step_realtime_)) {
-    const SessionTime target =
-        same_instant ? last_step_end_session_ : std::max(start, last_step_floor_);
-    const Duration shift = target - start;
-    if (shift != Duration::Zero()) {
-      start = start + shift;
-      if (s.end_agent_ns() != 0) end = end + shift;
-      if (!same_instant || realtime != last_step_realtime_) {
-        uncertainty = uncertainty + Abs(shift);
-        moved = Cat("; moved ", shift.nanos(), " ns to keep step order");
+    if (s.end_agent_ns() != 0) {
+      if (realtime) {
+        // The agent's clock and its CLOCK_REALTIME advance together (both
+        // slewed alike by the kernel; clock_gettime(2)), so the end is the
+        // start plus the step's length.
+        p.end = p.start + length;
+      } else {
+        p.end = Map(s.end_agent_ns(), error).first;
       }
     }
+    // Step order when real time is involved (this step's mapping or the
+    // last one's): the two routes err differently, so a step could land
+    // before the end of the step before it. The whole step is moved to that
+    // end (to it exactly when it starts at the same agent instant). Between
+    // two real-time steps that is only the read jitter of one instant, as
+    // between two round-trip steps; across a change of route, or past an
+    // earlier end, the uncertainty is widened by the move, so the stated
+    // interval still covers where the step was mapped, and the reason says so.
+    if (last_step_start_ns_ != 0 && (realtime || last_step_realtime_)) {
+      const SessionTime target =
+          same_instant ? last_step_end_session_ : std::max(p.start, last_step_floor_);
+      const Duration shift = target - p.start;
+      if (shift != Duration::Zero()) {
+        p.start = p.start + shift;
+        if (s.end_agent_ns() != 0) p.end = p.end + shift;
+        if (!same_instant || realtime != last_step_realtime_) {
+          p.uncertainty = p.uncertainty + Abs(shift);
+          p.moved = Cat("; moved ", shift.nanos(), " ns to keep step order");
+        }
+      }
+    }
+    return p;
+  };
+  Placed placed = place(mapped, &map_error);
+  if (!map_error.ok()) return Reject(cseq, map_error);
+  absl::Status plausible = CheckStepTime(placed.start, placed.uncertainty, arrival, limits);
+  if (!plausible.ok() && ThroughRealtime(mapped)) {
+    mapped = AsRoundTrip(mapped);
+    placed = place(mapped, &map_error);
+    if (!map_error.ok()) return Reject(cseq, map_error);
+    plausible = CheckStepTime(placed.start, placed.uncertainty, arrival, limits);
   }
-  if (absl::Status st = CheckStepTime(start, uncertainty, arrival, limits); !st.ok()) {
-    return Reject(cseq, st);
-  }
+  if (!plausible.ok()) return Reject(cseq, plausible);
+  const bool realtime = ThroughRealtime(mapped);
+  const SessionTime start = placed.start;
+  const SessionTime end = placed.end;
+  const Duration uncertainty = placed.uncertainty;
   last_step_start_ns_ = s.start_agent_ns();
   last_step_floor_ = s.end_agent_ns() != 0 ? end : start;
   last_step_realtime_ = realtime;
@@ -1016,7 +1056,9 @@ void IngestReactor<AgentSide>::HandlePayload(const In& message, SessionTime arri
   *step->mutable_features() = s.features();
   SetTimeSource(step, mapped, reading);
   step->set_start_realtime_ns(s.start_realtime_ns());
-  if (!moved.empty()) step->set_time_source_reason(step->time_source_reason() + moved);
+  if (!placed.moved.empty()) {
+    step->set_time_source_reason(step->time_source_reason() + placed.moved);
+  }
   AppendClient(std::move(r));
 }
 

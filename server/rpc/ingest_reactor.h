@@ -66,6 +66,7 @@ struct AgentSide {
 // An event time mapped to session time, and how (MapEventTime).
 struct MappedEvent {
   SessionTime at;                   // through the chosen route
+  SessionTime round_trip_at;        // through the round-trip model, chosen or not
   Duration uncertainty;             // the chosen route's
   TimeSourceDecision decision;      // which route, and why
   Duration round_trip_uncertainty;  // the round-trip model's, chosen or not
