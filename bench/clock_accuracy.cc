@@ -25,6 +25,12 @@
 // |drift error| p50/p95 (model only); and how many events fell outside the
 // model's stated uncertainty (expected 0).
 //
+// A last section, "retimed beside live" (issue 12, part 4), replays whole
+// 120 s connections and puts the after-the-fact retiming (server/core
+// RetimeClock, every probe of the connection) beside the live mapping of the
+// same events: |error| and stated uncertainty quantiles, and how many events
+// fell outside their uncertainty.
+//
 // Prints; never asserts. Flags: --runs=N (default 1000). Unknown flags (e.g.
 // scripts/bench.sh's --seconds) are ignored.
 #include <algorithm>
@@ -33,12 +39,14 @@
 #include <cstdio>
 #include <cstdlib>
 #include <cstring>
+#include <limits>
 #include <optional>
 #include <random>
 #include <string>
 #include <vector>
 
 #include "server/core/clock_model.h"
+#include "server/core/retime.h"
 #include "server/core/time.h"
 #include "tools/linkemu/delay_sampler.h"
 #include "tools/linkemu/link_profile.h"
@@ -258,6 +266,145 @@ void PrintTargets(const std::vector<Link>& links,
   }
 }
 
+// --- Retimed beside live -------------------------------------------------
+
+struct RetimeSample {
+  double live_error_ms = 0;
+  double retimed_error_ms = 0;
+  double live_u_ms = 0;
+  double retimed_u_ms = 0;
+  bool live_outside = false;
+  bool retimed_outside = false;
+  bool early = false;  // in the first 10 s after the hello
+};
+
+// One connection of `length` in virtual time, with the server's probe
+// schedule as in RunOnce; events at uniformly drawn instants (about two per
+// second) travel to the server over the link and are mapped live on arrival;
+// afterwards every event is retimed with all of the connection's probes.
+void RetimeOnce(const Link& link, uint64_t seed, Duration length,
+                std::vector<RetimeSample>* out) {
+  LinkProfile profile = link.profile;
+  profile.seed = seed;
+  DelaySampler forward(profile, Direction::kForward);
+  DelaySampler backward(profile, Direction::kBackward);
+  LinkProfile event_profile = profile;
+  event_profile.seed = seed + 1'000'003;
+  DelaySampler event_link(event_profile, Direction::kBackward);  // client to server
+  std::mt19937_64 rng(seed * 104729 + 3);
+  std::uniform_real_distribution<double> unit(0.0, 1.0);
+  const FakeMonotonic mono(kMonoAtHello);
+  const linkemu::SimulatedClock client(&mono, kClientOffset, kClientDriftPpm);
+  auto session_at = [](int64_t mono_ns) {
+    return SessionTime::FromNanos(kUtcAtHello + (mono_ns - kMonoAtHello));
+  };
+  const int64_t tick_phase = static_cast<int64_t>(unit(rng) * static_cast<double>(kTick.nanos()));
+  auto next_tick = [&](int64_t m) {
+    const int64_t k = (m - kMonoAtHello - tick_phase + kTick.nanos() - 1) / kTick.nanos();
+    return kMonoAtHello + tick_phase + std::max<int64_t>(k, 0) * kTick.nanos();
+  };
+  struct Event {
+    int64_t at;       // mono
+    int64_t arrival;  // mono
+  };
+  std::vector<Event> events(static_cast<size_t>(2 * length.seconds()));
+  for (Event& e : events) {
+    e.at = kMonoAtHello + static_cast<int64_t>(unit(rng) * static_cast<double>(length.nanos()));
+    e.arrival = e.at + event_link.NextDelay().nanos();
+  }
+  std::sort(events.begin(), events.end(),
+            [](const Event& a, const Event& b) { return a.arrival < b.arrival; });
+
+  ClockModel model;
+  std::vector<RetimeProbe> probes;
+  std::vector<RetimeEvent> mapped;
+  std::vector<SessionTime> truth;
+  size_t next_event = 0;
+  auto map_until = [&](int64_t m4) {  // events that arrive before this reply
+    for (; next_event < events.size() && events[next_event].arrival < m4; ++next_event) {
+      const Event& e = events[next_event];
+      const ClientTime c = client.At(e.at);
+      // Messages wait for the first probe (LiveService::Options::clock_wait).
+      const int64_t arrival = model.ready() ? e.arrival : m4;
+      mapped.push_back({c, model.ToSession(c), model.UncertaintyAt(c), probes.size(),
+                        session_at(arrival)});
+      truth.push_back(session_at(e.at));
+    }
+  };
+  int64_t due = kMonoAtHello;
+  int64_t free_at = kMonoAtHello;
+  const int64_t stop = kMonoAtHello + length.nanos() + Duration::Seconds(5).nanos();
+  for (int k = 0; due < stop; ++k) {
+    const int64_t m1 = next_tick(std::max(due, free_at));
+    const int64_t m2 = m1 + forward.NextDelay().nanos();
+    const int64_t m3 = m2 + kClientHold.nanos();
+    const int64_t m4 = m3 + backward.NextDelay().nanos();
+    if (model.ready()) map_until(m4);
+    const ProbeTimestamps p{session_at(m1), client.At(m2), client.At(m3), session_at(m4)};
+    const ProbeVerdict v = model.AddProbe(p);
+    if (v == ProbeVerdict::kAccepted || v == ProbeVerdict::kClockJump) {
+      probes.push_back({p, v == ProbeVerdict::kClockJump, false});
+    }
+    if (probes.size() == 1) map_until(m4);  // those held for the first probe
+    due = m1 + (k < kProbeBurst ? kBurstSpacing : kProbeInterval).nanos();
+    free_at = m4;
+  }
+  map_until(std::numeric_limits<int64_t>::max());
+  const std::vector<RetimedTime> retimed = RetimeClock(probes, mapped);
+  for (size_t i = 0; i < mapped.size(); ++i) {
+    RetimeSample s;
+    const Duration live_err = Abs(mapped[i].live - truth[i]);
+    const Duration retimed_err = Abs(retimed[i].session - truth[i]);
+    s.live_error_ms = live_err.millis();
+    s.retimed_error_ms = retimed_err.millis();
+    s.live_u_ms = mapped[i].live_uncertainty.millis();
+    s.retimed_u_ms = retimed[i].uncertainty.millis();
+    s.live_outside = live_err > mapped[i].live_uncertainty;
+    s.retimed_outside = retimed_err > retimed[i].uncertainty;
+    s.early = truth[i] - session_at(kMonoAtHello) < Duration::Seconds(10);
+    out->push_back(s);
+  }
+}
+
+void PrintRetimedBesideLive(const std::vector<Link>& links, int runs) {
+  const Duration length = Duration::Seconds(120);
+  std::printf("\nRetimed beside live: %d connections of %lld s per link, events about 2/s at "
+              "random instants;\nlive = the model when the event arrived, retimed = every probe "
+              "of the connection (server/core/retime.h)\n",
+              runs, static_cast<long long>(length.nanos() / 1'000'000'000));
+  std::printf("  %-8s %-8s %10s %10s %10s   %10s %10s   %12s\n", "events", "est.",
+              "|err| p50", "p95 ms", "max ms", "u p50 ms", "u p95 ms", "outside u");
+  for (const Link& link : links) {
+    std::printf("  %s\n", link.name);
+    std::vector<RetimeSample> samples;
+    for (int r = 0; r < runs; ++r) RetimeOnce(link, static_cast<uint64_t>(r) + 1, length, &samples);
+    for (int early = 0; early < 2; ++early) {
+      std::vector<double> le, re, lu, ru;
+      int lo = 0, ro = 0;
+      for (const RetimeSample& s : samples) {
+        if (early == 1 && !s.early) continue;
+        le.push_back(s.live_error_ms);
+        re.push_back(s.retimed_error_ms);
+        lu.push_back(s.live_u_ms);
+        ru.push_back(s.retimed_u_ms);
+        lo += s.live_outside ? 1 : 0;
+        ro += s.retimed_outside ? 1 : 0;
+      }
+      const char* which = early == 1 ? "<10 s" : "all";
+      auto row = [&](const char* est, const std::vector<double>& e,
+                     const std::vector<double>& u, int outside) {
+        char out_col[32];
+        std::snprintf(out_col, sizeof out_col, "%d/%zu", outside, e.size());
+        std::printf("  %-8s %-8s %10.4f %10.4f %10.4f   %10.4f %10.4f   %12s\n", which,
+                    est, Percentile(e, 0.5), Percentile(e, 0.95), Percentile(e, 1.0),
+                    Percentile(u, 0.5), Percentile(u, 0.95), out_col);
+      };
+      row("live", le, lu, lo);
+      row("retimed", re, ru, ro);
+    }
+  }
+}
+
 }  // namespace
 }  // namespace tickmark::bench
 
@@ -293,5 +440,6 @@ int main(int argc, char** argv) {
               "  fitted (>= 10 s of probes) and projects with the drift; before that it uses the\n"
               "  minimum-delay probe of the last 8.\n");
   PrintTargets(links, results);
+  PrintRetimedBesideLive(links, std::max(1, runs / 10));
   return 0;
 }

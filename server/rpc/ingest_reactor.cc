@@ -4,6 +4,7 @@
 
 #include <algorithm>
 #include <chrono>
+#include <cmath>
 #include <limits>
 #include <tuple>
 
@@ -384,6 +385,13 @@ void IngestReactor<Side>::HandleHello(const v1::Hello& hello) {
   w->set_max_state_bytes(opt.limits.max_state_bytes);
   w->set_max_features(opt.limits.max_features);
   OpenProbePort(w);
+  {
+    std::lock_guard<std::mutex> lock(clock_view_mu_);
+    clock_view_.client = client_;
+    clock_view_.hello_offset = hello_offset_;
+    clock_view_.updated = now;
+    clock_view_.udp_tag = udp_tag_;
+  }
   out_.push_back(std::move(m));
   WriteNext();
   UpdateTickDue();
@@ -439,6 +447,7 @@ void IngestReactor<Side>::HandleProbeReply(const v1::ProbeReply& reply) {
     p->set_accepted(false);
     p->set_reject_reason("unknown probe id");
     runtime_->AppendRecord(std::move(r)).IgnoreError();
+    NoteProbe(false, t4);
     return;
   }
   if (reply.probe_id() == last_probe_id_) {
@@ -482,6 +491,7 @@ void IngestReactor<Side>::AddProbe(const ProbeTimestamps& ts, v1::Record r) {
     p->set_accepted(false);
     p->set_reject_reason(std::string(s.message()));
     runtime_->AppendRecord(std::move(r)).IgnoreError();
+    NoteProbe(false, t4);
     return;
   }
   const OnWire w = ComputeOnWire(ts);
@@ -493,6 +503,7 @@ void IngestReactor<Side>::AddProbe(const ProbeTimestamps& ts, v1::Record r) {
   p->set_accepted(accepted);
   if (!accepted) p->set_reject_reason(ProbeVerdictName(verdict));
   runtime_->AppendRecord(std::move(r)).IgnoreError();
+  NoteProbe(accepted, t4);
   if (!accepted) {  // kept in the ledger and counted there
     TM_LOG(kDebug) << "probe from " << client_.client_id()
                    << " rejected: " << ProbeVerdictName(verdict);
@@ -517,6 +528,63 @@ void IngestReactor<Side>::AddProbe(const ProbeTimestamps& ts, v1::Record r) {
   }
   runtime_->AppendRecord(std::move(m)).IgnoreError();
   if (!was_ready) ReleaseHeld();
+}
+
+template <typename Side>
+void IngestReactor<Side>::NoteProbe(bool accepted, SessionTime t4) {
+  if (!accepted) {
+    std::lock_guard<std::mutex> lock(clock_view_mu_);
+    ++clock_view_.probes;
+    ++clock_view_.rejected;
+    return;
+  }
+  const ClockEstimate est = model_.estimate();
+  // The uncertainty grows linearly with the distance from the reference
+  // (ClockModel::UncertaintyAt); its slope, measured over one second.
+  const Duration u0 = model_.UncertaintyAt(est.reference);
+  const Duration u1 = model_.UncertaintyAt(est.reference + Duration::Seconds(1));
+  std::lock_guard<std::mutex> lock(clock_view_mu_);
+  ++clock_view_.probes;
+  clock_view_.probed = true;
+  clock_view_.estimate = est;
+  clock_view_.reference = SessionTime::FromNanos(est.reference.nanos()) - est.offset;
+  clock_view_.growth = static_cast<double>((u1 - u0).nanos()) * 1e-9;
+  clock_view_.updated = t4;
+}
+
+template <typename Side>
+std::optional<v1::ClientClock> IngestReactor<Side>::Clock(SessionTime now) const {
+  ClockView v;
+  {
+    std::lock_guard<std::mutex> lock(clock_view_mu_);
+    v = clock_view_;
+  }
+  if (v.client.client_id().empty()) return std::nullopt;  // no hello yet
+  v1::ClientClock c;
+  c.set_client_id(v.client.client_id());
+  c.set_role(v.client.role());
+  c.set_subject(v.client.subject());
+  c.set_source_kind(v.client.source_kind());
+  c.set_probed(v.probed);
+  if (v.probed) {
+    const double since_reference = static_cast<double>((now - v.reference).nanos());
+    c.set_offset_ns((v.estimate.offset +
+                     Duration::FromSeconds(since_reference * 1e-9 * v.estimate.drift_ppm * 1e-6))
+                        .nanos());
+    c.set_drift_ppm(v.estimate.drift_ppm);
+    c.set_uncertainty_ns((v.estimate.uncertainty +
+                          Duration::FromSeconds(std::abs(since_reference) * 1e-9 * v.growth))
+                             .nanos());
+  } else {
+    c.set_offset_ns(v.hello_offset.nanos());
+    c.set_uncertainty_ns(kHelloMappingUncertainty.nanos());
+  }
+  c.set_probes(v.probes);
+  c.set_rejected_probes(v.rejected);
+  const ProbePortHooks& port = service_->options().probe_port;
+  if (v.udp_tag != 0 && port.drops) c.set_udp_probe_drops(port.drops(v.udp_tag));
+  c.set_since_update_ns((now - v.updated).nanos());
+  return c;
 }
 
 template <typename Side>

@@ -25,6 +25,8 @@
 #include <deque>
 #include <map>
 #include <memory>
+#include <mutex>
+#include <optional>
 #include <string>
 
 #include "server/core/clock_model.h"
@@ -32,6 +34,7 @@
 #include "server/rpc/live_service.h"
 #include "server/rpc/strand.h"
 #include "server/rpc/token_bucket.h"
+#include "tickmark/v1/admin.pb.h"
 #include "tickmark/v1/stream.pb.h"
 
 namespace tickmark::rpc {
@@ -90,6 +93,7 @@ class IngestReactor final : public grpc::ServerBidiReactor<grpc::ByteBuffer, grp
   // StreamHandle (session runtime; any thread).
   const std::string& token_id() const override { return token_id_; }
   void End(const grpc::Status& status) override;
+  std::optional<tickmark::v1::ClientClock> Clock(SessionTime now) const override;
 
   // gRPC reactions.
   void OnReadDone(bool ok) override;
@@ -149,6 +153,23 @@ class IngestReactor final : public grpc::ServerBidiReactor<grpc::ByteBuffer, grp
   void FinishNow(const grpc::Status& status);
   void UpdateTickDue();
 
+  // What operators see of the clock model (Clock()): copied on the strand
+  // when the model or the probe counts change, read from any thread.
+  struct ClockView {
+    tickmark::v1::ClientInfo client;
+    bool probed = false;
+    Duration hello_offset;
+    ClockEstimate estimate;
+    SessionTime reference;  // session time of estimate.reference
+    double growth = 0;      // uncertainty added per unit of distance from it
+    SessionTime updated;    // the last accepted probe's T4, or the hello
+    uint64_t probes = 0;    // answered probes of this stream (stream and UDP)
+    uint64_t rejected = 0;  // of which rejected
+    uint64_t udp_tag = 0;
+  };
+  // Counts a probe record and, when the model took it, copies the model.
+  void NoteProbe(bool accepted, SessionTime t4);
+
   LiveService* const service_;              // not owned
   grpc::CallbackServerContext* const ctx_;  // valid until OnDone; used only in Start
   std::shared_ptr<Strand> strand_;
@@ -205,6 +226,9 @@ class IngestReactor final : public grpc::ServerBidiReactor<grpc::ByteBuffer, grp
   SessionTime last_step_end_session_;            // ... and where it was mapped
   SessionTime last_step_floor_;                  // the last step's mapped end, else its start
   bool last_step_realtime_ = false;              // the last step was mapped through real time
+
+  mutable std::mutex clock_view_mu_;
+  ClockView clock_view_;  // GUARDED_BY(clock_view_mu_)
 };
 
 // The per-side payload handling (ingest_reactor.cc).

@@ -54,6 +54,9 @@ struct ProbePortHooks {
                      std::function<void(uint64_t probe_id, const ProbeTimestamps&)> on_sample)>
       add_stream;
   std::function<void(uint64_t tag)> remove_stream;
+  // The stream's lost or refused UDP probes (UdpProbeTable::DropsOf), for
+  // operators; may be unset.
+  std::function<uint64_t(uint64_t tag)> drops;
 };
 
 using LiveServiceBase =

@@ -208,6 +208,7 @@ absl::StatusOr<std::unique_ptr<TickmarkServer>> TickmarkServer::Start(
                      net::UdpProbeStream{std::move(key), std::move(now), std::move(on_sample)});
         };
     live.probe_port.remove_stream = [table](uint64_t tag) { table->Remove(tag); };
+    live.probe_port.drops = [table](uint64_t tag) { return table->DropsOf(tag); };
     TM_LOG(kInfo) << "UDP probe port " << s->udp_->port();
   }
   s->live_ = std::make_unique<LiveService>(s->hub_.get(), s->auth_.get(), &s->mono_, live);
