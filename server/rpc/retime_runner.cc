@@ -123,12 +123,13 @@ RetimeResult ComputeRetime(const RetimeCollector& collected, const RetimeOptions
       row.uncertainty_ns = t.uncertainty.nanos();
       row.live_session_ns = e.live.nanos();
       row.live_uncertainty_ns = e.live_uncertainty.nanos();
-      row.outcome = keep_realtime ? kRealtimeKept : RetimeOutcomeName(t.outcome);
+      const char* outcome = keep_realtime ? kRealtimeKept : RetimeOutcomeName(t.outcome);
+      row.outcome = outcome;
       row.probes = static_cast<uint32_t>(std::max(t.probes, 0));
       result.rows.push_back(std::move(row));
       sum.set_events(sum.events() + 1);
       if (keep_realtime || t.outcome != RetimeOutcome::kRetimed) {
-        (*sum.mutable_kept())[row.outcome] += 1;
+        (*sum.mutable_kept())[outcome] += 1;
         continue;
       }
       sum.set_retimed(sum.retimed() + 1);
