@@ -266,6 +266,22 @@ write("live_validation", "trainer-feedback",
 write("live_validation", "trainer-feedback-future-clamped",
       live(TRAINER, st.TrainerMessage(feedback=feedback).SerializeToString(),
            hello_offset=5_000_000_000 - (ARRIVAL + 1_000_000_000), has_probe=False))
+# Disciplined clocks: a synchronised real-time reading with a 1 ms bound, the
+# server's bound (from the tolerance) 1 ms, a 20 ms round trip, the routes
+# 1 ms apart (the hello offset): mapped through real time.
+rt_feedback = st.FeedbackMessage(client_sequence=5, value=1.0, event_source_ns=5_000_000_000,
+                                 event_realtime_ns=ARRIVAL - 300_000_000,
+                                 realtime_bound_ns=1_000_000, realtime_synced=True)
+write("live_validation", "trainer-feedback-realtime",
+      live(TRAINER, st.TrainerMessage(feedback=rt_feedback).SerializeToString(),
+           hello_offset=1_000_000, uncertainty=20_000_000, tolerance=1_000_000))
+rt_step = st.StepMessage(client_sequence=2, step_id=10, start_agent_ns=7_100_000_000,
+                         end_agent_ns=7_200_000_000, action="left",
+                         start_realtime_ns=ARRIVAL - 100_000_000, realtime_bound_ns=1_000_000,
+                         realtime_synced=True)
+write("live_validation", "agent-step-realtime",
+      live(AGENT, st.AgentMessage(step=rt_step).SerializeToString(),
+           hello_offset=1_000_000, uncertainty=20_000_000, tolerance=1_000_000))
 reply = st.ProbeReply(probe_id=3, t1_session_ns=ARRIVAL - 2_000_000,
                       t2_client_ns=5_000_000_000, t3_client_ns=5_000_050_000)
 write("live_validation", "trainer-probe-reply",

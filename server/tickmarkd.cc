@@ -106,6 +106,9 @@ void AddServerFlags(CLI::App& app, tickmark::rpc::ServerOptions& o, std::string&
          "for LAN-grade timing (0: off; see DEVELOPERS.md, UDP probe port)")
       ->default_str("0")
       ->check(CLI::Range(0, 65535));
+  app.add_flag("--no-realtime-mapping", o.no_realtime_mapping,
+               "never map event times through real time, even when this host's and a client's "
+               "clocks are disciplined by NTP/PTP (see docs/time-model.md, Disciplined clocks)");
   app.add_option("--max-state-bytes", o.live.limits.max_state_bytes,
                  "largest step state payload accepted")
       ->check(CLI::Range(uint32_t{1}, uint32_t{64} << 20));

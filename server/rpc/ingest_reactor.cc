@@ -2,9 +2,11 @@
 
 #include <openssl/rand.h>
 
+#include <algorithm>
 #include <chrono>
 #include <cmath>
 #include <limits>
+#include <tuple>
 
 #include "server/base/log.h"
 #include "server/base/strings.h"
@@ -43,6 +45,35 @@ void RetryableIfStoreFull(v1::Ack* ack) {
     ack->set_code(static_cast<int32_t>(absl::StatusCode::kUnavailable));
     ack->set_message(Cat(ack->message(), " (not stored; send it again later)"));
   }
+}
+
+// How a feedback's or step's time was mapped (records.proto, Feedback
+// fields 12-17, Step 16-21); the client's reading is set by the caller.
+template <typename R>
+void SetTimeSource(R* r, const MappedEvent& m, const RealtimeReading& reading) {
+  const bool realtime = m.decision.source == TimeSourceChoice::kRealtime;
+  r->set_time_source(realtime ? v1::TIME_SOURCE_REALTIME : v1::TIME_SOURCE_ROUND_TRIP);
+  r->set_client_realtime_bound_ns(reading.bound.nanos());
+  r->set_server_realtime_bound_ns(m.server_bound.nanos());
+  r->set_round_trip_uncertainty_ns(m.round_trip_uncertainty.nanos());
+  r->set_time_source_reason(TimeSourceReasonName(m.decision.reason));
+}
+
+bool ThroughRealtime(const MappedEvent& m) {
+  return m.decision.source == TimeSourceChoice::kRealtime;
+}
+
+// A real-time mapping the plausibility checks refuse (an event after its
+// arrival beyond its bound, or older than any allowed) had a false bound
+// (docs/time-model.md, "Disciplined clocks"): the round trip's mapping
+// replaces it, and is judged in its turn, so nothing is refused for it.
+MappedEvent AsRoundTrip(MappedEvent m) {
+  m.at = m.round_trip_at;
+  m.uncertainty = m.round_trip_uncertainty;
+  m.decision.source = TimeSourceChoice::kRoundTrip;
+  m.decision.reason = TimeSourceReason::kImplausible;
+  m.decision.uncertainty = m.round_trip_uncertainty;
+  return m;
 }
 
 std::string BearerFromMetadata(const grpc::CallbackServerContext& ctx) {
@@ -596,6 +627,47 @@ std::pair<SessionTime, Duration> IngestReactor<Side>::Map(int64_t client_ns,
   return {*mapped, kHelloMappingUncertainty};
 }
 
+// The server's real-time/session pair is read between two session readings,
+// so a preemption between the reads widens the bound (read_spread) rather
+// than shifting the mapping unseen.
+template <typename Side>
+MappedEvent IngestReactor<Side>::MapEventTime(int64_t client_ns, const RealtimeReading& reading,
+                                              Duration span, absl::Status* error) {
+  MappedEvent m;
+  std::tie(m.at, m.uncertainty) = Map(client_ns, error);
+  m.round_trip_at = m.at;
+  m.round_trip_uncertainty = m.uncertainty;
+  m.decision.uncertainty = m.uncertainty;
+  if (!error->ok()) return m;
+  TimeSourceInputs in;
+  in.enabled = service_->options().realtime_mapping;
+  in.client = reading;
+  in.round_trip_uncertainty = m.uncertainty;
+  std::optional<SessionTime> through_realtime;
+  if (in.enabled && reading.realtime_ns > 0 && reading.synced) {
+    const DisciplineCache::Snapshot server = service_->discipline().Get();
+    in.server = server.state;
+    in.server_state_age = server.age;
+    m.server_bound = server.state.max_error;
+    const SessionTime before = runtime_->Now();
+    const int64_t realtime_ns = service_->discipline().source()->RealtimeNanos();
+    const SessionTime after = runtime_->Now();
+    in.read_spread = (after - before) / 2;
+    const SessionTime anchor = before + in.read_spread;
+    through_realtime = RealtimeToSession(reading.realtime_ns, anchor, realtime_ns);
+    if (through_realtime) {
+      in.event_age = std::max(Abs(anchor - *through_realtime), Abs(anchor - m.at)) + Abs(span);
+      in.disagreement = *through_realtime - m.at;
+    }
+  }
+  m.decision = ChooseTimeSource(in);
+  if (m.decision.source == TimeSourceChoice::kRealtime) {
+    m.at = *through_realtime;
+    m.uncertainty = m.decision.uncertainty;
+  }
+  return m;
+}
+
 template <typename Side>
 void IngestReactor<Side>::Reject(uint64_t client_sequence, const absl::Status& s) {
   v1::ServerMessage m;
@@ -916,10 +988,20 @@ void IngestReactor<TrainerSide>::HandlePayload(const In& message, SessionTime ar
     return Reject(f.client_sequence(), s);
   }
   absl::Status map_error;
-  auto [mapped, mapped_uncertainty] = Map(f.event_source_ns(), &map_error);
+  const RealtimeReading reading{f.event_realtime_ns(), Duration::Nanos(f.realtime_bound_ns()),
+                                f.realtime_synced()};
+  MappedEvent mapped = MapEventTime(f.event_source_ns(), reading, Duration::Zero(), &map_error);
   if (!map_error.ok()) return Reject(f.client_sequence(), map_error);
-  const EventTimeVerdict v = JudgeEventTime(mapped, mapped_uncertainty, arrival, model_.ready(),
-                                            opt.event_future_tolerance, opt.limits);
+  auto judge = [&](const MappedEvent& m) {
+    // A real-time mapping is as firm as a probed model: no clamping.
+    return JudgeEventTime(m.at, m.uncertainty, arrival, model_.ready() || ThroughRealtime(m),
+                          opt.event_future_tolerance, opt.limits);
+  };
+  EventTimeVerdict v = judge(mapped);
+  if (!v.status.ok() && ThroughRealtime(mapped)) {
+    mapped = AsRoundTrip(mapped);
+    v = judge(mapped);
+  }
   if (!v.status.ok()) {
     if (v.status.code() == absl::StatusCode::kOutOfRange) {
       service_->counters().future_events.fetch_add(1);
@@ -940,6 +1022,8 @@ void IngestReactor<TrainerSide>::HandlePayload(const In& message, SessionTime ar
   fb->set_uncertainty_ns(v.uncertainty.nanos());
   fb->set_event_clamped(v.clamped);
   fb->set_input(f.input());
+  SetTimeSource(fb, mapped, reading);
+  fb->set_event_realtime_ns(f.event_realtime_ns());
   // Kept either way; a late one may find its steps already settled.
   fb->set_late(arrival - v.event > runtime_->allowed_lateness());
   AppendClient(std::move(r));
@@ -956,20 +1040,77 @@ void IngestReactor<AgentSide>::HandlePayload(const In& message, SessionTime arri
                             "a step must start after the previous step of this agent"));
   }
   absl::Status map_error;
-  auto [start, uncertainty] = Map(s.start_agent_ns(), &map_error);
+  const RealtimeReading reading{s.start_realtime_ns(), Duration::Nanos(s.realtime_bound_ns()),
+                                s.realtime_synced()};
+  // Both positive and ordered (ValidateStep), so the difference fits.
+  const Duration length =
+      s.end_agent_ns() != 0 ? Duration::Nanos(s.end_agent_ns() - s.start_agent_ns()) : Duration();
+  MappedEvent mapped = MapEventTime(s.start_agent_ns(), reading, length, &map_error);
   if (!map_error.ok()) return Reject(cseq, map_error);
-  if (s.start_agent_ns() == last_step_end_agent_ns_) {
-    start = last_step_end_session_;  // the same instant maps to the same time
-  }
-  if (absl::Status st = CheckStepTime(start, uncertainty, arrival, limits); !st.ok()) {
-    return Reject(cseq, st);
-  }
-  SessionTime end;
-  if (s.end_agent_ns() != 0) {
-    end = Map(s.end_agent_ns(), &map_error).first;
+  const bool same_instant = s.start_agent_ns() == last_step_end_agent_ns_;
+  // Where the step lands through `m`'s route.
+  struct Placed {
+    SessionTime start;
+    SessionTime end;  // when the step has one
+    Duration uncertainty;
+    std::string moved;  // the order guard's note, if it moved the step
+  };
+  auto place = [&](const MappedEvent& m, absl::Status* error) {
+    const bool realtime = ThroughRealtime(m);
+    Placed p{m.at, SessionTime(), m.uncertainty, ""};
+    if (same_instant && !realtime && !last_step_realtime_) {
+      p.start = last_step_end_session_;  // the same instant maps to the same time
+    }
+    if (s.end_agent_ns() != 0) {
+      if (realtime) {
+        // The agent's clock and its CLOCK_REALTIME advance together (both
+        // slewed alike by the kernel; clock_gettime(2)), so the end is the
+        // start plus the step's length.
+        p.end = p.start + length;
+      } else {
+        p.end = Map(s.end_agent_ns(), error).first;
+      }
+    }
+    // Step order when real time is involved (this step's mapping or the
+    // last one's): the two routes err differently, so a step could land
+    // before the end of the step before it. The whole step is moved to that
+    // end (to it exactly when it starts at the same agent instant). Between
+    // two real-time steps that is only the read jitter of one instant, as
+    // between two round-trip steps; across a change of route, or past an
+    // earlier end, the uncertainty is widened by the move, so the stated
+    // interval still covers where the step was mapped, and the reason says so.
+    if (last_step_start_ns_ != 0 && (realtime || last_step_realtime_)) {
+      const SessionTime target =
+          same_instant ? last_step_end_session_ : std::max(p.start, last_step_floor_);
+      const Duration shift = target - p.start;
+      if (shift != Duration::Zero()) {
+        p.start = p.start + shift;
+        if (s.end_agent_ns() != 0) p.end = p.end + shift;
+        if (!same_instant || realtime != last_step_realtime_) {
+          p.uncertainty = p.uncertainty + Abs(shift);
+          p.moved = Cat("; moved ", shift.nanos(), " ns to keep step order");
+        }
+      }
+    }
+    return p;
+  };
+  Placed placed = place(mapped, &map_error);
+  if (!map_error.ok()) return Reject(cseq, map_error);
+  absl::Status plausible = CheckStepTime(placed.start, placed.uncertainty, arrival, limits);
+  if (!plausible.ok() && ThroughRealtime(mapped)) {
+    mapped = AsRoundTrip(mapped);
+    placed = place(mapped, &map_error);
     if (!map_error.ok()) return Reject(cseq, map_error);
+    plausible = CheckStepTime(placed.start, placed.uncertainty, arrival, limits);
   }
+  if (!plausible.ok()) return Reject(cseq, plausible);
+  const bool realtime = ThroughRealtime(mapped);
+  const SessionTime start = placed.start;
+  const SessionTime end = placed.end;
+  const Duration uncertainty = placed.uncertainty;
   last_step_start_ns_ = s.start_agent_ns();
+  last_step_floor_ = s.end_agent_ns() != 0 ? end : start;
+  last_step_realtime_ = realtime;
   v1::Record r;
   r.set_written_session_ns(arrival.nanos());
   v1::Step* step = r.mutable_step();
@@ -994,6 +1135,11 @@ void IngestReactor<AgentSide>::HandlePayload(const In& message, SessionTime arri
   step->set_action(s.action());
   step->set_state(s.state());
   *step->mutable_features() = s.features();
+  SetTimeSource(step, mapped, reading);
+  step->set_start_realtime_ns(s.start_realtime_ns());
+  if (!placed.moved.empty()) {
+    step->set_time_source_reason(step->time_source_reason() + placed.moved);
+  }
   AppendClient(std::move(r));
 }
 

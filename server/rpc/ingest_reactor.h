@@ -31,6 +31,7 @@
 #include <string>
 
 #include "server/core/clock_model.h"
+#include "server/core/disciplined_clock.h"
 #include "server/core/probe_scheduler.h"
 #include "server/rpc/live_service.h"
 #include "server/rpc/strand.h"
@@ -65,6 +66,16 @@ struct AgentSide {
   static bool IsProbeReply(const In& m) { return m.has_probe_reply(); }
   static bool IsPayload(const In& m) { return m.has_step(); }
   static uint64_t Sequence(const In& m) { return m.step().client_sequence(); }
+};
+
+// An event time mapped to session time, and how (MapEventTime).
+struct MappedEvent {
+  SessionTime at;                   // through the chosen route
+  SessionTime round_trip_at;        // through the round-trip model, chosen or not
+  Duration uncertainty;             // the chosen route's
+  TimeSourceDecision decision;      // which route, and why
+  Duration round_trip_uncertainty;  // the round-trip model's, chosen or not
+  Duration server_bound;            // the server kernel's maxerror; zero: not read
 };
 
 template <typename Side>
@@ -129,6 +140,11 @@ class IngestReactor final : public grpc::ServerBidiReactor<grpc::ByteBuffer, grp
   void Cleanup();
 
   std::pair<SessionTime, Duration> Map(int64_t client_ns, absl::Status* error) const;
+  // Map, or through real time when ChooseTimeSource says so
+  // (docs/time-model.md, "Disciplined clocks"). `span` is how far the
+  // event reaches beyond client_ns (a step's length), for the bound.
+  MappedEvent MapEventTime(int64_t client_ns, const RealtimeReading& reading, Duration span,
+                           absl::Status* error);
   bool TakeRateToken();
   void Reject(uint64_t client_sequence, const absl::Status& s);
   void AppendClient(tickmark::v1::Record record);
@@ -210,6 +226,8 @@ class IngestReactor final : public grpc::ServerBidiReactor<grpc::ByteBuffer, grp
   int64_t last_step_start_ns_ = 0;               // agent clock; steps must move forward
   int64_t last_step_end_agent_ns_ = -1;          // explicit end of the last step (agent clock)
   SessionTime last_step_end_session_;            // ... and where it was mapped
+  SessionTime last_step_floor_;                  // the last step's mapped end, else its start
+  bool last_step_realtime_ = false;              // the last step was mapped through real time
 
   mutable std::mutex clock_view_mu_;
   ClockView clock_view_;  // GUARDED_BY(clock_view_mu_)

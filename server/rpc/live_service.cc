@@ -14,6 +14,8 @@ LiveService::LiveService(SessionHub* hub, TokenAuthority* auth, const MonotonicS
       mono_(mono),
       options_(std::move(options)),
       limits_clock_(options_.limits_clock ? options_.limits_clock : mono),
+      discipline_(options_.discipline ? options_.discipline : KernelDiscipline::Get(), mono,
+                  options_.discipline_refresh),
       rate_limiter_(limits_clock_),
       probe_budget_(options_.probe_budget, std::max(options_.probe_budget, 1.0), mono),
       admission_(options_.max_streams, options_.max_streams_per_peer),

@@ -32,6 +32,7 @@
 #include <string>
 
 #include "server/core/clock_model.h"
+#include "server/core/disciplined_clock.h"
 #include "server/core/probe_scheduler.h"
 #include "server/rpc/auth.h"
 #include "server/rpc/rate_limiter.h"
@@ -121,6 +122,17 @@ class LiveService final : public LiveServiceBase {
     // Clock for rate limits and the hello timeout; null: the service's
     // monotonic clock. Tests drive it by hand.
     const MonotonicSource* limits_clock = nullptr;
+    // Disciplined clocks (docs/time-model.md, "Disciplined clocks"): map a
+    // feedback or step through real time when the client sent a reading,
+    // both kernels say synchronised and the bounds beat the round trip.
+    // tickmarkd --no-realtime-mapping turns it off.
+    bool realtime_mapping = true;
+    // The server's own clock discipline; null: the running kernel
+    // (KernelDiscipline). A test hook: tests inject a FakeDiscipline. Not
+    // owned; outlives the service.
+    const ClockDiscipline* discipline = nullptr;
+    // The server's discipline state is read again at most this often.
+    Duration discipline_refresh = Duration::Seconds(1);
   };
 
   // Counters, for operators and tests.
@@ -166,6 +178,7 @@ class LiveService final : public LiveServiceBase {
   // The probe schedule of a new stream (Options::probing with the steady
   // interval and burst filled in).
   ProbeScheduler::Options probe_schedule() const;
+  DisciplineCache& discipline() { return discipline_; }
   StreamAdmission& admission() { return admission_; }
   struct Counters {
     std::atomic<uint64_t> undecodable{0};
@@ -185,6 +198,7 @@ class LiveService final : public LiveServiceBase {
   const MonotonicSource* const limits_clock_;  // not owned
 
   Counters counters_;
+  DisciplineCache discipline_;  // the server's own kernel state, shared by the streams
   RateLimiter rate_limiter_;
   TokenBucket probe_budget_;  // Options::probe_budget, shared by every stream
   StreamAdmission admission_;

@@ -14,6 +14,10 @@ namespace v1 = tickmark::v1;
 
 namespace {
 
+// The outcome of an event whose live real-time mapping was kept
+// (RetimeCollector::EventRef::realtime).
+constexpr char kRealtimeKept[] = "realtime";
+
 // Nearest-rank quantile of unsorted values (0 for none).
 int64_t Quantile(std::vector<int64_t> v, double q) {
   if (v.empty()) return 0;
@@ -39,12 +43,12 @@ RetimeCollector::Clock& RetimeCollector::Current(const std::string& client_id) {
 
 void RetimeCollector::AddEvent(const std::string& client_id, uint64_t sequence, const char* kind,
                                int64_t client_ns, int64_t live_ns, int64_t uncertainty_ns,
-                               int64_t arrival_ns) {
+                               int64_t arrival_ns, bool realtime) {
   Clock& c = Current(client_id);
   c.events.push_back(RetimeEvent{ClientTime::FromNanos(client_ns), SessionTime::FromNanos(live_ns),
                                  Duration::Nanos(uncertainty_ns), c.probes.size(),
                                  SessionTime::FromNanos(arrival_ns)});
-  c.refs.push_back(EventRef{sequence, kind});
+  c.refs.push_back(EventRef{sequence, kind, realtime});
 }
 
 void RetimeCollector::Add(const v1::Record& r) {
@@ -81,14 +85,16 @@ void RetimeCollector::Add(const v1::Record& r) {
   } else if (r.has_feedback()) {
     const v1::Feedback& f = r.feedback();
     AddEvent(f.client_id(), r.sequence(), "feedback", f.event_source_ns(), f.event_session_ns(),
-             f.uncertainty_ns(), f.arrival_session_ns());
+             f.uncertainty_ns(), f.arrival_session_ns(),
+             f.time_source() == v1::TIME_SOURCE_REALTIME);
   } else if (r.has_step()) {
     const v1::Step& s = r.step();
+    const bool realtime = s.time_source() == v1::TIME_SOURCE_REALTIME;
     AddEvent(s.client_id(), r.sequence(), "step_start", s.start_agent_ns(), s.start_session_ns(),
-             s.uncertainty_ns(), s.arrival_session_ns());
+             s.uncertainty_ns(), s.arrival_session_ns(), realtime);
     if (s.end_agent_ns() != 0) {
       AddEvent(s.client_id(), r.sequence(), "step_end", s.end_agent_ns(), s.end_session_ns(),
-               s.uncertainty_ns(), s.arrival_session_ns());
+               s.uncertainty_ns(), s.arrival_session_ns(), realtime);
     }
   }
 }
@@ -103,7 +109,12 @@ RetimeResult ComputeRetime(const RetimeCollector& collected, const RetimeOptions
     const std::vector<RetimedTime> out = RetimeClock(c.probes, c.events, options);
     for (size_t i = 0; i < out.size(); ++i) {
       const RetimeEvent& e = c.events[i];
-      const RetimedTime& t = out[i];
+      RetimedTime t = out[i];
+      // A live real-time mapping stays unless the probes bound it tighter
+      // (EventRef::realtime).
+      const bool keep_realtime = c.refs[i].realtime && (t.outcome != RetimeOutcome::kRetimed ||
+                                                        e.live_uncertainty <= t.uncertainty);
+      if (keep_realtime) t = RetimedTime{e.live, e.live_uncertainty, t.outcome, 0};
       ledger::DerivedTimeRow row;
       row.sequence = c.refs[i].sequence;
       row.kind = c.refs[i].kind;
@@ -112,12 +123,13 @@ RetimeResult ComputeRetime(const RetimeCollector& collected, const RetimeOptions
       row.uncertainty_ns = t.uncertainty.nanos();
       row.live_session_ns = e.live.nanos();
       row.live_uncertainty_ns = e.live_uncertainty.nanos();
-      row.outcome = RetimeOutcomeName(t.outcome);
+      const char* outcome = keep_realtime ? kRealtimeKept : RetimeOutcomeName(t.outcome);
+      row.outcome = outcome;
       row.probes = static_cast<uint32_t>(std::max(t.probes, 0));
       result.rows.push_back(std::move(row));
       sum.set_events(sum.events() + 1);
-      if (t.outcome != RetimeOutcome::kRetimed) {
-        (*sum.mutable_kept())[RetimeOutcomeName(t.outcome)] += 1;
+      if (keep_realtime || t.outcome != RetimeOutcome::kRetimed) {
+        (*sum.mutable_kept())[outcome] += 1;
         continue;
       }
       sum.set_retimed(sum.retimed() + 1);

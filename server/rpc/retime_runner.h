@@ -42,6 +42,11 @@ class RetimeCollector {
   struct EventRef {
     uint64_t sequence = 0;
     const char* kind = "";  // "feedback", "step_start", "step_end"
+    // Mapped live through real time (Feedback/Step.time_source): probes on
+    // both sides cannot beat the asymmetry that route got past
+    // (docs/time-model.md, "Disciplined clocks"), so its live time is kept
+    // unless the retimed bound is tighter.
+    bool realtime = false;
   };
   struct Clock {
     std::string client_id;
@@ -58,7 +63,8 @@ class RetimeCollector {
  private:
   Clock& Current(const std::string& client_id);
   void AddEvent(const std::string& client_id, uint64_t sequence, const char* kind,
-                int64_t client_ns, int64_t live_ns, int64_t uncertainty_ns, int64_t arrival_ns);
+                int64_t client_ns, int64_t live_ns, int64_t uncertainty_ns, int64_t arrival_ns,
+                bool realtime);
 
   std::vector<Clock> clocks_;
   std::map<std::string, size_t> current_;  // client id -> its current connection's clock

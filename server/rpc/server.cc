@@ -191,6 +191,7 @@ absl::StatusOr<std::unique_ptr<TickmarkServer>> TickmarkServer::Start(
   }
   s->admin_ = std::make_unique<AdminService>(s->hub_.get(), s->auth_.get());
   LiveService::Options live = options.live;
+  if (options.no_realtime_mapping) live.realtime_mapping = false;
   if (options.udp_probe) {
     auto udp = net::UdpProbeServer::Start(net::HostOf(options.listen), options.udp_probe_port);
     if (!udp.ok()) {

@@ -187,6 +187,11 @@ absl::StatusOr<uint64_t> SessionRuntime::AppendRecord(
   batch.push_back(std::move(record));
   return ledger_->Append(id_, std::move(batch),
                          [this, done](const absl::Status& s, const std::vector<Record>& committed) {
+                           // A kernel setting counts as soon as it is committed, before
+                           // the caller hears so: a trainer who joins right after an
+                           // admin's SetKernel must not get their calibration on top.
+                           // (Credit notes it again later; noting is idempotent.)
+                           if (s.ok()) NoteKernel(committed.front());
                            if (done) done(s, committed.front());
                            Fanout(s, committed);
                          });

@@ -239,6 +239,49 @@ TEST_F(RetimeRunnerTest, ClocksPerConnectionRestartsAndAClientWithoutProbes) {
   ledger::testing::ExpectChainVerifies(ledger_.get(), "s-1", records.size());
 }
 
+// Disciplined clocks (docs/time-model.md): a feedback mapped live through
+// real time with a 2 ms bound keeps its live time; the probes around it
+// (20 ± 5 ms each way) cannot bound it that tightly.
+TEST_F(RetimeRunnerTest, ARealTimeMappingTighterThanTheProbesIsKept) {
+  Script script(12);
+  const Device device{3'200'000'000, 80};
+  std::vector<v1::Record> records;
+  records.push_back(script.Connect("keys:ava:1", kOpen));
+  for (int64_t t = 0; t < 20; ++t) {
+    records.push_back(script.Probe("keys:ava:1", device, kOpen + t * kS));
+  }
+  const int64_t truth = kOpen + 10'300'000'000;
+  v1::Record realtime = script.Feedback("keys:ava:1", device, 1, truth);
+  realtime.mutable_feedback()->set_event_session_ns(truth + 500'000);
+  realtime.mutable_feedback()->set_uncertainty_ns(2'000'000);
+  realtime.mutable_feedback()->set_time_source(v1::TIME_SOURCE_REALTIME);
+  records.push_back(realtime);
+  records.push_back(script.Feedback("keys:ava:1", device, 2, truth + kS));  // round trip
+  std::stable_sort(records.begin(), records.end(), [](const v1::Record& a, const v1::Record& b) {
+    return a.written_session_ns() < b.written_session_ns();
+  });
+  auto committed = AppendAndWait(ledger_.get(), "s-1", records);
+  ASSERT_TRUE(committed.status.ok()) << committed.status.message();
+  auto summary = RunRetime(
+      ledger_.get(), "s-1", RetimeOptions{}, [](uint64_t, uint64_t) {}, [] { return false; });
+  ASSERT_TRUE(summary.ok()) << summary.status().message();
+  EXPECT_EQ(summary->events(), 2u);
+  EXPECT_EQ(summary->retimed(), 1u);
+  EXPECT_EQ(summary->kept().at("realtime"), 1u);
+  auto rows = ledger_->ReadDerivedTimes(summary->time_set());
+  ASSERT_TRUE(rows.ok());
+  ASSERT_EQ(rows->size(), 2u);
+  for (const ledger::DerivedTimeRow& row : *rows) {
+    if (row.outcome == "realtime") {
+      EXPECT_EQ(row.event_session_ns, truth + 500'000);
+      EXPECT_EQ(row.uncertainty_ns, 2'000'000);
+    } else {
+      EXPECT_EQ(row.outcome, "retimed");
+      EXPECT_GT(row.uncertainty_ns, 2'000'000);  // about half the smallest round trip
+    }
+  }
+}
+
 TEST_F(RetimeRunnerTest, ASessionWithoutEventsIsRefused) {
   auto none = RunRetime(
       ledger_.get(), "s-2", RetimeOptions{}, [](uint64_t, uint64_t) {}, [] { return false; });
