@@ -859,6 +859,7 @@ void IngestReactor<TrainerSide>::HandlePayload(const In& message, SessionTime ar
   fb->set_uncertainty_ns(v.uncertainty.nanos());
   fb->set_event_clamped(v.clamped);
   fb->set_input(f.input());
+  fb->set_audio_sha256(f.audio_sha256());
   // Kept either way; a late one may find its steps already settled.
   fb->set_late(arrival - v.event > runtime_->allowed_lateness());
   AppendClient(std::move(r));
