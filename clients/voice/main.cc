@@ -180,7 +180,8 @@ void Define(CLI::App& app, VoiceFlags* f) {
                "no server: print each phrase heard and send nothing")
       ->group(output);
   client::AddFlushTimeoutFlag(app, &f->flush_timeout_s)->group(output);
-  app.add_flag("--quiet", f->quiet, "print only errors")->group(output);
+  app.add_flag("--quiet", f->quiet, "print only errors (and, with --detect-only, the heard lines)")
+      ->group(output);
   app.add_flag("--verbose", f->verbose,
                "per phrase: onset vs recognition time, score and threshold; also near misses")
       ->group(output);
@@ -477,7 +478,7 @@ int RunDetectOnly(Listener& listener, const VoiceFlags& f, int quit_fd, std::ato
       }
       if (!item.event) continue;
       if (f.verbose) std::fprintf(stderr, "%s: %s\n", kProgram, VerboseLine(item).c_str());
-      if (item.event->heard.accepted && !f.quiet) {
+      if (item.event->heard.accepted) {
         std::printf("%s\n", HeardLine(item).c_str());
         std::fflush(stdout);
       }

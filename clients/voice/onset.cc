@@ -60,13 +60,17 @@ Onset FindOnset(std::span<const int16_t> audio, int64_t first_index, int64_t sta
     out.why = "too little audio before the phrase for a noise floor";
     return out;
   }
-  out.floor_db = Percentile(std::vector<double>(e.begin(), e.begin() + s0), o.floor_percentile);
+  const std::vector<double> floor_frames(e.begin(), e.begin() + s0);
+  out.floor_db = Percentile(floor_frames, o.floor_percentile);
+  const double noise_high = Percentile(floor_frames, 95);
   const int64_t level_from = std::clamp<int64_t>(frame_of(start), 0, static_cast<int64_t>(n) - 1);
   const int64_t level_to =
       std::clamp<int64_t>(frame_of(end), level_from + 1, static_cast<int64_t>(n));
   out.level_db = Percentile(std::vector<double>(e.begin() + level_from, e.begin() + level_to), 95);
   const double span = out.level_db - out.floor_db;
-  const double upper = out.floor_db + std::clamp(o.on_fraction * span, o.on_min_db, o.on_max_db);
+  const double upper =
+      std::max(out.floor_db + std::clamp(o.on_fraction * span, o.on_min_db, o.on_max_db),
+               noise_high + o.above_noise_db);
   const double lower = out.floor_db + std::clamp(o.low_fraction * span, o.low_min_db,
                                                  std::max(o.low_min_db, o.on_max_db / 3));
   const int64_t hold = std::max<int64_t>(1, Round(o.hold_s * rate) / hop);

@@ -13,7 +13,9 @@
 //     start and end;
 //  4. in the search window [start - back_s, start + forward_s], the first
 //     frame that stays above the upper threshold for `hold_s`, where upper =
-//     floor + clamp(on_fraction x (level - floor), on_min_db, on_max_db);
+//     floor + clamp(on_fraction x (level - floor), on_min_db, on_max_db),
+//     and at least `above_noise_db` over the 95th percentile of the floor
+//     frames (so that the noise's own swings do not pass it);
 //  5. from there, back while the energy stays above the lower threshold,
 //     floor + clamp(low_fraction x (level - floor), low_min_db, on_max_db / 3).
 // The onset is the centre of the first frame of that run. The recogniser's
@@ -39,6 +41,7 @@ struct OnsetOptions {
   double back_s = 0.35;
   double forward_s = 0.25;
   double hold_s = 0.02;
+  double above_noise_db = 2;
   double on_fraction = 0.3;
   double on_min_db = 3;
   double on_max_db = 9;
