@@ -31,7 +31,11 @@ class AlsaSource final : public AudioSource {
   AlsaSource(AlsaOptions options, const MonotonicSource* clock)
       : options_(std::move(options)), clock_(clock) {}
   ~AlsaSource() override {
-    stop_ = true;
+    {
+      std::lock_guard<std::mutex> l(mu_);
+      stop_ = true;
+      cv_.notify_all();
+    }
     if (thread_.joinable()) thread_.join();
     Close();
   }
@@ -52,7 +56,17 @@ class AlsaSource final : public AudioSource {
     }
     AudioBlock b = std::move(queue_.front());
     queue_.pop_front();
+    // Periods are short (20 ms); hand over up to 100 ms at once.
+    while (!queue_.empty() && b.samples.size() < 1600 && !queue_.front().gap &&
+           queue_.front().note.empty() &&
+           queue_.front().first_index == b.first_index + static_cast<int64_t>(b.samples.size())) {
+      AudioBlock& next = queue_.front();
+      b.samples.insert(b.samples.end(), next.samples.begin(), next.samples.end());
+      b.timing.insert(b.timing.end(), next.timing.begin(), next.timing.end());
+      queue_.pop_front();
+    }
     queued_ -= b.samples.size();
+    cv_.notify_all();
     next_read_index_ = b.first_index + static_cast<int64_t>(b.samples.size());
     return b;
   }
@@ -120,21 +134,15 @@ class AlsaSource final : public AudioSource {
     pcm_ = nullptr;
   }
 
+  // Queues a block. A reader more than kMaxQueuedSamples behind makes the
+  // capture thread wait: a sound card then overruns its own buffer (the
+  // next read reports it, and the gap is marked), and a device that is not
+  // paced by a clock (ALSA's null and file plugins) simply waits.
   void Push(AudioBlock b) {
-    std::lock_guard<std::mutex> l(mu_);
+    std::unique_lock<std::mutex> l(mu_);
+    cv_.wait(l, [&] { return queued_ < kMaxQueuedSamples || stop_.load(); });
     queued_ += b.samples.size();
     queue_.push_back(std::move(b));
-    // A reader this far behind will not catch up: drop the oldest audio.
-    bool dropped = false;
-    while (queued_ > kMaxQueuedSamples && queue_.size() > 1) {
-      queued_ -= queue_.front().samples.size();
-      queue_.pop_front();
-      dropped = true;
-    }
-    if (dropped) {
-      queue_.front().gap = true;
-      queue_.front().note = "the recogniser fell behind; 30 s of audio were dropped";
-    }
     cv_.notify_all();
   }
 

@@ -72,7 +72,7 @@ const SampleClock::Fit& SampleClock::Current() const {
     for (size_t k = 0; k < x.size(); ++k) intercept = std::min(intercept, y[k] - slope * x[k]);
     f.period = nominal_period_ns_ + slope;
     f.t0 = t_ref + intercept;
-    f.ppm = slope / nominal_period_ns_ * 1e6;
+    f.ppm = -slope / nominal_period_ns_ * 1e6;  // a fast card: shorter periods
   } else {
     double intercept = std::numeric_limits<double>::infinity();
     for (double v : y) intercept = std::min(intercept, v);

@@ -50,7 +50,8 @@ class SampleClock {
   // observation. Indices outside the observed range are extrapolated.
   std::optional<int64_t> TimeOf(int64_t index) const;
   // The fitted rate error of the audio against the host clock, in ppm
-  // (0 while the nominal rate is used), and how many pairs are kept.
+  // (positive: the card delivers samples faster than its nominal rate; 0
+  // while the nominal rate is used), and how many pairs are kept.
   double fitted_ppm() const;
   size_t observations() const { return pairs_.size(); }
   bool declared() const { return declared_.has_value(); }
