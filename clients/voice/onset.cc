@@ -53,8 +53,13 @@ Onset FindOnset(std::span<const int16_t> audio, int64_t first_index, int64_t sta
     e[k] = 10.0 * std::log10(sum / static_cast<double>(win) + 1e-3);
   }
   auto frame_of = [&](int64_t index) -> int64_t { return (index - a) / hop; };
-  const int64_t s0 = std::max<int64_t>(0, frame_of(search_from));
-  const int64_t s1 = std::min<int64_t>(static_cast<int64_t>(n), frame_of(search_to) + 1);
+  const int64_t frames = static_cast<int64_t>(n);
+  const int64_t s0 = std::clamp<int64_t>(frame_of(search_from), 0, frames);
+  const int64_t s1 = std::clamp<int64_t>(frame_of(search_to) + 1, 0, frames);
+  if (s1 <= s0) {
+    out.why = "no audio around the phrase";
+    return out;
+  }
   const int64_t min_floor_frames = Round(0.1 * rate) / hop;
   if (s0 < min_floor_frames) {
     out.why = "too little audio before the phrase for a noise floor";

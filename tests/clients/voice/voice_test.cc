@@ -240,6 +240,25 @@ TEST(OnsetTest, KeepsTheRecogniserWhenItCannotTell) {
   EXPECT_EQ(o.method, OnsetMethod::kRecogniser);
 }
 
+// A regression (found by fuzz/wav_fuzz.cc): a search window lying past the
+// audio read the floor frames beyond the end. Any positions must be safe.
+TEST(OnsetTest, AnyPositionsAreSafe) {
+  const auto s = Burst(9000, 6000, 100, 10, 80, 6);
+  for (int64_t first : {int64_t{-50000}, int64_t{0}, int64_t{7000}}) {
+    for (int64_t start = first - 20000; start < first + 30000; start += 997) {
+      for (int64_t len : {int64_t{0}, int64_t{160}, int64_t{9000}}) {
+        const Onset o = FindOnset(s, first, start, start + len, 16000);
+        if (o.method == OnsetMethod::kEnergy) {
+          EXPECT_GE(o.index, first);
+          EXPECT_LE(o.index, first + 9000);
+        } else {
+          EXPECT_EQ(o.index, start);
+        }
+      }
+    }
+  }
+}
+
 // --- sample clock ---
 
 TEST(SampleClockTest, DeclaredStartIsExact) {
