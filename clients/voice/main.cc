@@ -73,8 +73,9 @@ the phrase's threshold, to tune a profile for your voice and room.
 Timing: the event time is the onset of the phrase: the recogniser's word
 segmentation, refined by the rise of the sound energy around it (method
 "energy", or "recogniser" when the rise is unclear), on CLOCK_MONOTONIC, the
-clock the server probes. Recognition takes 0.3-1 s more; that delay is not
-in the event time, and is reported in the feedback's input label
+clock the server probes. Recognition comes 0.8-1.3 s after the onset (the
+phrase itself, then 0.35 s to be sure); that delay is not in the event
+time, and is reported in the feedback's input label
 ("voice:good job onset=energy lat=804ms"). From ALSA, sample times come from
 the device's monotonic timestamps. From a file, say when its first sample
 was recorded (--audio-start MONO_NS, or ends-now for a recording that just
@@ -118,7 +119,7 @@ std::string Footer() {
   const std::string mark = "%CALIBRATION%\n";
   text.replace(text.find(mark), mark.size(),
                keys::CalibrationHelp(
-                   "phrases (answer times are their onsets; the terminal keys start and stop)",
+                   "phrases (timed at their onsets;\nthe terminal keys only start and stop)",
                    "tickmark-voice --profile clients/voice/profiles/en-basic.toml \\\n"
                    "  --token-file trainer.token --calibrate") +
                    "\n");
@@ -161,7 +162,7 @@ void Define(CLI::App& app, VoiceFlags* f) {
             }
             return "";
           },
-          "WHEN"))
+          ""))
       ->group(audio);
   app.add_option("--stop-after", f->stop_after_s,
                  "stop after this many seconds of audio (0: never)")
