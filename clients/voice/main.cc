@@ -421,6 +421,7 @@ int RunSend(Listener& listener, client::TrainerClient& stream, client::StreamOpt
     }
     if (!out.empty()) (void)!write(STDERR_FILENO, out.data(), out.size());
     if (ended) break;
+    if (stream.status().state == client::StreamState::kFailed) break;  // said by on_state
   }
   if (tty) (void)!write(STDERR_FILENO, "\n", 1);
   listener.Stop();
@@ -525,8 +526,13 @@ int Main(int argc, char** argv) {
   }
   if (f.detect_only && f.calibration.calibrate)
     return Usage("--detect-only and --calibrate exclude each other");
-  if (f.calibration.calibrate && file && f.audio_start != "live" && path != "-") {
-    return Usage("--calibrate listens live: use ALSA, or a pipe with --audio-start live");
+  if (f.calibration.calibrate && file && (path == "-" || f.audio_start != "live")) {
+    return Usage(
+        "--calibrate listens live and reads the terminal on stdin: use ALSA, or a FIFO "
+        "with --audio-start live (--raw PATH)");
+  }
+  if (f.calibration.calibrate && !f.keep_audio.empty()) {
+    return Usage("--keep-audio keeps the audio of sent feedback; not with --calibrate");
   }
   auto profile = LoadVoiceProfile(f.profile);
   if (!profile.ok()) return Usage(std::string(profile.status().message()));

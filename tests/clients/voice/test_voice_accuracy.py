@@ -4,7 +4,8 @@ onset error against the known insertion offsets, compared with the
 recogniser's own segmentation and with an onset found by sox alone.
 
 These are accuracy figures of deterministic inputs, not timings; the
-targets are the ones tickmark-voice promises (docs/voice.md)."""
+targets are the ones tickmark-voice promises at 20 dB SNR (docs/voice.md);
+bench/voice_bench.py prints the same figures at 10 dB as well."""
 
 from __future__ import annotations
 
@@ -28,6 +29,7 @@ def test_sentences_hold_no_profile_phrase():
 def test_detects_nine_in_ten_phrases_at_20db(rows):
     r = rows["kw20"]
     assert r["insertions"] == 56
+    assert r["wrong_or_extra"] <= 2, r
     assert r["rate"] >= 0.90, (r["rate"], r["missed"])
 
 
@@ -52,11 +54,3 @@ def test_at_most_one_false_detection_per_minute_of_other_speech(rows):
     r = rows["nk20"]
     assert r["speech_minutes"] > 3
     assert r["false_per_minute"] <= 1.0, r["false_list"]
-
-
-def test_10db_is_measured(rows):
-    """No target at 10 dB SNR (docs/voice.md gives the figures); the file
-    must still decode and its detections be of real phrases."""
-    r = rows["kw10"]
-    assert r["insertions"] == 56
-    assert r["wrong_or_extra"] <= 3, r

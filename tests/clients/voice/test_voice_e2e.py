@@ -112,3 +112,17 @@ def test_without_keep_audio_nothing_is_written(server, tmp_path):
     for (body,) in db.execute("SELECT body FROM record WHERE session_id = ? AND kind = 'feedback'",
                               (session,)):
         assert records_pb2.Record.FromString(body).feedback.audio_sha256 == b""
+
+
+def test_a_refused_token_stops_listening(server, tmp_path):
+    """Endless audio (ALSA's null device) and a token the server does not
+    know: the stream fails for good, and tickmark-voice says so and exits 1
+    instead of listening on."""
+    token = tmp_path / "bad.token"
+    token.write_text("tmk_not_a_token\n")
+    p = subprocess.run(
+        [os.path.join(BIN, "tickmark-voice"), "--profile", PROFILE, "--alsa-device", "null",
+         "--server", server.address, "--token-file", str(token)],
+        capture_output=True, text=True, timeout=60, stdin=subprocess.DEVNULL)
+    assert p.returncode == 1, p.stderr
+    assert "UNAUTHENTICATED" in p.stderr, p.stderr

@@ -36,7 +36,7 @@ RATE = 16000
 VOICES = ("slt", "rms", "awb", "kal16")
 SPEECH_RMS = 0.05 * 32768  # every clip is scaled to this RMS (-26 dBFS)
 TRIM = ["silence", "1", "0.005", "1%"]
-GENERATOR = "voice-corpus 1"  # bump when the generation changes
+GENERATOR = "voice-corpus 2"  # bump when the generation changes
 
 # Ordinary things said in a lab while an agent trains; none holds a phrase of
 # the shipped profiles (the test checks that).
@@ -128,12 +128,14 @@ def _noise(folder, seconds):
     return read_wav(path)
 
 
-def _mix(folder, name, items, snr_db, seed, noise, noise_at):
-    """Writes name.wav: items [(label dict, samples)] in noise; returns the manifest entry."""
+def _mix(folder, name, items, snr_db, seed, noise, noise_at, gap_s=(1.5, 3.0)):
+    """Writes name.wav: items [(label dict, samples)] in noise, each followed
+    by a gap drawn from gap_s (keyword clips need over 1.15 s of noise before
+    them for the onset search's floor); returns the manifest entry."""
     rng = random.Random(seed)
     pos = RATE  # the first second is noise only: the onset search's floor
     placed = []
-    gaps = [int(rng.uniform(1.5, 3.0) * RATE) for _ in items]
+    gaps = [int(rng.uniform(*gap_s) * RATE) for _ in items]
     total = pos + sum(len(x) + g for (_, x), g in zip(items, gaps)) + RATE
     seg = noise[(noise_at + np.arange(total)) % len(noise)]  # wraps round a long noise file
     seg = seg / np.sqrt(np.mean(seg ** 2)) * SPEECH_RMS / 10 ** (snr_db / 20)
@@ -183,7 +185,7 @@ def build(cache_root, profile_path, snrs=(20, 10), sentence_snrs=(20,), repeats=
         items = [({"sentence": s, "voice": voice}, audio[(s, voice)])
                  for s in SENTENCES for voice in VOICES]
         random.Random(300 + i).shuffle(items)
-        entry = _mix(folder, f"nk{snr}", items, snr, 400 + i, noise, at)
+        entry = _mix(folder, f"nk{snr}", items, snr, 400 + i, noise, at, gap_s=(0.4, 0.8))
         at += int(entry["seconds"] * RATE)
         manifest["files"][f"nk{snr}"] = entry
     with open(manifest_path + ".tmp", "w") as f:
