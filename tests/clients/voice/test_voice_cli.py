@@ -172,3 +172,10 @@ def test_alsa_missing_device_is_a_clear_error():
     p = run("--profile", PROFILE, "--alsa-device", "nosuchdevice", "--detect-only")
     assert p.returncode == 1
     assert 'ALSA device "nosuchdevice": cannot open for capture' in p.stderr
+
+
+def test_list_devices_names_alsa_capture_devices():
+    p = run("--list-devices")
+    assert p.returncode == 0, p.stderr
+    # alsa.conf defines pcm.null with a hint, so it is listed on every machine.
+    assert any(line.startswith("null\t") for line in p.stdout.splitlines()), p.stdout
