@@ -148,8 +148,7 @@ void AddWebFlags(CLI::App& app, tickmark::web::WebOptions& w) {
   app.add_option("--http-public-url", w.http_public_url,
                  "how browsers reach the web port, for invite links (https://HOST:PORT; default: "
                  "from --http-listen)");
-  app.add_option("--http-max-connections", w.http.max_connections,
-                 "open web connections in total")
+  app.add_option("--http-max-connections", w.http.max_connections, "open web connections in total")
       ->check(CLI::Range(size_t{1}, size_t{1'000'000}));
   app.add_option("--http-max-connections-per-peer", w.http.max_connections_per_peer,
                  "open web connections per client address")
