@@ -358,6 +358,11 @@ struct HttpServer::Impl {
     beast::error_code ec;
     const tcp::endpoint remote = socket.remote_endpoint(ec);
     if (ec) return;
+    // Small messages both ways (probes and their replies, acks): without
+    // this, Nagle's algorithm holds a write until the previous one is
+    // acknowledged, which a delayed ACK can stretch to tens of ms, and
+    // clock probes would measure that.
+    socket.set_option(tcp::no_delay(true), ec);
     std::string peer = remote.address().to_string();
     Registry& reg = *shared->registry;
     {

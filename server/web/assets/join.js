@@ -66,11 +66,14 @@
     if (code) join(code);
   });
 
-  const fragment = decodeURIComponent(location.hash.replace(/^#/, '')).replace(/^code=/, '');
-  if (location.hash) history.replaceState(null, '', location.pathname);
-  if (fragment) {
-    join(fragment);
-  } else {
-    TM.show(form, true);
+  // Takes the code out of the address bar and the history, then joins.
+  function fromFragment() {
+    const code = decodeURIComponent(location.hash.replace(/^#/, '')).replace(/^code=/, '');
+    if (location.hash) history.replaceState(null, '', location.pathname);
+    if (code) join(code);
+    return code !== '';
   }
+  // A second link opened in the same tab changes only the fragment.
+  window.addEventListener('hashchange', fromFragment);
+  if (!fromFragment()) TM.show(form, true);
 })();

@@ -47,7 +47,7 @@
     feedback: new Map(),     // feedback sequence -> {trainer, t, unc, value, late}
     credits: [],             // {f, s, c}
     markers: [],             // {t, text, author}
-    counts: { feedback: 0, steps: 0, labels: 0, credit: 0, unmatched: 0, late: 0 },
+    counts: { records: 0, feedback: 0, steps: 0, labels: 0, credit: 0, unmatched: 0, late: 0 },
     closed: false,
     dirty: true,
   };
@@ -66,6 +66,7 @@
   }
 
   function apply(r) {
+    M.counts.records++;  // every record received, repeats included (there should be none)
     const seq = Number(r.sequence);
     if (seq <= M.lastSeq) return;  // a resumed stream repeats nothing, but be sure
     M.lastSeq = seq;
