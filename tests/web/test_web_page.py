@@ -426,6 +426,40 @@ def test_presses_by_mouse_key_and_touch_are_stored_once_on_time(web, browser, sh
     assert approve.accessible_name != disapprove.accessible_name
 
 
+def test_calibration_in_the_page_is_fitted_by_the_server(web, browser, shared):
+    """The calibration task (docs/calibration.md) run in the page: 5 practice
+    moves and 4 real ones, each answered by key 150 ms after the test sees it,
+    then Stop; the server matches and fits the run like any source's."""
+    from selenium.webdriver.common.action_chains import ActionChains
+    from selenium.webdriver.support.ui import Select
+    d = browser
+    d.switch_to.window(shared["trainer_tab"])
+    Select(by_id(d, "cal-answers")).select_by_value("20")
+    by_id(d, "cal-start").click()
+    mover = ("return [...document.querySelectorAll('#cal-track .cal-cell')]"
+             ".findIndex((c) => c.classList.contains('mover'))")
+    prev = wait_for("the calibration track", lambda: d.execute_script(mover) + 1) - 1
+    answered = 0
+    deadline = time.monotonic() + 60
+    while answered < 9:
+        assert time.monotonic() < deadline, "the calibration moves stopped"
+        pos = d.execute_script(mover)
+        if pos != prev:
+            time.sleep(0.15)
+            ActionChains(d).send_keys("f" if pos > prev else "j").perform()
+            answered += 1
+            prev = pos
+        time.sleep(0.02)
+    by_id(d, "cal-stop").click()
+    result = wait_for("the fitted calibration", lambda: visible_text(d, "cal-result"), timeout=60)
+    assert result.startswith("Calibration c-") and "4 valid answers" in result, result
+    with web.db() as db:
+        row = db.execute("SELECT id, valid, family, kernel_description, source_kind FROM "
+                         "calibration WHERE trainer = 'tr-07'").fetchone()
+    assert row and row[1] == 4 and row[4] == "web", row
+    print("calibration in the page:", result)
+
+
 def test_used_code_and_trainer_token_on_live_view_are_refused(web, browser, shared):
     d = browser
     d.switch_to.window(shared["trainer_tab"])

@@ -198,8 +198,11 @@
     return M.nowMs + (M.closed ? 0 : performance.now() - M.nowAtPerf);
   }
 
-  function tickStep(w) {
-    for (const s of [1000, 2000, 5000, 10000, 15000, 30000, 60000]) if (w / s <= 8) return s;
+  // Grid spacing: at least 64 px between lines.
+  function tickStep(windowMs, plotPx) {
+    for (const s of [1000, 2000, 5000, 10000, 15000, 30000, 60000]) {
+      if (s / windowMs * plotPx >= 64) return s;
+    }
     return 120000;
   }
 
@@ -247,15 +250,18 @@
       g.fillText('Waiting for steps and feedback…', left, top + laneH / 2);
     }
 
-    // Time axis.
-    const step = tickStep(windowMs);
+    // Time axis: lines at whole steps before now, labelled by their age.
+    const step = tickStep(windowMs, cssW - left - right);
     g.strokeStyle = C.line;
     g.fillStyle = C.muted;
-    for (let t = Math.ceil(t0 / step) * step; t <= now; t += step) {
-      const tx = x(t);
+    for (let age = step; age < windowMs; age += step) {
+      const tx = x(now - age);
       g.beginPath(); g.moveTo(tx, top); g.lineTo(tx, cssH - axis); g.stroke();
-      g.fillText('−' + Math.round((now - t) / 1000) + ' s', tx + 3, cssH - axis / 2);
+      g.fillText('−' + age / 1000 + ' s', tx + 3, cssH - axis / 2);
     }
+    g.textAlign = 'right';
+    g.fillText('now', cssW - right - 2, cssH - axis / 2);
+    g.textAlign = 'left';
 
     // Steps, with settled labels.
     for (const a of agents) {
@@ -337,7 +343,9 @@
       const mx = x(m.t);
       g.beginPath(); g.moveTo(mx, 4); g.lineTo(mx, cssH - axis); g.stroke();
       g.fillStyle = C.amber;
-      g.fillText(m.text, mx + 4, 12, 200);
+      // The text on the side with room for it.
+      const w = Math.min(200, g.measureText(m.text).width);
+      g.fillText(m.text, mx + 4 + w > cssW - right ? mx - 4 - w : mx + 4, 12, 200);
     }
     g.setLineDash([]);
   }
