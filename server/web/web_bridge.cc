@@ -189,7 +189,8 @@ absl::StatusOr<JoinGrant> WebBridge::Join(const std::string& code, const std::st
     grant.session_title = row->title;
   }
   TM_LOG(kInfo) << "web: " << peer << " joined session " << invite->session_id << " as "
-                << v1::Role_Name(invite->role) << " " << invite->subject << " (token "
+                << v1::Role_Name(invite->role)
+                << (invite->subject.empty() ? "" : " " + invite->subject) << " (token "
                 << issued->first.id << ")";
   return grant;
 }

@@ -290,6 +290,47 @@ def test_security_headers_and_no_inline_script(web):
 
 # --- 2. Joining, and what is refused ------------------------------------------------------
 
+def test_invite_prints_the_link_and_a_qr_code_that_decodes_to_it(web):
+    """`tickmark invite`: the link on stdout, and the QR code (drawn from
+    libqrencode's symbol) read back by zbar (Debian's zbar-tools), an
+    independent ISO/IEC 18004 decoder."""
+    token_file = os.path.join(web.data_dir, "admin.token")
+    with open(token_file, "w") as f:
+        f.write(web.admin_token + "\n")
+    cli = [os.path.join(BIN, "tickmark"), "--server", web.address, "--token-file", token_file,
+           "invite", "--session", web.session, "--role", "trainer", "--subject", "tr-qr",
+           "--expires", "2h"]
+    plain = subprocess.run(cli + ["--qr", "none"], capture_output=True, text=True, timeout=WAIT)
+    assert plain.returncode == 0, plain.stderr
+    assert re.fullmatch(rf"{re.escape(web.base)}/join#[0-9A-Z]{{4}}(-[0-9A-Z]{{4}}){{3}}\n",
+                        plain.stdout), plain.stdout
+    assert "works once" in plain.stderr and "tr-qr" in plain.stderr
+    out = subprocess.run(cli + ["--qr", "plain"], capture_output=True, text=True, timeout=WAIT)
+    assert out.returncode == 0, out.stderr
+    lines = out.stdout.split("\n")
+    url, art = lines[0], [l for l in lines[1:] if l and not l.startswith("code ")]
+    halves = {"\u2588": (1, 1), "\u2580": (1, 0), "\u2584": (0, 1), " ": (0, 0)}
+    rows = []
+    for line in art:
+        top, bottom = zip(*(halves[c] for c in line))
+        rows += [top, bottom]
+    scale = 6
+    size = len(rows[0]) * scale
+    pixels = bytearray()
+    for row in rows:
+        line = bytes(0 if dark else 255 for dark in row for _ in range(scale))
+        pixels += line * scale
+    pgm = os.path.join(web.data_dir, "invite.pgm")
+    with open(pgm, "wb") as f:
+        f.write(b"P5 %d %d 255\n" % (size, len(rows) * scale) + bytes(pixels))
+    decoded = subprocess.run(["zbarimg", "--raw", "-q", pgm], capture_output=True, text=True,
+                             timeout=WAIT)
+    assert decoded.returncode == 0, decoded.stderr
+    assert decoded.stdout.strip() == url
+    assert lines[-2] == "code " + url.split("#")[1]
+    print("QR code read back by zbarimg:", decoded.stdout.strip())
+
+
 def join_error(d, url):
     d.get("about:blank")  # a fresh document, as when a link opens in a new tab
     d.get(url)
