@@ -203,16 +203,16 @@ int main(int argc, char** argv) {
     (*server)->Shutdown(tickmark::Duration::Zero());
     return 1;
   }
-  if (bridge.enabled()) {
-    // Machine-readable, before the gRPC line that scripts wait for.
-    std::cout << "tickmarkd web port=" << bridge.port() << " url=" << bridge.base_url()
-              << std::endl;
-  }
   TM_LOG(kInfo) << "listening on " << options.listen.substr(0, options.listen.rfind(':')) << ":"
                 << (*server)->port() << "; ledger " << (*server)->ledger_path()
                 << "; operator token in " << (*server)->operator_token_path();
   // Machine-readable line for scripts that start us with port 0.
   std::cout << "tickmarkd listening port=" << (*server)->port() << std::endl;
+  if (bridge.enabled()) {
+    // The same for the web port, after the gRPC line (scripts read that first).
+    std::cout << "tickmarkd web port=" << bridge.port() << " url=" << bridge.base_url()
+              << std::endl;
+  }
 
   int sig = 0;
   sigwait(&signals, &sig);

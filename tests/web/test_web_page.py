@@ -92,9 +92,9 @@ class WebServer:
             [os.path.join(BIN, "tickmarkd"), "--data-dir", data_dir, "--listen", "127.0.0.1:0",
              "--http-listen", "127.0.0.1:0", "--log-level", "warning"],
             stdout=subprocess.PIPE, stderr=self.log, text=True)
+        self.port = int(fixtures._wait_line(self.proc, r"listening port=(\d+)").group(1))
         m = fixtures._wait_line(self.proc, r"web port=(\d+) url=(\S+)")
         self.web_port, self.base = int(m.group(1)), m.group(2)
-        self.port = int(fixtures._wait_line(self.proc, r"listening port=(\d+)").group(1))
         self.address = f"127.0.0.1:{self.port}"
         with open(os.path.join(data_dir, "operator.token")) as f:
             self.operator = f.read().strip()
