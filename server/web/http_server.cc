@@ -83,7 +83,10 @@ template <class Stream>
 class WsSession final : public PageSocket, public std::enable_shared_from_this<WsSession<Stream>> {
  public:
   WsSession(Stream&& stream, std::shared_ptr<Shared> shared, std::shared_ptr<Ticket> ticket)
-      : ws_(std::move(stream)), shared_(std::move(shared)), ticket_(std::move(ticket)) {}
+      : ws_(std::move(stream)),
+        executor_(ws_.get_executor()),
+        shared_(std::move(shared)),
+        ticket_(std::move(ticket)) {}
 
   void Accept(http::request<http::string_body> req, HttpRequest info, std::string path) {
     websocket::stream_base::timeout t;
@@ -107,13 +110,12 @@ class WsSession final : public PageSocket, public std::enable_shared_from_this<W
 
   // PageSocket: from any thread, onto the strand.
   void Send(std::string text) override {
-    asio::post(ws_.get_executor(),
-               [self = this->shared_from_this(), text = std::move(text)]() mutable {
-                 self->DoSend(std::move(text));
-               });
+    asio::post(executor_, [self = this->shared_from_this(), text = std::move(text)]() mutable {
+      self->DoSend(std::move(text));
+    });
   }
   void Close() override {
-    asio::post(ws_.get_executor(), [self = this->shared_from_this()] {
+    asio::post(executor_, [self = this->shared_from_this()] {
       self->closing_ = true;
       if (!self->writing_) self->DoClose();
     });
@@ -214,6 +216,8 @@ class WsSession final : public PageSocket, public std::enable_shared_from_this<W
   }
 
   websocket::stream<Stream> ws_;
+  // The connection's strand; set once, so any thread may post to it.
+  const typename websocket::stream<Stream>::executor_type executor_;
   std::shared_ptr<Shared> shared_;
   std::shared_ptr<Ticket> ticket_;
   beast::flat_buffer buffer_;

@@ -47,32 +47,35 @@ class FakePage final : public PageSocket {
     closed_ = true;
     cv_.notify_all();
   }
+  // Waits up to 20 s for Close().
   bool closed() {
-    std::lock_guard<std::mutex> lock(mu_);
-    return closed_;
+    std::unique_lock<std::mutex> lock(mu_);
+    return cv_.wait_for(lock, std::chrono::seconds(20), [this] { return closed_; });
   }
 
-  // Reads messages in order until one satisfies `want` (returned), answering
-  // the server's clock probes with CLOCK_MONOTONIC meanwhile, as a page
-  // answers with performance.now(); "" if none within 20 s.
+  // The first message so far (from the start) that satisfies `want`, waiting
+  // up to 20 s for it; meanwhile answers the server's clock probes, once
+  // each, with CLOCK_MONOTONIC, as a page answers with performance.now().
+  // "" if none came.
   std::string Until(Relay* relay, const std::function<bool(const std::string&)>& want) {
     const auto deadline = std::chrono::steady_clock::now() + std::chrono::seconds(20);
     std::unique_lock<std::mutex> lock(mu_);
     while (true) {
-      while (next_ < messages_.size()) {
-        std::string m = messages_[next_++];
-        if (m.find("{\"probe\":") == 0) {
-          const int64_t t2 = MonoNowNs();
-          v1::ServerMessage probe;
-          EXPECT_TRUE(google::protobuf::util::JsonStringToMessage(m, &probe).ok()) << m;
-          lock.unlock();
-          relay->OnPageMessage(
-              "{\"probeReply\": {\"probeId\": \"" + std::to_string(probe.probe().probe_id()) +
-              "\", \"t1SessionNs\": \"" + std::to_string(probe.probe().t1_session_ns()) +
-              "\", \"t2ClientNs\": \"" + std::to_string(t2) + "\", \"t3ClientNs\": \"" +
-              std::to_string(MonoNowNs()) + "\"}}");
-          lock.lock();
-        }
+      while (answered_ < messages_.size()) {
+        const std::string m = messages_[answered_++];
+        if (m.find("{\"probe\":") != 0) continue;
+        const int64_t t2 = MonoNowNs();
+        v1::ServerMessage probe;
+        EXPECT_TRUE(google::protobuf::util::JsonStringToMessage(m, &probe).ok()) << m;
+        lock.unlock();
+        relay->OnPageMessage("{\"probeReply\": {\"probeId\": \"" +
+                             std::to_string(probe.probe().probe_id()) + "\", \"t1SessionNs\": \"" +
+                             std::to_string(probe.probe().t1_session_ns()) +
+                             "\", \"t2ClientNs\": \"" + std::to_string(t2) +
+                             "\", \"t3ClientNs\": \"" + std::to_string(MonoNowNs()) + "\"}}");
+        lock.lock();
+      }
+      for (const std::string& m : messages_) {
         if (want(m)) return m;
       }
       if (cv_.wait_until(lock, deadline) == std::cv_status::timeout) return "";
@@ -86,7 +89,7 @@ class FakePage final : public PageSocket {
   std::mutex mu_;
   std::condition_variable cv_;
   std::deque<std::string> messages_;  // GUARDED_BY(mu_)
-  size_t next_ = 0;                   // GUARDED_BY(mu_)
+  size_t answered_ = 0;               // probes answered up to here; GUARDED_BY(mu_)
   bool closed_ = false;               // GUARDED_BY(mu_)
 };
 
