@@ -72,10 +72,12 @@ std::string ServerMessageToPage(const v1::ServerMessage& message) {
 std::string ClockToPage(const v1::ClockModelUpdate& model) { return Wrap("clock", model, true); }
 
 std::string EndToPage(int code, std::string_view message) {
-  pb::Struct end;
-  (*end.mutable_fields())["code"].set_number_value(code);
-  (*end.mutable_fields())["message"].set_string_value(std::string(message));
-  return Wrap("end", end, false);
+  // Written out, not as a Struct, so the fields keep their order.
+  pb::Value text;
+  text.set_string_value(std::string(message));
+  std::string quoted;
+  if (!pb::util::MessageToJsonString(text, &quoted).ok()) quoted = "\"\"";
+  return Cat("{\"end\":{\"code\":", code, ",\"message\":", quoted, "}}");
 }
 
 absl::StatusOr<SubscribePageRequest> ParseSubscribePageMessage(std::string_view json) {
