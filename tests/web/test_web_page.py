@@ -180,8 +180,8 @@ def browser():
 def links():
     made = []
 
-    def make(target):
-        link = fixtures.Link(target)
+    def make(target, delay_ms=0):
+        link = fixtures.Link(target, delay_ms=delay_ms)
         made.append(link)
         return link
 
@@ -549,32 +549,41 @@ def test_live_view_shows_the_session(web, browser, shared):
 # --- 4. Cut connections -------------------------------------------------------------------
 
 def test_trainer_socket_cut_mid_run_loses_and_duplicates_nothing(web, browser, links):
+    """The link to the page has 300 ms each way, so when it is cut three presses
+    are stored with their acknowledgements still on the way back, and two more
+    have not reached the server; five more are pressed while it is cut."""
     from selenium.webdriver.common.action_chains import ActionChains
     d = browser
     d.switch_to.new_window("tab")
-    link = links(f"127.0.0.1:{web.web_port}")
+    link = links(f"127.0.0.1:{web.web_port}", delay_ms=300)
     invite = web.invite("trainer", "tr-09")
     d.get(invite.url.replace(f"127.0.0.1:{web.web_port}", link.address))
     wait_for("the welcome", lambda: by_id(d, "st-conn").get_attribute("data-state") == "connected")
-    for key in "fjfjf":
+    client_id = d.execute_script(
+        "return JSON.parse(sessionStorage.getItem('tickmark.trainer')).clientId")
+
+    def stored():
+        with web.db() as db:
+            return db.execute("SELECT client_seq, value FROM feedback WHERE session_id = ? AND "
+                              "client_id = ? ORDER BY client_seq", (web.session, client_id)).fetchall()
+    for key in "fjf":
         ActionChains(d).send_keys(key).perform()
-    link.kill()  # mid-run: some of those may not be acknowledged yet
-    acked_at_cut = int(text_of(d, "st-acked"))
+    wait_for("three presses stored", lambda: len(stored()) == 3)
+    for key in "jf":
+        ActionChains(d).send_keys(key).perform()
+    link.kill()  # mid-run
+    acked_at_cut, stored_at_cut = int(text_of(d, "st-acked")), len(stored())
     wait_for("the page to notice", lambda: by_id(d, "st-conn").get_attribute("data-state") == "retry")
     for key in "jfjfj":
         ActionChains(d).send_keys(key).perform()
     assert int(text_of(d, "st-pending")) >= 5
     link.start(link.port)
     wait_for("all ten acknowledged", lambda: text_of(d, "st-acked") == "10" and
-             text_of(d, "st-pending") == "0")
-    client_id = d.execute_script(
-        "return JSON.parse(sessionStorage.getItem('tickmark.trainer')).clientId")
-    with web.db() as db:
-        rows = db.execute("SELECT client_seq, value FROM feedback WHERE session_id = ? AND "
-                          "client_id = ? ORDER BY client_seq", (web.session, client_id)).fetchall()
+             text_of(d, "st-pending") == "0", timeout=40)
+    rows = stored()
     assert rows == [(i + 1, 1.0 if k == "f" else -1.0) for i, k in enumerate("fjfjfjfjfj")], rows
-    print(f"socket cut after {acked_at_cut} of 5 acknowledged; 5 more pressed while cut; "
-          f"ledger holds {len(rows)}, each once")
+    print(f"socket cut with {stored_at_cut} of 5 presses stored and {acked_at_cut} acknowledged; "
+          f"5 more pressed while cut; the ledger holds {len(rows)}, each once")
 
 
 def test_live_view_resumes_after_its_last_record(web, browser, links):
