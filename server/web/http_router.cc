@@ -146,6 +146,11 @@ bool SameOrigin(const std::string& origin, const std::string& host, bool tls) {
   return origin == (tls ? "https://" : "http://") + host;
 }
 
+bool HttpRouter::OriginAllowed(const HttpRequest& request) const {
+  return SameOrigin(request.origin, request.host, request.tls) ||
+         (!public_origin_.empty() && request.origin == public_origin_);
+}
+
 HttpResponse HttpRouter::Route(const HttpRequest& request) const {
   const std::string path = PathOf(request.target);
   if (path == "/api/join") {
@@ -179,7 +184,7 @@ HttpResponse HttpRouter::Route(const HttpRequest& request) const {
 }
 
 HttpResponse HttpRouter::Join(const HttpRequest& request) const {
-  if (!SameOrigin(request.origin, request.host, request.tls)) {
+  if (!OriginAllowed(request)) {
     return JsonError(403, "origin", "join requests come from this server's own page", request.tls);
   }
   if (request.content_type.rfind("application/json", 0) != 0) {

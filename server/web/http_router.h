@@ -83,12 +83,20 @@ bool SameOrigin(const std::string& origin, const std::string& host, bool tls);
 
 class HttpRouter {
  public:
-  explicit HttpRouter(JoinFunction join) : join_(std::move(join)) {}
+  // `public_origin` ("https://lab.example.org:8443"; may be empty) is also
+  // accepted as a request's Origin: the address browsers use when a proxy
+  // in front terminates TLS or renames the host.
+  explicit HttpRouter(JoinFunction join, std::string public_origin = "")
+      : join_(std::move(join)), public_origin_(std::move(public_origin)) {}
   HttpResponse Route(const HttpRequest& request) const;
+  // Whether a request's Origin is this server's own page: SameOrigin, or
+  // the public origin.
+  bool OriginAllowed(const HttpRequest& request) const;
 
  private:
   HttpResponse Join(const HttpRequest& request) const;
   JoinFunction join_;
+  std::string public_origin_;
 };
 
 }  // namespace tickmark::web

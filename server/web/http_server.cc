@@ -291,7 +291,7 @@ class HttpSession final : public std::enable_shared_from_this<HttpSession<Stream
         r.headers = SecurityHeaders(info.tls);
         return Write(r, false, req.version());
       }
-      if (!SameOrigin(info.origin, info.host, info.tls)) {
+      if (!shared_->router->OriginAllowed(info)) {
         HttpResponse r;
         r.status = 403;
         r.headers = SecurityHeaders(info.tls);

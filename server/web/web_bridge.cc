@@ -26,16 +26,34 @@ std::string InviteBaseUrl(const std::string& public_url, const std::string& list
   return Cat(tls ? "https" : "http", "://", host, ":", port);
 }
 
+absl::StatusOr<std::string> PublicOrigin(const std::string& public_url) {
+  if (public_url.empty()) return std::string();
+  std::string url = public_url;
+  while (!url.empty() && url.back() == '/') url.pop_back();
+  const size_t scheme = url.find("://");
+  const std::string rest = scheme == std::string::npos ? "" : url.substr(scheme + 3);
+  const std::string s = scheme == std::string::npos ? "" : url.substr(0, scheme);
+  if ((s != "http" && s != "https") || rest.empty() ||
+      rest.find_first_of("/?#@ ") != std::string::npos) {
+    return absl::InvalidArgumentError(
+        Cat("--http-public-url ", public_url,
+            " is not http(s)://HOST[:PORT] (the pages live at the root; no path)"));
+  }
+  return url;
+}
+
 WebBridge::WebBridge(WebOptions options)
     : options_(std::move(options)),
+      public_origin_(PublicOrigin(options_.http_public_url)),
       codes_(SystemMonotonic::Get(), options_.codes),
-      router_(
-          [this](const std::string& code, const std::string& peer) { return Join(code, peer); }) {}
+      router_([this](const std::string& code, const std::string& peer) { return Join(code, peer); },
+              public_origin_.ok() ? *public_origin_ : "") {}
 
 WebBridge::~WebBridge() { Stop(Duration::Zero()); }
 
 absl::Status WebBridge::Start(rpc::TickmarkServer* server) {
   if (!enabled()) return absl::OkStatus();
+  if (!public_origin_.ok()) return public_origin_.status();
   HttpServer::Options http = options_.http;
   http.listen = options_.http_listen;
   if (absl::Status s = rpc::CheckTlsPair(options_.tls_cert_file, options_.tls_key_file,

@@ -74,6 +74,7 @@ class WebBridge final : public rpc::InviteIssuer {
 
  private:
   const WebOptions options_;
+  const absl::StatusOr<std::string> public_origin_;  // from http_public_url
   JoinCodeStore codes_;
   HttpRouter router_;
   RelayContext relays_;
@@ -82,6 +83,11 @@ class WebBridge final : public rpc::InviteIssuer {
   std::string base_url_;
   std::unique_ptr<HttpServer> http_;
 };
+
+// The origin part of a public URL ("https://lab.example.org:8443" from
+// "https://lab.example.org:8443/"), or INVALID_ARGUMENT naming the flag if
+// it is not http(s)://HOST[:PORT] with no path: the pages live at the root.
+absl::StatusOr<std::string> PublicOrigin(const std::string& public_url);
 
 // The base URL for invite links: `public_url` without a trailing slash if
 // given, else SCHEME://HOST:PORT from the listen host (a wildcard host, 0.0.0.0

@@ -213,6 +213,26 @@ TEST(OriginTest, SameOriginNeedsSchemeHostAndPort) {
   EXPECT_EQ(PathOf("/live?x#y"), "/live");
 }
 
+TEST(OriginTest, ThePublicOriginCountsAsOurOwn) {
+  HttpRouter router(
+      [](const std::string&, const std::string&) -> absl::StatusOr<JoinGrant> {
+        return absl::NotFoundError("no");
+      },
+      "https://lab.example.org:8443");
+  HttpRequest proxied = PostJoin(R"({"code": "x"})");  // TLS ended at a proxy
+  proxied.origin = "https://lab.example.org:8443";
+  EXPECT_TRUE(router.OriginAllowed(proxied));
+  EXPECT_EQ(router.Route(proxied).status, 404);  // reached the join function
+  proxied.origin = "https://lab.example.org";
+  EXPECT_FALSE(router.OriginAllowed(proxied));
+  EXPECT_EQ(*PublicOrigin("https://lab.example.org:8443/"), "https://lab.example.org:8443");
+  EXPECT_EQ(*PublicOrigin(""), "");
+  for (const char* bad : {"lab.example.org", "ftp://lab", "https://", "https://lab/tickmark",
+                          "https://user@lab", "https://lab?x"}) {
+    EXPECT_EQ(PublicOrigin(bad).status().code(), absl::StatusCode::kInvalidArgument) << bad;
+  }
+}
+
 TEST(InviteBaseUrlTest, FromThePublicUrlOrTheListenAddress) {
   EXPECT_EQ(InviteBaseUrl("https://lab.example.org:8443/", "0.0.0.0", 8443, true, "h"),
             "https://lab.example.org:8443");
