@@ -109,6 +109,7 @@ void AddInviteCommand(CommandTable& table) {
   cmd->add_option("--qr", *qr,
                   "QR code: auto (on a terminal), ansi (black on white, any terminal), plain "
                   "(no colour codes; for light backgrounds and paper) or none")
+      ->type_name("MODE")
       ->check(CLI::IsMember({"auto", "ansi", "plain", "none"}));
 }
 
