@@ -6,7 +6,8 @@
 // hostile and realistic sequences are explored. Checks that nothing
 // overflows (UBSan traps signed overflow and out-of-range float-to-int
 // casts) and that every result is usable: the drift finite and within its
-// clamp, uncertainties non-negative, a verdict for every probe.
+// clamp, uncertainties and their terms non-negative, a verdict for every
+// probe.
 #include <cmath>
 #include <cstddef>
 #include <cstdint>
@@ -65,6 +66,11 @@ extern "C" int LLVMFuzzerTestOneInput(const uint8_t* data, size_t size) {
       __builtin_trap();
     }
     if (model.ready() && (e.uncertainty < Duration::Zero() || e.samples < 1)) __builtin_trap();
+    // The uncertainty's terms (docs/time-model.md, "Uncertainty"): none negative.
+    if (model.ready() && (e.asymmetry < Duration::Zero() || e.offset_scatter < Duration::Zero() ||
+                          !(e.drift_error_ppm >= 0))) {
+      __builtin_trap();
+    }
   }
   return 0;
 }

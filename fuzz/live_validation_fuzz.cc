@@ -11,7 +11,10 @@
 // keeps its bounds, the hello mapping is exact or OUT_OF_RANGE, an accepted
 // event time lies within its bound, a clamped one only before the first
 // probe and with an uncertainty that covers the shift, and a record never
-// differs from its own copy.
+// differs from its own copy. A validated real-time reading is well formed,
+// and ChooseTimeSource (server/core/disciplined_clock.h) maps through real
+// time only when both sides are synchronised, with a bound below the round
+// trip's that covers both kernels' bounds and the two routes' disagreement.
 //
 // Input layout (what fuzz/make_seeds.py writes): integers from the end, read
 // in the order LLVMFuzzerTestOneInput takes them; from the front, `first_len`
@@ -26,6 +29,7 @@
 #include <fuzzer/FuzzedDataProvider.h>
 #include <google/protobuf/stubs/logging.h>
 
+#include "server/core/disciplined_clock.h"
 #include "server/core/time.h"
 #include "server/rpc/validation.h"
 #include "tickmark/v1/records.pb.h"
@@ -148,6 +152,38 @@ struct Context {
   bool has_probe = false;
 };
 
+// A reading that passed validation, and the decision on it for either server
+// state, with the context standing in for the server's side: its bound and
+// state age from the tolerance, the event age and the disagreement from the
+// hello offset (no disagreement without a probe), the round trip's
+// uncertainty from the context's.
+void CheckRealtime(int64_t realtime_ns, int64_t bound_ns, bool synced, const Context& c) {
+  constexpr int64_t k16s = 16'000'000'000;  // the kernel's maxerror clamp (adjtimex(2))
+  Require(realtime_ns >= 0 && bound_ns >= 0 && bound_ns <= k16s);
+  if (synced) Require(realtime_ns > 0 && bound_ns > 0 && bound_ns < k16s);
+  for (const bool server_synced : {false, true}) {
+    tickmark::TimeSourceInputs in;
+    in.client = {realtime_ns, Duration::Nanos(bound_ns), synced};
+    in.server.synced = server_synced;
+    in.server.max_error = Duration::Nanos(c.tolerance.nanos() % (k16s + 1));
+    in.server_state_age = c.tolerance;
+    in.event_age = tickmark::Abs(c.hello_offset);
+    in.read_spread = Duration::Nanos(c.uncertainty.nanos() % 1'000'000);
+    in.round_trip_uncertainty = c.uncertainty;
+    if (c.has_probe) in.disagreement = c.hello_offset;
+    const tickmark::TimeSourceDecision d = tickmark::ChooseTimeSource(in);
+    if (d.source == tickmark::TimeSourceChoice::kRealtime) {
+      Require(synced && server_synced && in.disagreement.has_value());
+      Require(d.uncertainty == d.realtime_bound && d.uncertainty < in.round_trip_uncertainty);
+      Require(Wide{d.uncertainty.nanos()} >= Wide{bound_ns} + in.server.max_error.nanos());
+      Require(Wide{tickmark::Abs(*in.disagreement).nanos()} <=
+              Wide{d.uncertainty.nanos()} + in.round_trip_uncertainty.nanos());
+    } else {
+      Require(d.uncertainty == in.round_trip_uncertainty);
+    }
+  }
+}
+
 void CheckFeedback(const v1::FeedbackMessage& f, const Context& c) {
   const Limits& limits = c.limits;
   if (!tickmark::rpc::ValidateFeedback(f, limits).ok()) return;
@@ -155,6 +191,7 @@ void CheckFeedback(const v1::FeedbackMessage& f, const Context& c) {
   Require(std::isfinite(f.value()) && std::fabs(f.value()) <= limits.max_abs_value);
   Require(f.event_source_ns() > 0);
   Require(f.input().size() <= 64);
+  CheckRealtime(f.event_realtime_ns(), f.realtime_bound_ns(), f.realtime_synced(), c);
   CheckFeedbackTime(f.event_source_ns(), c.hello_offset, c.uncertainty, c.arrival, c.has_probe,
                     c.tolerance, limits);
 }
@@ -171,6 +208,7 @@ void CheckStep(const v1::StepMessage& s, const Context& c) {
   Require(static_cast<uint64_t>(s.features_size()) <= limits.max_features);
   for (float x : s.features()) Require(std::isfinite(x));
   Require(s.action().size() <= 128);
+  CheckRealtime(s.start_realtime_ns(), s.realtime_bound_ns(), s.realtime_synced(), c);
 
   const auto start = tickmark::rpc::MapThroughHelloOffset(s.start_agent_ns(), c.hello_offset);
   if (!start.ok()) return;

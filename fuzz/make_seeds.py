@@ -174,6 +174,36 @@ write("clock_model", "steady", probes(12, 3_000_000, 0))
 write("clock_model", "drifting", probes(40, -250_000_000, 80))
 write("clock_model", "few", probes(2, 0, 0, stages=1, events=1))
 
+# --- retime: plausible probe sequences (optionally a clock jump) with events.
+
+
+def retime(n, offset, jump_at=None, jump=0, every=3):
+    fdp = FdpInput().int_in_range(1, 120_000, 30_000).int_in_range(1, 32, 16)
+    fdp.int_in_range(1, 8, 3).int_in_range(0, 1 << 62, 10**18)
+    fdp.int_in_range(-(1 << 61), 1 << 61, offset)
+    for i in range(n):
+        fdp.int_in_range(0, 2, 1).int_in_range(0, 7, 1)  # a plausible probe
+        fdp.int_in_range(0, 2_000_000_000, 1_000_000_000)
+        if i == jump_at:
+            fdp.int_in_range(0, 15, 0).int_in_range(-5_000_000_000, 5_000_000_000, jump)
+        else:
+            fdp.int_in_range(0, 15, 1)
+        fdp.int_in_range(-1_000_000, 50_000_000, 20_000_000 + 100_000 * (i % 7))
+        fdp.int_in_range(0, 5_000_000, 50_000)
+        fdp.int_in_range(-1_000_000, 50_000_000, 20_000_000 + 70_000 * (i % 5))
+        fdp.int_in_range(0, 15, 1).int_in_range(0, 15, 1)  # no restart or candidate mark
+        if i % every == every - 1:  # an event a little before this probe
+            fdp.int_in_range(0, 2, 0).boolean(False).i32(-300_000_000)
+            fdp.i64(10**18 + (i + 1) * 10**9 - 300_000_000)
+            fdp.int_in_range(0, (1 << 63) - 1, 20_000_000)
+            fdp.boolean(True).boolean(False).i32(10_000_000)
+    return fdp.bytes()
+
+
+write("retime", "steady", retime(40, 3_200_000_000))
+write("retime", "jump", retime(60, -7_000_000_000, jump_at=30, jump=2_000_000_000))
+write("retime", "few", retime(3, 0, every=1))
+
 # --- jsonl: real Records (protobuf wire format).
 sys.path.insert(0, os.path.join(sys.argv[1] if len(sys.argv) > 1 else "build", "python"))
 from tickmark.v1 import records_pb2 as r  # noqa: E402
@@ -236,6 +266,22 @@ write("live_validation", "trainer-feedback",
 write("live_validation", "trainer-feedback-future-clamped",
       live(TRAINER, st.TrainerMessage(feedback=feedback).SerializeToString(),
            hello_offset=5_000_000_000 - (ARRIVAL + 1_000_000_000), has_probe=False))
+# Disciplined clocks: a synchronised real-time reading with a 1 ms bound, the
+# server's bound (from the tolerance) 1 ms, a 20 ms round trip, the routes
+# 1 ms apart (the hello offset): mapped through real time.
+rt_feedback = st.FeedbackMessage(client_sequence=5, value=1.0, event_source_ns=5_000_000_000,
+                                 event_realtime_ns=ARRIVAL - 300_000_000,
+                                 realtime_bound_ns=1_000_000, realtime_synced=True)
+write("live_validation", "trainer-feedback-realtime",
+      live(TRAINER, st.TrainerMessage(feedback=rt_feedback).SerializeToString(),
+           hello_offset=1_000_000, uncertainty=20_000_000, tolerance=1_000_000))
+rt_step = st.StepMessage(client_sequence=2, step_id=10, start_agent_ns=7_100_000_000,
+                         end_agent_ns=7_200_000_000, action="left",
+                         start_realtime_ns=ARRIVAL - 100_000_000, realtime_bound_ns=1_000_000,
+                         realtime_synced=True)
+write("live_validation", "agent-step-realtime",
+      live(AGENT, st.AgentMessage(step=rt_step).SerializeToString(),
+           hello_offset=1_000_000, uncertainty=20_000_000, tolerance=1_000_000))
 reply = st.ProbeReply(probe_id=3, t1_session_ns=ARRIVAL - 2_000_000,
                       t2_client_ns=5_000_000_000, t3_client_ns=5_000_050_000)
 write("live_validation", "trainer-probe-reply",

@@ -66,10 +66,37 @@ void AddServerFlags(CLI::App& app, tickmark::rpc::ServerOptions& o, std::string&
   app.add_flag("--allow-insecure-remote", o.allow_insecure_remote,
                "allow plaintext on a non-loopback address (trusted networks only)");
   app.add_option("--probe-burst", o.live.probe_burst,
-                 "clock probes sent right after a client connects")
+                 "clock probes sent right after a client connects (with adaptive probing off)")
       ->check(CLI::Range(1, 1000));
-  AddDuration(app, "--probe-interval-ms", &o.live.probe_interval, Duration::Millis, 10,
-              3'600'000, "clock probe period afterwards");
+  AddDuration(app, "--probe-interval-ms", &o.live.probe_interval, Duration::Millis, 10, 3'600'000,
+              "clock probe period once a client's clock model meets its targets");
+  // Adaptive probing and the drift prior (docs/time-model.md).
+  app.add_flag("--adaptive-probing", o.live.probing.adaptive,
+               "probe fast while a client's clock model is young or loose (on by default; "
+               "=false: a burst, then --probe-interval-ms)");
+  AddDuration(app, "--probe-fast-for-ms", &o.live.probing.fast_for, Duration::Millis, 0, 600'000,
+              "how long after a client connects (or its clock steps) it is probed fast");
+  AddDuration(app, "--probe-fast-interval-ms", &o.live.probing.fast_interval, Duration::Millis, 1,
+              60'000, "probe period while fast");
+  AddDuration(app, "--probe-boost-interval-ms", &o.live.probing.boost_interval, Duration::Millis, 1,
+              3'600'000, "probe period while a clock model misses a target");
+  AddDuration(app, "--probe-boost-within-ms", &o.live.probing.boost_within, Duration::Millis, 0,
+              86'400'000, "boost a clock model's probing only this long after it starts");
+  AddDuration(app, "--probe-target-us", &o.live.probing.target_scatter, Duration::Micros, 1,
+              10'000'000, "target for a clock model's offset scatter (microseconds)");
+  app.add_option("--probe-target-drift-ppm", o.live.probing.target_drift_ppm,
+                 "target for a clock model's drift error bound (ppm)")
+      ->check(tickmark::Between(0.001, 10'000));
+  AddDuration(app, "--probe-min-interval-ms", &o.live.probing.min_interval, Duration::Millis, 1,
+              3'600'000, "per client: never probe more often than this");
+  app.add_option("--probe-budget", o.live.probe_budget,
+                 "probes per second for all clients together; past it only probes at the steady "
+                 "rate go (0: no limit)")
+      ->check(tickmark::Between(0, 1e6));
+  app.add_option("--drift-prior-ppm", o.live.clock.drift_prior_ppm,
+                 "assumed bound on a client clock's rate error until its drift is measured "
+                 "better (ppm)")
+      ->check(tickmark::Between(1, 500));
   app.add_option_function<int>(
          "--udp-probe-port",
          [&o](const int& port) {
@@ -80,6 +107,9 @@ void AddServerFlags(CLI::App& app, tickmark::rpc::ServerOptions& o, std::string&
          "for LAN-grade timing (0: off; see DEVELOPERS.md, UDP probe port)")
       ->default_str("0")
       ->check(CLI::Range(0, 65535));
+  app.add_flag("--no-realtime-mapping", o.no_realtime_mapping,
+               "never map event times through real time, even when this host's and a client's "
+               "clocks are disciplined by NTP/PTP (see docs/time-model.md, Disciplined clocks)");
   app.add_option("--max-state-bytes", o.live.limits.max_state_bytes,
                  "largest step state payload accepted")
       ->check(CLI::Range(uint32_t{1}, uint32_t{64} << 20));

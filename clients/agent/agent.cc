@@ -33,6 +33,8 @@ absl::StatusOr<std::unique_ptr<Agent>> Agent::Connect(const Options& options) {
   so.source = {v1::SOURCE_KIND_SCRIPT, options.description, "tickmark-agent-cpp 0.1"};
   so.credentials = creds->credentials;
   so.clock = agent->clock_;
+  so.send_realtime = options.send_realtime;
+  so.discipline = options.discipline;
   so.hello_timeout = Duration::Nanos(
       std::chrono::duration_cast<std::chrono::nanoseconds>(options.hello_timeout).count());
   // The first welcome or permanent failure; the callback outlives this call.

@@ -27,7 +27,10 @@
 // with Options::clock), keeps every step until the server acknowledges it and
 // resends after a reconnect (the server stores each once), and resumes
 // subscriptions after a broken connection right after the last record
-// delivered, so every record arrives exactly once and in order.
+// delivered, so every record arrives exactly once and in order. When the
+// host's clock is disciplined (NTP/PTP; the kernel says synchronised), each
+// step also carries its CLOCK_REALTIME reading and the kernel's bound, so
+// the server may map it through real time (Options::send_realtime).
 //
 // Thread safety: Agent::Publish/Flush and Subscription::Next may be called
 // from any thread; one thread at a time should call Next on a Subscription.
@@ -121,6 +124,12 @@ class Agent {
     // One attempt without a Welcome is given up after this and retried
     // (client::StreamOptions::hello_timeout); zero waits without limit.
     std::chrono::milliseconds hello_timeout{10000};
+    // Disciplined clocks (docs/time-model.md): send each step's
+    // CLOCK_REALTIME reading and the kernel's bound when the kernel says the
+    // clock is synchronised (client::StreamOptions::send_realtime).
+    bool send_realtime = true;
+    // Where that state is read; null: the running kernel. Not owned.
+    const ClockDiscipline* discipline = nullptr;
   };
 
   // Connects and waits up to connect_timeout for the server's welcome,

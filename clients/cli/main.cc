@@ -37,6 +37,7 @@ int main(int argc, char** argv) {
   AddReplayCommand(table);
   AddExportCommand(table);
   AddCalibrateCommands(table);
+  AddRetimeCommand(table);
   AddInviteCommand(table);
 
   if (argc < 2) {

@@ -30,6 +30,12 @@ std::string FormatUtc(int64_t ns) {
   return std::string(buf) + ms + " UTC";
 }
 
+std::string FormatMillis(int64_t ns) {
+  char buf[48];
+  std::snprintf(buf, sizeof buf, "%.3f ms", static_cast<double>(ns) * 1e-6);
+  return buf;
+}
+
 std::string RoleWord(v1::Role role) {
   std::string name = v1::Role_Name(role);
   if (name.empty()) return "?";

@@ -16,6 +16,9 @@ namespace tickmark::cli {
 // "2026-12-02 15:04:05.123 UTC" for a UTC instant in ns; "-" for 0.
 std::string FormatUtc(int64_t ns);
 
+// A duration in nanoseconds as milliseconds with three decimals: "12.345 ms".
+std::string FormatMillis(int64_t ns);
+
 // "trainer" for ROLE_TRAINER (the generated name without its prefix).
 std::string RoleWord(tickmark::v1::Role role);
 // ROLE_TRAINER for "trainer"; nullopt for anything that is not a role word

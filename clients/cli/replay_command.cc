@@ -62,6 +62,10 @@ int RunReplay(const CommonFlags& common, ReplayFlags& f) {
     return kExitError;
   }
   std::cout << "derived set '" << f.req.name() << "' stored for " << f.req.session_id() << "\n";
+  if (!result.time_set().empty()) {
+    std::cout << "event times from time set " << result.time_set() << " ("
+              << result.retimed_records() << " feedback and step records)\n";
+  }
   // Which kernel each trainer was credited with, and the calibration it came
   // from (sorted by trainer: the map's order is not stable).
   std::map<std::string, std::string> kernels(result.trainer_kernels().begin(),
@@ -117,6 +121,13 @@ void AddReplayCommand(CommandTable& table) {
       "--kernel and --trainer-kernels still take precedence");
   cmd->add_flag_callback("--overwrite", [&req] { req.set_overwrite(true); },
                          "replace a derived set of the same name");
+  CLI::Option* retimed = cmd->add_flag_callback(
+      "--retimed", [&req] { req.set_time_set("latest"); },
+      "credit with the event times of the session's newest time set (tickmark retime)");
+  cmd->add_option_function<std::string>(
+         "--time-set", [&req](const std::string& v) { req.set_time_set(v); },
+         "credit with the event times of this time set (an id tickmark retime printed)")
+      ->excludes(retimed);
 }
 
 }  // namespace tickmark::cli

@@ -1,7 +1,10 @@
 // tickmark session create|list|show|close.
+#include <cstdio>
 #include <iomanip>
 #include <iostream>
 #include <memory>
+#include <string>
+#include <vector>
 
 #include "clients/cli/commands.h"
 #include "clients/cli/output.h"
@@ -34,6 +37,52 @@ std::string LedgerState(const v1::SessionSummary& s) {
   return "NOT WRITABLE: " + s.ledger_health().reason() +
          " (writes resume by themselves once the cause is gone; see DEVELOPERS.md, "
          "Failure states and recovery)";
+}
+
+// The clock table of `session show`: each connected client's clock as the
+// server models it now; a client whose uncertainty exceeds `max_ms` is
+// flagged with '!' and named below the table.
+void PrintClocks(const v1::SessionSummary& r, double max_ms) {
+  if (r.clocks().empty()) {
+    std::cout << "clocks     none connected\n";
+    return;
+  }
+  std::cout << "clocks     as modelled now (flagged '!': uncertainty above " << max_ms << " ms)\n";
+  std::cout << "    " << std::left << std::setw(24) << "CLIENT" << std::setw(9) << "ROLE"
+            << std::setw(12) << "SUBJECT" << std::right << std::setw(22) << "OFFSET"
+            << std::setw(12) << "DRIFT" << std::setw(14) << "UNCERTAINTY" << std::setw(8)
+            << "PROBES" << std::setw(10) << "REJECTED" << std::setw(11) << "UDP DROPS"
+            << std::setw(12) << "UPDATED"
+            << "\n";
+  std::vector<std::string> flagged;
+  for (const v1::ClientClock& c : r.clocks()) {
+    const double u_ms = static_cast<double>(c.uncertainty_ns()) * 1e-6;
+    const bool flag = u_ms > max_ms;
+    char offset[48], drift[32], updated[32];
+    // Client clocks often count from boot while session time is UTC: the
+    // offset may be decades, so seconds with microseconds.
+    std::snprintf(offset, sizeof offset, "%+.6f s", static_cast<double>(c.offset_ns()) * 1e-9);
+    if (c.probed()) {
+      std::snprintf(drift, sizeof drift, "%+.1f ppm", c.drift_ppm());
+    } else {
+      std::snprintf(drift, sizeof drift, "-");
+    }
+    std::snprintf(updated, sizeof updated, "%.1f s ago",
+                  static_cast<double>(c.since_update_ns()) * 1e-9);
+    std::cout << "  " << (flag ? "! " : "  ") << std::left << std::setw(24) << c.client_id()
+              << std::setw(9) << RoleWord(c.role()) << std::setw(12)
+              << (c.subject().empty() ? "-" : c.subject()) << std::right << std::setw(22) << offset
+              << std::setw(12) << drift << std::setw(14) << FormatMillis(c.uncertainty_ns())
+              << std::setw(8) << c.probes() << std::setw(10) << c.rejected_probes() << std::setw(11)
+              << c.udp_probe_drops() << std::setw(12) << updated << "\n";
+    if (flag) {
+      flagged.push_back(c.client_id() + ": uncertainty " + FormatMillis(c.uncertainty_ns()) +
+                        (c.probed() ? "" : " (no probe answered yet)"));
+    }
+  }
+  for (const std::string& f : flagged) {
+    std::cout << "  ! " << f << " exceeds " << max_ms << " ms\n";
+  }
 }
 
 void AddCreate(CommandTable& table, CLI::App* group) {
@@ -105,10 +154,13 @@ void AddList(CommandTable& table, CLI::App* group) {
 
 void AddShow(CommandTable& table, CLI::App* group) {
   auto req = std::make_shared<v1::GetSessionRequest>();
+  auto max_ms = std::make_shared<double>(50);
   CLI::App* cmd = table.AddCommand(
-      group, "show", "Shows one session in detail, with its counts.", [&table, req] {
+      group, "show",
+      "Shows one session in detail, with its counts and the clocks of its connected clients.",
+      [&table, req, max_ms] {
         return CallAdmin<v1::GetSessionRequest, v1::SessionSummary>(
-            table.common(), &Admin::GetSession, *req, [](const v1::SessionSummary& r) {
+            table.common(), &Admin::GetSession, *req, [max_ms](const v1::SessionSummary& r) {
               const auto& ss = r.session();
               std::cout << "session    " << ss.id() << "\n"
                         << "title      " << ss.title() << "\n"
@@ -133,12 +185,17 @@ void AddShow(CommandTable& table, CLI::App* group) {
                         << " connected now)\n"
                         << "late       " << r.late_count() << "\n"
                         << "unmatched  " << r.unmatched_count() << "\n";
+              PrintClocks(r, *max_ms);
               return kExitOk;
             });
       });
   cmd->add_option_function<std::string>(
          "ID", [req](const std::string& v) { req->set_session_id(v); }, "session id")
       ->required();
+  cmd->add_option("--max-uncertainty-ms", *max_ms,
+                  "flag a client whose clock uncertainty exceeds this (milliseconds)")
+      ->check(tickmark::Between(0.001, 1e9))
+      ->capture_default_str();
 }
 
 void AddClose(CommandTable& table, CLI::App* group) {

@@ -70,6 +70,10 @@ void AddConnectionFlags(CLI::App& app, ConnectionFlags* flags, ConnectionFlagCho
         ->type_name("ID")
         ->check(ClientIdText())
         ->group(group);
+    app.add_flag("--no-realtime", flags->no_realtime,
+                 "send no real-time clock readings with events, even when this host's clock is "
+                 "synchronised (NTP/PTP); the server then maps them by round trip alone")
+        ->group(group);
   }
   CLI::Option* ca = app.add_option("--ca-file", flags->channel.ca_file,
                                    "use TLS, trusting the PEM CA certificates in PATH")

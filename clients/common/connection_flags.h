@@ -8,6 +8,8 @@
 //   --ca-file PATH       TLS, trusting the PEM roots in PATH
 //   --insecure           plaintext to a non-loopback server
 //   --client-id ID       stable id of this client (programs with a stream)
+//   --no-realtime        send no CLOCK_REALTIME readings with events
+//                        (programs with a stream; StreamOptions::send_realtime)
 //
 // They fill the structs channel.h and token.h already take. The flags go in
 // the help group "Connection".
@@ -32,11 +34,12 @@ struct ConnectionFlags {
   ChannelFlags channel;   // --server, --insecure, --ca-file
   TokenFlags token;       // --token-file, --token
   std::string client_id;  // --client-id; empty: the program's default
+  bool no_realtime = false;  // --no-realtime: StreamOptions::send_realtime = false
 };
 
 // Which of the shared flags a program takes.
 struct ConnectionFlagChoice {
-  bool client_id = true;  // false for programs without a stream (the CLI)
+  bool client_id = true;  // --client-id and --no-realtime; false without a stream (the CLI)
 };
 
 // Adds the shared flags to `app`, bound to `*flags` (which must outlive the

@@ -147,6 +147,20 @@ void StreamClient<Kind>::EnqueueLocked(Request request) {
 
 template <typename Kind>
 absl::Status StreamClient<Kind>::Send(Payload payload) {
+  const ClockDiscipline* discipline = nullptr;
+  {
+    std::lock_guard<std::mutex> lock(mu_);
+    if (started_ && options_.send_realtime) {
+      discipline = options_.discipline != nullptr ? options_.discipline : KernelDiscipline::Get();
+    }
+  }
+  // Read now, close to the event: the server grows the bound with the
+  // event's age (docs/time-model.md, "Disciplined clocks").
+  if (discipline != nullptr && !Kind::HasRealtime(payload)) {
+    if (auto r = ReadRealtimeAt(Kind::EventTime(payload), *clock_, *discipline)) {
+      Kind::SetRealtime(&payload, r->realtime_ns, r->bound.nanos());
+    }
+  }
   Request request;
   *Kind::MutablePayload(&request) = std::move(payload);
   return Admit(std::move(request));

@@ -76,6 +76,7 @@
 
 #include "absl/status/status.h"
 #include "grpcpp/grpcpp.h"
+#include "server/core/disciplined_clock.h"
 #include "server/core/time.h"
 #include "tickmark/v1/stream.grpc.pb.h"
 
@@ -93,6 +94,14 @@ struct TrainerStream {
   static Payload* MutablePayload(Request* r) { return r->mutable_feedback(); }
   static const Payload& GetPayload(const Request& r) { return r.feedback(); }
   static bool HasPayload(const Request& r) { return r.has_feedback(); }
+  // The event time and the real-time fields that go with it.
+  static int64_t EventTime(const Payload& p) { return p.event_source_ns(); }
+  static bool HasRealtime(const Payload& p) { return p.event_realtime_ns() != 0; }
+  static void SetRealtime(Payload* p, int64_t realtime_ns, int64_t bound_ns) {
+    p->set_event_realtime_ns(realtime_ns);
+    p->set_realtime_bound_ns(bound_ns);
+    p->set_realtime_synced(true);
+  }
   // Numbers a body that carries a client sequence; false for others.
   static bool SetSequence(Request* r, uint64_t seq) {
     if (r->has_feedback()) {
@@ -118,6 +127,13 @@ struct AgentStream {
   static Payload* MutablePayload(Request* r) { return r->mutable_step(); }
   static const Payload& GetPayload(const Request& r) { return r.step(); }
   static bool HasPayload(const Request& r) { return r.has_step(); }
+  static int64_t EventTime(const Payload& p) { return p.start_agent_ns(); }
+  static bool HasRealtime(const Payload& p) { return p.start_realtime_ns() != 0; }
+  static void SetRealtime(Payload* p, int64_t realtime_ns, int64_t bound_ns) {
+    p->set_start_realtime_ns(realtime_ns);
+    p->set_realtime_bound_ns(bound_ns);
+    p->set_realtime_synced(true);
+  }
   static bool SetSequence(Request* r, uint64_t seq) {
     if (!r->has_step()) return false;
     r->mutable_step()->set_client_sequence(seq);
@@ -158,6 +174,16 @@ struct StreamOptions {
   // Start UDP probes when the server offers a probe port (see above).
   bool udp_probes = true;
   Duration udp_probe_interval = Duration::Seconds(1);
+  // Disciplined clocks (docs/time-model.md): when the host's kernel says its
+  // clock is synchronised (NTP/PTP), Send() adds to each feedback or step
+  // its CLOCK_REALTIME at the event time and the kernel's error bound
+  // (ReadRealtimeAt, server/core/disciplined_clock.h), unless the payload
+  // carries a reading already; the server may then map through real time.
+  // false: never add them (client programs: --no-realtime).
+  bool send_realtime = true;
+  // Where the discipline state and CLOCK_REALTIME are read; null: the
+  // running kernel (KernelDiscipline). Not owned; must outlive the client.
+  const ClockDiscipline* discipline = nullptr;
 };
 
 // One acknowledgement, as the UI shows it.
@@ -235,7 +261,8 @@ class StreamClient {
   // worker thread, which connects in the background.
   absl::Status Connect(StreamOptions options, Callbacks callbacks = {});
 
-  // Queues `payload` (its client_sequence is overwritten) and writes it when
+  // Queues `payload` (its client_sequence is overwritten; its real-time
+  // reading added, see StreamOptions::send_realtime) and writes it when
   // connected. FAILED_PRECONDITION after Close() or a permanent error;
   // RESOURCE_EXHAUSTED when max_pending messages are waiting.
   absl::Status Send(Payload payload);

@@ -48,6 +48,7 @@ int main(int argc, char** argv) {
   o.client_id = connection.client_id;
   o.source = {tickmark::v1::SOURCE_KIND_SCRIPT, "scripted dock rover", "tickmark-scripted-agent"};
   o.credentials = creds->credentials;
+  o.send_realtime = !connection.no_realtime;
   if (auto s = agent.Connect(o); !s.ok()) {
     std::cerr << "tickmark-scripted-agent: " << s.message() << "\n";
     return 1;

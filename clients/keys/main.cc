@@ -460,6 +460,7 @@ int Main(int argc, char** argv) {
   options.source.software = std::string(kProgram) + " " + TICKMARK_VERSION;
   options.credentials = channel->credentials;
   options.clock = SystemMonotonic::Get();
+  options.send_realtime = !flags->connection.no_realtime;
 
   TrainerClient stream;
   if (calibrate) {

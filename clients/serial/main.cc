@@ -241,6 +241,7 @@ int Main(int argc, char** argv) {
                     std::string(kProgram) + " " + TICKMARK_VERSION};
   options.credentials = channel->credentials;
   options.clock = SystemMonotonic::Get();
+  options.send_realtime = !connection.no_realtime;
 
   if (calibration.calibrate) {
     SerialSource port(box.port, ps);

@@ -4,6 +4,7 @@
 #include <cmath>
 #include <cstddef>
 #include <cstdint>
+#include <functional>
 #include <limits>
 #include <numeric>
 #include <optional>
@@ -100,9 +101,12 @@ Line LowerEnvelopeFit(std::span<const double> x, std::span<const double> y) {
 
   std::vector<size_t> order(n);
   std::iota(order.begin(), order.end(), size_t{0});
-  std::sort(order.begin(), order.end(), [&](size_t a, size_t b) {
-    return x[a] != x[b] ? x[a] < x[b] : y[a] < y[b];
-  });
+  // Probes arrive in time order: strictly increasing x needs no sort.
+  const auto x_end = x.begin() + static_cast<std::ptrdiff_t>(n);
+  if (std::adjacent_find(x.begin(), x_end, std::greater_equal<double>()) != x_end) {
+    std::sort(order.begin(), order.end(),
+              [&](size_t a, size_t b) { return x[a] != x[b] ? x[a] < x[b] : y[a] < y[b]; });
+  }
 
   // Andrew's monotone chain, lower half. Of several points with the same x
   // only the lowest (first after sorting) can touch the envelope.
@@ -145,9 +149,94 @@ Line LowerEnvelopeFit(std::span<const double> x, std::span<const double> y) {
   return Line{slope, hull[e].y - slope * hull[e].x};
 }
 
+SlopeErrorBound EnvelopeSlopeErrorBound(std::span<const double> x, std::span<const double> y,
+                                        Line fit, double miss) {
+  constexpr double kInfinity = std::numeric_limits<double>::infinity();
+  const size_t n = std::min(x.size(), y.size());
+  if (n < 3 || !(miss > 0) || !(miss < 1)) return SlopeErrorBound{kInfinity, kInfinity};
+  double mean_x = 0;
+  for (size_t i = 0; i < n; ++i) mean_x += x[i];
+  mean_x /= static_cast<double>(n);
+
+  // Residuals above the fit. The points the fit touches sit at 0 by
+  // construction, not by chance, so they are left out of F's estimate.
+  double scale = 0;
+  for (size_t i = 0; i < n; ++i) scale = std::max(scale, std::abs(y[i]));
+  const double touch = 1e-12 * std::max(scale, 1.0);
+  std::vector<double> residuals;
+  residuals.reserve(n);
+  for (size_t i = 0; i < n; ++i) {
+    const double r = y[i] - (fit.slope * x[i] + fit.intercept);
+    if (r > touch) residuals.push_back(r);
+  }
+  std::vector<double> right, left;  // distances from the mean x, ascending
+  for (size_t i = 0; i < n; ++i) {
+    if (x[i] > mean_x) right.push_back(x[i] - mean_x);
+    if (x[i] < mean_x) left.push_back(mean_x - x[i]);
+  }
+  // Probes come in time order, so usually only `left` needs turning round.
+  if (!std::is_sorted(right.begin(), right.end())) std::sort(right.begin(), right.end());
+  std::reverse(left.begin(), left.end());
+  if (!std::is_sorted(left.begin(), left.end())) std::sort(left.begin(), left.end());
+
+  // n·Σ_j F̂(σ·Δ_j) = the number of pairs (residual r, distance Δ) with
+  // r < σ·Δ; two pointers count them in one pass over `low`, the smallest
+  // residuals in ascending order.
+  const double need = std::log(1 / miss) * static_cast<double>(n);
+  auto enough = [&](const std::vector<double>& deltas, std::span<const double> low, double sigma) {
+    double pairs = 0;
+    size_t below = 0;
+    for (double d : deltas) {
+      while (below < low.size() && low[below] < sigma * d) ++below;
+      pairs += static_cast<double>(below);
+      if (pairs >= need) return true;
+    }
+    return false;
+  };
+  auto side = [&](const std::vector<double>& deltas, std::span<const double> low) {
+    // A slope error is a rate: beyond 1 (1e6 ppm) nothing is bounded.
+    constexpr double kHi = 1.0, kLo = 1e-15;
+    if (deltas.empty() || !enough(deltas, low, kHi)) return kInfinity;
+    if (enough(deltas, low, kLo)) return kLo;
+    double lo = std::log(kLo), hi = std::log(kHi);
+    // 16 halvings of the 35-nat log range: the result is at most 0.06 %
+    // above the exact σ.
+    for (int k = 0; k < 16; ++k) {
+      const double mid = 0.5 * (lo + hi);
+      (enough(deltas, low, std::exp(mid)) ? hi : lo) = mid;
+    }
+    return std::exp(hi);  // the upper end: never below the exact solution
+  };
+  // Only residuals below σ·Δ_max count, a few dozen of hundreds, so the
+  // search starts with the k smallest. Leaving residuals out only lowers a
+  // count, so each σ found is an upper bound, and the exact one when no
+  // residual left out lies below σ·Δ_max; otherwise k grows.
+  // Too steep shows against the points right of the mean, too shallow
+  // against those left of it.
+  size_t k = std::min(residuals.size(), size_t{64});
+  for (;;) {
+    if (k < residuals.size()) {
+      std::nth_element(residuals.begin(), residuals.begin() + static_cast<std::ptrdiff_t>(k),
+                       residuals.end());
+    }
+    std::sort(residuals.begin(), residuals.begin() + static_cast<std::ptrdiff_t>(k));
+    const std::span<const double> low(residuals.data(), k);
+    const SlopeErrorBound b{side(right, low), side(left, low)};
+    if (k == residuals.size()) return b;
+    const double next = residuals[k];  // no residual left out is smaller
+    auto exact = [&](double sigma, const std::vector<double>& deltas) {
+      return deltas.empty() || sigma * deltas.back() <= next;
+    };
+    if (exact(b.steep, right) && exact(b.shallow, left)) return b;
+    k = std::min(residuals.size(), 4 * k);
+  }
+}
+
 ClockModel::ClockModel(Options o) : options_(o) {
   options_.filter_stages = std::max(options_.filter_stages, 1);
   options_.max_drift_ppm = std::max(options_.max_drift_ppm, 0.0);
+  options_.drift_prior_ppm = std::max(options_.drift_prior_ppm, 0.0);
+  options_.min_envelope_samples = std::max(options_.min_envelope_samples, 3);
 }
 
 ProbeVerdict ClockModel::AddProbe(const ProbeTimestamps& p) {
@@ -224,11 +313,17 @@ void ClockModel::Refit() {
   offset_ = c.w.offset;
   ref_session_ = SessionTime::FromNanos(ref_client_.nanos()) - offset_;
   min_delay_ = c.w.delay;
+  // One probe's offset is off by (forward − backward)/2 at most δ/2 (RFC
+  // 5905 §8), with nothing else to add.
+  asymmetry_ = min_delay_ / 2;
+  scatter_ = Duration::Zero();
 
   const double max_drift = options_.max_drift_ppm * 1e-6;
+  const double prior = options_.drift_prior_ppm * 1e-6;
   drift_ = 0;
-  drift_error_ = max_drift;
-  if (n < 2) return;
+  drift_error_ = prior;
+  drift_fitted_ = false;
+  if (n < static_cast<size_t>(options_.min_envelope_samples)) return;
   const Sample& first = history_.front();
   const Sample& last = history_.back();
   if (last.t.t1 - first.t.t1 < options_.min_drift_span ||
@@ -244,40 +339,78 @@ void ClockModel::Refit() {
   const int64_t f0 = Diff(first.t.t2, first.t.t1);
   // Negating T3 − T4 fits: an accepted probe's |T3 − T4| is below 2^62 + δ.
   const int64_t b0 = -Diff(first.t.t3, first.t.t4);
+  double fx_mean = 0, bx_mean = 0;
   for (size_t i = 0; i < n; ++i) {
     const ProbeTimestamps& t = history_[i].t;
     fx[i] = static_cast<double>((t.t1 - first.t.t1).nanos());
     fy[i] = static_cast<double>(static_cast<__int128>(Diff(t.t2, t.t1)) - f0);
     bx[i] = static_cast<double>((t.t4 - first.t.t4).nanos());
     by[i] = static_cast<double>(-static_cast<__int128>(Diff(t.t3, t.t4)) - b0);
+    fx_mean += fx[i];
+    bx_mean += bx[i];
   }
+  fx_mean /= static_cast<double>(n);
+  bx_mean /= static_cast<double>(n);
   const Line forward = LowerEnvelopeFit(fx, fy);
   const Line backward = LowerEnvelopeFit(bx, by);
-  drift_ =
-      std::clamp(0.5 * (forward.slope - backward.slope), -max_drift, max_drift);
-  // Both slopes measure the same rate with opposite signs; what they fail to
-  // share is fit error, so their disagreement is our drift error estimate.
-  drift_error_ =
-      std::min(0.5 * std::abs(forward.slope + backward.slope), 2 * max_drift);
+  // Each slope's own error bounds. The drift is half the difference of the
+  // slopes, so it is too high by at most half of (forward too steep +
+  // backward too shallow), too low by at most half the other pair.
+  const SlopeErrorBound fb = EnvelopeSlopeErrorBound(fx, fy, forward, options_.slope_bound_miss);
+  const SlopeErrorBound bb = EnvelopeSlopeErrorBound(bx, by, backward, options_.slope_bound_miss);
+  const double drift_bound = 0.5 * std::max(fb.steep + bb.shallow, fb.shallow + bb.steep);
+  // A fitted drift is used only once it is known better than the prior.
+  if (drift_bound < prior) {
+    drift_ = std::clamp(0.5 * (forward.slope - backward.slope), -max_drift, max_drift);
+    drift_error_ = drift_bound;
+    drift_fitted_ = true;
+  }
 
-  // With the drift known, the offset comes from the two envelopes rather
-  // than one probe: at session time x the forward envelope is θ + d_f,min
-  // and the backward one d_b,min − θ, so θ = (forward − backward) / 2 up to
-  // the unmeasurable asymmetry (d_b,min − d_f,min) / 2, bounded by half
-  // their sum. Every probe contributes, not only the luckiest recent one.
-  // Evaluated at the newest probe's midpoint.
+  // The offset from the two envelopes rather than one probe: at session
+  // time x the forward envelope is θ + d_f,min and the backward one
+  // d_b,min − θ, so θ = (forward − backward)/2 up to the asymmetry
+  // (d_b,min − d_f,min)/2, at most half their sum δ_env. Every probe
+  // contributes, not only the luckiest recent one. Read at the newest
+  // probe's midpoint. A line can dip below its true floor there by at most
+  // its slope error bound times the distance from the series' mean time
+  // (where it cannot lie below the floor; see EnvelopeSlopeErrorBound), and
+  // right of the mean only a too shallow line dips: that dip, not covered
+  // by δ_env/2, is the offset scatter.
   const SessionTime mid = last.t.t1 + (last.t.t4 - last.t.t1) / 2;
   const double xf = static_cast<double>((mid - first.t.t1).nanos());
   const double xb = static_cast<double>((mid - first.t.t4).nanos());
-  const double fwd = static_cast<double>(f0) + forward.intercept + forward.slope * xf;
-  const double bwd = static_cast<double>(b0) + backward.intercept + backward.slope * xb;
-  const double envelope_delay = fwd + bwd;
-  if (!std::isfinite(envelope_delay) || envelope_delay > static_cast<double>(min_delay_.nanos())) {
+  // The lines relative to the first probe's f0 and b0, which stay in
+  // integers (an offset may be decades, beyond double's nanoseconds).
+  const double fwd = forward.intercept + forward.slope * xf;
+  const double bwd = backward.intercept + backward.slope * xb;
+  const double envelope_delay = static_cast<double>(f0 + b0) + fwd + bwd;
+  auto dip_of = [](const SlopeErrorBound& b, double from_mean) {
+    return from_mean >= 0 ? b.shallow * from_mean : b.steep * -from_mean;
+  };
+  const double dip = std::max(dip_of(fb, xf - fx_mean), dip_of(bb, xb - bx_mean));
+  if (!std::isfinite(envelope_delay) || !std::isfinite(dip) ||
+      envelope_delay > static_cast<double>(min_delay_.nanos())) {
     return;  // the envelopes say nothing better than the chosen probe
   }
-  offset_ = SaturatingNanos(0.5 * (fwd - bwd));
+  const double envelope_asymmetry = std::max(0.5 * envelope_delay, 0.0);
+  const __int128 base = static_cast<__int128>(f0) - b0;  // fits: |f0|, |b0| < 2^63
+  const Duration envelope_offset =
+      Duration::Nanos(ClampToInt64(base / 2)) +
+      SaturatingNanos(0.5 * (fwd - bwd) + 0.5 * static_cast<double>(base % 2));
+  // The chosen probe's interval carried to `mid` is a valid bound too; the
+  // envelope offset lies |Δθ| from its centre, so the truth is within that
+  // bound + |Δθ| of it. The smaller of the two is stated.
+  const double since_probe = static_cast<double>((mid - ref_session_).nanos());
+  const double probe_bound = static_cast<double>(asymmetry_.nanos()) +
+                             std::abs(since_probe) * (kPhiPpm * 1e-6 + drift_error_);
+  const double apart =
+      static_cast<double>((envelope_offset - offset_).nanos()) - drift_ * since_probe;
+  const double via_probe = probe_bound + std::abs(apart) - envelope_asymmetry;
+  offset_ = envelope_offset;
   ref_session_ = mid;
   ref_client_ = ClientTime::FromNanos(mid.nanos()) + offset_;
+  asymmetry_ = SaturatingNanos(envelope_asymmetry);
+  scatter_ = SaturatingNanos(std::max(std::min(dip, via_probe), 0.0));
 }
 
 SessionTime ClockModel::ToSession(ClientTime t) const {
@@ -296,14 +429,24 @@ Duration ClockModel::UncertaintyAt(ClientTime t) const {
   const double distance =
       std::abs(static_cast<double>(static_cast<__int128>(t.nanos()) - ref_client_.nanos()));
   const double growth = distance * (kPhiPpm * 1e-6 + drift_error_);
-  return SaturatingNanos(static_cast<double>(min_delay_.nanos()) / 2 + growth);
+  return SaturatingNanos(static_cast<double>(asymmetry_.nanos()) +
+                         static_cast<double>(scatter_.nanos()) + growth);
 }
 
 ClockEstimate ClockModel::estimate() const {
   if (!ready()) return ClockEstimate{};
-  return ClockEstimate{offset_,     drift_ * 1e6,
-                       ref_client_, UncertaintyAt(ref_client_),
-                       min_delay_,  static_cast<int>(history_.size())};
+  ClockEstimate e;
+  e.offset = offset_;
+  e.drift_ppm = drift_ * 1e6;
+  e.reference = ref_client_;
+  e.uncertainty = UncertaintyAt(ref_client_);
+  e.min_delay = min_delay_;
+  e.samples = static_cast<int>(history_.size());
+  e.asymmetry = asymmetry_;
+  e.offset_scatter = scatter_;
+  e.drift_error_ppm = drift_fitted_ ? drift_error_ * 1e6 : options_.drift_prior_ppm;
+  e.drift_fitted = drift_fitted_;
+  return e;
 }
 
 }  // namespace tickmark

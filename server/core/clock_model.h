@@ -17,8 +17,10 @@
 // ClockModel keeps the accepted probes of one client, picks the minimum-delay
 // probe of the most recent ones (RFC 5905 §10 clock filter) for the offset,
 // fits the client's rate error (drift) from the lower envelopes of the two
-// one-way series (Moon, Skelly & Towsley, INFOCOM 1999), and detects clock
-// steps of the device ("jumps"), after which it starts again.
+// one-way series (Moon, Skelly & Towsley, INFOCOM 1999) with a bound on the
+// fit's own error, states an uncertainty meant to hold (asymmetry + offset
+// scatter + growth at PHI + the drift's error bound or a prior), and detects
+// clock steps of the device ("jumps"), after which it starts again.
 // docs/time-model.md explains the model for newcomers.
 //
 // Pure logic, no I/O. ClockModel is a value type; thread-compatible (callers
@@ -79,16 +81,31 @@ const char* ProbeVerdictName(ProbeVerdict v);
 
 // Snapshot of a model, what the server writes to the ledger on every update.
 // Mapping: session(t) = (reference − offset) + (t − reference) / (1 + drift).
+// Uncertainty at client time t (ClockModel::UncertaintyAt):
+//   asymmetry + offset_scatter + |t − reference|·(PHI + drift_error_ppm).
 struct ClockEstimate {
   // Client clock − session time, at `reference`.
   Duration offset;
-  // Client rate error: (client rate / session rate − 1)·1e6.
+  // Client rate error: (client rate / session rate − 1)·1e6. 0 until a
+  // fitted drift's error bound beats the prior (drift_fitted).
   double drift_ppm = 0;
-  // Client time the offset refers to: the chosen probe's (T2+T3)/2.
+  // Client time the offset refers to: the chosen probe's (T2+T3)/2, or the
+  // newest probe's midpoint when the offset comes from the envelopes.
   ClientTime reference;
-  Duration uncertainty;  // UncertaintyAt(reference)
+  Duration uncertainty;  // UncertaintyAt(reference) = asymmetry + offset_scatter
   Duration min_delay;    // delay of the chosen (minimum-delay) probe, clamped
   int samples = 0;       // accepted probes held since the last (re)start
+  // δ/2 of the round trip the offset was read from: bounds the path
+  // asymmetry no measurement can see (RFC 5905 §8).
+  Duration asymmetry;
+  // How far the offset estimate can be off beyond the asymmetry (the
+  // envelope lines' possible dip below the true delay floor); 0 for an
+  // offset read from one probe.
+  Duration offset_scatter;
+  // Bound on |drift_ppm − true drift|: the fitted drift's own error bound
+  // once drift_fitted, else the prior (Options::drift_prior_ppm).
+  double drift_error_ppm = 0;
+  bool drift_fitted = false;  // drift_ppm is a fitted estimate in use
 
   bool operator==(const ClockEstimate&) const = default;
 };
@@ -111,9 +128,19 @@ class ClockModel {
     // Drift estimates are clamped to ±max_drift_ppm; the true drift is assumed
     // to be within this bound too.
     double max_drift_ppm = 500;
-    // Until the held probes span this much session time the drift is taken as
-    // 0 ± max_drift_ppm: a fit over a shorter span is mostly delay jitter.
-    Duration min_drift_span = Duration::Seconds(10);
+    // The lower envelopes are fitted once the held probes span this much
+    // session time and number at least min_envelope_samples; before that
+    // the offset comes from the clock filter alone.
+    Duration min_drift_span = Duration::Seconds(2);
+    int min_envelope_samples = 16;
+    // Assumed bound on the true |drift| while no fitted drift is trusted: the
+    // drift is taken as 0 and this goes into the uncertainty's growth. A
+    // fitted drift is used once its own error bound is below this. 100 ppm
+    // covers common crystal oscillators (common practice, no source).
+    double drift_prior_ppm = 100;
+    // Chance that a slope error bound (EnvelopeSlopeErrorBound) is exceeded,
+    // per envelope and side.
+    double slope_bound_miss = 1e-4;
     // Probes whose offset (client clock − session time) is larger than this
     // are impossible. 2^62 ns (about 146 years) keeps the client readings
     // the model works with inside int64 with room to spare, since session
@@ -143,11 +170,11 @@ class ClockModel {
   // returns t's nanoseconds unchanged (offset 0).
   SessionTime ToSession(ClientTime t) const;
 
-  // Half-width of the interval expected to hold the true session time of t:
-  //   δ_min/2 + |t − reference|·(PHI + drift error),
-  // δ_min the chosen probe's delay. Never below δ_min/2 of the current filter
-  // window. The drift error is the disagreement of the two one-way fits, or
-  // max_drift_ppm before the drift is fitted (capped at 2·max_drift_ppm).
+  // Half-width of the interval that holds the true session time of t:
+  //   asymmetry + offset scatter + |t − reference|·(PHI + drift error)
+  // (ClockEstimate names the terms; docs/time-model.md derives them). The
+  // drift error is the fitted drift's error bound once it beats
+  // drift_prior_ppm, the prior until then.
   // Duration::Max() before ready(); saturates at Duration::Max().
   Duration UncertaintyAt(ClientTime t) const;
 
@@ -170,12 +197,17 @@ class ClockModel {
   std::deque<Sample> history_;  // accepted probes, oldest first
   std::optional<Sample> jump_candidate_;  // a suspected jump awaiting confirmation
   // Cached by Refit(), valid when ready():
-  SessionTime ref_session_;  // session midpoint (T1+T4)/2 of the chosen probe
-  ClientTime ref_client_;    // client midpoint (T2+T3)/2 of the chosen probe
-  Duration offset_;          // ref_client_ − ref_session_
-  Duration min_delay_;       // the chosen probe's (clamped) delay
-  double drift_ = 0;         // rate error as a fraction (80 ppm -> 80e-6)
-  double drift_error_ = 0;   // as a fraction; see UncertaintyAt()
+  // The reference point: the chosen probe's midpoints, or the newest
+  // probe's once the envelopes give the offset.
+  SessionTime ref_session_;    // session midpoint (T1+T4)/2
+  ClientTime ref_client_;      // client midpoint (T2+T3)/2
+  Duration offset_;            // ref_client_ − ref_session_
+  Duration min_delay_;         // the chosen probe's (clamped) delay
+  Duration asymmetry_;         // ClockEstimate::asymmetry
+  Duration scatter_;           // ClockEstimate::offset_scatter
+  double drift_ = 0;           // rate error in use, as a fraction (80 ppm -> 80e-6)
+  double drift_error_ = 0;     // its error bound, as a fraction; see UncertaintyAt()
+  bool drift_fitted_ = false;  // drift_ is fitted (else 0 under the prior)
 };
 
 // RFC 5905 §10-style clock filter: the minimum-delay sample. Samples are
@@ -198,6 +230,26 @@ struct Line {
 // must have equal sizes (extra elements of the longer are ignored); returns
 // {0, 0} when empty. Callers should centre x and y first for precision.
 Line LowerEnvelopeFit(std::span<const double> x, std::span<const double> y);
+
+// Bounds on the error of fit = LowerEnvelopeFit(x, y), each exceeded with
+// probability at most `miss` when the points' heights above the true floor
+// line are independent draws from one distribution (one-way delays over a
+// fixed minimum). Why they hold: the fit is the lower hull's edge over the
+// mean x̄ and the hull lies on or above the floor line, so fit − floor is
+// ≥ 0 at x̄ and, at every point, ≤ the point's gap g above the floor. A
+// slope too steep by σ therefore needs g_j ≥ σ·(x_j − x̄) for every point
+// right of x̄: probability Π(1 − F(σ·Δ_j)) ≤ exp(−Σ F(σ·Δ_j)), F the gap
+// distribution; too shallow, the same on the left. Each bound is the
+// smallest σ at which that is ≤ miss, with F estimated by the residuals
+// above the fit (the points the fit touches left out). Infinity when the
+// points cannot bound that side (too few, or none on it).
+struct SlopeErrorBound {
+  double steep = 0;    // fit.slope − true slope ≤ steep
+  double shallow = 0;  // true slope − fit.slope ≤ shallow
+  double either() const { return steep > shallow ? steep : shallow; }
+};
+SlopeErrorBound EnvelopeSlopeErrorBound(std::span<const double> x, std::span<const double> y,
+                                        Line fit, double miss);
 
 }  // namespace tickmark
 

@@ -102,4 +102,20 @@ absl::StatusOr<std::string> ChainHash(std::string_view prev_hash, const Record& 
   return std::string(reinterpret_cast<char*>(digest), len);
 }
 
+absl::Status Ledger::PutTimeSet(const TimeSetRow&, const std::vector<DerivedTimeRow>&) {
+  return absl::UnimplementedError("this ledger keeps no time sets");
+}
+
+absl::StatusOr<std::vector<TimeSetRow>> Ledger::ListTimeSets(std::string_view) {
+  return absl::UnimplementedError("this ledger keeps no time sets");
+}
+
+absl::StatusOr<TimeSetRow> Ledger::GetTimeSet(std::string_view) {
+  return absl::UnimplementedError("this ledger keeps no time sets");
+}
+
+absl::StatusOr<std::vector<DerivedTimeRow>> Ledger::ReadDerivedTimes(std::string_view) {
+  return absl::UnimplementedError("this ledger keeps no time sets");
+}
+
 }  // namespace tickmark::ledger

@@ -64,6 +64,35 @@ struct CalibrationRow {
   tickmark::v1::SourceKind source_kind = tickmark::v1::SOURCE_KIND_UNSPECIFIED;
 };
 
+// A derived time set (table `time_set`): a session's event times recomputed
+// after the fact (`tickmark retime`), stored beside the originals, which are
+// never changed. Outside the session's hash chain, like a replay's derived
+// set; through_sequence and head_hash name the journal state it came from.
+struct TimeSetRow {
+  std::string id;  // "ts-7f3a2c91"
+  std::string session_id;
+  std::string created_utc;  // set by the ledger ("2026-01-02T03:04:05.678Z")
+  std::string method;       // "two-sided probe bounds"
+  std::string parameters;   // JSON object of the method's settings
+  uint64_t through_sequence = 0;  // computed from records 1..through_sequence
+  std::string head_hash;          // that record's hash, 32 raw bytes
+  uint64_t events = 0;            // derived_time rows
+  uint64_t retimed = 0;           // of which recomputed (the rest kept their live time)
+};
+
+// One event time of a time set (table `derived_time`).
+struct DerivedTimeRow {
+  uint64_t sequence = 0;  // the feedback or step record
+  std::string kind;       // "feedback", "step_start" or "step_end"
+  std::string client_id;
+  int64_t event_session_ns = 0;
+  int64_t uncertainty_ns = 0;
+  int64_t live_session_ns = 0;      // as the record holds it
+  int64_t live_uncertainty_ns = 0;
+  std::string outcome;  // "retimed", or why the live time was kept
+  uint32_t probes = 0;  // probes that bounded it
+};
+
 // A token as stored: only the SHA-256 of the secret is kept.
 struct TokenRow {
   std::string id;          // public id, e.g. "t-1a2b3c4d"
@@ -165,6 +194,18 @@ class Ledger {
                                      std::string_view spec,
                                      const std::vector<tickmark::v1::Record>& records,
                                      bool overwrite) = 0;
+
+  // Stores a time set and its rows in one transaction (synchronous, like
+  // PutDerivedSet); the session's records are not touched. ALREADY_EXISTS
+  // for an id in use. The default (for ledgers without time sets) is
+  // UNIMPLEMENTED, as for the readers below.
+  virtual absl::Status PutTimeSet(const TimeSetRow& set, const std::vector<DerivedTimeRow>& times);
+  // A session's time sets, newest first.
+  virtual absl::StatusOr<std::vector<TimeSetRow>> ListTimeSets(std::string_view session_id);
+  // One time set; NOT_FOUND for an unknown id.
+  virtual absl::StatusOr<TimeSetRow> GetTimeSet(std::string_view id);
+  // A time set's rows, by record sequence and kind.
+  virtual absl::StatusOr<std::vector<DerivedTimeRow>> ReadDerivedTimes(std::string_view time_set);
 
   // Whether writes succeed now: OK, or the reason they are failing (for
   // example RESOURCE_EXHAUSTED "ledger disk full: ..." while the disk is

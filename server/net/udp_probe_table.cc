@@ -23,6 +23,25 @@ UdpProbeCounters UdpProbeTable::counters() const {
   return counters_;
 }
 
+uint64_t UdpProbeTable::DropsOf(uint64_t tag) const {
+  std::shared_ptr<const UdpProbeStream> stream;
+  {
+    std::lock_guard<std::mutex> lock(mu_);
+    auto it = streams_.find(tag);
+    if (it == streams_.end()) return 0;
+    stream = it->second.stream;
+  }
+  const int64_t now = stream->now().nanos();  // without the lock (see the header)
+  std::lock_guard<std::mutex> lock(mu_);
+  auto it = streams_.find(tag);
+  if (it == streams_.end() || it->second.stream != stream) return 0;
+  uint64_t n = it->second.dropped;
+  for (const auto& [id, t1] : it->second.challenges) {
+    if (now - t1 > kAnswerWithin.nanos()) ++n;
+  }
+  return n;
+}
+
 std::string UdpProbeTable::Handle(std::string_view datagram) {
   std::shared_ptr<const UdpProbeStream> stream;
   {
@@ -46,6 +65,9 @@ std::string UdpProbeTable::Handle(std::string_view datagram) {
   if (DecodeProbeDatagram(datagram, stream->key, &d) != ProbeDecodeResult::kOk) {
     std::lock_guard<std::mutex> lock(mu_);
     ++counters_.bad_mac;
+    if (auto it = streams_.find(*PeekProbeTag(datagram)); it != streams_.end()) {
+      ++it->second.dropped;
+    }
     return {};
   }
 
@@ -64,13 +86,17 @@ std::string UdpProbeTable::Handle(std::string_view datagram) {
     Entry& e = it->second;
     if (d.id <= e.last_request_id) {
       ++counters_.replayed;
+      ++e.dropped;
       return {};
     }
     e.last_request_id = d.id;
     // T1 as late as possible: the caller sends the challenge at once.
     challenge.t1_session_ns = stream->now().nanos();
     e.challenges[d.id] = challenge.t1_session_ns;
-    while (e.challenges.size() > kRememberedChallenges) e.challenges.erase(e.challenges.begin());
+    while (e.challenges.size() > kRememberedChallenges) {  // forgotten unanswered: lost
+      e.challenges.erase(e.challenges.begin());
+      ++e.dropped;
+    }
     ++counters_.challenged;
     return EncodeProbeDatagram(challenge, stream->key);
   }
@@ -92,6 +118,7 @@ std::string UdpProbeTable::Handle(std::string_view datagram) {
     // Each challenge is answered once, with the T1 it carried.
     if (c == e.challenges.end() || c->second != d.t1_session_ns) {
       ++counters_.replayed;
+      ++e.dropped;
       return {};
     }
     e.challenges.erase(c);

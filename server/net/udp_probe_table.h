@@ -47,6 +47,9 @@ class UdpProbeTable {
  public:
   // Challenges remembered per stream for matching answers.
   static constexpr size_t kRememberedChallenges = 16;
+  // A challenge unanswered this long (session time since its T1) counts as
+  // lost in DropsOf (the stream probes' timeout, LiveService::Options).
+  static constexpr Duration kAnswerWithin = Duration::Seconds(2);
 
   // Adds (or replaces) the stream with this tag.
   void Add(uint64_t tag, UdpProbeStream stream);
@@ -59,11 +62,18 @@ class UdpProbeTable {
 
   UdpProbeCounters counters() const;
 
+  // One stream's lost or refused probes, for operators (session show):
+  // challenges that got no answer within kAnswerWithin (or were pushed out
+  // of the remembered ones unanswered), and its datagrams dropped as replays
+  // or for a bad MAC. 0 for an unknown tag.
+  uint64_t DropsOf(uint64_t tag) const;
+
  private:
   struct Entry {
     std::shared_ptr<const UdpProbeStream> stream;
     uint64_t last_request_id = 0;
     std::map<uint64_t, int64_t> challenges;  // id -> T1 (session ns)
+    uint64_t dropped = 0;                    // replays, bad MACs, challenges forgotten unanswered
   };
 
   mutable std::mutex mu_;

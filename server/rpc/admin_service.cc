@@ -8,6 +8,7 @@
 #include "server/base/log.h"
 #include "server/base/strings.h"
 #include "server/rpc/credit_driver.h"
+#include "server/rpc/retime_runner.h"
 #include "server/rpc/status.h"
 
 namespace tickmark::rpc {
@@ -101,6 +102,7 @@ absl::Status Summarize(SessionHub* hub, const ledger::SessionRow& row, v1::Sessi
   // avoids loading it (and replaying its ledger) just to say so.
   if (auto rt = hub->Find(row.id)) {
     out->set_connected_clients(static_cast<uint32_t>(rt->StreamCount()));
+    for (v1::ClientClock& c : rt->Clocks()) *out->add_clocks() = std::move(c);
   }
   return absl::OkStatus();
 }
@@ -475,10 +477,12 @@ grpc::ServerUnaryReactor* AdminService::ApplyCalibration(grpc::CallbackServerCon
 namespace {
 
 // Streams messages produced by a worker thread. The worker calls Push() and
-// then End(); the reactor writes one message at a time.
-class ReplayReactor final : public grpc::ServerWriteReactor<v1::ReplayProgress> {
+// then End(); the reactor writes one message at a time. (Replay, Retime.)
+template <typename Msg>
+class WorkerWriteReactor final : public grpc::ServerWriteReactor<Msg> {
  public:
-  void Push(v1::ReplayProgress m) {
+  explicit WorkerWriteReactor(const char* what) : what_(what) {}
+  void Push(Msg m) {
     std::lock_guard<std::mutex> lock(mu_);
     queue_.push_back(std::move(m));
     PumpLocked();
@@ -511,23 +515,26 @@ class ReplayReactor final : public grpc::ServerWriteReactor<v1::ReplayProgress> 
       current_ = std::move(queue_.front());
       queue_.pop_front();
       writing_ = true;
-      StartWrite(&current_);
+      this->StartWrite(&current_);
       return;
     }
     if (end_) {
       finished_ = true;
-      Finish(ToGrpc(cancelled_ ? absl::CancelledError("replay cancelled") : *end_));
+      this->Finish(ToGrpc(cancelled_ ? absl::CancelledError(Cat(what_, " cancelled")) : *end_));
     }
   }
 
+  const char* const what_;  // "replay", "retiming"
   std::mutex mu_;
-  std::deque<v1::ReplayProgress> queue_;  // GUARDED_BY(mu_)
-  v1::ReplayProgress current_;            // being written
+  std::deque<Msg> queue_;  // GUARDED_BY(mu_)
+  Msg current_;            // being written
   bool writing_ = false;
   bool finished_ = false;
   std::optional<absl::Status> end_;
   std::atomic<bool> cancelled_{false};
 };
+using ReplayReactor = WorkerWriteReactor<v1::ReplayProgress>;
+using RetimeReactor = WorkerWriteReactor<v1::RetimeResponse>;
 
 bool ValidSetName(const std::string& name) {
   if (name.empty() || name.size() > 64 || name == "live") return false;
@@ -578,6 +585,14 @@ absl::Status RunReplay(SessionHub* hub, const v1::ReplayRequest& req, ReplayReac
       calibration_of[trainer] = c.id();
     }
   }
+  // --retimed: event times from a derived time set (retime_runner.h).
+  std::optional<DerivedTimes> times;
+  if (!req.time_set().empty()) {
+    auto loaded = LoadDerivedTimes(ledger, req.session_id(), req.time_set());
+    if (!loaded.ok()) return loaded.status();
+    times = *std::move(loaded);
+  }
+  uint64_t retimed_records = 0;
   const uint64_t total = ledger->CommittedSequence(req.session_id());
   CreditDriver driver(std::move(overrides));
   std::vector<v1::Record> derived;
@@ -591,6 +606,14 @@ absl::Status RunReplay(SessionHub* hub, const v1::ReplayRequest& req, ReplayReac
     for (const v1::Record& r : *chunk) {
       if (r.sequence() > total) break;
       if (r.has_label()) live[r.label().step_sequence()] = r.label().value();
+      if (times && (r.has_feedback() || r.has_step())) {
+        v1::Record retimed = r;
+        if (ApplyDerivedTimes(*times, &retimed)) {
+          ++retimed_records;
+          driver.Feed(retimed, &derived);
+          continue;
+        }
+      }
       driver.Feed(r, &derived);
     }
     next = chunk->back().sequence() + 1;
@@ -637,7 +660,15 @@ absl::Status RunReplay(SessionHub* hub, const v1::ReplayRequest& req, ReplayReac
       (*cmp.mutable_trainer_calibrations())[trainer] = c;
     }
   }
+  if (times) {
+    cmp.set_time_set(times->set.id);
+    cmp.set_retimed_records(retimed_records);
+  }
   std::string spec = Cat("replay of sequences 1..", total, " with ", driver.Describe());
+  if (times) {
+    spec += Cat("; event times from time set ", times->set.id, " (", retimed_records,
+                " records; the set covers sequences 1..", times->set.through_sequence, ")");
+  }
   if (!calibration_of.empty()) {
     spec += "; calibrated:";
     for (const auto& [trainer, id] : calibration_of) spec += Cat(" ", trainer, "=", id);
@@ -662,7 +693,7 @@ absl::Status RunReplay(SessionHub* hub, const v1::ReplayRequest& req, ReplayReac
 
 grpc::ServerWriteReactor<v1::ReplayProgress>* AdminService::Replay(
     grpc::CallbackServerContext* ctx, const v1::ReplayRequest* req) {
-  auto* reactor = new ReplayReactor();
+  auto* reactor = new ReplayReactor("replay");
   auto who = AuthenticateContext(*ctx, *auth_);
   absl::Status s = who.status();
   if (s.ok()) s = Authorize(*who, req->session_id(), {v1::ROLE_ADMIN});
@@ -679,6 +710,46 @@ grpc::ServerWriteReactor<v1::ReplayProgress>* AdminService::Replay(
     absl::Status st = RunReplay(hub, request, reactor);
     reactor->End(st);
   });
+  return reactor;
+}
+
+grpc::ServerWriteReactor<v1::RetimeResponse>* AdminService::Retime(grpc::CallbackServerContext* ctx,
+                                                                   const v1::RetimeRequest* req) {
+  auto* reactor = new RetimeReactor("retiming");
+  auto who = AuthenticateContext(*ctx, *auth_);
+  absl::Status s = who.status();
+  if (s.ok()) s = Authorize(*who, req->session_id(), {v1::ROLE_ADMIN});
+  RetimeOptions options;
+  if (s.ok() && req->half_window_s() != 0) {
+    if (!std::isfinite(req->half_window_s()) || req->half_window_s() < 0.1 ||
+        req->half_window_s() > 3600) {
+      s = absl::InvalidArgumentError("half window must be between 0.1 and 3600 seconds");
+    } else {
+      options.half_window = Duration::FromSeconds(req->half_window_s());
+      options.max_half_window = std::max(options.max_half_window, options.half_window);
+    }
+  }
+  if (s.ok()) s = hub_->ledger()->GetSession(req->session_id()).status();
+  if (!s.ok()) {
+    reactor->End(s);
+    return reactor;
+  }
+  // Off the gRPC thread: reading a long session and storing its set takes a while.
+  reactor->worker =
+      std::thread([ledger = hub_->ledger(), session = req->session_id(), options, reactor] {
+        auto result = RunRetime(
+            ledger, session, options,
+            [reactor](uint64_t done, uint64_t total) {
+              v1::RetimeResponse p;
+              p.set_done(done);
+              p.set_total(total);
+              reactor->Push(std::move(p));
+            },
+            [reactor] { return reactor->cancelled(); });
+        const absl::Status status = result.status();
+        if (status.ok()) reactor->Push(*std::move(result));
+        reactor->End(status);
+      });
   return reactor;
 }
 

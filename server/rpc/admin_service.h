@@ -55,6 +55,8 @@ class AdminService final : public tickmark::v1::SessionAdmin::CallbackService {
                                              tickmark::v1::SetKernelResponse* resp) override;
   grpc::ServerWriteReactor<tickmark::v1::ReplayProgress>* Replay(
       grpc::CallbackServerContext* ctx, const tickmark::v1::ReplayRequest* req) override;
+  grpc::ServerWriteReactor<tickmark::v1::RetimeResponse>* Retime(
+      grpc::CallbackServerContext* ctx, const tickmark::v1::RetimeRequest* req) override;
   // In admin_invite.cc.
   grpc::ServerUnaryReactor* CreateInvite(grpc::CallbackServerContext* ctx,
                                          const tickmark::v1::CreateInviteRequest* req,

@@ -2,8 +2,11 @@
 
 #include <openssl/rand.h>
 
+#include <algorithm>
 #include <chrono>
+#include <cmath>
 #include <limits>
+#include <tuple>
 
 #include "server/base/log.h"
 #include "server/base/strings.h"
@@ -42,6 +45,35 @@ void RetryableIfStoreFull(v1::Ack* ack) {
     ack->set_code(static_cast<int32_t>(absl::StatusCode::kUnavailable));
     ack->set_message(Cat(ack->message(), " (not stored; send it again later)"));
   }
+}
+
+// How a feedback's or step's time was mapped (records.proto, Feedback
+// fields 12-17, Step 16-21); the client's reading is set by the caller.
+template <typename R>
+void SetTimeSource(R* r, const MappedEvent& m, const RealtimeReading& reading) {
+  const bool realtime = m.decision.source == TimeSourceChoice::kRealtime;
+  r->set_time_source(realtime ? v1::TIME_SOURCE_REALTIME : v1::TIME_SOURCE_ROUND_TRIP);
+  r->set_client_realtime_bound_ns(reading.bound.nanos());
+  r->set_server_realtime_bound_ns(m.server_bound.nanos());
+  r->set_round_trip_uncertainty_ns(m.round_trip_uncertainty.nanos());
+  r->set_time_source_reason(TimeSourceReasonName(m.decision.reason));
+}
+
+bool ThroughRealtime(const MappedEvent& m) {
+  return m.decision.source == TimeSourceChoice::kRealtime;
+}
+
+// A real-time mapping the plausibility checks refuse (an event after its
+// arrival beyond its bound, or older than any allowed) had a false bound
+// (docs/time-model.md, "Disciplined clocks"): the round trip's mapping
+// replaces it, and is judged in its turn, so nothing is refused for it.
+MappedEvent AsRoundTrip(MappedEvent m) {
+  m.at = m.round_trip_at;
+  m.uncertainty = m.round_trip_uncertainty;
+  m.decision.source = TimeSourceChoice::kRoundTrip;
+  m.decision.reason = TimeSourceReason::kImplausible;
+  m.decision.uncertainty = m.round_trip_uncertainty;
+  return m;
 }
 
 std::string BearerFromMetadata(const grpc::CallbackServerContext& ctx) {
@@ -191,16 +223,20 @@ void IngestReactor<Side>::Tick() {
     outstanding_probe_ = false;  // lost; a late reply still matches sent_probes_
   }
   if (!outstanding_probe_ && now >= next_probe_mono_) {
-    v1::ServerMessage m;
-    m.mutable_probe()->set_probe_id(++last_probe_id_);
-    // t1 is stamped when the write starts (WriteNext).
-    out_.push_back(std::move(m));
-    outstanding_probe_ = true;
-    outstanding_since_mono_ = now;
-    const Duration gap = burst_left_ > 0 ? opt.probe_burst_spacing : opt.probe_interval;
-    if (burst_left_ > 0) --burst_left_;
-    next_probe_mono_ = now + gap.nanos();
-    WriteNext();
+    // The schedule runs on time since the hello (probe_scheduler.h); a
+    // probe sooner than the steady rate needs a token of the server's budget.
+    const Duration at = Duration::Nanos(now - hello_mono_ns_);
+    if (probes_.Admit(at, [this] { return service_->probe_budget().TryTake(); })) {
+      v1::ServerMessage m;
+      m.mutable_probe()->set_probe_id(++last_probe_id_);
+      // t1 is stamped when the write starts (WriteNext).
+      out_.push_back(std::move(m));
+      outstanding_probe_ = true;
+      outstanding_since_mono_ = now;
+      probes_.Sent(at, model_.estimate());
+      WriteNext();
+    }
+    next_probe_mono_ = hello_mono_ns_ + probes_.due().nanos();
   }
   if (!held_.empty() && !model_.ready() && now - hello_mono_ns_ >= opt.clock_wait.nanos()) {
     ReleaseHeld();
@@ -326,7 +362,8 @@ void IngestReactor<Side>::HandleHello(const v1::Hello& hello) {
   const SessionTime now = runtime_->Now();
   // Crude mapping until a probe returns: assumes the hello took no time.
   hello_offset_ = Duration::Nanos(hello.sent_client_ns()) - Duration::Nanos(now.nanos());
-  burst_left_ = opt.probe_burst;
+  probes_ = ProbeScheduler(service_->probe_schedule());
+  probes_.Restart(Duration::Zero());
   next_probe_mono_ = hello_mono_ns_;
   runtime_->AddStream(this);
   if (!runtime_->open()) {  // closed between the check above and AddStream
@@ -353,6 +390,13 @@ void IngestReactor<Side>::HandleHello(const v1::Hello& hello) {
   w->set_max_state_bytes(opt.limits.max_state_bytes);
   w->set_max_features(opt.limits.max_features);
   OpenProbePort(w);
+  {
+    std::lock_guard<std::mutex> lock(clock_view_mu_);
+    clock_view_.client = client_;
+    clock_view_.hello_offset = hello_offset_;
+    clock_view_.updated = now;
+    clock_view_.udp_tag = udp_tag_;
+  }
   out_.push_back(std::move(m));
   WriteNext();
   UpdateTickDue();
@@ -408,6 +452,7 @@ void IngestReactor<Side>::HandleProbeReply(const v1::ProbeReply& reply) {
     p->set_accepted(false);
     p->set_reject_reason("unknown probe id");
     runtime_->AppendRecord(std::move(r)).IgnoreError();
+    NoteProbe(false, t4);
     return;
   }
   if (reply.probe_id() == last_probe_id_) {
@@ -451,6 +496,7 @@ void IngestReactor<Side>::AddProbe(const ProbeTimestamps& ts, v1::Record r) {
     p->set_accepted(false);
     p->set_reject_reason(std::string(s.message()));
     runtime_->AppendRecord(std::move(r)).IgnoreError();
+    NoteProbe(false, t4);
     return;
   }
   const OnWire w = ComputeOnWire(ts);
@@ -462,6 +508,7 @@ void IngestReactor<Side>::AddProbe(const ProbeTimestamps& ts, v1::Record r) {
   p->set_accepted(accepted);
   if (!accepted) p->set_reject_reason(ProbeVerdictName(verdict));
   runtime_->AppendRecord(std::move(r)).IgnoreError();
+  NoteProbe(accepted, t4);
   if (!accepted) {  // kept in the ledger and counted there
     TM_LOG(kDebug) << "probe from " << client_.client_id()
                    << " rejected: " << ProbeVerdictName(verdict);
@@ -478,14 +525,79 @@ void IngestReactor<Side>::AddProbe(const ProbeTimestamps& ts, v1::Record r) {
   u->set_uncertainty_ns(est.uncertainty.nanos());
   u->set_min_delay_ns(est.min_delay.nanos());
   u->set_samples(static_cast<uint32_t>(est.samples));
+  u->set_drift_error_ppm(est.drift_error_ppm);
+  u->set_asymmetry_ns(est.asymmetry.nanos());
+  u->set_offset_scatter_ns(est.offset_scatter.nanos());
+  u->set_drift_fitted(est.drift_fitted);
   if (verdict == ProbeVerdict::kClockJump) {
     u->set_reason(Cat("restart: client clock jumped (offset now ", w.offset.seconds(), " s)"));
     TM_LOG(kWarning) << "client " << client_.client_id() << " clock jumped; model restarted";
+    // A new model: probe fast again, from now.
+    probes_.Restart(Duration::Nanos(service_->mono()->NowNanos() - hello_mono_ns_));
+    next_probe_mono_ = hello_mono_ns_ + probes_.due().nanos();
+    UpdateTickDue();
   } else {
     u->set_reason("probe");
   }
   runtime_->AppendRecord(std::move(m)).IgnoreError();
   if (!was_ready) ReleaseHeld();
+}
+
+template <typename Side>
+void IngestReactor<Side>::NoteProbe(bool accepted, SessionTime t4) {
+  if (!accepted) {
+    std::lock_guard<std::mutex> lock(clock_view_mu_);
+    ++clock_view_.probes;
+    ++clock_view_.rejected;
+    return;
+  }
+  const ClockEstimate est = model_.estimate();
+  // The uncertainty grows linearly with the distance from the reference
+  // (ClockModel::UncertaintyAt); its slope, measured over one second.
+  const Duration u0 = model_.UncertaintyAt(est.reference);
+  const Duration u1 = model_.UncertaintyAt(est.reference + Duration::Seconds(1));
+  std::lock_guard<std::mutex> lock(clock_view_mu_);
+  ++clock_view_.probes;
+  clock_view_.probed = true;
+  clock_view_.estimate = est;
+  clock_view_.reference = SessionTime::FromNanos(est.reference.nanos()) - est.offset;
+  clock_view_.growth = static_cast<double>((u1 - u0).nanos()) * 1e-9;
+  clock_view_.updated = t4;
+}
+
+template <typename Side>
+std::optional<v1::ClientClock> IngestReactor<Side>::Clock(SessionTime now) const {
+  ClockView v;
+  {
+    std::lock_guard<std::mutex> lock(clock_view_mu_);
+    v = clock_view_;
+  }
+  if (v.client.client_id().empty()) return std::nullopt;  // no hello yet
+  v1::ClientClock c;
+  c.set_client_id(v.client.client_id());
+  c.set_role(v.client.role());
+  c.set_subject(v.client.subject());
+  c.set_source_kind(v.client.source_kind());
+  c.set_probed(v.probed);
+  if (v.probed) {
+    const double since_reference = static_cast<double>((now - v.reference).nanos());
+    c.set_offset_ns((v.estimate.offset +
+                     Duration::FromSeconds(since_reference * 1e-9 * v.estimate.drift_ppm * 1e-6))
+                        .nanos());
+    c.set_drift_ppm(v.estimate.drift_ppm);
+    c.set_uncertainty_ns((v.estimate.uncertainty +
+                          Duration::FromSeconds(std::abs(since_reference) * 1e-9 * v.growth))
+                             .nanos());
+  } else {
+    c.set_offset_ns(v.hello_offset.nanos());
+    c.set_uncertainty_ns(kHelloMappingUncertainty.nanos());
+  }
+  c.set_probes(v.probes);
+  c.set_rejected_probes(v.rejected);
+  const ProbePortHooks& port = service_->options().probe_port;
+  if (v.udp_tag != 0 && port.drops) c.set_udp_probe_drops(port.drops(v.udp_tag));
+  c.set_since_update_ns((now - v.updated).nanos());
+  return c;
 }
 
 template <typename Side>
@@ -513,6 +625,47 @@ std::pair<SessionTime, Duration> IngestReactor<Side>::Map(int64_t client_ns,
     return {SessionTime(), kHelloMappingUncertainty};
   }
   return {*mapped, kHelloMappingUncertainty};
+}
+
+// The server's real-time/session pair is read between two session readings,
+// so a preemption between the reads widens the bound (read_spread) rather
+// than shifting the mapping unseen.
+template <typename Side>
+MappedEvent IngestReactor<Side>::MapEventTime(int64_t client_ns, const RealtimeReading& reading,
+                                              Duration span, absl::Status* error) {
+  MappedEvent m;
+  std::tie(m.at, m.uncertainty) = Map(client_ns, error);
+  m.round_trip_at = m.at;
+  m.round_trip_uncertainty = m.uncertainty;
+  m.decision.uncertainty = m.uncertainty;
+  if (!error->ok()) return m;
+  TimeSourceInputs in;
+  in.enabled = service_->options().realtime_mapping;
+  in.client = reading;
+  in.round_trip_uncertainty = m.uncertainty;
+  std::optional<SessionTime> through_realtime;
+  if (in.enabled && reading.realtime_ns > 0 && reading.synced) {
+    const DisciplineCache::Snapshot server = service_->discipline().Get();
+    in.server = server.state;
+    in.server_state_age = server.age;
+    m.server_bound = server.state.max_error;
+    const SessionTime before = runtime_->Now();
+    const int64_t realtime_ns = service_->discipline().source()->RealtimeNanos();
+    const SessionTime after = runtime_->Now();
+    in.read_spread = (after - before) / 2;
+    const SessionTime anchor = before + in.read_spread;
+    through_realtime = RealtimeToSession(reading.realtime_ns, anchor, realtime_ns);
+    if (through_realtime) {
+      in.event_age = std::max(Abs(anchor - *through_realtime), Abs(anchor - m.at)) + Abs(span);
+      in.disagreement = *through_realtime - m.at;
+    }
+  }
+  m.decision = ChooseTimeSource(in);
+  if (m.decision.source == TimeSourceChoice::kRealtime) {
+    m.at = *through_realtime;
+    m.uncertainty = m.decision.uncertainty;
+  }
+  return m;
 }
 
 template <typename Side>
@@ -835,10 +988,20 @@ void IngestReactor<TrainerSide>::HandlePayload(const In& message, SessionTime ar
     return Reject(f.client_sequence(), s);
   }
   absl::Status map_error;
-  auto [mapped, mapped_uncertainty] = Map(f.event_source_ns(), &map_error);
+  const RealtimeReading reading{f.event_realtime_ns(), Duration::Nanos(f.realtime_bound_ns()),
+                                f.realtime_synced()};
+  MappedEvent mapped = MapEventTime(f.event_source_ns(), reading, Duration::Zero(), &map_error);
   if (!map_error.ok()) return Reject(f.client_sequence(), map_error);
-  const EventTimeVerdict v = JudgeEventTime(mapped, mapped_uncertainty, arrival, model_.ready(),
-                                            opt.event_future_tolerance, opt.limits);
+  auto judge = [&](const MappedEvent& m) {
+    // A real-time mapping is as firm as a probed model: no clamping.
+    return JudgeEventTime(m.at, m.uncertainty, arrival, model_.ready() || ThroughRealtime(m),
+                          opt.event_future_tolerance, opt.limits);
+  };
+  EventTimeVerdict v = judge(mapped);
+  if (!v.status.ok() && ThroughRealtime(mapped)) {
+    mapped = AsRoundTrip(mapped);
+    v = judge(mapped);
+  }
   if (!v.status.ok()) {
     if (v.status.code() == absl::StatusCode::kOutOfRange) {
       service_->counters().future_events.fetch_add(1);
@@ -859,6 +1022,8 @@ void IngestReactor<TrainerSide>::HandlePayload(const In& message, SessionTime ar
   fb->set_uncertainty_ns(v.uncertainty.nanos());
   fb->set_event_clamped(v.clamped);
   fb->set_input(f.input());
+  SetTimeSource(fb, mapped, reading);
+  fb->set_event_realtime_ns(f.event_realtime_ns());
   // Kept either way; a late one may find its steps already settled.
   fb->set_late(arrival - v.event > runtime_->allowed_lateness());
   AppendClient(std::move(r));
@@ -875,20 +1040,77 @@ void IngestReactor<AgentSide>::HandlePayload(const In& message, SessionTime arri
                             "a step must start after the previous step of this agent"));
   }
   absl::Status map_error;
-  auto [start, uncertainty] = Map(s.start_agent_ns(), &map_error);
+  const RealtimeReading reading{s.start_realtime_ns(), Duration::Nanos(s.realtime_bound_ns()),
+                                s.realtime_synced()};
+  // Both positive and ordered (ValidateStep), so the difference fits.
+  const Duration length =
+      s.end_agent_ns() != 0 ? Duration::Nanos(s.end_agent_ns() - s.start_agent_ns()) : Duration();
+  MappedEvent mapped = MapEventTime(s.start_agent_ns(), reading, length, &map_error);
   if (!map_error.ok()) return Reject(cseq, map_error);
-  if (s.start_agent_ns() == last_step_end_agent_ns_) {
-    start = last_step_end_session_;  // the same instant maps to the same time
-  }
-  if (absl::Status st = CheckStepTime(start, uncertainty, arrival, limits); !st.ok()) {
-    return Reject(cseq, st);
-  }
-  SessionTime end;
-  if (s.end_agent_ns() != 0) {
-    end = Map(s.end_agent_ns(), &map_error).first;
+  const bool same_instant = s.start_agent_ns() == last_step_end_agent_ns_;
+  // Where the step lands through `m`'s route.
+  struct Placed {
+    SessionTime start;
+    SessionTime end;  // when the step has one
+    Duration uncertainty;
+    std::string moved;  // the order guard's note, if it moved the step
+  };
+  auto place = [&](const MappedEvent& m, absl::Status* error) {
+    const bool realtime = ThroughRealtime(m);
+    Placed p{m.at, SessionTime(), m.uncertainty, ""};
+    if (same_instant && !realtime && !last_step_realtime_) {
+      p.start = last_step_end_session_;  // the same instant maps to the same time
+    }
+    if (s.end_agent_ns() != 0) {
+      if (realtime) {
+        // The agent's clock and its CLOCK_REALTIME advance together (both
+        // slewed alike by the kernel; clock_gettime(2)), so the end is the
+        // start plus the step's length.
+        p.end = p.start + length;
+      } else {
+        p.end = Map(s.end_agent_ns(), error).first;
+      }
+    }
+    // Step order when real time is involved (this step's mapping or the
+    // last one's): the two routes err differently, so a step could land
+    // before the end of the step before it. The whole step is moved to that
+    // end (to it exactly when it starts at the same agent instant). Between
+    // two real-time steps that is only the read jitter of one instant, as
+    // between two round-trip steps; across a change of route, or past an
+    // earlier end, the uncertainty is widened by the move, so the stated
+    // interval still covers where the step was mapped, and the reason says so.
+    if (last_step_start_ns_ != 0 && (realtime || last_step_realtime_)) {
+      const SessionTime target =
+          same_instant ? last_step_end_session_ : std::max(p.start, last_step_floor_);
+      const Duration shift = target - p.start;
+      if (shift != Duration::Zero()) {
+        p.start = p.start + shift;
+        if (s.end_agent_ns() != 0) p.end = p.end + shift;
+        if (!same_instant || realtime != last_step_realtime_) {
+          p.uncertainty = p.uncertainty + Abs(shift);
+          p.moved = Cat("; moved ", shift.nanos(), " ns to keep step order");
+        }
+      }
+    }
+    return p;
+  };
+  Placed placed = place(mapped, &map_error);
+  if (!map_error.ok()) return Reject(cseq, map_error);
+  absl::Status plausible = CheckStepTime(placed.start, placed.uncertainty, arrival, limits);
+  if (!plausible.ok() && ThroughRealtime(mapped)) {
+    mapped = AsRoundTrip(mapped);
+    placed = place(mapped, &map_error);
     if (!map_error.ok()) return Reject(cseq, map_error);
+    plausible = CheckStepTime(placed.start, placed.uncertainty, arrival, limits);
   }
+  if (!plausible.ok()) return Reject(cseq, plausible);
+  const bool realtime = ThroughRealtime(mapped);
+  const SessionTime start = placed.start;
+  const SessionTime end = placed.end;
+  const Duration uncertainty = placed.uncertainty;
   last_step_start_ns_ = s.start_agent_ns();
+  last_step_floor_ = s.end_agent_ns() != 0 ? end : start;
+  last_step_realtime_ = realtime;
   v1::Record r;
   r.set_written_session_ns(arrival.nanos());
   v1::Step* step = r.mutable_step();
@@ -913,6 +1135,11 @@ void IngestReactor<AgentSide>::HandlePayload(const In& message, SessionTime arri
   step->set_action(s.action());
   step->set_state(s.state());
   *step->mutable_features() = s.features();
+  SetTimeSource(step, mapped, reading);
+  step->set_start_realtime_ns(s.start_realtime_ns());
+  if (!placed.moved.empty()) {
+    step->set_time_source_reason(step->time_source_reason() + placed.moved);
+  }
   AppendClient(std::move(r));
 }
 

@@ -2,7 +2,8 @@
 // feedback or step is rate-limited, validated (validation.h), mapped to
 // session time with the client's clock model, appended to the ledger and
 // acknowledged after commit. The server probes the client's clock on the
-// stream: a burst after the hello, then periodically. Until the first probe
+// stream as its ProbeScheduler says: fast after the hello, then as the
+// client's clock model needs. Until the first probe
 // comes back, messages wait (at most Options::clock_wait) so they can be
 // mapped; after that they are mapped with the hello's clock reading and a
 // wide uncertainty.
@@ -25,12 +26,17 @@
 #include <deque>
 #include <map>
 #include <memory>
+#include <mutex>
+#include <optional>
 #include <string>
 
 #include "server/core/clock_model.h"
+#include "server/core/disciplined_clock.h"
+#include "server/core/probe_scheduler.h"
 #include "server/rpc/live_service.h"
 #include "server/rpc/strand.h"
 #include "server/rpc/token_bucket.h"
+#include "tickmark/v1/admin.pb.h"
 #include "tickmark/v1/stream.pb.h"
 
 namespace tickmark::rpc {
@@ -62,6 +68,16 @@ struct AgentSide {
   static uint64_t Sequence(const In& m) { return m.step().client_sequence(); }
 };
 
+// An event time mapped to session time, and how (MapEventTime).
+struct MappedEvent {
+  SessionTime at;                   // through the chosen route
+  SessionTime round_trip_at;        // through the round-trip model, chosen or not
+  Duration uncertainty;             // the chosen route's
+  TimeSourceDecision decision;      // which route, and why
+  Duration round_trip_uncertainty;  // the round-trip model's, chosen or not
+  Duration server_bound;            // the server kernel's maxerror; zero: not read
+};
+
 template <typename Side>
 class IngestReactor final : public grpc::ServerBidiReactor<grpc::ByteBuffer, grpc::ByteBuffer>,
                             public StreamHandle,
@@ -79,6 +95,7 @@ class IngestReactor final : public grpc::ServerBidiReactor<grpc::ByteBuffer, grp
   // StreamHandle (session runtime; any thread).
   const std::string& token_id() const override { return token_id_; }
   void End(const grpc::Status& status) override;
+  std::optional<tickmark::v1::ClientClock> Clock(SessionTime now) const override;
 
   // gRPC reactions.
   void OnReadDone(bool ok) override;
@@ -123,6 +140,11 @@ class IngestReactor final : public grpc::ServerBidiReactor<grpc::ByteBuffer, grp
   void Cleanup();
 
   std::pair<SessionTime, Duration> Map(int64_t client_ns, absl::Status* error) const;
+  // Map, or through real time when ChooseTimeSource says so
+  // (docs/time-model.md, "Disciplined clocks"). `span` is how far the
+  // event reaches beyond client_ns (a step's length), for the bound.
+  MappedEvent MapEventTime(int64_t client_ns, const RealtimeReading& reading, Duration span,
+                           absl::Status* error);
   bool TakeRateToken();
   void Reject(uint64_t client_sequence, const absl::Status& s);
   void AppendClient(tickmark::v1::Record record);
@@ -132,6 +154,23 @@ class IngestReactor final : public grpc::ServerBidiReactor<grpc::ByteBuffer, grp
   void MaybeFinishGracefully();
   void FinishNow(const grpc::Status& status);
   void UpdateTickDue();
+
+  // What operators see of the clock model (Clock()): copied on the strand
+  // when the model or the probe counts change, read from any thread.
+  struct ClockView {
+    tickmark::v1::ClientInfo client;
+    bool probed = false;
+    Duration hello_offset;
+    ClockEstimate estimate;
+    SessionTime reference;  // session time of estimate.reference
+    double growth = 0;      // uncertainty added per unit of distance from it
+    SessionTime updated;    // the last accepted probe's T4, or the hello
+    uint64_t probes = 0;    // answered probes of this stream (stream and UDP)
+    uint64_t rejected = 0;  // of which rejected
+    uint64_t udp_tag = 0;
+  };
+  // Counts a probe record and, when the model took it, copies the model.
+  void NoteProbe(bool accepted, SessionTime t4);
 
   LiveService* const service_;              // not owned
   grpc::CallbackServerContext* const ctx_;  // valid until OnDone; used only in Start
@@ -177,7 +216,7 @@ class IngestReactor final : public grpc::ServerBidiReactor<grpc::ByteBuffer, grp
   Duration hello_offset_;  // client clock − session time from the hello
   int64_t hello_mono_ns_ = 0;
   std::deque<Held> held_;  // payloads waiting for the first probe
-  int burst_left_ = 0;
+  ProbeScheduler probes_;  // when to probe next (adaptive probing)
   int64_t next_probe_mono_ = 0;
   uint64_t last_probe_id_ = 0;
   bool outstanding_probe_ = false;
@@ -187,6 +226,11 @@ class IngestReactor final : public grpc::ServerBidiReactor<grpc::ByteBuffer, grp
   int64_t last_step_start_ns_ = 0;               // agent clock; steps must move forward
   int64_t last_step_end_agent_ns_ = -1;          // explicit end of the last step (agent clock)
   SessionTime last_step_end_session_;            // ... and where it was mapped
+  SessionTime last_step_floor_;                  // the last step's mapped end, else its start
+  bool last_step_realtime_ = false;              // the last step was mapped through real time
+
+  mutable std::mutex clock_view_mu_;
+  ClockView clock_view_;  // GUARDED_BY(clock_view_mu_)
 };
 
 // The per-side payload handling (ingest_reactor.cc).

@@ -14,12 +14,23 @@ LiveService::LiveService(SessionHub* hub, TokenAuthority* auth, const MonotonicS
       mono_(mono),
       options_(std::move(options)),
       limits_clock_(options_.limits_clock ? options_.limits_clock : mono),
+      discipline_(options_.discipline ? options_.discipline : KernelDiscipline::Get(), mono,
+                  options_.discipline_refresh),
       rate_limiter_(limits_clock_),
+      probe_budget_(options_.probe_budget, std::max(options_.probe_budget, 1.0), mono),
       admission_(options_.max_streams, options_.max_streams_per_peer),
       pool_(options_.worker_threads),
       fit_pool_(std::max(1, options_.calibration_threads)) {}
 
 LiveService::~LiveService() { Stop(); }
+
+ProbeScheduler::Options LiveService::probe_schedule() const {
+  ProbeScheduler::Options o = options_.probing;
+  o.steady_interval = options_.probe_interval;
+  o.burst = options_.probe_burst;
+  o.burst_interval = options_.probe_burst_spacing;
+  return o;
+}
 
 void LiveService::Stop() {
   ticker_.Stop();

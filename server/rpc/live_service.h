@@ -32,11 +32,14 @@
 #include <string>
 
 #include "server/core/clock_model.h"
+#include "server/core/disciplined_clock.h"
+#include "server/core/probe_scheduler.h"
 #include "server/rpc/auth.h"
 #include "server/rpc/rate_limiter.h"
 #include "server/rpc/session_hub.h"
 #include "server/rpc/stream_admission.h"
 #include "server/rpc/ticker.h"
+#include "server/rpc/token_bucket.h"
 #include "server/rpc/work_pool.h"
 #include "tickmark/v1/stream.grpc.pb.h"
 
@@ -53,6 +56,9 @@ struct ProbePortHooks {
                      std::function<void(uint64_t probe_id, const ProbeTimestamps&)> on_sample)>
       add_stream;
   std::function<void(uint64_t tag)> remove_stream;
+  // The stream's lost or refused UDP probes (UdpProbeTable::DropsOf), for
+  // operators; may be unset.
+  std::function<uint64_t(uint64_t tag)> drops;
 };
 
 using LiveServiceBase =
@@ -71,6 +77,16 @@ class LiveService final : public LiveServiceBase {
     size_t subscriber_buffer = 4096;             // live records buffered per subscriber
     ClockModel::Options clock;
     ProbePortHooks probe_port;  // optional UDP probes
+    // Adaptive probing (docs/time-model.md, "Adaptive probing"): its steady
+    // interval, burst and burst spacing are probe_interval, probe_burst and
+    // probe_burst_spacing above (those fields of `probing` are not read).
+    ProbeScheduler::Options probing;
+    // Probes a second, all streams together (a token bucket holding one
+    // second's worth; 0: no limit). Every probe takes a token if there is
+    // one; past the budget only probes at the steady rate go
+    // (ProbeScheduler::Admit). Each probe stores a Probe and a
+    // ClockModelUpdate record.
+    double probe_budget = 500;
 
     // An ingest stream that sends no hello this long after opening is ended
     // with DEADLINE_EXCEEDED.
@@ -106,6 +122,17 @@ class LiveService final : public LiveServiceBase {
     // Clock for rate limits and the hello timeout; null: the service's
     // monotonic clock. Tests drive it by hand.
     const MonotonicSource* limits_clock = nullptr;
+    // Disciplined clocks (docs/time-model.md, "Disciplined clocks"): map a
+    // feedback or step through real time when the client sent a reading,
+    // both kernels say synchronised and the bounds beat the round trip.
+    // tickmarkd --no-realtime-mapping turns it off.
+    bool realtime_mapping = true;
+    // The server's own clock discipline; null: the running kernel
+    // (KernelDiscipline). A test hook: tests inject a FakeDiscipline. Not
+    // owned; outlives the service.
+    const ClockDiscipline* discipline = nullptr;
+    // The server's discipline state is read again at most this often.
+    Duration discipline_refresh = Duration::Seconds(1);
   };
 
   // Counters, for operators and tests.
@@ -147,6 +174,11 @@ class LiveService final : public LiveServiceBase {
   WorkPool& pool() { return pool_; }
   WorkPool& fit_pool() { return fit_pool_; }
   RateLimiter& rate_limiter() { return rate_limiter_; }
+  TokenBucket& probe_budget() { return probe_budget_; }
+  // The probe schedule of a new stream (Options::probing with the steady
+  // interval and burst filled in).
+  ProbeScheduler::Options probe_schedule() const;
+  DisciplineCache& discipline() { return discipline_; }
   StreamAdmission& admission() { return admission_; }
   struct Counters {
     std::atomic<uint64_t> undecodable{0};
@@ -166,7 +198,9 @@ class LiveService final : public LiveServiceBase {
   const MonotonicSource* const limits_clock_;  // not owned
 
   Counters counters_;
+  DisciplineCache discipline_;  // the server's own kernel state, shared by the streams
   RateLimiter rate_limiter_;
+  TokenBucket probe_budget_;  // Options::probe_budget, shared by every stream
   StreamAdmission admission_;
   WorkPool pool_;  // before ticker_: the ticker posts to strands that run here
   WorkPool fit_pool_;  // calibration fits (LiveService::Options::calibration_threads)

@@ -191,6 +191,7 @@ absl::StatusOr<std::unique_ptr<TickmarkServer>> TickmarkServer::Start(
   }
   s->admin_ = std::make_unique<AdminService>(s->hub_.get(), s->auth_.get(), options.invites);
   LiveService::Options live = options.live;
+  if (options.no_realtime_mapping) live.realtime_mapping = false;
   if (options.udp_probe) {
     auto udp = net::UdpProbeServer::Start(net::HostOf(options.listen), options.udp_probe_port);
     if (!udp.ok()) {
@@ -207,6 +208,7 @@ absl::StatusOr<std::unique_ptr<TickmarkServer>> TickmarkServer::Start(
                      net::UdpProbeStream{std::move(key), std::move(now), std::move(on_sample)});
         };
     live.probe_port.remove_stream = [table](uint64_t tag) { table->Remove(tag); };
+    live.probe_port.drops = [table](uint64_t tag) { return table->DropsOf(tag); };
     TM_LOG(kInfo) << "UDP probe port " << s->udp_->port();
   }
   s->live_ = std::make_unique<LiveService>(s->hub_.get(), s->auth_.get(), &s->mono_, live);

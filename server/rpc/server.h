@@ -52,6 +52,10 @@ struct ServerOptions {
   // port. Its hooks in live.probe_port are filled in by Start().
   bool udp_probe = false;
   uint16_t udp_probe_port = 0;
+  // Never map event times through real time, even when this host's and a
+  // client's clocks are disciplined (docs/time-model.md, "Disciplined
+  // clocks"); clears live.realtime_mapping in Start().
+  bool no_realtime_mapping = false;
   LiveService::Options live;
   SessionHub::Options sessions;
   // How often the ledger's write health is read for the gRPC health

@@ -2,6 +2,7 @@
 
 #include <time.h>
 
+#include <algorithm>
 #include <fstream>
 
 #include "server/base/log.h"
@@ -186,6 +187,11 @@ absl::StatusOr<uint64_t> SessionRuntime::AppendRecord(
   batch.push_back(std::move(record));
   return ledger_->Append(id_, std::move(batch),
                          [this, done](const absl::Status& s, const std::vector<Record>& committed) {
+                           // A kernel setting counts as soon as it is committed, before
+                           // the caller hears so: a trainer who joins right after an
+                           // admin's SetKernel must not get their calibration on top.
+                           // (Credit notes it again later; noting is idempotent.)
+                           if (s.ok()) NoteKernel(committed.front());
                            if (done) done(s, committed.front());
                            Fanout(s, committed);
                          });
@@ -341,6 +347,20 @@ void SessionRuntime::RemoveStream(StreamHandle* stream) {
 size_t SessionRuntime::StreamCount() {
   std::lock_guard<std::mutex> lock(streams_mu_);
   return streams_.size();
+}
+std::vector<v1::ClientClock> SessionRuntime::Clocks() {
+  const SessionTime now = Now();
+  std::vector<v1::ClientClock> out;
+  {
+    std::lock_guard<std::mutex> lock(streams_mu_);
+    for (StreamHandle* s : streams_) {
+      if (std::optional<v1::ClientClock> c = s->Clock(now)) out.push_back(*std::move(c));
+    }
+  }
+  std::sort(out.begin(), out.end(), [](const v1::ClientClock& a, const v1::ClientClock& b) {
+    return a.client_id() < b.client_id();
+  });
+  return out;
 }
 void SessionRuntime::AddSink(RecordSink* sink) {
   std::lock_guard<std::mutex> lock(streams_mu_);

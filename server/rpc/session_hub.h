@@ -33,6 +33,7 @@
 #include "server/core/time.h"
 #include "server/ledger/ledger.h"
 #include "server/rpc/credit_driver.h"
+#include "tickmark/v1/admin.pb.h"
 #include "tickmark/v1/stream.pb.h"
 
 namespace tickmark::rpc {
@@ -57,6 +58,12 @@ class StreamHandle {
   virtual const std::string& token_id() const = 0;
   // Ends the stream with this status; may be called from any thread.
   virtual void End(const grpc::Status& status) = 0;
+  // The client's clock as the stream models it at session time `now`, for
+  // operators (SessionSummary.clocks); nullopt for streams without one. May
+  // be called from any thread; must not call back into the runtime.
+  virtual std::optional<tickmark::v1::ClientClock> Clock(SessionTime /*now*/) const {
+    return std::nullopt;
+  }
 };
 
 // Receives committed records in sequence order (subscribers).
@@ -95,6 +102,8 @@ class SessionRuntime {
   void AddStream(StreamHandle* stream);
   void RemoveStream(StreamHandle* stream);
   size_t StreamCount();
+  // The clock of every stream that has one, at Now(), ordered by client id.
+  std::vector<tickmark::v1::ClientClock> Clocks();
   void AddSink(RecordSink* sink);
   void RemoveSink(RecordSink* sink);
 

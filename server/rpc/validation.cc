@@ -4,6 +4,7 @@
 
 #include "absl/status/statusor.h"
 #include "server/base/strings.h"
+#include "server/core/disciplined_clock.h"
 #include "server/rpc/auth.h"
 
 namespace tickmark::rpc {
@@ -21,6 +22,26 @@ std::optional<int64_t> Add(int64_t a, int64_t b) {
   int64_t r = 0;
   if (__builtin_add_overflow(a, b, &r)) return std::nullopt;
   return r;
+}
+
+// The optional real-time fields of a feedback or step (stream.proto):
+// `reading` names the reading's field in messages.
+absl::Status ValidateRealtime(const char* reading, int64_t realtime_ns, int64_t bound_ns,
+                              bool synced) {
+  if (realtime_ns < 0) return absl::InvalidArgumentError(Cat(reading, " must be >= 0 (0: none)"));
+  // adjtimex(2)/ntp_gettime(3): the kernel clamps maxerror at 16 s.
+  const int64_t clamp = kMaxDisciplineBound.nanos();
+  if (bound_ns < 0 || bound_ns > clamp) {
+    return absl::InvalidArgumentError("realtime_bound_ns must be within [0, 16 s] (0: none)");
+  }
+  if (synced && realtime_ns == 0) {
+    return absl::InvalidArgumentError(Cat("realtime_synced needs ", reading));
+  }
+  if (synced && (bound_ns == 0 || bound_ns == clamp)) {
+    return absl::InvalidArgumentError(
+        "realtime_synced needs a realtime_bound_ns above 0 and below 16 s");
+  }
+  return absl::OkStatus();
 }
 
 }  // namespace
@@ -51,7 +72,8 @@ absl::Status ValidateFeedback(const v1::FeedbackMessage& f, const Limits& limits
   }
   if (f.event_source_ns() <= 0) return absl::InvalidArgumentError("event_source_ns must be > 0");
   if (f.input().size() > 64) return absl::InvalidArgumentError("input label over 64 bytes");
-  return absl::OkStatus();
+  return ValidateRealtime("event_realtime_ns", f.event_realtime_ns(), f.realtime_bound_ns(),
+                          f.realtime_synced());
 }
 
 bool IsValidRunId(std::string_view run) {
@@ -125,7 +147,8 @@ absl::Status ValidateStep(const v1::StepMessage& s, const Limits& limits) {
     if (!std::isfinite(x)) return absl::InvalidArgumentError("features must be finite");
   }
   if (s.action().size() > 128) return absl::InvalidArgumentError("action name over 128 bytes");
-  return absl::OkStatus();
+  return ValidateRealtime("start_realtime_ns", s.start_realtime_ns(), s.realtime_bound_ns(),
+                          s.realtime_synced());
 }
 
 absl::Status ValidateProbeTimes(SessionTime t1, int64_t t2_client_ns, int64_t t3_client_ns,
@@ -210,6 +233,10 @@ std::optional<std::string> DescribeContentMismatch(const v1::Record& stored,
       return Cat("event_source_ns ", b.event_source_ns(), " (stored: ", a.event_source_ns(), ")");
     }
     if (a.input() != b.input()) return Cat("input '", b.input(), "' (stored: '", a.input(), "')");
+    if (a.event_realtime_ns() != b.event_realtime_ns()) {
+      return Cat("event_realtime_ns ", b.event_realtime_ns(), " (stored: ", a.event_realtime_ns(),
+                 ")");
+    }
     return std::nullopt;
   }
   if (stored.has_step()) {
@@ -224,6 +251,10 @@ std::optional<std::string> DescribeContentMismatch(const v1::Record& stored,
     }
     if (a.end_agent_ns() != b.end_agent_ns()) {
       return Cat("end_agent_ns ", b.end_agent_ns(), " (stored: ", a.end_agent_ns(), ")");
+    }
+    if (a.start_realtime_ns() != b.start_realtime_ns()) {
+      return Cat("start_realtime_ns ", b.start_realtime_ns(), " (stored: ", a.start_realtime_ns(),
+                 ")");
     }
     if (a.action() != b.action())
       return Cat("action '", b.action(), "' (stored: '", a.action(), "')");

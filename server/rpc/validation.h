@@ -30,6 +30,10 @@ absl::Status ValidateHello(const tickmark::v1::Hello& hello);
 absl::Status CheckTokensAgree(std::string_view hello_token, std::string_view metadata_token);
 
 // The fields of one feedback message (not its time; see JudgeEventTime).
+// Its optional real-time reading (docs/time-model.md, "Disciplined clocks"):
+// event_realtime_ns >= 0 (0: none), realtime_bound_ns within [0, 16 s] (the
+// kernel's maxerror clamp), and realtime_synced only with a reading and a
+// bound above 0 and below 16 s. Steps' start_realtime_ns likewise.
 absl::Status ValidateFeedback(const tickmark::v1::FeedbackMessage& f, const Limits& limits);
 
 // A calibration run id: 1-64 of [A-Za-z0-9._-].

@@ -403,6 +403,80 @@ TEST(StreamClientTest, AgentStreamDeliversSteps) {
   EXPECT_EQ(client.status().acked, 5u);
 }
 
+// Disciplined clocks (docs/time-model.md): the client adds its real-time
+// reading at the event, and the kernel's bound, only while its kernel says
+// synchronised (adjtimex(2): STA_UNSYNC clear), never over a reading the
+// caller set, and never with send_realtime off.
+TEST(StreamClientTest, SendsItsRealtimeReadingOnlyWhileTheKernelSaysSynchronised) {
+  FakeLive fake;
+  const std::string target = fake.Start();
+  const FakeMonotonic clock(10'000'000'000);                // the event clock
+  const FakeMonotonic realtime(1'700'000'000'000'000'000);  // its CLOCK_REALTIME
+  FakeDiscipline discipline(&realtime);
+  discipline.SetSynced(Duration::Micros(800));
+  TrainerClient client;
+  StreamOptions o = Options(target, "host:test:realtime", &clock);
+  o.discipline = &discipline;
+  ASSERT_TRUE(client.Connect(o).ok());
+  ASSERT_TRUE(client.Send(Feedback(1, 9'000'000'000)).ok());  // 1 s before "now"
+  discipline.SetUnsynced();
+  ASSERT_TRUE(client.Send(Feedback(-1, 9'500'000'000)).ok());
+  discipline.SetSynced(Duration::Micros(800));
+  tickmark::v1::FeedbackMessage own = Feedback(1, 9'600'000'000);
+  own.set_event_realtime_ns(1'600'000'000'000'000'000);  // the caller's own reading
+  own.set_realtime_bound_ns(5'000'000);
+  own.set_realtime_synced(true);
+  ASSERT_TRUE(client.Send(own).ok());
+  ASSERT_TRUE(client.Flush(In(seconds(30))).ok());
+  ASSERT_TRUE(client.Close(In(seconds(10))).ok());
+
+  TrainerClient off;
+  StreamOptions o2 = Options(target, "host:test:realtime-off", &clock);
+  o2.discipline = &discipline;
+  o2.send_realtime = false;
+  ASSERT_TRUE(off.Connect(o2).ok());
+  ASSERT_TRUE(off.Send(Feedback(1, 9'000'000'000)).ok());
+  ASSERT_TRUE(off.Flush(In(seconds(30))).ok());
+  ASSERT_TRUE(off.Close(In(seconds(10))).ok());
+
+  const auto bodies = fake.bodies();
+  auto feedback = [&](const std::string& id, uint64_t seq) {
+    tickmark::v1::TrainerMessage m;
+    EXPECT_TRUE(m.ParseFromString(bodies.at({id, seq})));
+    return m.feedback();
+  };
+  const auto synced = feedback("host:test:realtime", 1);
+  EXPECT_EQ(synced.event_realtime_ns(), 1'700'000'000'000'000'000 - 1'000'000'000);
+  EXPECT_EQ(synced.realtime_bound_ns(), 800'000);
+  EXPECT_TRUE(synced.realtime_synced());
+  const auto unsynced = feedback("host:test:realtime", 2);
+  EXPECT_EQ(unsynced.event_realtime_ns(), 0);
+  EXPECT_EQ(unsynced.realtime_bound_ns(), 0);
+  EXPECT_FALSE(unsynced.realtime_synced());
+  const auto kept = feedback("host:test:realtime", 3);
+  EXPECT_EQ(kept.event_realtime_ns(), 1'600'000'000'000'000'000);
+  EXPECT_EQ(kept.realtime_bound_ns(), 5'000'000);
+  EXPECT_EQ(feedback("host:test:realtime-off", 1).event_realtime_ns(), 0);
+
+  // Steps carry it as start_realtime_ns.
+  AgentClient agent;
+  StreamOptions o3 = Options(target, "host:test:realtime-agent", &clock);
+  o3.discipline = &discipline;
+  ASSERT_TRUE(agent.Connect(o3).ok());
+  tickmark::v1::StepMessage step;
+  step.set_step_id(1);
+  step.set_start_agent_ns(9'750'000'000);
+  step.set_action("north");  // dock rover actions (docs/architecture.md §8)
+  ASSERT_TRUE(agent.Send(step).ok());
+  ASSERT_TRUE(agent.Flush(In(seconds(30))).ok());
+  ASSERT_TRUE(agent.Close(In(seconds(10))).ok());
+  tickmark::v1::AgentMessage am;
+  ASSERT_TRUE(am.ParseFromString(fake.bodies().at({"host:test:realtime-agent", 1})));
+  EXPECT_EQ(am.step().start_realtime_ns(), 1'700'000'000'000'000'000 - 250'000'000);
+  EXPECT_EQ(am.step().realtime_bound_ns(), 800'000);
+  EXPECT_TRUE(am.step().realtime_synced());
+}
+
 // Calibration messages share the feedback's client sequences and resend
 // queue; the fitted Calibration reaches on_server_message before the
 // finish's acknowledgement (stream.proto, CalibrationMessage).

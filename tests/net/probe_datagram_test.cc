@@ -195,6 +195,26 @@ TEST_F(TableTest, ForeignTamperedAndMisdirectedDatagramsAreCounted) {
   EXPECT_NE(table_.Handle(Request(2)), "");
 }
 
+TEST_F(TableTest, DropsOfAStreamCountLostChallengesReplaysAndBadMacs) {
+  const ProbeDatagram answered = Challenge(table_.Handle(Request(1)));
+  table_.Handle(Answer(answered, 5, 6));
+  Challenge(table_.Handle(Request(2)));  // never answered
+  EXPECT_EQ(table_.DropsOf(kTag), 0u);   // not yet overdue
+  now_ns_ += UdpProbeTable::kAnswerWithin.nanos() + 1;
+  EXPECT_EQ(table_.DropsOf(kTag), 1u);    // the unanswered challenge is lost
+  table_.Handle(Answer(answered, 5, 6));  // replayed
+  table_.Handle(Request(3, Key(9)));      // bad MAC under this tag
+  EXPECT_EQ(table_.DropsOf(kTag), 3u);
+  EXPECT_EQ(table_.DropsOf(kTag + 1), 0u);  // unknown tag
+  // More challenges than the table remembers: the forgotten ones are lost.
+  for (uint64_t id = 10; id < 10 + UdpProbeTable::kRememberedChallenges + 2; ++id) {
+    Challenge(table_.Handle(Request(id)));
+  }
+  // 18 more: requests 2, 10 and 11 are pushed out (2 was counted as overdue
+  // already), and none of the rest is overdue yet.
+  EXPECT_EQ(table_.DropsOf(kTag), 3u + 2u);
+}
+
 TEST_F(TableTest, RemovedStreamIsUnknownAndItsChallengesDie) {
   const ProbeDatagram c = Challenge(table_.Handle(Request(1)));
   table_.Remove(kTag);

@@ -56,6 +56,7 @@ class UdpProbeE2e : public ::testing::Test {
     // beyond one sample came over UDP.
     o.live.probe_burst = 1;
     o.live.probe_interval = Duration::Seconds(3600);
+    o.live.probing.adaptive = false;
     auto s = rpc::TickmarkServer::Start(o);
     ASSERT_TRUE(s.ok()) << s.status().message();
     server_ = std::move(*s);
@@ -173,6 +174,23 @@ TEST_F(UdpProbeE2e, UdpProbesFeedTheStreamsModelAndFeedbackMapsWithinItsUncertai
   ASSERT_TRUE(trainer.Send(f).ok());
   ASSERT_TRUE(trainer.Flush(steady_clock::now() + std::chrono::seconds(20)).ok());
   const int64_t acked_client_ns = clock.NowNanos();
+  {
+    // The clock table of `session show` counts the UDP probes with the
+    // stream's own (SessionSummary.clocks).
+    v1::GetSessionRequest get;
+    get.set_session_id(session_);
+    v1::SessionSummary summary;
+    auto ctx = Context(operator_token_);
+    ASSERT_TRUE(admin_->GetSession(ctx.get(), get, &summary).ok());
+    ASSERT_EQ(summary.clocks_size(), 1);
+    const v1::ClientClock& c = summary.clocks(0);
+    EXPECT_EQ(c.client_id(), "dock-rover-keys-1");
+    EXPECT_TRUE(c.probed());
+    EXPECT_GE(c.probes(), 13u);  // the stream probe and at least 12 over UDP
+    EXPECT_EQ(c.rejected_probes(), 0u);
+    EXPECT_LT(c.udp_probe_drops(), c.probes());
+    EXPECT_LT(c.uncertainty_ns(), 50'000'000);  // loopback
+  }
   ASSERT_TRUE(trainer.Close(steady_clock::now() + std::chrono::seconds(20)).ok());
 
   // Client clock − session time is one constant here (both advance with

@@ -107,6 +107,59 @@ TEST(ValidationTest, FeedbackAndStepFieldsAreChecked) {
   EXPECT_FALSE(ValidateHello(h).ok());
 }
 
+// Disciplined clocks (docs/time-model.md): the optional real-time reading
+// of a feedback or step. Bounds follow the kernel's maxerror, which Linux
+// clamps at 16 s and then calls the clock unsynchronised (adjtimex(2),
+// ntp_gettime(3)).
+TEST(ValidationTest, RealtimeReadingsAreChecked) {
+  const Limits limits;
+  constexpr int64_t kNow = 1'700'000'000'000'000'000;
+  constexpr int64_t k16s = 16'000'000'000;
+  struct Case {
+    const char* what;
+    int64_t realtime_ns, bound_ns;
+    bool synced, ok;
+  };
+  const Case cases[] = {
+      {"none", 0, 0, false, true},
+      {"synced, 1 ms", kNow, 1'000'000, true, true},
+      {"synced, just under the clamp", kNow, k16s - 1, true, true},
+      {"a reading the kernel called unsynchronised, kept but unused", kNow, k16s, false, true},
+      {"negative reading", -1, 1'000'000, false, false},
+      {"negative bound", kNow, -1, false, false},
+      {"bound beyond the clamp", kNow, k16s + 1, false, false},
+      {"synced without a reading", 0, 1'000'000, true, false},
+      {"synced without a bound", kNow, 0, true, false},
+      {"synced at the clamp", kNow, k16s, true, false},
+  };
+  for (const Case& c : cases) {
+    SCOPED_TRACE(c.what);
+    v1::FeedbackMessage f;
+    f.set_client_sequence(1);
+    f.set_value(1);
+    f.set_event_source_ns(5);
+    f.set_event_realtime_ns(c.realtime_ns);
+    f.set_realtime_bound_ns(c.bound_ns);
+    f.set_realtime_synced(c.synced);
+    const absl::Status fs = ValidateFeedback(f, limits);
+    EXPECT_EQ(fs.ok(), c.ok) << fs.message();
+    if (!fs.ok()) {
+      EXPECT_EQ(fs.code(), absl::StatusCode::kInvalidArgument);
+    }
+    v1::StepMessage s;
+    s.set_client_sequence(1);
+    s.set_start_agent_ns(10);
+    s.set_start_realtime_ns(c.realtime_ns);
+    s.set_realtime_bound_ns(c.bound_ns);
+    s.set_realtime_synced(c.synced);
+    const absl::Status ss = ValidateStep(s, limits);
+    EXPECT_EQ(ss.ok(), c.ok) << ss.message();
+    if (!ss.ok() && c.realtime_ns < 0) {
+      EXPECT_NE(ss.message().find("start_realtime_ns"), std::string::npos) << ss.message();
+    }
+  }
+}
+
 TEST(ValidationTest, TokensInHelloAndMetadataMustAgree) {
   EXPECT_TRUE(CheckTokensAgree("tmk_a", "").ok());
   EXPECT_TRUE(CheckTokensAgree("", "tmk_a").ok());
@@ -129,6 +182,15 @@ TEST(ValidationTest, ContentMismatchNamesTheField) {
   s1.mutable_step()->set_action("north");
   s2.mutable_step()->set_action("south");
   EXPECT_TRUE(DescribeContentMismatch(s1, s2).has_value());
+  // The real-time reading is content the client sent; the server's
+  // choice of route is not.
+  v1::Record r1 = a;
+  r1.mutable_feedback()->set_time_source(v1::TIME_SOURCE_REALTIME);
+  EXPECT_FALSE(DescribeContentMismatch(a, r1).has_value());
+  r1.mutable_feedback()->set_event_realtime_ns(42);
+  m = DescribeContentMismatch(a, r1);
+  ASSERT_TRUE(m.has_value());
+  EXPECT_NE(m->find("event_realtime_ns"), std::string::npos) << *m;
 }
 
 TEST(TokenBucketTest, BurstThenRateOnAHandDrivenClock) {

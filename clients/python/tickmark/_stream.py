@@ -18,6 +18,7 @@ from typing import Callable, Dict, Optional
 
 import grpc
 
+from tickmark import _discipline
 from tickmark.v1 import records_pb2, stream_pb2, stream_pb2_grpc
 
 # Codes after which reconnecting cannot help.
@@ -50,7 +51,10 @@ class ReconnectingStream:
                  source_kind: int, description: str, software: str,
                  clock: Callable[[], int] = time.monotonic_ns,
                  on_ack: Optional[Callable[[stream_pb2.Ack], None]] = None,
-                 on_calibration: Optional[Callable[[records_pb2.Calibration], None]] = None):
+                 on_calibration: Optional[Callable[[records_pb2.Calibration], None]] = None,
+                 send_realtime: bool = True,
+                 discipline: Optional[Callable[[], "_discipline.DisciplineState"]] = None,
+                 realtime: Optional[Callable[[], int]] = None):
         stub = stream_pb2_grpc.LiveStub(channel)
         self._call = stub.Train if kind == "train" else stub.Act
         self._message = stream_pb2.TrainerMessage if kind == "train" else stream_pb2.AgentMessage
@@ -58,6 +62,11 @@ class ReconnectingStream:
         self._hello = stream_pb2.Hello(token=token, client_id=client_id, source_kind=source_kind,
                                        source_description=description, software=software)
         self._clock = clock
+        # Disciplined clocks: see _add_realtime (None: the running kernel,
+        # looked up at each message).
+        self._send_realtime = send_realtime
+        self._discipline = discipline
+        self._realtime = realtime
         self._on_ack = on_ack
         self._on_calibration = on_calibration
         self._lock = threading.Condition()
@@ -80,7 +89,9 @@ class ReconnectingStream:
     # -- public -----------------------------------------------------------
     def send(self, payload) -> None:
         """Queues a FeedbackMessage or StepMessage (or, on a Train stream, a
-        CalibrationMessage); its client_sequence is set here."""
+        CalibrationMessage); its client_sequence is set here, and its
+        real-time reading (see _add_realtime)."""
+        self._add_realtime(payload)
         with self._lock:
             if self._error:
                 raise self._error
@@ -130,6 +141,32 @@ class ReconnectingStream:
             self._thread.join(timeout)
 
     # -- internals --------------------------------------------------------
+    def _add_realtime(self, payload) -> None:
+        """While the kernel says this host's clock is synchronised (NTP/PTP),
+        a feedback or step also carries its CLOCK_REALTIME at the event and
+        the kernel's bound, so the server may map it through real time
+        (docs/time-model.md, "Disciplined clocks"). Read at sending, close to
+        the event; never over a reading the caller set; never with
+        send_realtime=False."""
+        if not self._send_realtime:
+            return
+        if isinstance(payload, stream_pb2.FeedbackMessage):
+            event, field = payload.event_source_ns, "event_realtime_ns"
+        elif isinstance(payload, stream_pb2.StepMessage):
+            event, field = payload.start_agent_ns, "start_realtime_ns"
+        else:
+            return
+        if getattr(payload, field):
+            return
+        reading = _discipline.reading_at(event, self._clock,
+                                         self._discipline or _discipline.read_kernel,
+                                         self._realtime or _discipline.realtime_now)
+        if reading is None:
+            return
+        setattr(payload, field, reading[0])
+        payload.realtime_bound_ns = reading[1]
+        payload.realtime_synced = True
+
     def _number_and_queue(self, payload) -> None:
         payload.client_sequence = self._next_seq
         self._next_seq += 1

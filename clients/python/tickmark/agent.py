@@ -22,23 +22,28 @@ class Agent:
 
     Steps are timed on `clock` (default: CLOCK_MONOTONIC via
     time.monotonic_ns); the server probes that clock on the stream and maps
-    every step onto the session timeline. Steps are kept until the server
-    acknowledges them and resent after a reconnect; the server stores each
-    once. Thread-safe: step() may be called from any thread.
+    every step onto the session timeline. While this host's clock is
+    disciplined (NTP/PTP; the kernel says synchronised), each step also
+    carries its CLOCK_REALTIME reading and the kernel's bound, so the server
+    may map it through real time (send_realtime=False: never). Steps are
+    kept until the server acknowledges them and resent after a reconnect;
+    the server stores each once. Thread-safe: step() may be called from any
+    thread.
     """
 
     def __init__(self, server: str = "127.0.0.1:7461", *, token: Optional[str] = None,
                  token_file: Optional[str] = None, client_id: Optional[str] = None,
                  clock: Callable[[], int] = time.monotonic_ns, ca_file: Optional[str] = None,
                  insecure: bool = False, description: str = "python agent",
-                 connect_timeout: float = 10.0):
+                 connect_timeout: float = 10.0, send_realtime: bool = True):
         self._token = read_token(token, token_file)
         self._channel = open_channel(server, ca_file=ca_file, insecure=insecure)
         self._clock = clock
         self._client_id = client_id or f"{socket.gethostname()[:40]}:agent-py"
         self._stream = ReconnectingStream(
             self._channel, "act", self._token, self._client_id,
-            records_pb2.SOURCE_KIND_SCRIPT, description, "tickmark-python 0.1", clock)
+            records_pb2.SOURCE_KIND_SCRIPT, description, "tickmark-python 0.1", clock,
+            send_realtime=send_realtime)
         if not self._stream.wait_connected(connect_timeout):
             error = self._stream._error  # a refused hello says why
             self._stream.close(0)

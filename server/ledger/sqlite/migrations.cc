@@ -275,6 +275,48 @@ ALTER TABLE session ADD COLUMN pin_kernels INTEGER NOT NULL DEFAULT 0;
 -- The calibration a kernel setting came from ('' when none).
 ALTER TABLE kernel_setting ADD COLUMN calibration TEXT NOT NULL DEFAULT '';
 )sql"},
+    {4, "retiming: time_set and derived_time tables (event times recomputed after the fact)",
+     R"sql(
+-- Derived time sets (tickmark retime): a session's event times recomputed
+-- after the fact from all of its probes, stored beside the originals, which
+-- are never changed. Like a replay's derived set, a time set lies outside the
+-- session's hash chain; through_seq and head_hash (the hash of record
+-- through_seq) name the journal state it was computed from, so a reader can
+-- check it against the chain. method and parameters (JSON) say how it was
+-- computed; events counts its derived_time rows, retimed those recomputed.
+CREATE TABLE time_set (
+  id          TEXT PRIMARY KEY,
+  session_id  TEXT NOT NULL REFERENCES session(id),
+  created_utc TEXT NOT NULL DEFAULT (strftime('%Y-%m-%dT%H:%M:%fZ','now')),
+  method      TEXT NOT NULL,
+  parameters  TEXT NOT NULL CHECK (json_valid(parameters)),
+  through_seq INTEGER NOT NULL,
+  head_hash   BLOB NOT NULL,
+  events      INTEGER NOT NULL,
+  retimed     INTEGER NOT NULL
+);
+CREATE INDEX time_set_by_session ON time_set (session_id);
+
+-- One event time of a time set: a feedback's event or a step's start or end
+-- (kind) of the record (session_id, seq); the recomputed time and its
+-- uncertainty, the live ones beside them, what the method made of it
+-- (outcome: 'retimed', or why the live time was kept) and how many probes
+-- bounded it.
+CREATE TABLE derived_time (
+  time_set            TEXT NOT NULL REFERENCES time_set(id),
+  session_id          TEXT NOT NULL,
+  seq                 INTEGER NOT NULL,
+  kind                TEXT NOT NULL CHECK (kind IN ('feedback', 'step_start', 'step_end')),
+  client_id           TEXT NOT NULL,
+  event_session_ns    INTEGER NOT NULL,
+  uncertainty_ns      INTEGER NOT NULL,
+  live_session_ns     INTEGER NOT NULL,
+  live_uncertainty_ns INTEGER NOT NULL,
+  outcome             TEXT NOT NULL,
+  probes              INTEGER NOT NULL,
+  PRIMARY KEY (time_set, seq, kind)
+) WITHOUT ROWID;
+)sql"},
 };
 
 }  // namespace

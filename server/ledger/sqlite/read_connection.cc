@@ -70,6 +70,23 @@ CalibrationRow CalibrationFromRow(const Statement& q) {
   return c;
 }
 
+TimeSetRow TimeSetFromRow(const Statement& q) {
+  TimeSetRow t;
+  t.id = q.Text(0);
+  t.session_id = q.Text(1);
+  t.created_utc = q.Text(2);
+  t.method = q.Text(3);
+  t.parameters = q.Text(4);
+  t.through_sequence = static_cast<uint64_t>(q.Int(5));
+  t.head_hash = q.Blob(6);
+  t.events = static_cast<uint64_t>(q.Int(7));
+  t.retimed = static_cast<uint64_t>(q.Int(8));
+  return t;
+}
+
+constexpr const char* kTimeSetColumns =
+    "id, session_id, created_utc, method, parameters, through_seq, head_hash, events, retimed";
+
 constexpr const char* kTokenColumns =
     "id, COALESCE(session_id, ''), role, subject, secret_sha256, issued_session_ns, revoked";
 
@@ -293,6 +310,63 @@ absl::StatusOr<TokenRow> ReadConnection::FindToken(std::string_view token_id) {
   if (!row.ok()) return row.status();
   if (!*row) return absl::NotFoundError("token vanished");
   return TokenFromRow(q);
+}
+
+absl::StatusOr<std::vector<TimeSetRow>> ReadConnection::ListTimeSets(std::string_view session_id) {
+  std::lock_guard<std::mutex> lock(mu_);
+  if (db_ == nullptr) return absl::UnavailableError("ledger is closed");
+  // Newest first: rows are never updated, so insertion order is creation order.
+  Statement q(db_, Cat("SELECT ", kTimeSetColumns,
+                       " FROM time_set WHERE session_id = ? ORDER BY rowid DESC")
+                       .c_str());
+  q.Bind(session_id);
+  std::vector<TimeSetRow> out;
+  while (true) {
+    auto row = q.Step();
+    if (!row.ok()) return row.status();
+    if (!*row) break;
+    out.push_back(TimeSetFromRow(q));
+  }
+  return out;
+}
+
+absl::StatusOr<TimeSetRow> ReadConnection::GetTimeSet(std::string_view id) {
+  std::lock_guard<std::mutex> lock(mu_);
+  if (db_ == nullptr) return absl::UnavailableError("ledger is closed");
+  Statement q(db_, Cat("SELECT ", kTimeSetColumns, " FROM time_set WHERE id = ?").c_str());
+  auto row = q.Bind(id).Step();
+  if (!row.ok()) return row.status();
+  if (!*row) return absl::NotFoundError(Cat("no time set '", id, "'"));
+  return TimeSetFromRow(q);
+}
+
+absl::StatusOr<std::vector<DerivedTimeRow>> ReadConnection::ReadDerivedTimes(
+    std::string_view time_set) {
+  std::lock_guard<std::mutex> lock(mu_);
+  if (db_ == nullptr) return absl::UnavailableError("ledger is closed");
+  Statement q(db_,
+              "SELECT seq, kind, client_id, event_session_ns, uncertainty_ns, live_session_ns, "
+              "live_uncertainty_ns, outcome, probes FROM derived_time WHERE time_set = ? "
+              "ORDER BY seq, kind");
+  q.Bind(time_set);
+  std::vector<DerivedTimeRow> out;
+  while (true) {
+    auto row = q.Step();
+    if (!row.ok()) return row.status();
+    if (!*row) break;
+    DerivedTimeRow t;
+    t.sequence = static_cast<uint64_t>(q.Int(0));
+    t.kind = q.Text(1);
+    t.client_id = q.Text(2);
+    t.event_session_ns = q.Int(3);
+    t.uncertainty_ns = q.Int(4);
+    t.live_session_ns = q.Int(5);
+    t.live_uncertainty_ns = q.Int(6);
+    t.outcome = q.Text(7);
+    t.probes = static_cast<uint32_t>(q.Int(8));
+    out.push_back(std::move(t));
+  }
+  return out;
 }
 
 }  // namespace tickmark::ledger

@@ -45,6 +45,9 @@ class ReadConnection {
   absl::StatusOr<std::vector<CalibrationRow>> ListCalibrations(std::string_view trainer);
   absl::StatusOr<tickmark::v1::Record> GetCalibration(std::string_view id);
   absl::StatusOr<std::optional<tickmark::v1::Record>> LatestCalibration(std::string_view trainer);
+  absl::StatusOr<std::vector<TimeSetRow>> ListTimeSets(std::string_view session_id);
+  absl::StatusOr<TimeSetRow> GetTimeSet(std::string_view id);
+  absl::StatusOr<std::vector<DerivedTimeRow>> ReadDerivedTimes(std::string_view time_set);
 
   // Whether closing this connection may checkpoint the WAL (off while
   // writes fail for lack of space; see SqliteLedger).

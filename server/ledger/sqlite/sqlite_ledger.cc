@@ -658,6 +658,65 @@ absl::Status SqliteLedger::PutDerivedSet(std::string_view session_id, std::strin
   });
 }
 
+absl::Status SqliteLedger::PutTimeSet(const TimeSetRow& set,
+                                      const std::vector<DerivedTimeRow>& times) {
+  return RunSync([&](sqlite3* db) -> absl::Status {
+    {
+      Statement q(db, "SELECT COUNT(*) FROM time_set WHERE id = ?");
+      auto row = q.Bind(set.id).Step();
+      if (!row.ok()) return row.status();
+      if (q.Int(0) > 0) return absl::AlreadyExistsError(Cat("time set '", set.id, "' exists"));
+    }
+    Statement ins(db,
+                  "INSERT INTO time_set (id, session_id, method, parameters, through_seq, "
+                  "head_hash, events, retimed) VALUES (?, ?, ?, ?, ?, ?, ?, ?)");
+    absl::Status st = ins.Bind(set.id)
+                          .Bind(set.session_id)
+                          .Bind(set.method)
+                          .Bind(set.parameters)
+                          .Bind(set.through_sequence)
+                          .BindBlob(set.head_hash)
+                          .Bind(set.events)
+                          .Bind(set.retimed)
+                          .Run();
+    if (!st.ok()) return st;
+    Statement row(db,
+                  "INSERT INTO derived_time (time_set, session_id, seq, kind, client_id, "
+                  "event_session_ns, uncertainty_ns, live_session_ns, live_uncertainty_ns, "
+                  "outcome, probes) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)");
+    for (const DerivedTimeRow& t : times) {
+      st = row.Reset()
+               .Bind(set.id)
+               .Bind(set.session_id)
+               .Bind(t.sequence)
+               .Bind(t.kind)
+               .Bind(t.client_id)
+               .Bind(t.event_session_ns)
+               .Bind(t.uncertainty_ns)
+               .Bind(t.live_session_ns)
+               .Bind(t.live_uncertainty_ns)
+               .Bind(t.outcome)
+               .Bind(static_cast<int64_t>(t.probes))
+               .Run();
+      if (!st.ok()) return st;
+    }
+    return absl::OkStatus();
+  });
+}
+
+absl::StatusOr<std::vector<TimeSetRow>> SqliteLedger::ListTimeSets(std::string_view session_id) {
+  return reads_->ListTimeSets(session_id);
+}
+
+absl::StatusOr<TimeSetRow> SqliteLedger::GetTimeSet(std::string_view id) {
+  return reads_->GetTimeSet(id);
+}
+
+absl::StatusOr<std::vector<DerivedTimeRow>> SqliteLedger::ReadDerivedTimes(
+    std::string_view time_set) {
+  return reads_->ReadDerivedTimes(time_set);
+}
+
 uint64_t SqliteLedger::CommittedSequence(std::string_view session_id) {
   std::lock_guard<std::mutex> lock(mu_);
   auto it = committed_.find(session_id);

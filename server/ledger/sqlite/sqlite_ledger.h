@@ -126,6 +126,10 @@ class SqliteLedger final : public Ledger {
                              std::string_view spec,
                              const std::vector<tickmark::v1::Record>& records,
                              bool overwrite) override;
+  absl::Status PutTimeSet(const TimeSetRow& set, const std::vector<DerivedTimeRow>& times) override;
+  absl::StatusOr<std::vector<TimeSetRow>> ListTimeSets(std::string_view session_id) override;
+  absl::StatusOr<TimeSetRow> GetTimeSet(std::string_view id) override;
+  absl::StatusOr<std::vector<DerivedTimeRow>> ReadDerivedTimes(std::string_view time_set) override;
   absl::Status WriteHealth() override;
   void Close() override;
 
