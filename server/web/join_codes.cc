@@ -1,11 +1,11 @@
 #include "server/web/join_codes.h"
 
+#include <openssl/evp.h>
 #include <openssl/rand.h>
 
 #include <array>
 
 #include "server/base/strings.h"
-#include "server/rpc/auth.h"
 
 namespace tickmark::web {
 namespace {
@@ -14,10 +14,15 @@ namespace {
 constexpr char kAlphabet[] = "0123456789ABCDEFGHJKMNPQRSTVWXYZ";
 constexpr size_t kCodeChars = 16;  // 80 bits
 
-// The key codes_ is indexed by; empty if hashing fails.
+// The key codes_ is indexed by: SHA-256 of the canonical code, 32 raw
+// bytes (OpenSSL EVP_Digest); empty if hashing fails.
 std::string KeyOf(const std::string& canonical) {
-  auto h = rpc::HashSecret(canonical);
-  return h.ok() ? *h : std::string();
+  unsigned char digest[EVP_MAX_MD_SIZE];
+  unsigned int n = 0;
+  if (EVP_Digest(canonical.data(), canonical.size(), digest, &n, EVP_sha256(), nullptr) != 1) {
+    return std::string();
+  }
+  return std::string(reinterpret_cast<const char*>(digest), n);
 }
 
 }  // namespace

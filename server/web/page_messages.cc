@@ -24,12 +24,23 @@ std::string Wrap(std::string_view key, const pb::Message& message, bool defaults
   return Cat("{\"", key, "\":", inner, "}");
 }
 
+// RFC 8259 §7: control characters are escaped inside strings, and only
+// tab, line feed and carriage return may stand between tokens (§2).
+// protobuf's parser lets a raw NUL through into a string; refuse them all.
+bool HasRawControl(std::string_view json) {
+  for (char c : json) {
+    if (static_cast<unsigned char>(c) < 0x20 && c != '\t' && c != '\n' && c != '\r') return true;
+  }
+  return false;
+}
+
 }  // namespace
 
 absl::StatusOr<v1::TrainerMessage> ParseTrainerPageMessage(std::string_view json) {
   if (json.size() > kMaxPageMessageBytes) {
     return absl::InvalidArgumentError(Cat("message larger than ", kMaxPageMessageBytes, " bytes"));
   }
+  if (HasRawControl(json)) return absl::InvalidArgumentError("a raw control character in JSON");
   v1::TrainerMessage m;
   pb::util::JsonParseOptions options;  // unknown fields are errors
   if (auto s = pb::util::JsonStringToMessage(std::string(json), &m, options); !s.ok()) {
@@ -84,6 +95,7 @@ absl::StatusOr<SubscribePageRequest> ParseSubscribePageMessage(std::string_view 
   if (json.size() > kMaxPageMessageBytes) {
     return absl::InvalidArgumentError(Cat("message larger than ", kMaxPageMessageBytes, " bytes"));
   }
+  if (HasRawControl(json)) return absl::InvalidArgumentError("a raw control character in JSON");
   pb::Struct in;
   if (!pb::util::JsonStringToMessage(std::string(json), &in).ok() ||
       in.fields().count("subscribe") == 0 || !in.fields().at("subscribe").has_struct_value()) {
