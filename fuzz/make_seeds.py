@@ -303,4 +303,25 @@ stored_step = r.Record(session_id="s-1a2b3c", sequence=3, step=r.Step(
     client_id="rover", client_sequence=1, agent="rover-1", step_id=9, episode=2,
     start_agent_ns=7_000_000_000, action="left", features=[0.5, -1.0])).SerializeToString()
 write("live_validation", "resend-step-same", live(RESEND, stored_step, stored_step))
+
+# --- wav: RIFF WAVE headers (the canonical 44-byte one, an extensible float
+# one with a LIST chunk first, a stream with an unknown data size), followed
+# by a little audio; wav_fuzz also reads the bytes as samples for the onset
+# search.
+def riff(fmt_tag, channels, rate, bits, data, extra=b"", cb=b"", data_size=None):
+    fmt = struct.pack("<HHIIHH", fmt_tag, channels, rate, rate * channels * bits // 8,
+                      channels * bits // 8, bits) + cb
+    body = (b"WAVE" + extra + b"fmt " + struct.pack("<I", len(fmt)) + fmt + b"data" +
+            struct.pack("<I", len(data) if data_size is None else data_size) + data)
+    return b"RIFF" + struct.pack("<I", len(body)) + body
+
+
+tone = b"".join(struct.pack("<h", int(8000 * ((i // 20) % 2 * 2 - 1)) if i > 400 else 0)
+                for i in range(1200))
+write("wav", "pcm16-mono", riff(1, 1, 16000, 16, tone))
+ext = struct.pack("<HHI", 22, 32, 3) + struct.pack("<H", 3) + bytes(14)
+write("wav", "float-stereo-extensible",
+      riff(0xFFFE, 2, 16000, 32, struct.pack("<8f", 0.5, -0.5, 1.0, 1.0, 0, 0, -1, 2),
+           extra=b"LIST" + struct.pack("<I", 3) + b"abc\0", cb=ext))
+write("wav", "pcm24-stream", riff(1, 1, 16000, 24, bytes(range(60)), data_size=0xFFFFFFFF))
 print("seeds written under", CORPUS)

@@ -1024,6 +1024,7 @@ void IngestReactor<TrainerSide>::HandlePayload(const In& message, SessionTime ar
   fb->set_input(f.input());
   SetTimeSource(fb, mapped, reading);
   fb->set_event_realtime_ns(f.event_realtime_ns());
+  fb->set_audio_sha256(f.audio_sha256());
   // Kept either way; a late one may find its steps already settled.
   fb->set_late(arrival - v.event > runtime_->allowed_lateness());
   AppendClient(std::move(r));

@@ -72,6 +72,9 @@ absl::Status ValidateFeedback(const v1::FeedbackMessage& f, const Limits& limits
   }
   if (f.event_source_ns() <= 0) return absl::InvalidArgumentError("event_source_ns must be > 0");
   if (f.input().size() > 64) return absl::InvalidArgumentError("input label over 64 bytes");
+  if (!f.audio_sha256().empty() && f.audio_sha256().size() != 32) {
+    return absl::InvalidArgumentError("audio_sha256 must be empty or 32 bytes");
+  }
   return ValidateRealtime("event_realtime_ns", f.event_realtime_ns(), f.realtime_bound_ns(),
                           f.realtime_synced());
 }
@@ -237,6 +240,7 @@ std::optional<std::string> DescribeContentMismatch(const v1::Record& stored,
       return Cat("event_realtime_ns ", b.event_realtime_ns(), " (stored: ", a.event_realtime_ns(),
                  ")");
     }
+    if (a.audio_sha256() != b.audio_sha256()) return std::string("audio_sha256");
     return std::nullopt;
   }
   if (stored.has_step()) {

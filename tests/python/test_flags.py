@@ -15,7 +15,7 @@ from conftest import BIN
 
 SOURCE = os.path.join(os.path.dirname(__file__), "..", "..")
 PROGRAMS = ["tickmarkd", "tickmark", "tickmark-keys", "tickmark-serial", "tickmark-linkemu",
-            "tickmark-scripted-agent"]
+            "tickmark-scripted-agent", "tickmark-voice"]
 
 
 def run(program, *args, timeout=30):
@@ -31,7 +31,8 @@ def test_help_exits_zero_and_prints_usage(program):
     assert "Usage:" in p.stdout and "--help" in p.stdout, p.stdout
 
 
-@pytest.mark.parametrize("program", ["tickmarkd", "tickmark", "tickmark-keys", "tickmark-serial"])
+@pytest.mark.parametrize("program", ["tickmarkd", "tickmark", "tickmark-keys", "tickmark-serial",
+                                     "tickmark-voice"])
 def test_safety_notice_stays_in_help(program):
     assert "not a safety system" in run(program, "--help").stdout
 
@@ -74,6 +75,10 @@ BAD_VALUES = [
     ("tickmark-linkemu", ["--target", "nowhere"], "--target"),
     ("tickmark-linkemu", ["--target", "127.0.0.1:1", "--jitter", "pink"], "--jitter"),
     ("tickmark-linkemu", [], "--target"),
+    ("tickmark-voice", ["--profile", "p.toml", "--stop-after", "-1"], "--stop-after"),
+    ("tickmark-voice", ["--profile", "p.toml", "--wav", "a.wav", "--audio-start", "soon"],
+     "--audio-start"),
+    ("tickmark-voice", ["--profile", "p.toml", "--flush-timeout", "abc"], "--flush-timeout"),
     ("tickmark-scripted-agent", ["--rate", "0"], "--rate"),
     ("tickmark-scripted-agent", ["--seconds", "x"], "--seconds"),
 ]

@@ -92,6 +92,11 @@ TEST(ValidationTest, FeedbackAndStepFieldsAreChecked) {
   f.set_value(1);
   f.set_event_source_ns(5);
   EXPECT_TRUE(ValidateFeedback(f, limits).ok());
+  f.set_audio_sha256(std::string(32, '\x5a'));  // a voice source's kept audio (docs/voice.md)
+  EXPECT_TRUE(ValidateFeedback(f, limits).ok());
+  f.set_audio_sha256("short");
+  EXPECT_FALSE(ValidateFeedback(f, limits).ok());
+  f.clear_audio_sha256();
   f.set_value(std::numeric_limits<double>::quiet_NaN());
   EXPECT_FALSE(ValidateFeedback(f, limits).ok());
   v1::StepMessage s;
@@ -174,6 +179,10 @@ TEST(ValidationTest, ContentMismatchNamesTheField) {
   v1::Record b = a;
   b.mutable_feedback()->set_arrival_session_ns(9);  // server-stamped: not content
   EXPECT_FALSE(DescribeContentMismatch(a, b).has_value());
+  b.mutable_feedback()->set_audio_sha256(std::string(32, '\x01'));
+  auto audio = DescribeContentMismatch(a, b);
+  ASSERT_TRUE(audio.has_value());
+  EXPECT_EQ(*audio, "audio_sha256");
   b.mutable_feedback()->set_value(-1);
   auto m = DescribeContentMismatch(a, b);
   ASSERT_TRUE(m.has_value());
