@@ -12,6 +12,7 @@
 #include "server/base/log.h"
 #include "server/core/delay_kernel.h"
 #include "server/rpc/server.h"
+#include "server/web/web_bridge.h"
 
 namespace {
 
@@ -168,6 +169,22 @@ void AddServerFlags(CLI::App& app, tickmark::rpc::ServerOptions& o, std::string&
       ->check(CLI::Range(1, 256));
 }
 
+// The web port (docs/web.md). It shares --tls-cert, --tls-key and
+// --allow-insecure-remote with gRPC; main() copies them across.
+void AddWebFlags(CLI::App& app, tickmark::web::WebOptions& w) {
+  app.add_option("--http-listen", w.http_listen,
+                 "HOST:PORT for the web page, live view and join links (HTTPS with --tls-cert; "
+                 "empty: off; see docs/web.md)");
+  app.add_option("--http-public-url", w.http_public_url,
+                 "how browsers reach the web port, for invite links (https://HOST:PORT; default: "
+                 "from --http-listen)");
+  app.add_option("--http-max-connections", w.http.max_connections, "open web connections in total")
+      ->check(CLI::Range(size_t{1}, size_t{1'000'000}));
+  app.add_option("--http-max-connections-per-peer", w.http.max_connections_per_peer,
+                 "open web connections per client address")
+      ->check(CLI::Range(size_t{1}, size_t{1'000'000}));
+}
+
 }  // namespace
 
 int main(int argc, char** argv) {
@@ -185,6 +202,8 @@ int main(int argc, char** argv) {
                           "TOML config file: keys are the long flag names (listen = "
                           "\"0.0.0.0:7461\"); flags given here win");
   AddServerFlags(app, options, log_level);
+  tickmark::web::WebOptions web;
+  AddWebFlags(app, web);
   if (auto exit = tickmark::ParseCommandLine(app, argc, argv)) return *exit;
   tickmark::SetLogLevel(*tickmark::ParseLogLevel(log_level));
 
@@ -196,9 +215,22 @@ int main(int argc, char** argv) {
   sigaddset(&signals, SIGTERM);
   pthread_sigmask(SIG_BLOCK, &signals, nullptr);
 
+  web.tls_cert_file = options.tls_cert_file;
+  web.tls_key_file = options.tls_key_file;
+  web.allow_insecure_remote = options.allow_insecure_remote;
+  web.max_abs_value = options.live.limits.max_abs_value;
+  // Outlives the server: the admin service asks it for invites.
+  tickmark::web::WebBridge bridge(web);
+  if (bridge.enabled()) options.invites = &bridge;
+
   auto server = tickmark::rpc::TickmarkServer::Start(options);
   if (!server.ok()) {
     TM_LOG(kError) << server.status().message();
+    return 1;
+  }
+  if (absl::Status st = bridge.Start(server->get()); !st.ok()) {
+    TM_LOG(kError) << st.message();
+    (*server)->Shutdown(tickmark::Duration::Zero());
     return 1;
   }
   TM_LOG(kInfo) << "listening on " << options.listen.substr(0, options.listen.rfind(':')) << ":"
@@ -206,10 +238,16 @@ int main(int argc, char** argv) {
                 << "; operator token in " << (*server)->operator_token_path();
   // Machine-readable line for scripts that start us with port 0.
   std::cout << "tickmarkd listening port=" << (*server)->port() << std::endl;
+  if (bridge.enabled()) {
+    // The same for the web port, after the gRPC line (scripts read that first).
+    std::cout << "tickmarkd web port=" << bridge.port() << " url=" << bridge.base_url()
+              << std::endl;
+  }
 
   int sig = 0;
   sigwait(&signals, &sig);
   TM_LOG(kInfo) << "signal " << sig << ": stopping (draining streams, committing the ledger)";
+  bridge.Stop(tickmark::Duration::Seconds(5));
   (*server)->Shutdown(tickmark::Duration::Seconds(5));
   TM_LOG(kInfo) << "stopped cleanly";
   return 0;

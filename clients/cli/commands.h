@@ -19,6 +19,7 @@ void AddReplayCommand(CommandTable& table);    // replay
 void AddExportCommand(CommandTable& table);    // export
 void AddCalibrateCommands(CommandTable& table);  // calibrate new|list|show|plot|apply
 void AddRetimeCommand(CommandTable& table);      // retime
+void AddInviteCommand(CommandTable& table);      // invite (web page join links)
 
 }  // namespace tickmark::cli
 

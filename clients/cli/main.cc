@@ -38,6 +38,7 @@ int main(int argc, char** argv) {
   AddExportCommand(table);
   AddCalibrateCommands(table);
   AddRetimeCommand(table);
+  AddInviteCommand(table);
 
   if (argc < 2) {
     std::cerr << app.help();

@@ -5,6 +5,7 @@
 #define TICKMARK_SERVER_RPC_ADMIN_SERVICE_H_
 
 #include "server/rpc/auth.h"
+#include "server/rpc/invite_issuer.h"
 #include "server/rpc/session_hub.h"
 #include "tickmark/v1/admin.grpc.pb.h"
 
@@ -12,7 +13,9 @@ namespace tickmark::rpc {
 
 class AdminService final : public tickmark::v1::SessionAdmin::CallbackService {
  public:
-  AdminService(SessionHub* hub, TokenAuthority* auth) : hub_(hub), auth_(auth) {}
+  // `invites` (may be null: no web port) makes CreateInvite's codes.
+  AdminService(SessionHub* hub, TokenAuthority* auth, InviteIssuer* invites = nullptr)
+      : hub_(hub), auth_(auth), invites_(invites) {}
 
   grpc::ServerUnaryReactor* CreateSession(grpc::CallbackServerContext* ctx,
                                           const tickmark::v1::CreateSessionRequest* req,
@@ -54,10 +57,15 @@ class AdminService final : public tickmark::v1::SessionAdmin::CallbackService {
       grpc::CallbackServerContext* ctx, const tickmark::v1::ReplayRequest* req) override;
   grpc::ServerWriteReactor<tickmark::v1::RetimeResponse>* Retime(
       grpc::CallbackServerContext* ctx, const tickmark::v1::RetimeRequest* req) override;
+  // In admin_invite.cc.
+  grpc::ServerUnaryReactor* CreateInvite(grpc::CallbackServerContext* ctx,
+                                         const tickmark::v1::CreateInviteRequest* req,
+                                         tickmark::v1::CreateInviteResponse* resp) override;
 
  private:
   SessionHub* hub_;         // not owned
   TokenAuthority* auth_;    // not owned
+  InviteIssuer* invites_;   // not owned; null without a web port
 };
 
 // The caller's principal from "authorization" metadata.

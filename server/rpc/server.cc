@@ -189,7 +189,7 @@ absl::StatusOr<std::unique_ptr<TickmarkServer>> TickmarkServer::Start(
       !st.ok()) {
     return st;
   }
-  s->admin_ = std::make_unique<AdminService>(s->hub_.get(), s->auth_.get());
+  s->admin_ = std::make_unique<AdminService>(s->hub_.get(), s->auth_.get(), options.invites);
   LiveService::Options live = options.live;
   if (options.no_realtime_mapping) live.realtime_mapping = false;
   if (options.udp_probe) {

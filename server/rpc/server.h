@@ -20,6 +20,7 @@
 
 #include "server/ledger/ledger.h"
 #include "server/rpc/admin_service.h"
+#include "server/rpc/invite_issuer.h"
 #include "server/rpc/live_service.h"
 
 namespace tickmark::net {
@@ -60,6 +61,10 @@ struct ServerOptions {
   // How often the ledger's write health is read for the gRPC health
   // service (grpc.health.v1.Health: NOT_SERVING while writes fail).
   Duration health_interval = Duration::Seconds(1);
+  // Makes SessionAdmin.CreateInvite's join codes: the web bridge
+  // (server/web), when tickmarkd runs one; null: CreateInvite is refused.
+  // Not owned; must outlive the server.
+  InviteIssuer* invites = nullptr;
 };
 
 class TickmarkServer {
@@ -82,6 +87,14 @@ class TickmarkServer {
   // the ledger and closes it. Idempotent.
   void Shutdown(Duration grace = Duration::Seconds(5));
   void Wait();
+
+  // For parts tickmarkd wires in beside the gRPC services (the web bridge,
+  // server/web): valid from Start() until the server is destroyed. The
+  // bridge reaches the services through grpc_server()->InProcessChannel().
+  grpc::Server* grpc_server() const { return server_.get(); }
+  SessionHub* hub() const { return hub_.get(); }
+  TokenAuthority* auth() const { return auth_.get(); }
+  const MonotonicSource* mono() const { return &mono_; }
 
  private:
   TickmarkServer() = default;
