@@ -43,6 +43,7 @@
 
 #include "clients/common/stream_client.h"
 #include "server/core/time.h"
+#include "tests/e2e/simulated_client.h"
 #include "tests/rpc/test_server.h"
 #include "tools/linkemu/simulated_clock.h"
 #include "tools/linkemu/tcp_delay_proxy.h"
@@ -51,6 +52,9 @@ namespace tickmark {
 namespace {
 
 namespace v1 = tickmark::v1;
+using tickmark::testing::Anchor;
+using tickmark::testing::ReadAnchor;
+using tickmark::testing::SimulatedSource;
 using std::chrono::milliseconds;
 using std::chrono::seconds;
 using SteadyClock = std::chrono::steady_clock;
@@ -62,67 +66,14 @@ constexpr double kClientDriftPpm = 80;
 constexpr int kFeedbackCount = 40;
 constexpr milliseconds kFeedbackSpacing{400};
 
-// A SimulatedClock seen as the client's MonotonicSource (StreamOptions.clock).
-class SimulatedSource final : public MonotonicSource {
- public:
-  explicit SimulatedSource(const linkemu::SimulatedClock* clock) : clock_(clock) {}
-  int64_t NowNanos() const override { return clock_->Now().nanos(); }
-
- private:
-  const linkemu::SimulatedClock* clock_;  // not owned
-};
 
 std::string BinDir() {
   const char* bin = std::getenv("TICKMARK_BIN");
   return bin != nullptr ? bin : TICKMARK_BIN_DIR;
 }
 
-struct Anchor {
-  int64_t utc_anchor_ns = 0;
-  int64_t mono_anchor_ns = 0;
-};
 
-// The session's anchor as the ledger stores it (SQLite C API, read-only; the
-// server keeps writing in WAL mode meanwhile).
-std::optional<Anchor> ReadAnchor(const std::string& ledger_path, const std::string& session) {
-  sqlite3* db = nullptr;
-  if (sqlite3_open_v2(ledger_path.c_str(), &db, SQLITE_OPEN_READONLY, nullptr) != SQLITE_OK) {
-    sqlite3_close(db);
-    return std::nullopt;
-  }
-  std::optional<Anchor> out;
-  sqlite3_stmt* st = nullptr;
-  if (sqlite3_prepare_v2(db, "SELECT utc_anchor_ns, mono_anchor_ns FROM session WHERE id = ?",
-                         -1, &st, nullptr) == SQLITE_OK) {
-    sqlite3_bind_text(st, 1, session.c_str(), -1, SQLITE_TRANSIENT);
-    if (sqlite3_step(st) == SQLITE_ROW) {
-      out = Anchor{sqlite3_column_int64(st, 0), sqlite3_column_int64(st, 1)};
-    }
-  }
-  sqlite3_finalize(st);
-  sqlite3_close(db);
-  return out;
-}
 
-// Every record of `kind` in the session, read with Live.Subscribe up to the
-// current end.
-std::vector<v1::Record> ReadRecords(tickmark::testing::TestServer& server,
-                                    const std::string& session, const std::string& token,
-                                    v1::RecordKind kind) {
-  v1::SubscribeRequest req;
-  req.set_session_id(session);
-  req.set_from_sequence(1);
-  req.set_stop_at_end(true);
-  req.add_kinds(kind);
-  auto ctx = server.Context(token);
-  auto reader = server.live().Subscribe(ctx.get(), req);
-  std::vector<v1::Record> out;
-  v1::Record r;
-  while (reader->Read(&r)) out.push_back(r);
-  const grpc::Status s = reader->Finish();
-  EXPECT_TRUE(s.ok()) << s.error_message();
-  return out;
-}
 
 // The integer value of "field":N in one JSON line, if present.
 std::optional<int64_t> JsonInt(const std::string& line, const std::string& field) {
@@ -211,8 +162,8 @@ void RunBehindLink(double drift_ppm, int count, milliseconds spacing, LinkRun* r
     return anchor->utc_anchor_ns + (mono_ns - anchor->mono_anchor_ns);  // docs/architecture.md §4
   };
 
-  run->feedback = ReadRecords(server, session, admin_token, v1::RECORD_KIND_FEEDBACK);
-  run->models = ReadRecords(server, session, admin_token, v1::RECORD_KIND_CLOCK_MODEL);
+  run->feedback = server.Records(session, admin_token, v1::RECORD_KIND_FEEDBACK);
+  run->models = server.Records(session, admin_token, v1::RECORD_KIND_CLOCK_MODEL);
   ASSERT_EQ(run->feedback.size(), stamped.size());
   // The client really went through the emulated link.
   EXPECT_GE(proxy.counters().connections, 1u);

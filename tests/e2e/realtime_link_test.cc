@@ -39,6 +39,7 @@
 #include "clients/common/stream_client.h"
 #include "server/core/disciplined_clock.h"
 #include "server/core/time.h"
+#include "tests/e2e/simulated_client.h"
 #include "tests/rpc/test_server.h"
 #include "tools/linkemu/simulated_clock.h"
 #include "tools/linkemu/tcp_delay_proxy.h"
@@ -47,6 +48,9 @@ namespace tickmark {
 namespace {
 
 namespace v1 = tickmark::v1;
+using tickmark::testing::Anchor;
+using tickmark::testing::ReadAnchor;
+using tickmark::testing::SimulatedSource;
 using std::chrono::milliseconds;
 using std::chrono::seconds;
 using SteadyClock = std::chrono::steady_clock;
@@ -58,57 +62,9 @@ constexpr Duration kBound = Duration::Millis(1);  // both kernels' maxerror
 constexpr int kPerPhase = 8;
 constexpr milliseconds kSpacing{100};
 
-class SimulatedSource final : public MonotonicSource {
- public:
-  explicit SimulatedSource(const linkemu::SimulatedClock* clock) : clock_(clock) {}
-  int64_t NowNanos() const override { return clock_->Now().nanos(); }
 
- private:
-  const linkemu::SimulatedClock* clock_;  // not owned
-};
 
-struct Anchor {
-  int64_t utc_anchor_ns = 0;
-  int64_t mono_anchor_ns = 0;
-};
 
-std::optional<Anchor> ReadAnchor(const std::string& ledger_path, const std::string& session) {
-  sqlite3* db = nullptr;
-  if (sqlite3_open_v2(ledger_path.c_str(), &db, SQLITE_OPEN_READONLY, nullptr) != SQLITE_OK) {
-    sqlite3_close(db);
-    return std::nullopt;
-  }
-  std::optional<Anchor> out;
-  sqlite3_stmt* st = nullptr;
-  if (sqlite3_prepare_v2(db, "SELECT utc_anchor_ns, mono_anchor_ns FROM session WHERE id = ?", -1,
-                         &st, nullptr) == SQLITE_OK) {
-    sqlite3_bind_text(st, 1, session.c_str(), -1, SQLITE_TRANSIENT);
-    if (sqlite3_step(st) == SQLITE_ROW) {
-      out = Anchor{sqlite3_column_int64(st, 0), sqlite3_column_int64(st, 1)};
-    }
-  }
-  sqlite3_finalize(st);
-  sqlite3_close(db);
-  return out;
-}
-
-std::vector<v1::Record> ReadRecords(tickmark::testing::TestServer& server,
-                                    const std::string& session, const std::string& token,
-                                    v1::RecordKind kind) {
-  v1::SubscribeRequest req;
-  req.set_session_id(session);
-  req.set_from_sequence(1);
-  req.set_stop_at_end(true);
-  req.add_kinds(kind);
-  auto ctx = server.Context(token);
-  auto reader = server.live().Subscribe(ctx.get(), req);
-  std::vector<v1::Record> out;
-  v1::Record r;
-  while (reader->Read(&r)) out.push_back(r);
-  const grpc::Status s = reader->Finish();
-  EXPECT_TRUE(s.ok()) << s.error_message();
-  return out;
-}
 
 enum class Phase { kBothSynced, kClientUnsynced, kServerUnsynced, kClientOff };
 
@@ -233,7 +189,7 @@ TEST(RealtimeLinkTest, RealTimeBeatsTheAsymmetryBoundOnlyWhenBothSidesAreSynchro
   const int64_t kHiddenAsymmetry = ((kForward - kJitter) - (kBackward + kJitter)).nanos() / 2;
 
   // Feedback.
-  const auto feedback = ReadRecords(server, session, admin_token, v1::RECORD_KIND_FEEDBACK);
+  const auto feedback = server.Records(session, admin_token, v1::RECORD_KIND_FEEDBACK);
   ASSERT_EQ(feedback.size(), feedback_sent.size());
   std::map<int64_t, const v1::Feedback*> by_source;
   for (const v1::Record& r : feedback) by_source[r.feedback().event_source_ns()] = &r.feedback();
@@ -285,7 +241,7 @@ TEST(RealtimeLinkTest, RealTimeBeatsTheAsymmetryBoundOnlyWhenBothSidesAreSynchro
 
   // Steps: back to back on the agent's clock, so back to back on session
   // time whichever route mapped them.
-  const auto steps = ReadRecords(server, session, admin_token, v1::RECORD_KIND_STEP);
+  const auto steps = server.Records(session, admin_token, v1::RECORD_KIND_STEP);
   ASSERT_EQ(steps.size(), step_starts.size() - 1);
   std::map<uint64_t, const v1::Step*> by_id;
   for (const v1::Record& r : steps) by_id[r.step().step_id()] = &r.step();

@@ -36,21 +36,6 @@ rpc::LiveService::Options Options(const ClockDiscipline* kernel) {
   return o;
 }
 
-std::vector<v1::Record> Records(TestServer& server, const std::string& session,
-                                const std::string& token, v1::RecordKind kind) {
-  v1::SubscribeRequest req;
-  req.set_session_id(session);
-  req.set_from_sequence(1);
-  req.set_stop_at_end(true);
-  req.add_kinds(kind);
-  auto ctx = server.Context(token);
-  auto reader = server.live().Subscribe(ctx.get(), req);
-  std::vector<v1::Record> out;
-  v1::Record r;
-  while (reader->Read(&r)) out.push_back(r);
-  EXPECT_TRUE(reader->Finish().ok());
-  return out;
-}
 
 // A feedback whose event was 5 ms ago, with a real-time reading `skew_ns`
 // off the truth claiming a 1 ms bound.
@@ -79,7 +64,7 @@ TEST(RealtimeMappingTest, BeforeTheFirstProbeATrueReadingBeatsTheHelloMapping) {
   // mapping's 1 s.
   EXPECT_LT(ack->uncertainty_ns(), 3 * kBoundNs);
   EXPECT_TRUE(t->Close().ok());
-  const auto fb = Records(server, session, admin, v1::RECORD_KIND_FEEDBACK);
+  const auto fb = server.Records(session, admin, v1::RECORD_KIND_FEEDBACK);
   ASSERT_EQ(fb.size(), 1u);
   EXPECT_EQ(fb[0].feedback().time_source(), v1::TIME_SOURCE_REALTIME);
   EXPECT_EQ(fb[0].feedback().time_source_reason(), "realtime");
@@ -106,7 +91,7 @@ TEST(RealtimeMappingTest, AReadingThatPutsTheEventAfterItsArrivalFallsBackToTheR
   EXPECT_EQ(ack->code(), 0) << ack->message();  // stored, not refused
   EXPECT_EQ(ack->uncertainty_ns(), Duration::Seconds(1).nanos());
   EXPECT_TRUE(t->Close().ok());
-  const auto fb = Records(server, session, admin, v1::RECORD_KIND_FEEDBACK);
+  const auto fb = server.Records(session, admin, v1::RECORD_KIND_FEEDBACK);
   ASSERT_EQ(fb.size(), 1u);
   EXPECT_EQ(fb[0].feedback().time_source(), v1::TIME_SOURCE_ROUND_TRIP);
   EXPECT_EQ(fb[0].feedback().time_source_reason(), "implausible");
@@ -138,7 +123,7 @@ TEST(RealtimeMappingTest, ARoundTripStepAfterARealTimeStepStartsWhereItEnded) {
     EXPECT_EQ(ack->code(), 0) << ack->message();
   }
   EXPECT_TRUE(a->Close().ok());
-  const auto steps = Records(server, session, admin, v1::RECORD_KIND_STEP);
+  const auto steps = server.Records(session, admin, v1::RECORD_KIND_STEP);
   ASSERT_EQ(steps.size(), 2u);
   const v1::Step& first = steps[0].step();
   const v1::Step& second = steps[1].step();

@@ -10,6 +10,7 @@
 #include <memory>
 #include <optional>
 #include <string>
+#include <vector>
 
 #include <grpcpp/grpcpp.h>
 #include <gtest/gtest.h>
@@ -87,6 +88,25 @@ class TestServer {
     if (!token.empty()) ctx->AddMetadata("authorization", "Bearer " + token);
     ctx->set_deadline(std::chrono::system_clock::now() + std::chrono::seconds(20));
     return ctx;
+  }
+
+  // Every record of `kind` in the session, read with Live.Subscribe up to the
+  // current end; a failed subscription fails the calling test.
+  std::vector<v1::Record> Records(const std::string& session, const std::string& token,
+                                  v1::RecordKind kind) {
+    v1::SubscribeRequest req;
+    req.set_session_id(session);
+    req.set_from_sequence(1);
+    req.set_stop_at_end(true);
+    req.add_kinds(kind);
+    auto ctx = Context(token);
+    auto reader = live().Subscribe(ctx.get(), req);
+    std::vector<v1::Record> out;
+    v1::Record r;
+    while (reader->Read(&r)) out.push_back(r);
+    const grpc::Status s = reader->Finish();
+    EXPECT_TRUE(s.ok()) << s.error_message();
+    return out;
   }
 
   // Creates a session; returns {session id, its admin secret}.
