@@ -18,6 +18,17 @@ BIN = os.environ.get("TICKMARK_BIN", os.path.join(os.path.dirname(__file__), "..
 from tickmark.v1 import admin_pb2, admin_pb2_grpc, records_pb2  # noqa: E402
 
 
+
+def tm(server, *args, token_file=None, check=True, timeout=120):
+    """Runs the tickmark CLI against `server` (operator token unless token_file);
+    the finished process. With check, a non-zero exit fails the test."""
+    cmd = [os.path.join(BIN, "tickmark"), "--server", server.address,
+           "--token-file", token_file or os.path.join(server.data_dir, "operator.token"), *args]
+    p = subprocess.run(cmd, capture_output=True, text=True, timeout=timeout)
+    if check:
+        assert p.returncode == 0, p.stderr
+    return p
+
 def _wait_line(proc, pattern, timeout=15.0):
     """Reads proc's stdout until a line matches; returns the match."""
     deadline = time.monotonic() + timeout

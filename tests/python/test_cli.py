@@ -6,16 +6,9 @@ import json
 import os
 import subprocess
 
-from conftest import BIN
+from conftest import BIN, tm
 
 
-def tm(server, *args, token_file=None, check=True):
-    cmd = [os.path.join(BIN, "tickmark"), "--server", server.address,
-           "--token-file", token_file or os.path.join(server.data_dir, "operator.token"), *args]
-    p = subprocess.run(cmd, capture_output=True, text=True, timeout=60)
-    if check:
-        assert p.returncode == 0, p.stderr
-    return p
 
 
 def test_session_tokens_kernels_markers_and_export(server, tmp_path):

@@ -19,19 +19,12 @@ import time
 
 import grpc
 
-from conftest import BIN
+from conftest import tm
 from tickmark._stream import ReconnectingStream
 from tickmark.demo.trainer import DriftingClock
 from tickmark.v1 import records_pb2, stream_pb2
 
 
-def tm(server, *args, token_file=None, check=True):
-    cmd = [os.path.join(BIN, "tickmark"), "--server", server.address,
-           "--token-file", token_file or os.path.join(server.data_dir, "operator.token"), *args]
-    p = subprocess.run(cmd, capture_output=True, text=True, timeout=120)
-    if check:
-        assert p.returncode == 0, p.stderr
-    return p
 
 
 def sqlite3_cli(server, sql):
