@@ -43,10 +43,7 @@
 #include "clients/keys/line_input.h"
 #include "clients/keys/status_line.h"
 #include "clients/keys/terminal.h"
-
-#ifndef TICKMARK_VERSION
-#define TICKMARK_VERSION "dev"
-#endif
+#include "tickmark/version.h"
 
 namespace tickmark::keys {
 namespace {
