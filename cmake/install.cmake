@@ -26,8 +26,19 @@ install(TARGETS ${TICKMARK_TOOL_PROGRAMS} RUNTIME DESTINATION ${CMAKE_INSTALL_BI
 # installed binary with the unit's own arguments.
 install(FILES ${PROJECT_SOURCE_DIR}/deploy/tickmarkd.service
   DESTINATION ${TICKMARK_SYSTEMD_UNIT_DIR} COMPONENT server)
-file(STRINGS ${PROJECT_SOURCE_DIR}/deploy/tickmarkd.service TICKMARK_UNIT_EXEC
-  REGEX "^ExecStart=")
+# The unit's ExecStart, with its continuation lines (a line ending in "\").
+file(STRINGS ${PROJECT_SOURCE_DIR}/deploy/tickmarkd.service TICKMARK_UNIT_LINES)
+set(TICKMARK_UNIT_EXEC "")
+set(in_exec OFF)
+foreach(line IN LISTS TICKMARK_UNIT_LINES)
+  if(line MATCHES "^ExecStart=" OR in_exec)
+    string(APPEND TICKMARK_UNIT_EXEC "${line}\n")
+    set(in_exec OFF)
+    if(line MATCHES "\\$")
+      set(in_exec ON)
+    endif()
+  endif()
+endforeach()
 set_property(DIRECTORY APPEND PROPERTY CMAKE_CONFIGURE_DEPENDS
   ${PROJECT_SOURCE_DIR}/deploy/tickmarkd.service)
 # /etc and /var for the /usr prefix (as GNUInstallDirs has it), else under
@@ -50,15 +61,13 @@ ${TICKMARK_INSTALL_DIRS_CODE}
   file(MAKE_DIRECTORY \"\${data}\")
   file(CHMOD \"\${data}\" DIRECTORY_PERMISSIONS OWNER_READ OWNER_WRITE OWNER_EXECUTE
     GROUP_READ GROUP_EXECUTE)
-  set(exec \"${TICKMARK_UNIT_EXEC}\")
+  set(exec [==[${TICKMARK_UNIT_EXEC}]==])
   set(bin \"\${CMAKE_INSTALL_PREFIX}/${CMAKE_INSTALL_BINDIR}/tickmarkd\")
   string(REGEX REPLACE \"^ExecStart=[^ ]*tickmarkd\" \"ExecStart=\${bin}\" wanted \"\${exec}\")
   if(NOT exec STREQUAL wanted)
-    set(dropin \"${CMAKE_BINARY_DIR}/packaging/10-install-path.conf\")
-    file(WRITE \"\${dropin}\" \"# Made by cmake --install: the unit names tickmarkd at another path.\\n[Service]\\nExecStart=\\n\${wanted}\\n\")
-    file(INSTALL DESTINATION
-      \"\${CMAKE_INSTALL_PREFIX}/${TICKMARK_SYSTEMD_UNIT_DIR}/tickmarkd.service.d\"
-      TYPE FILE FILES \"\${dropin}\")
+    set(dropin \"\$ENV{DESTDIR}\${CMAKE_INSTALL_PREFIX}/${TICKMARK_SYSTEMD_UNIT_DIR}/tickmarkd.service.d\")
+    file(WRITE \"\${dropin}/10-install-path.conf\"
+      \"# Made by cmake --install: tickmarkd.service names tickmarkd at another path.\\n[Service]\\nExecStart=\\n\${wanted}\")
   endif()
 " COMPONENT server)
 install(FILES ${PROJECT_SOURCE_DIR}/deploy/tickmarkd.toml

@@ -57,6 +57,11 @@ def test_installed_tree(prefix):
     # The unit as it is in deploy/, the packaged config, the data folder.
     unit = os.path.join(prefix, "lib", "systemd", "system", "tickmarkd.service")
     assert filecmp.cmp(unit, os.path.join(ROOT, "deploy", "tickmarkd.service"), shallow=False)
+    # The unit starts the installed binary: its own ExecStart, or the drop-in's.
+    dropin = unit + ".d/10-install-path.conf"
+    starts = open(dropin).read() if os.path.exists(dropin) else open(unit).read()
+    assert f"\nExecStart={prefix}/bin/tickmarkd " in starts or \
+        f"\nExecStart={os.path.join(prefix, 'bin', 'tickmarkd')} " in starts, starts
     has("etc", "tickmark", "tickmarkd.toml")
     data = os.path.join(prefix, "var", "lib", "tickmark")
     assert stat.S_IMODE(os.stat(data).st_mode) == 0o750
