@@ -150,7 +150,7 @@ set(CPACK_DEBIAN_SERVER_DESCRIPTION
 set(CPACK_DEBIAN_SERVER_PACKAGE_CONTROL_EXTRA
   ${PROJECT_SOURCE_DIR}/deploy/package/postinst ${PROJECT_SOURCE_DIR}/deploy/package/prerm
   ${PROJECT_SOURCE_DIR}/deploy/package/postrm ${PROJECT_SOURCE_DIR}/deploy/package/conffiles)
-set(CPACK_DEBIAN_SERVER_PACKAGE_CONTROL_STRICT_PERMISSION ON)
+set(CPACK_DEBIAN_PACKAGE_CONTROL_STRICT_PERMISSION ON)
 set(CPACK_DEBIAN_TOOLS_PACKAGE_NAME tickmark-tools)
 # tickmark-voice reads pocketsphinx's acoustic model at run time.
 set(CPACK_DEBIAN_TOOLS_PACKAGE_DEPENDS "pocketsphinx-en-us")

@@ -1,8 +1,8 @@
 // A tiny learner outside tickmark's tree: connects with an agent token,
 // publishes a few steps, waits until the server has stored them, and reads
-// them back from the session's records (a fresh session: only its own). Settled labels would come the same
-// way (kinds = {RECORD_KIND_LABEL}), but only after the trainer's delay
-// horizon plus the allowed lateness, several seconds after a step.
+// them back from the session's records (a fresh session: only its own). Settled labels would come
+// the same way (kinds = {RECORD_KIND_LABEL}), but only after the trainer's delay horizon plus the
+// allowed lateness, several seconds after a step.
 #include <chrono>
 #include <cstdlib>
 #include <iostream>
