@@ -384,6 +384,10 @@ int Main(int argc, char** argv) {
   if (!flags.ok()) {
     return Usage(std::string(flags.status().message()) + " (see " + kProgram + " --help)");
   }
+  if (!flags->version.empty()) {
+    std::cout << flags->version;
+    return kExitOk;
+  }
   KeyMap keymap = KeyMap::Defaults();
   if (flags->help) {
     std::cout << KeysUsage(keymap.Legend());
