@@ -184,7 +184,11 @@ void AddShow(CommandTable& table, CLI::App* group) {
                         << "clients    " << r.client_count() << " (" << r.connected_clients()
                         << " connected now)\n"
                         << "late       " << r.late_count() << "\n"
-                        << "unmatched  " << r.unmatched_count() << "\n";
+                        << "unmatched  " << r.unmatched_count() << "\n"
+                        << "server     "
+                        << (r.server_version().empty() ? "-" : r.server_version())
+                        << " (wire contract "
+                        << (r.contract_version().empty() ? "-" : r.contract_version()) << ")\n";
               PrintClocks(r, *max_ms);
               return kExitOk;
             });

@@ -99,7 +99,11 @@ absl::StatusOr<KeysFlags> ParseKeysFlags(const std::vector<std::string>& args) {
     case ParseResult::kRun:
       return f;
     case ParseResult::kHelp:
-      f.help = true;
+      if (text == VersionLine(app.get_name()) + "\n") {
+        f.version = text;
+      } else {
+        f.help = true;
+      }
       return f;
     case ParseResult::kError:
       break;

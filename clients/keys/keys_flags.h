@@ -20,6 +20,7 @@ struct KeysFlags {
   double flush_timeout_s = 10.0;
   bool quiet = false;
   bool help = false;  // --help was given: print KeysUsage and exit
+  std::string version;  // --version was given: print this and exit
   // Input devices (evdev).
   std::string device;                    // --device PATH|NAME|VENDOR:PRODUCT
   std::string input_dir = "/dev/input";  // --input-dir: where names are looked up

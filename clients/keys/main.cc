@@ -43,10 +43,7 @@
 #include "clients/keys/line_input.h"
 #include "clients/keys/status_line.h"
 #include "clients/keys/terminal.h"
-
-#ifndef TICKMARK_VERSION
-#define TICKMARK_VERSION "dev"
-#endif
+#include "tickmark/version.h"
 
 namespace tickmark::keys {
 namespace {
@@ -386,6 +383,10 @@ int Main(int argc, char** argv) {
   auto flags = ParseKeysFlags(std::vector<std::string>(argv + 1, argv + argc));
   if (!flags.ok()) {
     return Usage(std::string(flags.status().message()) + " (see " + kProgram + " --help)");
+  }
+  if (!flags->version.empty()) {
+    std::cout << flags->version;
+    return kExitOk;
   }
   KeyMap keymap = KeyMap::Defaults();
   if (flags->help) {

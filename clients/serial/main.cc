@@ -26,10 +26,7 @@
 #include "clients/keys/terminal.h"
 #include "clients/serial/serial_source.h"
 #include "server/base/flags.h"
-
-#ifndef TICKMARK_VERSION
-#define TICKMARK_VERSION "dev"
-#endif
+#include "tickmark/version.h"
 
 namespace tickmark::serial {
 namespace {

@@ -41,10 +41,7 @@
 #include "clients/voice/voice_profile.h"
 #include "server/base/flags.h"
 #include "server/core/time.h"
-
-#ifndef TICKMARK_VERSION
-#define TICKMARK_VERSION "dev"
-#endif
+#include "tickmark/version.h"
 
 namespace tickmark::voice {
 namespace {

@@ -9,6 +9,8 @@
 
 #include <toml++/toml.h>
 
+#include "tickmark/version.h"
+
 namespace tickmark {
 namespace {
 
@@ -259,7 +261,18 @@ void ConfigureApp(CLI::App& app, const std::string& footer) {
   app.option_defaults()->always_capture_default();
   app.formatter(std::make_shared<Layout>());
   app.set_help_flag("-h,--help", "print this help and exit");
+  if (app.get_parent() == nullptr) AddVersionFlag(app);
   if (!footer.empty()) app.footer(footer);
+}
+
+std::string VersionLine(const std::string& program) {
+  return program + " " + TICKMARK_VERSION + " (wire contract " + TICKMARK_CONTRACT_PACKAGE + " " +
+         TICKMARK_CONTRACT_VERSION + ")";
+}
+
+CLI::Option* AddVersionFlag(CLI::App& app) {
+  const std::string line = VersionLine(ProgramName(app));
+  return app.set_version_flag("--version", line, "print the version and exit");
 }
 
 ParseResult ParseArgs(CLI::App& app, const std::vector<std::string>& args, std::string* text) {
@@ -281,6 +294,9 @@ ParseResult ParseArgs(CLI::App& app, const std::vector<std::string>& args, std::
     app.parse(reversed);
   } catch (const CLI::CallForHelp&) {
     *text = app.help();
+    return ParseResult::kHelp;
+  } catch (const CLI::CallForVersion& e) {
+    *text = std::string(e.what()) + "\n";
     return ParseResult::kHelp;
   } catch (const CLI::CallForAllHelp&) {
     *text = app.help("", CLI::AppFormatMode::All);

@@ -36,8 +36,18 @@ namespace tickmark {
 inline constexpr int kExitUsage = 2;
 
 // Sets `app` (and subcommands added after this call) up the tickmark way.
-// `footer` is printed after the flags in --help (notices, examples).
+// `footer` is printed after the flags in --help (notices, examples). On a
+// top-level app it also adds --version (AddVersionFlag), so every program
+// built on ConfigureApp answers it.
 void ConfigureApp(CLI::App& app, const std::string& footer = "");
+
+// Adds `--version`, which prints VersionLine(app's name) and exits 0.
+// ConfigureApp calls it; a program that does not use ConfigureApp calls it
+// itself. The version comes from the generated tickmark/version.h.
+CLI::Option* AddVersionFlag(CLI::App& app);
+
+// "PROGRAM 0.1.0 (wire contract tickmark.v1 1.0)".
+std::string VersionLine(const std::string& program);
 
 enum class ParseResult {
   kRun,    // flags parsed; the program goes on

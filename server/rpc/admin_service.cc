@@ -10,6 +10,7 @@
 #include "server/rpc/credit_driver.h"
 #include "server/rpc/retime_runner.h"
 #include "server/rpc/status.h"
+#include "tickmark/version.h"
 
 namespace tickmark::rpc {
 
@@ -98,6 +99,8 @@ absl::Status Summarize(SessionHub* hub, const ledger::SessionRow& row, v1::Sessi
   out->set_rejected_probe_count(counts->rejected_probes);
   out->set_default_kernel(DefaultKernelOf(hub, row.id));
   FillLedgerHealth(hub->ledger(), out->mutable_ledger_health());
+  out->set_server_version(kVersion);
+  out->set_contract_version(kContractVersion);
   // A session nobody has touched since the start has no streams; Find
   // avoids loading it (and replaying its ledger) just to say so.
   if (auto rt = hub->Find(row.id)) {

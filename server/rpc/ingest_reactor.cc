@@ -14,6 +14,7 @@
 #include "server/rpc/credit_driver.h"
 #include "server/rpc/status.h"
 #include "server/rpc/validation.h"
+#include "tickmark/version.h"
 
 namespace tickmark::rpc {
 namespace {
@@ -389,6 +390,8 @@ void IngestReactor<Side>::HandleHello(const v1::Hello& hello) {
   w->set_last_client_sequence(*last);
   w->set_max_state_bytes(opt.limits.max_state_bytes);
   w->set_max_features(opt.limits.max_features);
+  w->set_server_version(kVersion);
+  w->set_contract_version(kContractVersion);
   OpenProbePort(w);
   {
     std::lock_guard<std::mutex> lock(clock_view_mu_);

@@ -154,7 +154,7 @@ def test_every_flag_is_a_config_key(tmp_path):
     """allowed_lateness_ms and allow_insecure_remote were never read from the config."""
     defaults = settings()
     flags = re.findall(r"^\s+--([a-z][a-z0-9-]+)", run("tickmarkd", "--help").stdout, re.M)
-    assert set(flags) - {"help", "config", "print-config"} == set(defaults), defaults
+    assert set(flags) - {"help", "config", "print-config", "version"} == set(defaults), defaults
     config = tmp_path / "tickmarkd.toml"
     config.write_text("allowed-lateness-ms = 250\nallow-insecure-remote = true\n"
                       "probe-burst = 3\nlisten = \"127.0.0.1:0\"\n")

@@ -16,7 +16,7 @@ from tickmark._stream import Rejected, StreamError
 from tickmark.agent import Agent, run_episode
 from tickmark.calibration import CalibrationFailed, CalibrationRun
 from tickmark.subscription import KINDS, Subscription
+from tickmark.version import CONTRACT_VERSION, __version__
 
-__all__ = ["Agent", "CalibrationFailed", "CalibrationRun", "KINDS", "Rejected", "StreamError",
-           "Subscription", "run_episode"]
-__version__ = "0.1.0"
+__all__ = ["Agent", "CONTRACT_VERSION", "CalibrationFailed", "CalibrationRun", "KINDS", "Rejected",
+           "StreamError", "Subscription", "__version__", "run_episode"]

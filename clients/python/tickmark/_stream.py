@@ -79,6 +79,8 @@ class ReconnectingStream:
         self._error: Optional[StreamError] = None
         self.session_id = ""
         self.subject = ""
+        self.server_version = ""  # from the Welcome: the server's release
+        self.contract_version = ""  # and the wire-contract revision it speaks
         self.acked = 0
         self.rejected: Dict[int, str] = {}
         self.reconnects = 0
@@ -253,6 +255,8 @@ class ReconnectingStream:
         with self._lock:
             self.session_id = welcome.session_id
             self.subject = welcome.subject
+            self.server_version = welcome.server_version
+            self.contract_version = welcome.contract_version
             if self._next_seq is None:
                 self._next_seq = welcome.last_client_sequence + 1
             for payload in self._pending.values():  # resend in order

@@ -63,6 +63,16 @@ class Agent:
         """The agent name the token gives."""
         return self._stream.subject
 
+    @property
+    def server_version(self) -> str:
+        """The server's release, from its Welcome (e.g. "0.1.0")."""
+        return self._stream.server_version
+
+    @property
+    def contract_version(self) -> str:
+        """The wire-contract revision the server speaks (docs/compatibility.md)."""
+        return self._stream.contract_version
+
     def now(self) -> int:
         """This agent's clock, in nanoseconds."""
         return self._clock()

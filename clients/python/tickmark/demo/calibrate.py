@@ -21,11 +21,13 @@ import time
 import tickmark
 from tickmark.demo import delays
 from tickmark.demo.trainer import DriftingClock
+from tickmark.version import add_version_argument
 
 
 def main(argv=None) -> int:
     p = argparse.ArgumentParser(prog="python3 -m tickmark.demo.calibrate", description=__doc__,
                                 formatter_class=argparse.RawDescriptionHelpFormatter)
+    add_version_argument(p)
     p.add_argument("--server", default="127.0.0.1:7461")
     p.add_argument("--token-file", required=True, help="trainer token (tickmark calibrate new)")
     p.add_argument("--answers", type=int, default=40, help="valid answers to collect")

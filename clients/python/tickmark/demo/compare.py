@@ -24,6 +24,7 @@ import sqlite3
 import sys
 
 from tickmark.demo import model
+from tickmark.version import add_version_argument
 
 # Feedback counts at which the learning outcome is shown (and at all feedback).
 CURVE = (20, 40, 80)
@@ -100,6 +101,7 @@ def table(results: dict) -> str:
 def main(argv=None) -> int:
     p = argparse.ArgumentParser(prog="python3 -m tickmark.demo.compare", description=__doc__,
                                 formatter_class=argparse.RawDescriptionHelpFormatter)
+    add_version_argument(p)
     p.add_argument("--ledger", required=True, help="the server's tickmark.db")
     p.add_argument("--session", required=True)
     p.add_argument("--set", action="append", default=[], metavar="COLUMN=DERIVED_SET",

@@ -26,6 +26,7 @@ import time
 import tickmark
 from tickmark.demo import model, world
 from tickmark.demo.progress import ProgressLine
+from tickmark.version import add_version_argument
 
 
 class Observer:
@@ -114,6 +115,7 @@ def episode_line(episode: int, feedback: int, labels: int, recent: list, learned
 def main(argv=None) -> int:
     p = argparse.ArgumentParser(prog="python3 -m tickmark.demo.learner", description=__doc__,
                                 formatter_class=argparse.RawDescriptionHelpFormatter)
+    add_version_argument(p)
     p.add_argument("--server", default="127.0.0.1:7461")
     p.add_argument("--token-file", required=True, help="agent token")
     p.add_argument("--seconds", type=float, default=90, help="how long to drive (s)")

@@ -28,6 +28,7 @@ from tickmark._stream import ReconnectingStream
 from tickmark.demo import delays, world
 from tickmark.subscription import Subscription
 from tickmark.v1 import records_pb2, stream_pb2
+from tickmark.version import add_version_argument
 
 
 class DriftingClock:
@@ -48,6 +49,7 @@ class DriftingClock:
 def main(argv=None) -> int:
     p = argparse.ArgumentParser(prog="python3 -m tickmark.demo.trainer", description=__doc__,
                                 formatter_class=argparse.RawDescriptionHelpFormatter)
+    add_version_argument(p)
     p.add_argument("--server", default="127.0.0.1:7461", help="where feedback goes (the link)")
     p.add_argument("--token-file", required=True, help="trainer token")
     p.add_argument("--watch-server", default=None, help="where steps are watched (default --server)")
