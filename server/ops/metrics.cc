@@ -15,8 +15,8 @@ bool ValidName(const std::string& s, bool colons) {
   if (s.empty()) return false;
   for (size_t i = 0; i < s.size(); ++i) {
     const char c = s[i];
-    const bool alpha = (c >= 'a' && c <= 'z') || (c >= 'A' && c <= 'Z') || c == '_' ||
-                       (colons && c == ':');
+    const bool alpha =
+        (c >= 'a' && c <= 'z') || (c >= 'A' && c <= 'Z') || c == '_' || (colons && c == ':');
     if (!alpha && !(i > 0 && c >= '0' && c <= '9')) return false;
   }
   return true;
@@ -41,8 +41,7 @@ std::string EscapeHelp(const std::string& v) {
   return out;
 }
 
-void Header(std::string* out, const std::string& name, const std::string& help,
-            const char* type) {
+void Header(std::string* out, const std::string& name, const std::string& help, const char* type) {
   *out += "# HELP " + name + " " + EscapeHelp(help) + "\n";
   *out += "# TYPE " + name + " " + type + "\n";
 }
@@ -104,8 +103,8 @@ Histogram::Histogram(const std::vector<double>* bounds)
 
 void Histogram::Observe(double v) {
   // Bucket i counts bounds[i-1] < v <= bounds[i] (le is inclusive).
-  const size_t i = static_cast<size_t>(std::lower_bound(bounds_->begin(), bounds_->end(), v) -
-                                       bounds_->begin());
+  const size_t i =
+      static_cast<size_t>(std::lower_bound(bounds_->begin(), bounds_->end(), v) - bounds_->begin());
   buckets_[i].fetch_add(1, std::memory_order_relaxed);
   sum_.fetch_add(v, std::memory_order_relaxed);
   count_.fetch_add(1, std::memory_order_relaxed);
@@ -242,8 +241,7 @@ HistogramFamily& Registry::AddHistogram(const std::string& name, const std::stri
                                         std::vector<double> bounds) {
   std::lock_guard<std::mutex> lock(mu_);
   Claim(name);
-  histograms_.emplace_back(
-      new HistogramFamily(name, help, std::move(labels), std::move(bounds)));
+  histograms_.emplace_back(new HistogramFamily(name, help, std::move(labels), std::move(bounds)));
   order_.emplace_back(2, static_cast<int>(histograms_.size() - 1));
   return *histograms_.back();
 }

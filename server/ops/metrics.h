@@ -70,7 +70,7 @@ class Histogram {
   const std::vector<double>& bounds() const { return *bounds_; }
 
  private:
-  const std::vector<double>* const bounds_;  // owned by the family
+  const std::vector<double>* const bounds_;           // owned by the family
   std::unique_ptr<std::atomic<uint64_t>[]> buckets_;  // per bound, then +Inf; not cumulative
   std::atomic<uint64_t> count_{0};
   std::atomic<double> sum_{0};

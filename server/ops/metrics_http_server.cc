@@ -79,11 +79,10 @@ class Connection : public std::enable_shared_from_this<Connection> {
     }
     if (req.method() != http::verb::head) response_.prepare_payload();
     stream_.expires_after(kReadTimeout);
-    http::async_write(stream_, response_,
-                      [self = shared_from_this()](beast::error_code, size_t) {
-                        beast::error_code ignored;
-                        self->stream_.socket().shutdown(tcp::socket::shutdown_send, ignored);
-                      });
+    http::async_write(stream_, response_, [self = shared_from_this()](beast::error_code, size_t) {
+      beast::error_code ignored;
+      self->stream_.socket().shutdown(tcp::socket::shutdown_send, ignored);
+    });
   }
 
   beast::tcp_stream stream_;
@@ -145,8 +144,7 @@ absl::StatusOr<std::unique_ptr<MetricsHttpServer>> MetricsHttpServer::Start(
   if (!ec) impl.acceptor.bind(endpoint, ec);
   if (!ec) impl.acceptor.listen(asio::socket_base::max_listen_connections, ec);
   if (ec) {
-    return absl::UnavailableError("metrics port: cannot listen on " + listen + ": " +
-                                  ec.message());
+    return absl::UnavailableError("metrics port: cannot listen on " + listen + ": " + ec.message());
   }
   server->port_ = impl.acceptor.local_endpoint().port();
   impl.DoAccept();

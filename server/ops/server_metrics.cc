@@ -19,11 +19,10 @@ constexpr std::array<const char*, kStreamRoles> kRoleNames = {"trainer", "agent"
 // lower case, by code.
 constexpr int kCodes = 17;
 constexpr std::array<const char*, kCodes> kCodeNames = {
-    "ok",           "cancelled",          "unknown",        "invalid_argument",
-    "deadline_exceeded", "not_found",     "already_exists", "permission_denied",
-    "resource_exhausted", "failed_precondition", "aborted", "out_of_range",
-    "unimplemented", "internal",          "unavailable",    "data_loss",
-    "unauthenticated"};
+    "ok",        "cancelled",      "unknown",           "invalid_argument",   "deadline_exceeded",
+    "not_found", "already_exists", "permission_denied", "resource_exhausted", "failed_precondition",
+    "aborted",   "out_of_range",   "unimplemented",     "internal",           "unavailable",
+    "data_loss", "unauthenticated"};
 
 constexpr double kNanosPerSecond = 1e9;
 
@@ -45,31 +44,30 @@ struct ServerMetrics {
         "tickmark_ingest_rejected_total",
         "Messages refused with a non-zero Ack code, by kind and gRPC status code (reason).",
         {"kind", "reason"});
-    HistogramFamily& ack_f = r.AddHistogram(
-        "tickmark_ack_latency_seconds",
-        "From a message's arrival to its acknowledgement after the ledger commit.", {"kind"},
-        ExponentialBuckets(0.0005, 2, 15));
-    HistogramFamily& unc_f = r.AddHistogram(
-        "tickmark_clock_uncertainty_seconds",
-        "Stated uncertainty (half-width) of each stored event's session time.", {"kind"},
-        ExponentialBuckets(0.00001, 2, 20));
+    HistogramFamily& ack_f =
+        r.AddHistogram("tickmark_ack_latency_seconds",
+                       "From a message's arrival to its acknowledgement after the ledger commit.",
+                       {"kind"}, ExponentialBuckets(0.0005, 2, 15));
+    HistogramFamily& unc_f =
+        r.AddHistogram("tickmark_clock_uncertainty_seconds",
+                       "Stated uncertainty (half-width) of each stored event's session time.",
+                       {"kind"}, ExponentialBuckets(0.00001, 2, 20));
     for (int k = 0; k < kIngestKinds; ++k) {
       stored[k] = &stored_f.With({kKindNames[k]});
       duplicates[k] = &dup_f.With({kKindNames[k]});
       ack_latency[k] = &ack_f.With({kKindNames[k]});
       uncertainty[k] = &unc_f.With({kKindNames[k]});
     }
-    GaugeFamily& streams_f =
-        r.AddGauge("tickmark_open_streams", "Open Train, Act and Subscribe streams, by role.",
-                   {"role"});
+    GaugeFamily& streams_f = r.AddGauge(
+        "tickmark_open_streams", "Open Train, Act and Subscribe streams, by role.", {"role"});
     for (int k = 0; k < kStreamRoles; ++k) streams[k] = &streams_f.With({kRoleNames[k]});
     commit = &r.AddHistogram("tickmark_ledger_commit_seconds",
                              "Ledger transactions of appended records, BEGIN to COMMIT.", {},
                              ExponentialBuckets(0.0001, 2, 16))
                   .With({});
-    committed = &r.AddCounter("tickmark_ledger_committed_records_total",
-                              "Records committed to the ledger.")
-                     .With({});
+    committed =
+        &r.AddCounter("tickmark_ledger_committed_records_total", "Records committed to the ledger.")
+             .With({});
     queue = &r.AddGauge("tickmark_ledger_queue_depth",
                         "Writes waiting for the ledger writer (appends and operations).")
                  .With({});
@@ -90,9 +88,9 @@ struct ServerMetrics {
                              "Live records a full subscriber buffer did not take (the "
                              "subscriber reads them from the ledger instead).")
                     .With({});
-    lease_owned = &r.AddGauge("tickmark_session_lease_owned",
-                              "1 while this instance owns the session's lease, else 0.",
-                              {"session"});
+    lease_owned =
+        &r.AddGauge("tickmark_session_lease_owned",
+                    "1 while this instance owns the session's lease, else 0.", {"session"});
     lease_token = &r.AddGauge("tickmark_session_lease_fencing_token",
                               "The fencing token of the session's lease this instance holds "
                               "or last held.",
