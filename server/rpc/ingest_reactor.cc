@@ -695,9 +695,9 @@ MappedEvent IngestReactor<Side>::MapEventTime(int64_t client_ns, const RealtimeR
 template <typename Side>
 void IngestReactor<Side>::Reject(uint64_t client_sequence, const absl::Status& s,
                                  bool calibration) {
-  ops::CountIngest(calibration                      ? ops::IngestKind::kCalibrationEvent
+  ops::CountIngest(calibration                     ? ops::IngestKind::kCalibrationEvent
                    : Side::kRole == v1::ROLE_AGENT ? ops::IngestKind::kStep
-                                                    : ops::IngestKind::kFeedback,
+                                                   : ops::IngestKind::kFeedback,
                    static_cast<int>(s.code()));
   v1::ServerMessage m;
   v1::Ack* ack = m.mutable_ack();
@@ -864,7 +864,8 @@ template <typename Side>
 void IngestReactor<Side>::HandleCalibration(const v1::CalibrationMessage& m, SessionTime arrival) {
   const LiveService::Options& opt = service_->options();
   const uint64_t cseq = m.client_sequence();
-  if (absl::Status s = ValidateCalibration(m); !s.ok()) return Reject(cseq, s, /*calibration=*/true);
+  if (absl::Status s = ValidateCalibration(m); !s.ok())
+    return Reject(cseq, s, /*calibration=*/true);
   if (m.has_finish()) return StartCalibrationFinish(m);
   const bool move = m.has_move();
   const int64_t at = move ? m.move().shown_source_ns() : m.answer().event_source_ns();
