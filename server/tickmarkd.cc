@@ -76,7 +76,9 @@ void AddServerFlags(CLI::App& app, tickmark::rpc::ServerOptions& o, std::string&
   // Adaptive probing and the drift prior (docs/time-model.md).
   app.add_flag("--adaptive-probing", o.live.probing.adaptive,
                "probe fast while a client's clock model is young or loose (on by default; "
-               "=false: a burst, then --probe-interval-ms)");
+               "=false: a burst, then --probe-interval-ms)")
+      // A flag's default is not captured: without this --print-config said false.
+      ->default_str(o.live.probing.adaptive ? "true" : "false");
   AddDuration(app, "--probe-fast-for-ms", &o.live.probing.fast_for, Duration::Millis, 0, 600'000,
               "how long after a client connects (or its clock steps) it is probed fast");
   AddDuration(app, "--probe-fast-interval-ms", &o.live.probing.fast_interval, Duration::Millis, 1,
@@ -183,7 +185,8 @@ void AddWebFlags(CLI::App& app, tickmark::web::WebOptions& w) {
                  "from --http-listen)");
   app.add_flag("--http-metrics", w.http_metrics,
                "serve Prometheus metrics at /metrics on the web port (on by default; =false: "
-               "off; see docs/operations.md)");
+               "off; see docs/operations.md)")
+      ->default_str(w.http_metrics ? "true" : "false");  // for --print-config
   app.add_option("--http-max-connections", w.http.max_connections, "open web connections in total")
       ->check(CLI::Range(size_t{1}, size_t{1'000'000}));
   app.add_option("--http-max-connections-per-peer", w.http.max_connections_per_peer,
