@@ -16,12 +16,15 @@ namespace http = beast::http;
 namespace asio = boost::asio;
 using tcp = asio::ip::tcp;
 
-struct MetricsHttpServer::Impl : std::enable_shared_from_this<MetricsHttpServer::Impl> {
+// Handlers hold a plain Impl*: they live in ioc, which Impl's destructor
+// destroys (with every pending handler) before `open` and `render`, so no
+// handler outlives what it points at and nothing keeps Impl alive in a cycle.
+struct MetricsHttpServer::Impl {
+  std::function<std::string()> render;
+  std::atomic<size_t> open{0};
   asio::io_context ioc{1};
   tcp::acceptor acceptor{ioc};
-  std::function<std::string()> render;
   std::thread thread;
-  std::atomic<size_t> open{0};
   bool stopped = false;
 
   void DoAccept();
@@ -33,8 +36,8 @@ constexpr auto kReadTimeout = std::chrono::seconds(10);
 
 class Connection : public std::enable_shared_from_this<Connection> {
  public:
-  Connection(tcp::socket socket, std::shared_ptr<MetricsHttpServer::Impl> impl)
-      : stream_(std::move(socket)), impl_(std::move(impl)) {
+  Connection(tcp::socket socket, MetricsHttpServer::Impl* impl)
+      : stream_(std::move(socket)), impl_(impl) {
     impl_->open.fetch_add(1);
   }
   ~Connection() { impl_->open.fetch_sub(1); }
@@ -86,7 +89,7 @@ class Connection : public std::enable_shared_from_this<Connection> {
   }
 
   beast::tcp_stream stream_;
-  std::shared_ptr<MetricsHttpServer::Impl> impl_;
+  MetricsHttpServer::Impl* const impl_;
   beast::flat_buffer buffer_;
   http::request_parser<http::string_body> parser_;
   http::response<http::string_body> response_;
@@ -95,7 +98,7 @@ class Connection : public std::enable_shared_from_this<Connection> {
 }  // namespace
 
 void MetricsHttpServer::Impl::DoAccept() {
-  acceptor.async_accept([self = shared_from_this()](beast::error_code ec, tcp::socket socket) {
+  acceptor.async_accept([self = this](beast::error_code ec, tcp::socket socket) {
     if (ec == asio::error::operation_aborted || !self->acceptor.is_open()) return;
     if (!ec) {
       if (self->open.load() < kMaxConnections) {
@@ -135,7 +138,7 @@ absl::StatusOr<std::unique_ptr<MetricsHttpServer>> MetricsHttpServer::Start(
                                       " is not an IP address (give one, e.g. 127.0.0.1)");
   }
   std::unique_ptr<MetricsHttpServer> server(new MetricsHttpServer());
-  server->impl_ = std::make_shared<Impl>();
+  server->impl_ = std::make_unique<Impl>();
   Impl& impl = *server->impl_;
   impl.render = std::move(render);
   const tcp::endpoint endpoint(address, static_cast<unsigned short>(port));

@@ -38,7 +38,7 @@ class MetricsHttpServer {
 
  private:
   MetricsHttpServer() = default;
-  std::shared_ptr<Impl> impl_;
+  std::unique_ptr<Impl> impl_;
   int port_ = 0;
 };
 
