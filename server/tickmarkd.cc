@@ -11,6 +11,9 @@
 #include "server/base/flags.h"
 #include "server/base/log.h"
 #include "server/core/delay_kernel.h"
+#include "server/net/address.h"
+#include "server/ops/metrics.h"
+#include "server/ops/metrics_http_server.h"
 #include "server/rpc/server.h"
 #include "server/web/web_bridge.h"
 
@@ -73,7 +76,9 @@ void AddServerFlags(CLI::App& app, tickmark::rpc::ServerOptions& o, std::string&
   // Adaptive probing and the drift prior (docs/time-model.md).
   app.add_flag("--adaptive-probing", o.live.probing.adaptive,
                "probe fast while a client's clock model is young or loose (on by default; "
-               "=false: a burst, then --probe-interval-ms)");
+               "=false: a burst, then --probe-interval-ms)")
+      // A flag's default is not captured: without this --print-config said false.
+      ->default_str(o.live.probing.adaptive ? "true" : "false");
   AddDuration(app, "--probe-fast-for-ms", &o.live.probing.fast_for, Duration::Millis, 0, 600'000,
               "how long after a client connects (or its clock steps) it is probed fast");
   AddDuration(app, "--probe-fast-interval-ms", &o.live.probing.fast_interval, Duration::Millis, 1,
@@ -178,6 +183,10 @@ void AddWebFlags(CLI::App& app, tickmark::web::WebOptions& w) {
   app.add_option("--http-public-url", w.http_public_url,
                  "how browsers reach the web port, for invite links (https://HOST:PORT; default: "
                  "from --http-listen)");
+  app.add_flag("--http-metrics", w.http_metrics,
+               "serve Prometheus metrics at /metrics on the web port (on by default; =false: "
+               "off; see docs/operations.md)")
+      ->default_str(w.http_metrics ? "true" : "false");  // for --print-config
   app.add_option("--http-max-connections", w.http.max_connections, "open web connections in total")
       ->check(CLI::Range(size_t{1}, size_t{1'000'000}));
   app.add_option("--http-max-connections-per-peer", w.http.max_connections_per_peer,
@@ -204,6 +213,10 @@ int main(int argc, char** argv) {
   AddServerFlags(app, options, log_level);
   tickmark::web::WebOptions web;
   AddWebFlags(app, web);
+  std::string metrics_listen;
+  app.add_option("--metrics-listen", metrics_listen,
+                 "HOST:PORT of a plaintext port serving only Prometheus metrics at /metrics "
+                 "(empty: off; loopback unless --allow-insecure-remote; see docs/operations.md)");
   if (auto exit = tickmark::ParseCommandLine(app, argc, argv)) return *exit;
   tickmark::SetLogLevel(*tickmark::ParseLogLevel(log_level));
 
@@ -223,6 +236,14 @@ int main(int argc, char** argv) {
   tickmark::web::WebBridge bridge(web);
   if (bridge.enabled()) options.invites = &bridge;
 
+  // The metrics port is checked before anything starts, so a bad address
+  // fails fast; it is opened after the server (its metrics exist by then).
+  if (!metrics_listen.empty() && !tickmark::net::IsLoopbackTarget(metrics_listen) &&
+      !options.allow_insecure_remote) {
+    TM_LOG(kError) << "refusing plaintext metrics on " << metrics_listen
+                   << ": use a loopback address, or --allow-insecure-remote on a trusted network";
+    return 1;
+  }
   auto server = tickmark::rpc::TickmarkServer::Start(options);
   if (!server.ok()) {
     TM_LOG(kError) << server.status().message();
@@ -232,6 +253,18 @@ int main(int argc, char** argv) {
     TM_LOG(kError) << st.message();
     (*server)->Shutdown(tickmark::Duration::Zero());
     return 1;
+  }
+  std::unique_ptr<tickmark::ops::MetricsHttpServer> metrics;
+  if (!metrics_listen.empty()) {
+    auto started = tickmark::ops::MetricsHttpServer::Start(
+        metrics_listen, [] { return tickmark::ops::Registry::Default().Render(); });
+    if (!started.ok()) {
+      TM_LOG(kError) << started.status().message();
+      bridge.Stop(tickmark::Duration::Zero());
+      (*server)->Shutdown(tickmark::Duration::Zero());
+      return 1;
+    }
+    metrics = std::move(*started);
   }
   TM_LOG(kInfo) << "listening on " << options.listen.substr(0, options.listen.rfind(':')) << ":"
                 << (*server)->port() << "; ledger " << (*server)->ledger_path()
@@ -243,10 +276,12 @@ int main(int argc, char** argv) {
     std::cout << "tickmarkd web port=" << bridge.port() << " url=" << bridge.base_url()
               << std::endl;
   }
+  if (metrics) std::cout << "tickmarkd metrics port=" << metrics->port() << std::endl;
 
   int sig = 0;
   sigwait(&signals, &sig);
   TM_LOG(kInfo) << "signal " << sig << ": stopping (draining streams, committing the ledger)";
+  if (metrics) metrics->Stop();
   bridge.Stop(tickmark::Duration::Seconds(5));
   (*server)->Shutdown(tickmark::Duration::Seconds(5));
   TM_LOG(kInfo) << "stopped cleanly";

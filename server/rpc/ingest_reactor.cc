@@ -10,6 +10,7 @@
 
 #include "server/base/log.h"
 #include "server/base/strings.h"
+#include "server/ops/server_metrics.h"
 #include "server/rpc/calibration_builder.h"
 #include "server/rpc/credit_driver.h"
 #include "server/rpc/status.h"
@@ -46,6 +47,23 @@ void RetryableIfStoreFull(v1::Ack* ack) {
     ack->set_code(static_cast<int32_t>(absl::StatusCode::kUnavailable));
     ack->set_message(Cat(ack->message(), " (not stored; send it again later)"));
   }
+}
+
+// Counts an acknowledged message for /metrics (server/ops/server_metrics.h):
+// its outcome; for a stored one, its ack latency (arrival is the record's
+// written time) and its time's stated uncertainty.
+void NoteAck(const v1::Ack& ack, const v1::Record& sent, SessionTime now) {
+  const ops::IngestKind kind = sent.has_step()                ? ops::IngestKind::kStep
+                               : sent.has_calibration_event() ? ops::IngestKind::kCalibrationEvent
+                                                              : ops::IngestKind::kFeedback;
+  ops::CountIngest(kind, ack.code(), ack.duplicate());
+  if (ack.code() != 0) return;
+  ops::ObserveAckLatency(kind, now.nanos() - sent.written_session_ns());
+  if (ack.duplicate()) return;
+  ops::ObserveClockUncertainty(kind, sent.has_step() ? sent.step().uncertainty_ns()
+                                     : sent.has_calibration_event()
+                                         ? sent.calibration_event().uncertainty_ns()
+                                         : sent.feedback().uncertainty_ns());
 }
 
 // How a feedback's or step's time was mapped (records.proto, Feedback
@@ -113,6 +131,8 @@ void IngestReactor<Side>::Start(const absl::Status& admitted, std::string peer_h
     return;
   }
   admitted_ = true;
+  ops::StreamOpened(Side::kRole == v1::ROLE_AGENT ? ops::StreamRole::kAgent
+                                                  : ops::StreamRole::kTrainer);
   const Duration timeout = service_->options().hello_timeout;
   hello_deadline_.store(
       timeout > Duration::Zero() ? service_->limits_clock()->NowNanos() + timeout.nanos() : kNever);
@@ -178,7 +198,11 @@ template <typename Side>
 void IngestReactor<Side>::Cleanup() {
   service_->ticker().Remove(this);
   if (udp_tag_ != 0) service_->options().probe_port.remove_stream(udp_tag_);
-  if (admitted_) service_->admission().Release(peer_host_);
+  if (admitted_) {
+    service_->admission().Release(peer_host_);
+    ops::StreamClosed(Side::kRole == v1::ROLE_AGENT ? ops::StreamRole::kAgent
+                                                    : ops::StreamRole::kTrainer);
+  }
   if (runtime_ && hello_done_) {
     runtime_->RemoveStream(this);
     if (runtime_->open()) {
@@ -672,7 +696,12 @@ MappedEvent IngestReactor<Side>::MapEventTime(int64_t client_ns, const RealtimeR
 }
 
 template <typename Side>
-void IngestReactor<Side>::Reject(uint64_t client_sequence, const absl::Status& s) {
+void IngestReactor<Side>::Reject(uint64_t client_sequence, const absl::Status& s,
+                                 bool calibration) {
+  ops::CountIngest(calibration                     ? ops::IngestKind::kCalibrationEvent
+                   : Side::kRole == v1::ROLE_AGENT ? ops::IngestKind::kStep
+                                                   : ops::IngestKind::kFeedback,
+                   static_cast<int>(s.code()));
   v1::ServerMessage m;
   v1::Ack* ack = m.mutable_ack();
   ack->set_client_sequence(client_sequence);
@@ -704,7 +733,10 @@ void IngestReactor<Side>::OnAck(v1::Ack ack, std::shared_ptr<const v1::Record> s
   // RESOURCE_EXHAUSTED stays the answer to a client over its rate limit,
   // whose message is dropped on purpose.
   RetryableIfStoreFull(&ack);
-  if (!ack.duplicate() || ack.code() != 0 || finished_) return DeliverAck(ack);
+  if (!ack.duplicate() || ack.code() != 0 || finished_) {
+    NoteAck(ack, *sent, runtime_->Now());
+    return DeliverAck(ack);
+  }
   // A resend: the stored original must carry the same content. Read it on
   // the pool (a ledger read), then come back to the strand.
   std::weak_ptr<IngestReactor> weak = this->shared_from_this();
@@ -724,7 +756,10 @@ void IngestReactor<Side>::OnAck(v1::Ack ack, std::shared_ptr<const v1::Record> s
     }
     if (auto self = weak.lock()) {
       if (mismatch) self->service_->counters().content_mismatches.fetch_add(1);
-      self->Post([ack](IngestReactor& r) { r.DeliverAck(ack); });
+      self->Post([ack, sent](IngestReactor& r) {
+        NoteAck(ack, *sent, r.runtime_->Now());
+        r.DeliverAck(ack);
+      });
     }
   });
 }
@@ -832,17 +867,18 @@ template <typename Side>
 void IngestReactor<Side>::HandleCalibration(const v1::CalibrationMessage& m, SessionTime arrival) {
   const LiveService::Options& opt = service_->options();
   const uint64_t cseq = m.client_sequence();
-  if (absl::Status s = ValidateCalibration(m); !s.ok()) return Reject(cseq, s);
+  if (absl::Status s = ValidateCalibration(m); !s.ok())
+    return Reject(cseq, s, /*calibration=*/true);
   if (m.has_finish()) return StartCalibrationFinish(m);
   const bool move = m.has_move();
   const int64_t at = move ? m.move().shown_source_ns() : m.answer().event_source_ns();
   // Mapped exactly like a feedback's event time.
   absl::Status map_error;
   auto [mapped, mapped_uncertainty] = Map(at, &map_error);
-  if (!map_error.ok()) return Reject(cseq, map_error);
+  if (!map_error.ok()) return Reject(cseq, map_error, /*calibration=*/true);
   const EventTimeVerdict v = JudgeEventTime(mapped, mapped_uncertainty, arrival, model_.ready(),
                                             opt.event_future_tolerance, opt.limits);
-  if (!v.status.ok()) return Reject(cseq, v.status);
+  if (!v.status.ok()) return Reject(cseq, v.status, /*calibration=*/true);
   v1::Record r;
   r.set_written_session_ns(arrival.nanos());
   v1::CalibrationEvent* e = r.mutable_calibration_event();

@@ -146,7 +146,9 @@ class IngestReactor final : public grpc::ServerBidiReactor<grpc::ByteBuffer, grp
   MappedEvent MapEventTime(int64_t client_ns, const RealtimeReading& reading, Duration span,
                            absl::Status* error);
   bool TakeRateToken();
-  void Reject(uint64_t client_sequence, const absl::Status& s);
+  // Answers with a non-zero Ack (counted; `calibration`: a calibration
+  // event's, else the stream's feedback or step).
+  void Reject(uint64_t client_sequence, const absl::Status& s, bool calibration = false);
   void AppendClient(tickmark::v1::Record record);
   void OpenProbePort(tickmark::v1::Welcome* w);
   void WriteNext();

@@ -16,6 +16,7 @@
 #include <fstream>
 #include <mutex>
 
+#include <grpcpp/ext/proto_server_reflection_plugin.h>
 #include <grpcpp/health_check_service_interface.h>
 #include <grpcpp/security/server_credentials.h>
 #include <grpcpp/server_builder.h>
@@ -25,6 +26,7 @@
 #include "server/ledger/sqlite/sqlite_ledger.h"
 #include "server/net/address.h"
 #include "server/net/udp_probe_server.h"
+#include "server/ops/server_metrics.h"
 
 namespace tickmark::rpc {
 namespace {
@@ -217,7 +219,13 @@ absl::StatusOr<std::unique_ptr<TickmarkServer>> TickmarkServer::Start(
   // while the ledger cannot write. A process-wide switch that is not
   // thread-safe, read when a builder builds: set it once.
   static std::once_flag health_enabled;
-  std::call_once(health_enabled, [] { grpc::EnableDefaultHealthCheckService(true); });
+  // Server reflection (grpc.reflection.v1alpha): lets common tools list and
+  // call the services without our .proto files. Also a process-wide switch.
+  std::call_once(health_enabled, [] {
+    grpc::EnableDefaultHealthCheckService(true);
+    grpc::reflection::InitProtoReflectionServerBuilderPlugin();
+  });
+  ops::RegisterServerMetrics();
   grpc::ServerBuilder builder;
   builder.AddListeningPort(options.listen, creds, &s->port_);
   builder.RegisterService(s->admin_.get());
@@ -238,12 +246,14 @@ absl::StatusOr<std::unique_ptr<TickmarkServer>> TickmarkServer::Start(
 void TickmarkServer::WatchLedgerHealth() {
   grpc::HealthCheckServiceInterface* health = server_->GetHealthCheckService();
   bool serving = true;
+  ops::SetLedgerWriteHealth(0);
   std::unique_lock<std::mutex> lock(health_mu_);
   while (!health_stop_) {
     lock.unlock();
     const absl::Status write = ledger_->WriteHealth();
     lock.lock();
     if (health_stop_) break;
+    ops::SetLedgerWriteHealth(static_cast<int>(write.code()));
     if (write.ok() != serving) {
       serving = write.ok();
       if (health != nullptr) health->SetServingStatus(serving);

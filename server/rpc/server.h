@@ -4,7 +4,9 @@
 //
 // Health: the standard gRPC health service is on; a watcher thread reads
 // Ledger::WriteHealth() every ServerOptions::health_interval and reports
-// NOT_SERVING while ledger writes fail, SERVING again once they succeed.
+// NOT_SERVING while ledger writes fail, SERVING again once they succeed;
+// the same state goes to the metrics (tickmark_ledger_writable, _disk_full;
+// docs/operations.md). gRPC server reflection is on as well.
 //
 // Thread safety: Start/Shutdown from one thread; the rest is internal.
 #ifndef TICKMARK_SERVER_RPC_SERVER_H_

@@ -1,5 +1,6 @@
 #include "server/rpc/subscribe_reactor.h"
 
+#include "server/ops/server_metrics.h"
 #include "server/rpc/admin_service.h"
 #include "server/rpc/status.h"
 
@@ -34,6 +35,7 @@ void SubscribeReactor::Start(const absl::Status& admitted, std::string peer_host
     return;
   }
   admitted_ = true;
+  ops::StreamOpened(ops::StreamRole::kSubscriber);
   Post([](SubscribeReactor& r) { r.Begin(); });
 }
 
@@ -87,7 +89,10 @@ void SubscribeReactor::OnCommitted(const std::vector<v1::Record>& records) {
     std::lock_guard<std::mutex> lock(inbox_mu_);
     if (inbox_.size() + records.size() <= service_->options().subscriber_buffer) {
       inbox_.insert(inbox_.end(), records.begin(), records.end());
-    }  // else dropped: Pump refills the gap from the ledger
+    } else {  // dropped: Pump refills the gap from the ledger
+      ops::CountSubscriberOverflow(records.size());
+    }
+    ops::ObserveSubscriberBacklog(inbox_.size());
   }
   if (idle_.load()) PostPump();
 }
@@ -120,7 +125,10 @@ void SubscribeReactor::Cleanup() {
     runtime_->RemoveSink(this);
     runtime_->RemoveStream(this);
   }
-  if (admitted_) service_->admission().Release(peer_host_);
+  if (admitted_) {
+    service_->admission().Release(peer_host_);
+    ops::StreamClosed(ops::StreamRole::kSubscriber);
+  }
   self_.reset();  // the closure running this still holds a reference
 }
 

@@ -3,6 +3,7 @@
 #include <google/protobuf/struct.pb.h>
 #include <google/protobuf/util/json_util.h>
 
+#include "server/ops/metrics.h"
 #include "server/web/assets.h"
 
 namespace tickmark::web {
@@ -160,6 +161,19 @@ HttpResponse HttpRouter::Route(const HttpRequest& request) const {
       return r;
     }
     return Join(request);
+  }
+  if (path == "/metrics" && metrics_) {
+    if (request.method != "GET" && request.method != "HEAD") {
+      HttpResponse r = Text(405, "use GET", request.tls);
+      r.headers.emplace_back("Allow", "GET, HEAD");
+      return r;
+    }
+    HttpResponse r;
+    r.headers = SecurityHeaders(request.tls);
+    r.headers.emplace_back("Content-Type", ops::kContentType);
+    r.headers.emplace_back("Cache-Control", "no-store");
+    if (request.method == "GET") r.body = metrics_();
+    return r;
   }
   const Asset* asset = PageFor(path);
   if (asset == nullptr) return Text(404, "not found", request.tls);

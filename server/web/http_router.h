@@ -11,6 +11,8 @@
 //   GET  /live        the live view
 //   GET  /assets/F    a file of server/web/assets/ (css, js, svg)
 //   POST /api/join    {"code": "..."} -> the token and what the page needs
+//   GET  /metrics     Prometheus text format (docs/operations.md), when
+//                     ServeMetrics() was called
 // HEAD works wherever GET does. Every answer carries the security headers
 // (SecurityHeaders()).
 //
@@ -89,6 +91,9 @@ class HttpRouter {
   explicit HttpRouter(JoinFunction join, std::string public_origin = "")
       : join_(std::move(join)), public_origin_(std::move(public_origin)) {}
   HttpResponse Route(const HttpRequest& request) const;
+  // Answers GET /metrics with render() (text format 0.0.4); call before
+  // serving. render must be thread-safe.
+  void ServeMetrics(std::function<std::string()> render) { metrics_ = std::move(render); }
   // Whether a request's Origin is this server's own page: SameOrigin, or
   // the public origin.
   bool OriginAllowed(const HttpRequest& request) const;
@@ -97,6 +102,7 @@ class HttpRouter {
   HttpResponse Join(const HttpRequest& request) const;
   JoinFunction join_;
   std::string public_origin_;
+  std::function<std::string()> metrics_;  // empty: no /metrics
 };
 
 }  // namespace tickmark::web

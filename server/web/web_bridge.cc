@@ -7,6 +7,7 @@
 #include "server/base/log.h"
 #include "server/base/strings.h"
 #include "server/net/address.h"
+#include "server/ops/metrics.h"
 #include "server/rpc/auth.h"
 
 namespace tickmark::web {
@@ -47,7 +48,9 @@ WebBridge::WebBridge(WebOptions options)
       public_origin_(PublicOrigin(options_.http_public_url)),
       codes_(SystemMonotonic::Get(), options_.codes),
       router_([this](const std::string& code, const std::string& peer) { return Join(code, peer); },
-              public_origin_.ok() ? *public_origin_ : "") {}
+              public_origin_.ok() ? *public_origin_ : "") {
+  if (options_.http_metrics) router_.ServeMetrics([] { return ops::Registry::Default().Render(); });
+}
 
 WebBridge::~WebBridge() { Stop(Duration::Zero()); }
 

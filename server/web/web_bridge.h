@@ -47,6 +47,9 @@ struct WebOptions {
   // The largest |value| a graded button may send (the live service's
   // Limits::max_abs_value).
   double max_abs_value = 1000;
+  // Serve GET /metrics (ops::Registry::Default(), docs/operations.md) on
+  // the web port.
+  bool http_metrics = true;
 };
 
 class WebBridge final : public rpc::InviteIssuer {

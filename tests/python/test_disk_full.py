@@ -22,11 +22,12 @@ import signal
 import subprocess
 import tempfile
 import time
+import urllib.request
 
 import grpc
 import pytest
 
-from conftest import BIN, Server
+from conftest import BIN, Server, _wait_line
 from tickmark._stream import ReconnectingStream
 from tickmark.v1 import admin_pb2, records_pb2, stream_pb2
 
@@ -76,8 +77,22 @@ def _show(server, session):
                           capture_output=True, text=True, timeout=30)
 
 
+def _metric(server, name):
+    """One sample of the server's /metrics (its --metrics-listen port)."""
+    with urllib.request.urlopen(f"http://127.0.0.1:{server.metrics_port}/metrics",
+                                timeout=10) as r:
+        for line in r.read().decode().splitlines():
+            if line.startswith(name + " ") or line.startswith(name + "{"):
+                key, value = line.rsplit(" ", 1)
+                if key == name:
+                    return float(value)
+    return None
+
+
 def test_full_disk_loses_nothing_and_recovers_without_restart(small_disk):
-    server = Server(small_disk, extra=("--ledger-reserve-bytes", str(2 << 20)))
+    server = Server(small_disk, extra=("--ledger-reserve-bytes", str(2 << 20),
+                                       "--metrics-listen", "127.0.0.1:0"))
+    server.metrics_port = int(_wait_line(server.proc, r"metrics port=(\d+)").group(1))
     stream = None
     try:
         session, admin = server.session(title="disk full")
@@ -102,11 +117,20 @@ def test_full_disk_loses_nothing_and_recovers_without_restart(small_disk):
         assert "disk full" in shown.stdout
         assert stream.pending > 0, "feedback was acknowledged although the disk is full"
         assert not stream.rejected, f"feedback dropped as rejected: {stream.rejected}"
+        # The metrics say the same (docs/operations.md).
+        _wait(lambda: _metric(server, "tickmark_ledger_disk_full") == 1, 30,
+              "tickmark_ledger_disk_full to say 1")
+        assert _metric(server, "tickmark_ledger_writable") == 0
+        assert _metric(server, 'tickmark_ingest_rejected_total{kind="feedback",'
+                               'reason="unavailable"}') >= 1
 
         os.remove(filler)  # room again: no restart
         assert stream.flush(60), f"{stream.pending} feedback never stored after space returned"
         _wait(lambda: "ledger     writable" in _show(server, session).stdout, 30,
               "the ledger to report writable again")
+        _wait(lambda: _metric(server, "tickmark_ledger_writable") == 1, 30,
+              "tickmark_ledger_writable to say 1 again")
+        assert _metric(server, "tickmark_ledger_disk_full") == 0
         assert not stream.rejected
         stream.close()
         stream = None

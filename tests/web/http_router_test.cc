@@ -233,6 +233,27 @@ TEST(OriginTest, ThePublicOriginCountsAsOurOwn) {
   }
 }
 
+TEST(MetricsRouteTest, ServedOnlyWhenAskedWithTheTextFormatsType) {
+  HttpRouter router([](const std::string&, const std::string&) -> absl::StatusOr<JoinGrant> {
+    return absl::NotFoundError("no");
+  });
+  HttpRequest get;
+  get.method = "GET";
+  get.target = "/metrics";
+  EXPECT_EQ(router.Route(get).status, 404);  // not served unless ServeMetrics
+  router.ServeMetrics([] { return std::string("demo_total 1\n"); });
+  const HttpResponse r = router.Route(get);
+  EXPECT_EQ(r.status, 200);
+  EXPECT_EQ(r.body, "demo_total 1\n");
+  // Prometheus text format 0.0.4's media type (from memory).
+  EXPECT_EQ(r.Header("Content-Type"), "text/plain; version=0.0.4; charset=utf-8");
+  EXPECT_EQ(r.Header("Cache-Control"), "no-store");
+  get.method = "HEAD";
+  EXPECT_EQ(router.Route(get).body, "");
+  get.method = "POST";
+  EXPECT_EQ(router.Route(get).status, 405);
+}
+
 TEST(InviteBaseUrlTest, FromThePublicUrlOrTheListenAddress) {
   EXPECT_EQ(InviteBaseUrl("https://lab.example.org:8443/", "0.0.0.0", 8443, true, "h"),
             "https://lab.example.org:8443");

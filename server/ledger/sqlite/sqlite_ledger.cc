@@ -15,6 +15,7 @@
 #include "server/ledger/sqlite/startup_checks.h"
 #include "server/ledger/sqlite/statement.h"
 #include "server/ledger/sqlite/typed_tables.h"
+#include "server/ops/server_metrics.h"
 
 namespace tickmark::ledger {
 namespace {
@@ -243,6 +244,7 @@ absl::StatusOr<uint64_t> SqliteLedger::Append(std::string_view session_id,
     w.records = std::move(records);
     w.done = std::move(done);
     queue_.push_back(std::move(w));
+    ops::SetLedgerQueueDepth(queue_.size());
   }
   work_cv_.notify_one();
   return first;
@@ -304,6 +306,7 @@ void SqliteLedger::WriterLoop() {
         batch.push_back(std::move(queue_.front()));
         queue_.pop_front();
       }
+      ops::SetLedgerQueueDepth(queue_.size());
     }
     // Retried on its schedule even while appends keep coming (they are
     // failed promptly below and must not starve the retry).
@@ -380,6 +383,8 @@ void SqliteLedger::CommitGroups(std::vector<Work>& batch, size_t begin, size_t e
   }
   absl::Status fatal = WriteHealth();
   SessionHeads tx_heads;  // each session's head after its last group inserted here
+  const SteadyClock::time_point began = SteadyClock::now();  // for the commit-latency metric
+  size_t inserted_records = 0;
   if (fatal.ok()) fatal = Exec(writer_db_, "BEGIN IMMEDIATE");
   for (size_t j = begin; fatal.ok() && j < end; ++j) {
     Work& w = batch[j];
@@ -404,6 +409,7 @@ void SqliteLedger::CommitGroups(std::vector<Work>& batch, size_t begin, size_t e
     }
     if (!fatal.ok()) break;
     if (inserted) {
+      inserted_records += w.records.size();
       tx_heads[w.session_id] = SessionHead{w.records.back().sequence(), w.records.back().hash()};
       continue;
     }
@@ -433,6 +439,9 @@ void SqliteLedger::CommitGroups(std::vector<Work>& batch, size_t begin, size_t e
       RechainLocked(session, committed_[session], batch, end);
     }
   } else {
+    ops::ObserveLedgerCommit(
+        std::chrono::duration_cast<std::chrono::nanoseconds>(SteadyClock::now() - began).count(),
+        inserted_records);
     SessionHeads snapshot;
     {
       std::lock_guard<std::mutex> lock(mu_);
