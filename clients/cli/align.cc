@@ -58,8 +58,9 @@ std::vector<AlignPair> Pair(const std::vector<double>& s, const std::vector<doub
   }
   std::vector<AlignPair> pairs;
   for (auto& [j, p] : by_other) pairs.push_back(p);
-  std::sort(pairs.begin(), pairs.end(),
-            [](const AlignPair& x, const AlignPair& y) { return x.session_index < y.session_index; });
+  std::sort(pairs.begin(), pairs.end(), [](const AlignPair& x, const AlignPair& y) {
+    return x.session_index < y.session_index;
+  });
   return pairs;
 }
 
@@ -154,9 +155,9 @@ absl::StatusOr<AlignResult> AlignPulses(const std::vector<double>& session_in,
   std::sort(o.begin(), o.end());
   const size_t need = std::max<size_t>(opt.min_pairs, 3);
   if (s.size() < need || o.size() < need) {
-    return absl::FailedPreconditionError(
-        Cat("too few pulses to align: the session has ", s.size(), ", the other recorder ",
-            o.size(), "; at least ", need, " must pair up (--min-pairs)"));
+    return absl::FailedPreconditionError(Cat("too few pulses to align: the session has ", s.size(),
+                                             ", the other recorder ", o.size(), "; at least ", need,
+                                             " must pair up (--min-pairs)"));
   }
   const double tol = opt.tolerance_s;
 
@@ -215,15 +216,16 @@ absl::StatusOr<AlignResult> AlignPulses(const std::vector<double>& session_in,
   // 2. Growth.
   double a = best_d, b = 1.0;
   const double anchor_t = s[best_anchor];
-  double span = std::max(1e-9, std::max(s[std::min(s.size() - 1, best_anchor + kLocal)] - anchor_t,
-                                        anchor_t - s[best_anchor > kLocal ? best_anchor - kLocal : 0]));
+  double span =
+      std::max(1e-9, std::max(s[std::min(s.size() - 1, best_anchor + kLocal)] - anchor_t,
+                              anchor_t - s[best_anchor > kLocal ? best_anchor - kLocal : 0]));
   const double whole = s.back() - s.front();
   std::vector<AlignPair> pairs;
   for (int round = 0; round < 64; ++round) {
-    const size_t lo = static_cast<size_t>(
-        std::lower_bound(s.begin(), s.end(), anchor_t - span) - s.begin());
-    const size_t hi = static_cast<size_t>(
-        std::upper_bound(s.begin(), s.end(), anchor_t + span) - s.begin());
+    const size_t lo =
+        static_cast<size_t>(std::lower_bound(s.begin(), s.end(), anchor_t - span) - s.begin());
+    const size_t hi =
+        static_cast<size_t>(std::upper_bound(s.begin(), s.end(), anchor_t + span) - s.begin());
     std::vector<AlignPair> next = Pair(s, o, lo, hi, a, b, tol);
     AlignResult fit;
     if (next.size() >= 3 && FitPairs(next, &fit)) {
@@ -231,12 +233,12 @@ absl::StatusOr<AlignResult> AlignPulses(const std::vector<double>& session_in,
       b = fit.b;
     }
     const bool covers = anchor_t - span <= s.front() && anchor_t + span >= s.back();
-    const bool same = next.size() == pairs.size() &&
-                      std::equal(next.begin(), next.end(), pairs.begin(),
-                                 [](const AlignPair& x, const AlignPair& y) {
-                                   return x.session_index == y.session_index &&
-                                          x.other_index == y.other_index;
-                                 });
+    const bool same =
+        next.size() == pairs.size() && std::equal(next.begin(), next.end(), pairs.begin(),
+                                                  [](const AlignPair& x, const AlignPair& y) {
+                                                    return x.session_index == y.session_index &&
+                                                           x.other_index == y.other_index;
+                                                  });
     pairs = std::move(next);
     if (covers && same) break;
     span = std::min(span * 2, whole + 1.0);

@@ -57,8 +57,8 @@ struct AlignResult {
   double rms_s = 0;
   double max_abs_s = 0;
   std::vector<AlignPair> pairs;  // in session order
-  size_t trimmed = 0;             // pairs dropped as outliers
-  size_t best_score = 0;          // step 1's winner and runner-up
+  size_t trimmed = 0;            // pairs dropped as outliers
+  size_t best_score = 0;         // step 1's winner and runner-up
   size_t runner_up_score = 0;
 };
 

@@ -79,14 +79,14 @@ absl::Status WritePulsesCsv(const std::string& path, const std::string& session,
   for (const Pulse& x : pulses) {
     const v1::SyncPulse& p = x.p;
     f << Quoted(session) << "," << x.seq << "," << Quoted(p.client_id()) << ","
-      << Quoted(p.trainer()) << "," << Word(v1::SyncDirection_Name(p.direction()), "SYNC_DIRECTION_")
-      << "," << p.line() << "," << (p.level() ? 1 : 0) << "," << (p.level() ? "rising" : "falling")
-      << "," << Word(v1::SyncReason_Name(p.reason()), "SYNC_REASON_") << "," << p.pulse_index()
-      << "," << (p.marker_sequence() == 0 ? std::string() : std::to_string(p.marker_sequence()))
-      << "," << p.event_source_ns() << "," << p.source_uncertainty_ns() << ","
-      << p.event_session_ns() << "," << Seconds(x.session_s) << "," << p.uncertainty_ns() << ","
-      << p.arrival_session_ns() << "," << Quoted(p.device()) << "," << (p.simulated() ? 1 : 0)
-      << "\n";
+      << Quoted(p.trainer()) << ","
+      << Word(v1::SyncDirection_Name(p.direction()), "SYNC_DIRECTION_") << "," << p.line() << ","
+      << (p.level() ? 1 : 0) << "," << (p.level() ? "rising" : "falling") << ","
+      << Word(v1::SyncReason_Name(p.reason()), "SYNC_REASON_") << "," << p.pulse_index() << ","
+      << (p.marker_sequence() == 0 ? std::string() : std::to_string(p.marker_sequence())) << ","
+      << p.event_source_ns() << "," << p.source_uncertainty_ns() << "," << p.event_session_ns()
+      << "," << Seconds(x.session_s) << "," << p.uncertainty_ns() << "," << p.arrival_session_ns()
+      << "," << Quoted(p.device()) << "," << (p.simulated() ? 1 : 0) << "\n";
   }
   f.close();
   if (!f) return absl::UnavailableError("write failed: " + path);
@@ -139,8 +139,9 @@ absl::StatusOr<std::vector<Pulse>> ReadPulsesCsv(const std::string& path) {
     for (size_t i = 0; std::getline(ss, name, ','); ++i) col[name] = i;
   }
   if (col.count("session_s") == 0) {
-    return absl::InvalidArgumentError(path + ": no session_s column (a sync_pulses.csv from "
-                                             "tickmark align --pulses-out is expected)");
+    return absl::InvalidArgumentError(path +
+                                      ": no session_s column (a sync_pulses.csv from "
+                                      "tickmark align --pulses-out is expected)");
   }
   std::vector<Pulse> out;
   int n = 1;
@@ -267,8 +268,9 @@ int RunAlign(const CommonFlags& common, const AlignFlags& f) {
               other->size() - r.pairs.size());
   std::printf("  (session_s: seconds since the session opened, on session time)\n");
 
-  const std::string residuals =
-      !f.residuals.empty() ? f.residuals : (f.out.empty() ? std::string() : f.out + ".residuals.csv");
+  const std::string residuals = !f.residuals.empty()
+                                    ? f.residuals
+                                    : (f.out.empty() ? std::string() : f.out + ".residuals.csv");
   if (!f.out.empty()) {
     std::ofstream o(f.out, std::ios::trunc);
     o << "{\n  \"session\": \"" << f.session << "\",\n"

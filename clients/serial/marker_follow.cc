@@ -18,7 +18,9 @@ MarkerFollower::MarkerFollower(std::shared_ptr<grpc::Channel> channel, std::stri
 
 MarkerFollower::~MarkerFollower() { Stop(); }
 
-void MarkerFollower::Start() { thread_ = std::thread([this] { Run(); }); }
+void MarkerFollower::Start() {
+  thread_ = std::thread([this] { Run(); });
+}
 
 void MarkerFollower::Stop() {
   stop_ = true;

@@ -134,11 +134,16 @@ std::optional<ModemLine> ParseModemLine(std::string_view name) {
 
 const char* ModemLineName(ModemLine line) {
   switch (line) {
-    case ModemLine::kDtr: return "DTR";
-    case ModemLine::kRts: return "RTS";
-    case ModemLine::kCts: return "CTS";
-    case ModemLine::kDsr: return "DSR";
-    case ModemLine::kDcd: return "DCD";
+    case ModemLine::kDtr:
+      return "DTR";
+    case ModemLine::kRts:
+      return "RTS";
+    case ModemLine::kCts:
+      return "CTS";
+    case ModemLine::kDsr:
+      return "DSR";
+    case ModemLine::kDcd:
+      return "DCD";
   }
   return "?";
 }
@@ -147,11 +152,16 @@ bool IsOutputLine(ModemLine line) { return line == ModemLine::kDtr || line == Mo
 
 int ModemLineBit(ModemLine line) {
   switch (line) {
-    case ModemLine::kDtr: return TIOCM_DTR;
-    case ModemLine::kRts: return TIOCM_RTS;
-    case ModemLine::kCts: return TIOCM_CTS;
-    case ModemLine::kDsr: return TIOCM_DSR;
-    case ModemLine::kDcd: return TIOCM_CAR;
+    case ModemLine::kDtr:
+      return TIOCM_DTR;
+    case ModemLine::kRts:
+      return TIOCM_RTS;
+    case ModemLine::kCts:
+      return TIOCM_CTS;
+    case ModemLine::kDsr:
+      return TIOCM_DSR;
+    case ModemLine::kDcd:
+      return TIOCM_CAR;
   }
   return 0;
 }
@@ -166,8 +176,9 @@ absl::StatusOr<std::unique_ptr<ModemLines>> OpenTtyModemLines(const std::string&
     errno = err;
     if (err == ENOTTY || err == EINVAL) {
       return absl::FailedPreconditionError(
-          path + " has no modem control lines (a pseudo-terminal or not a serial port); "
-                 "use a serial port or USB-serial adapter, or --sync-simulate to rehearse");
+          path +
+          " has no modem control lines (a pseudo-terminal or not a serial port); "
+          "use a serial port or USB-serial adapter, or --sync-simulate to rehearse");
     }
     return Errno("TIOCMGET " + path);
   }
@@ -276,7 +287,9 @@ SyncOutRunner::SyncOutRunner(SyncOutEngine* engine, EdgeFn on_edge, ErrorFn on_e
 
 SyncOutRunner::~SyncOutRunner() { Stop(); }
 
-void SyncOutRunner::Start() { thread_ = std::thread([this] { Run(); }); }
+void SyncOutRunner::Start() {
+  thread_ = std::thread([this] { Run(); });
+}
 
 void SyncOutRunner::QueueMarker(uint64_t marker_sequence) {
   std::lock_guard<std::mutex> l(mu_);

@@ -68,11 +68,11 @@ std::unique_ptr<ModemLines> SimulatedModemLines(std::string device);
 struct SyncEdge {
   ModemLine line = ModemLine::kDtr;
   bool out = true;
-  bool level = false;         // after the edge
-  int64_t event_ns = 0;       // middle of the bracket, on the clock
+  bool level = false;    // after the edge
+  int64_t event_ns = 0;  // middle of the bracket, on the clock
   int64_t half_bracket_ns = 0;
   enum class Reason { kInterval, kMarker, kExternal } reason = Reason::kInterval;
-  uint64_t pulse_index = 0;   // from 1; both edges of a pulse share it
+  uint64_t pulse_index = 0;  // from 1; both edges of a pulse share it
   uint64_t marker_sequence = 0;
 };
 

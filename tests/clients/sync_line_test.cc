@@ -197,8 +197,9 @@ TEST(SyncLineTest, InputEdgesAreTimedAtTheWakeUpAndCountRises) {
   FakeMonotonic clock;
   FakeLines lines(&clock, 4'000);  // the TIOCMGET takes 4 µs
   std::vector<SyncEdge> seen;
-  SyncInWatcher w(&lines, {ModemLine::kCts, ModemLine::kDcd}, &clock,
-                  [&](const SyncEdge& e) { seen.push_back(e); }, [](const absl::Status&) {});
+  SyncInWatcher w(
+      &lines, {ModemLine::kCts, ModemLine::kDcd}, &clock,
+      [&](const SyncEdge& e) { seen.push_back(e); }, [](const absl::Status&) {});
   lines.Push(2'000'000'000, TIOCM_CTS);
   lines.Push(2'010'000'000, 0);
   lines.Push(3'000'000'000, TIOCM_CTS | TIOCM_RI);  // CTS rises again; RI is not watched
