@@ -19,7 +19,6 @@
 #include "clients/common/channel.h"
 #include "clients/common/client_id.h"
 #include "clients/common/connection_flags.h"
-#include "server/core/time.h"
 #include "clients/common/stream_client.h"
 #include "clients/common/token.h"
 #include "clients/keys/calibrate.h"
@@ -29,6 +28,7 @@
 #include "clients/serial/serial_source.h"
 #include "clients/serial/sync_line.h"
 #include "server/base/flags.h"
+#include "server/core/time.h"
 
 #ifndef TICKMARK_VERSION
 #define TICKMARK_VERSION "dev"
@@ -190,16 +190,14 @@ struct SyncFlags {
 
 void DefineSyncFlags(CLI::App& app, SyncFlags* s) {
   const std::string g = "Sync lines (docs/sync.md)";
-  app.add_option("--sync-out", s->out,
-                 "drive this modem control line with sync pulses: DTR or RTS")
+  app.add_option("--sync-out", s->out, "drive this modem control line with sync pulses: DTR or RTS")
       ->type_name("LINE")
       ->group(g);
   app.add_option("--sync-in", s->in,
                  "record edges of this input line as sync pulses: CTS, DSR or DCD (repeatable)")
       ->type_name("LINE")
       ->group(g);
-  app.add_option("--sync-port", s->port,
-                 "serial device whose lines are used (default: --port)")
+  app.add_option("--sync-port", s->port, "serial device whose lines are used (default: --port)")
       ->type_name("PATH")
       ->group(g);
   app.add_option("--sync-interval", s->interval_s, "mean seconds between interval pulses")
@@ -290,7 +288,8 @@ int Main(int argc, char** argv) {
     sync_in.push_back(*line);
   }
   if (!sync.active() && (sync.simulate || !sync.marker_token_file.empty() || !sync.port.empty())) {
-    return Usage("--sync-simulate, --sync-port and --sync-marker-token need --sync-out or --sync-in");
+    return Usage(
+        "--sync-simulate, --sync-port and --sync-marker-token need --sync-out or --sync-in");
   }
   if (!sync.marker_token_file.empty() && !sync_out) {
     return Usage("--sync-marker-token needs --sync-out (marker pulses are sent, not read)");
@@ -467,9 +466,8 @@ int Main(int argc, char** argv) {
       so.interval = Duration::FromSeconds(sync.interval_s);
       so.jitter = sync.jitter;
       so.width = Duration::FromSeconds(sync.width_ms / 1e3);
-      so.seed = sync.seed->count() > 0
-                    ? sync.seed_value
-                    : static_cast<uint64_t>(SystemMonotonic::Get()->NowNanos());
+      so.seed = sync.seed->count() > 0 ? sync.seed_value
+                                       : static_cast<uint64_t>(SystemMonotonic::Get()->NowNanos());
       engine = std::make_unique<SyncOutEngine>(so, lines.get(), SystemMonotonic::Get());
       if (absl::Status s3 = engine->Start(); !s3.ok()) {
         sync_error(s3);
