@@ -245,3 +245,79 @@ def test_sync_out_pulses_land_in_the_ledger_and_align(server, tmp_path):
     assert m["a"] == pytest.approx(a_np, abs=1e-7)
     assert abs(m["a"] + 37.5) < 1e-3
     assert "offset" in p.stdout
+
+
+TIOCM_LOOP = 0x8000  # <asm-generic/termios.h>: the UART's loopback bit (MCR bit 4)
+
+
+@pytest.mark.skipif(not os.environ.get("TICKMARK_SYNC_TTY"),
+                    reason="set TICKMARK_SYNC_TTY to a 16550-type serial port this test may "
+                           "put in loopback (never one with anything attached)")
+def test_sync_out_moves_a_real_line(server, tmp_path):
+    """On a real UART (TICKMARK_SYNC_TTY, e.g. /dev/ttyS0 with nothing
+    attached) in its internal loopback mode, DSR follows DTR (TIA-232 /
+    16550 data sheet: loopback wires DTR to DSR, RTS to CTS). A thread polls
+    TIOCMGET every ~0.2 ms on CLOCK_MONOTONIC, the clock tickmark-serial
+    stamps with, and every DSR change it sees must be a recorded DTR edge
+    within the polling gap. Not run by default: it drives a real port."""
+    import fcntl
+    import struct
+    import termios
+    dev = os.environ["TICKMARK_SYNC_TTY"]
+    fd = os.open(dev, os.O_RDWR | os.O_NOCTTY | os.O_NONBLOCK)
+
+    def bits():
+        return struct.unpack("i", fcntl.ioctl(fd, termios.TIOCMGET, struct.pack("i", 0)))[0]
+
+    fcntl.ioctl(fd, termios.TIOCMBIS, struct.pack("i", TIOCM_LOOP))
+    seen, stop = [], threading.Event()
+
+    def poll():
+        prev = time.monotonic_ns()
+        last = bits() & termios.TIOCM_DSR
+        while not stop.is_set():
+            before = time.monotonic_ns()
+            now = bits() & termios.TIOCM_DSR
+            if now != last:
+                # The change happened after the previous read began and
+                # before this one returned.
+                seen.append((prev, time.monotonic_ns(), bool(now)))
+                last = now
+            prev = before
+            time.sleep(0.0002)
+
+    sid, admin = server.session(title="sync-hw")
+    trainer = tmp_path / "trainer.token"
+    trainer.write_text(server.token(sid, admin, "trainer", "hw") + "\n")
+    os.chmod(trainer, 0o600)
+    box_master, box_slave = pty.openpty()
+    poller = threading.Thread(target=poll, daemon=True)
+    poller.start()
+    proc = subprocess.Popen(
+        [os.path.join(BIN, "tickmark-serial"), "--server", server.address, "--token-file",
+         str(trainer), "--port", os.ttyname(box_slave), "--profile", PROFILE, "--sync-out", "DTR",
+         "--sync-port", dev, "--sync-interval", "0.1", "--sync-width", "20"],
+        stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
+    try:
+        time.sleep(3)
+    finally:
+        proc.send_signal(signal.SIGINT)
+        code = proc.wait(30)
+        stop.set()
+        poller.join(5)
+        fcntl.ioctl(fd, termios.TIOCMBIC, struct.pack("i", TIOCM_LOOP))
+        os.close(fd)
+        os.close(box_master)
+        os.close(box_slave)
+    assert code == 0, proc.stderr.read()
+    rows = rows_of(server, sid, tmp_path / "hw.csv")
+    assert all(r["simulated"] == "0" and r["device"] == dev for r in rows)
+    assert len(rows) >= 20 and len(seen) == len(rows), (len(seen), len(rows))
+    for (before, after, level), r in zip(seen, rows):
+        assert level == (r["level"] == "1")
+        edge = int(r["event_source_ns"])
+        half = int(r["source_uncertainty_ns"])
+        # Causality, no timing bound: the ioctl that made the edge overlaps
+        # the interval between the read before and the read that saw it.
+        assert edge - half <= after, (before, after, edge)
+        assert edge + half >= before, (before, after, edge)
