@@ -312,6 +312,10 @@ def test_sync_out_moves_a_real_line(server, tmp_path):
     assert code == 0, proc.stderr.read()
     rows = rows_of(server, sid, tmp_path / "hw.csv")
     assert all(r["simulated"] == "0" and r["device"] == dev for r in rows)
+    # Opening a tty asserts DTR and RTS (termios(3), HUPCL/open); the first
+    # thing tickmark-serial does is release the line, unrecorded.
+    if seen and not seen[0][2] and rows and rows[0]["level"] == "1":
+        seen = seen[1:]
     assert len(rows) >= 20 and len(seen) == len(rows), (len(seen), len(rows))
     for (before, after, level), r in zip(seen, rows):
         assert level == (r["level"] == "1")
