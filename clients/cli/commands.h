@@ -20,6 +20,7 @@ void AddExportCommand(CommandTable& table);    // export
 void AddCalibrateCommands(CommandTable& table);  // calibrate new|list|show|plot|apply
 void AddRetimeCommand(CommandTable& table);      // retime
 void AddInviteCommand(CommandTable& table);      // invite (web page join links)
+void AddAlignCommand(CommandTable& table);       // align (sync pulses, docs/sync.md)
 
 }  // namespace tickmark::cli
 

@@ -92,7 +92,7 @@ void AddExportCommand(CommandTable& table) {
   cmd->add_option("--out", f->out_path, "file to write (default: stdout)")->type_name("FILE");
   cmd->add_option("--kinds", f->kinds,
                   "only these kinds, comma-separated: feedback, step, probe, clock_model, "
-                  "marker, client_event, session_event, credit, label, unmatched, kernel");
+                  "marker, client_event, session_event, credit, label, unmatched, kernel, sync_pulse");
   cmd->add_option("--from", f->from, "first sequence number")->check(CLI::NonNegativeNumber);
   cmd->add_flag("--follow", f->follow, "keep following live records until interrupted");
 }

@@ -153,6 +153,7 @@ int64_t RecordSessionNs(const tickmark::v1::Record& r) {
     case tickmark::v1::Record::kStep: return r.step().start_session_ns();
     case tickmark::v1::Record::kProbe: return r.probe().t4_session_ns();
     case tickmark::v1::Record::kMarker: return r.marker().at_session_ns();
+    case tickmark::v1::Record::kSyncPulse: return r.sync_pulse().event_session_ns();
     default: return r.written_session_ns();
   }
 }

@@ -181,6 +181,10 @@ void AddShow(CommandTable& table, CLI::App* group) {
                         << "probes     " << r.probe_count() << " ("
                         << r.rejected_probe_count() << " rejected)\n"
                         << "markers    " << r.marker_count() << "\n"
+                        << (r.sync_pulse_count() > 0
+                                ? "sync       " + std::to_string(r.sync_pulse_count()) +
+                                      " pulse edges (docs/sync.md)\n"
+                                : std::string())
                         << "clients    " << r.client_count() << " (" << r.connected_clients()
                         << " connected now)\n"
                         << "late       " << r.late_count() << "\n"

@@ -108,6 +108,8 @@ struct TrainerStream {
       r->mutable_feedback()->set_client_sequence(seq);
     } else if (r->has_calibration()) {
       r->mutable_calibration()->set_client_sequence(seq);
+    } else if (r->has_sync_pulse()) {
+      r->mutable_sync_pulse()->set_client_sequence(seq);
     } else {
       return false;
     }

@@ -14,19 +14,22 @@
 #include <mutex>
 #include <string>
 #include <thread>
+#include <vector>
 
 #include "clients/common/channel.h"
 #include "clients/common/client_id.h"
 #include "clients/common/connection_flags.h"
-#include "server/core/time.h"
 #include "clients/common/stream_client.h"
 #include "clients/common/token.h"
 #include "clients/keys/calibrate.h"
 #include "clients/keys/calibration_flags.h"
 #include "clients/keys/terminal.h"
+#include "clients/serial/marker_follow.h"
 #include "clients/serial/serial_source.h"
+#include "clients/serial/sync_line.h"
 #include "server/base/flags.h"
 #include "tickmark/version.h"
+#include "server/core/time.h"
 
 namespace tickmark::serial {
 namespace {
@@ -46,6 +49,15 @@ the varying delay (USB polling, scheduling) is removed; the minimum transit
 stays as a small constant late bias. Lines without a time, and raw bytes,
 are stamped with the time read() returned them: later than the press by the
 transmission time and USB-serial latency, which is not corrected.
+
+Sync lines (docs/sync.md): --sync-out DTR (or RTS) sends a pulse on that
+modem control line at a jittered interval (--sync-interval, default 1 s)
+and, with --sync-marker-token (an observer token of the session), at every
+marker; --sync-in CTS (DSR, DCD) records another system's pulses. Each edge
+is timed on CLOCK_MONOTONIC by readings right around the ioctl and stored as
+a sync_pulse record; `tickmark align` fits another recorder's pulse times to
+them. Never wire a line to equipment attached to a person without your
+lab's biomedical engineering / safety approval and an isolated input.
 
 %CALIBRATION%
 Exit status: 0 when everything sent was acknowledged; 1 otherwise; 2 for
@@ -158,6 +170,77 @@ class SerialAnswers final : public keys::ExternalAnswers {
   std::string note_;
 };
 
+// The sync line flags (docs/sync.md).
+struct SyncFlags {
+  std::string out;
+  std::vector<std::string> in;
+  std::string port;
+  double interval_s = 1.0;
+  double jitter = 0.25;
+  double width_ms = 10;
+  CLI::Option* seed = nullptr;
+  uint64_t seed_value = 0;
+  std::string marker_token_file;
+  bool simulate = false;
+  bool active() const { return !out.empty() || !in.empty(); }
+};
+
+void DefineSyncFlags(CLI::App& app, SyncFlags* s) {
+  const std::string g = "Sync lines (docs/sync.md)";
+  app.add_option("--sync-out", s->out, "drive this modem control line with sync pulses: DTR or RTS")
+      ->type_name("LINE")
+      ->group(g);
+  app.add_option("--sync-in", s->in,
+                 "record edges of this input line as sync pulses: CTS, DSR or DCD (repeatable)")
+      ->type_name("LINE")
+      ->group(g);
+  app.add_option("--sync-port", s->port, "serial device whose lines are used (default: --port)")
+      ->type_name("PATH")
+      ->group(g);
+  app.add_option("--sync-interval", s->interval_s, "mean seconds between interval pulses")
+      ->check(CLI::Range(0.05, 3600.0))
+      ->capture_default_str()
+      ->group(g);
+  app.add_option("--sync-jitter", s->jitter,
+                 "each gap is drawn from interval × [1 − J, 1 + J] so the train has no period")
+      ->check(CLI::Range(0.0, 0.9))
+      ->capture_default_str()
+      ->group(g);
+  app.add_option("--sync-width", s->width_ms,
+                 "milliseconds a pulse holds the line asserted; 0: toggle (one edge per pulse)")
+      ->check(CLI::Range(0.0, 1000.0))
+      ->capture_default_str()
+      ->group(g);
+  s->seed = app.add_option("--sync-seed", s->seed_value,
+                           "seed of the gaps' random draw (default: from the clock)")
+                ->group(g);
+  app.add_option("--sync-marker-token", s->marker_token_file,
+                 "observer token file of the session: send a pulse at each new marker")
+      ->type_name("FILE")
+      ->group(g);
+  app.add_flag("--sync-simulate", s->simulate,
+               "move no line (no ioctl); time and record the pulses as if (rehearsal, tests)")
+      ->group(g);
+}
+
+tickmark::v1::SyncPulseMessage ToMessage(const SyncEdge& e, const std::string& device,
+                                         bool simulated) {
+  tickmark::v1::SyncPulseMessage m;
+  m.set_direction(e.out ? tickmark::v1::SYNC_DIRECTION_OUT : tickmark::v1::SYNC_DIRECTION_IN);
+  m.set_line(ModemLineName(e.line));
+  m.set_level(e.level);
+  m.set_event_source_ns(e.event_ns);
+  m.set_source_uncertainty_ns(e.half_bracket_ns);
+  m.set_reason(e.reason == SyncEdge::Reason::kMarker     ? tickmark::v1::SYNC_REASON_MARKER
+               : e.reason == SyncEdge::Reason::kExternal ? tickmark::v1::SYNC_REASON_EXTERNAL
+                                                         : tickmark::v1::SYNC_REASON_INTERVAL);
+  m.set_pulse_index(e.pulse_index);
+  m.set_marker_sequence(e.marker_sequence);
+  m.set_device(device);
+  m.set_simulated(simulated);
+  return m;
+}
+
 int Usage(const std::string& message) {
   std::cerr << kProgram << ": " << message << "\n";
   return 2;
@@ -186,7 +269,39 @@ int Main(int argc, char** argv) {
   app.add_flag("--verbose", verbose, "one line per event; at exit the timing report")
       ->group(output);
   keys::AddCalibrationFlags(app, &calibration);
+  SyncFlags sync;
+  DefineSyncFlags(app, &sync);
   if (auto exit = ParseCommandLine(app, argc, argv)) return *exit;
+
+  std::optional<ModemLine> sync_out;
+  std::vector<ModemLine> sync_in;
+  if (!sync.out.empty()) {
+    sync_out = ParseModemLine(sync.out);
+    if (!sync_out || !IsOutputLine(*sync_out)) return Usage("--sync-out must be DTR or RTS");
+  }
+  for (const std::string& name : sync.in) {
+    auto line = ParseModemLine(name);
+    if (!line || IsOutputLine(*line)) return Usage("--sync-in must be CTS, DSR or DCD");
+    sync_in.push_back(*line);
+  }
+  if (!sync.active() && (sync.simulate || !sync.marker_token_file.empty() || !sync.port.empty())) {
+    return Usage(
+        "--sync-simulate, --sync-port and --sync-marker-token need --sync-out or --sync-in");
+  }
+  if (!sync.marker_token_file.empty() && !sync_out) {
+    return Usage("--sync-marker-token needs --sync-out (marker pulses are sent, not read)");
+  }
+  if (calibration.calibrate && sync.active()) {
+    return Usage("--calibrate does not send sync pulses; run them in the session itself");
+  }
+  std::optional<client::Token> marker_token;
+  if (!sync.marker_token_file.empty()) {
+    client::TokenFlags tf;
+    tf.token_file = sync.marker_token_file;
+    auto t = client::ReadToken(tf);
+    if (!t.ok()) return Usage("--sync-marker-token: " + std::string(t.status().message()));
+    marker_token = *std::move(t);
+  }
 
   auto profile = LoadSerialProfile(box.profile);
   if (!profile.ok()) return Usage(std::string(profile.status().message()));
@@ -284,6 +399,38 @@ int Main(int argc, char** argv) {
     std::fprintf(stderr, "%s: server %s%s%s\n", kProgram, client::StreamStateName(s.state),
                  s.last_error.ok() ? "" : ": ", s.last_error.ok() ? "" : s.last_error.ToString().c_str());
   };
+  cb.on_request_ack = [&](const client::AckInfo& a, const tickmark::v1::TrainerMessage& m) {
+    if (!verbose || !m.has_sync_pulse()) return;
+    std::lock_guard<std::mutex> l(out_mu);
+    std::fprintf(stderr, "%s: sync %s %s pulse %llu at session %.6f s ±%.3f ms\n", kProgram,
+                 m.sync_pulse().line().c_str(), m.sync_pulse().level() ? "rise" : "fall",
+                 static_cast<unsigned long long>(m.sync_pulse().pulse_index()),
+                 static_cast<double>(a.event_session_ns) / 1e9,
+                 static_cast<double>(a.uncertainty_ns) / 1e6);
+  };
+  cb.on_request_rejected = [&](uint64_t seq, const tickmark::v1::TrainerMessage&,
+                               const absl::Status& s) {
+    std::lock_guard<std::mutex> l(out_mu);
+    std::fprintf(stderr, "%s: rejected sync pulse #%llu: %s\n", kProgram,
+                 static_cast<unsigned long long>(seq), s.ToString().c_str());
+  };
+  // The sync lines, opened before the stream so a wrong device is reported
+  // at once.
+  const std::string sync_device = sync.port.empty() ? box.port : sync.port;
+  std::unique_ptr<ModemLines> lines;
+  if (sync.active()) {
+    if (sync.simulate) {
+      lines = SimulatedModemLines(sync_device);
+    } else {
+      auto opened = OpenTtyModemLines(sync_device);
+      if (!opened.ok()) {
+        std::fprintf(stderr, "%s: --sync: %s\n", kProgram,
+                     std::string(opened.status().message()).c_str());
+        return 1;
+      }
+      lines = *std::move(opened);
+    }
+  }
   int code = 2;
   if (absl::Status s = stream.Connect(std::move(options), std::move(cb)); !s.ok()) {
     std::fprintf(stderr, "%s: %s\n", kProgram, s.ToString().c_str());
@@ -293,6 +440,67 @@ int Main(int argc, char** argv) {
       std::fprintf(stderr, "%s: %s; waiting for the port\n", kProgram, s2.ToString().c_str());
     }
     const keys::ButtonMap& map = profile->buttons;
+    // Sync pulses go out on the stream like feedback (SendRequest).
+    auto send_edge = [&](const SyncEdge& e) {
+      tickmark::v1::TrainerMessage m;
+      *m.mutable_sync_pulse() = ToMessage(e, sync_device, lines->simulated());
+      if (absl::Status s3 = stream.SendRequest(std::move(m)); !s3.ok()) {
+        std::lock_guard<std::mutex> l(out_mu);
+        std::fprintf(stderr, "%s: sync pulse not sent: %s\n", kProgram, s3.ToString().c_str());
+      }
+    };
+    auto sync_error = [&](const absl::Status& s3) {
+      std::lock_guard<std::mutex> l(out_mu);
+      std::fprintf(stderr, "%s: sync line: %s\n", kProgram, s3.ToString().c_str());
+    };
+    std::unique_ptr<SyncOutEngine> engine;
+    std::unique_ptr<SyncOutRunner> runner;
+    std::unique_ptr<SyncInWatcher> watcher_in;
+    std::unique_ptr<MarkerFollower> markers;
+    if (sync_out) {
+      SyncOutOptions so;
+      so.line = *sync_out;
+      so.interval = Duration::FromSeconds(sync.interval_s);
+      so.jitter = sync.jitter;
+      so.width = Duration::FromSeconds(sync.width_ms / 1e3);
+      so.seed = sync.seed->count() > 0 ? sync.seed_value
+                                       : static_cast<uint64_t>(SystemMonotonic::Get()->NowNanos());
+      engine = std::make_unique<SyncOutEngine>(so, lines.get(), SystemMonotonic::Get());
+      if (absl::Status s3 = engine->Start(); !s3.ok()) {
+        sync_error(s3);
+        quit = true;
+      } else {
+        runner = std::make_unique<SyncOutRunner>(engine.get(), send_edge, sync_error);
+        runner->Start();
+      }
+      if (marker_token) {
+        markers = std::make_unique<MarkerFollower>(
+            grpc::CreateChannel(connection.channel.target, channel->credentials),
+            marker_token->value, [&] { return stream.status().session_id; },
+            [&](uint64_t seq, const std::string& text) {
+              if (runner) runner->QueueMarker(seq);
+              if (verbose) {
+                std::lock_guard<std::mutex> l(out_mu);
+                std::fprintf(stderr, "%s: marker #%llu \"%s\": pulse\n", kProgram,
+                             static_cast<unsigned long long>(seq), text.c_str());
+              }
+            },
+            [&](const std::string& note) {
+              if (quiet) return;
+              std::lock_guard<std::mutex> l(out_mu);
+              std::fprintf(stderr, "%s: %s\n", kProgram, note.c_str());
+            });
+        markers->Start();
+      }
+    }
+    if (!sync_in.empty()) {
+      watcher_in = std::make_unique<SyncInWatcher>(lines.get(), sync_in, SystemMonotonic::Get(),
+                                                   send_edge, sync_error);
+      if (absl::Status s3 = watcher_in->Start(); !s3.ok()) {
+        sync_error(s3);
+        quit = true;
+      }
+    }
     while (!quit) {
       SerialSource::Batch batch = port.Poll(500, wake[0]);
       std::lock_guard<std::mutex> l(out_mu);
@@ -323,6 +531,9 @@ int Main(int argc, char** argv) {
         }
       }
     }
+    if (markers) markers->Stop();
+    if (runner) runner->Stop();  // releases the line; its last edge is sent
+    if (watcher_in) watcher_in->Stop();
     absl::Status flushed = stream.Flush(After(flush_timeout_s));
     (void)stream.Close(After(2.0));
     const client::StreamStatus st = stream.status();

@@ -26,6 +26,7 @@ std::string_view RecordKindName(const Record& record) {
     case Record::kKernel: return "kernel";
     case Record::kCalibrationEvent: return "calibration_event";
     case Record::kCalibration: return "calibration";
+    case Record::kSyncPulse: return "sync_pulse";
     case Record::BODY_NOT_SET: break;
   }
   return "unknown";
@@ -47,6 +48,7 @@ tickmark::v1::RecordKind RecordKindOf(const Record& record) {
     case Record::kKernel: return RECORD_KIND_KERNEL;
     case Record::kCalibrationEvent: return RECORD_KIND_CALIBRATION_EVENT;
     case Record::kCalibration: return RECORD_KIND_CALIBRATION;
+    case Record::kSyncPulse: return RECORD_KIND_SYNC_PULSE;
     case Record::BODY_NOT_SET: break;
   }
   return RECORD_KIND_UNSPECIFIED;
@@ -66,6 +68,9 @@ std::optional<std::pair<std::string, uint64_t>> ClientKeyOf(const Record& record
   if (record.has_calibration()) {
     return std::make_pair(record.calibration().client_id(),
                           record.calibration().client_sequence());
+  }
+  if (record.has_sync_pulse()) {
+    return std::make_pair(record.sync_pulse().client_id(), record.sync_pulse().client_sequence());
   }
   return std::nullopt;
 }

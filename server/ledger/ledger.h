@@ -113,6 +113,7 @@ struct RecordCounts {
   uint64_t late = 0;
   uint64_t unmatched = 0;
   uint64_t rejected_probes = 0;
+  uint64_t sync_pulses = 0;  // SyncPulse records (0 where a backend does not count them)
 };
 
 // Called on the writer thread once a batch is durable (status OK) or has

@@ -97,6 +97,7 @@ absl::Status Summarize(SessionHub* hub, const ledger::SessionRow& row, v1::Sessi
   out->set_late_count(counts->late);
   out->set_unmatched_count(counts->unmatched);
   out->set_rejected_probe_count(counts->rejected_probes);
+  out->set_sync_pulse_count(counts->sync_pulses);
   out->set_default_kernel(DefaultKernelOf(hub, row.id));
   FillLedgerHealth(hub->ledger(), out->mutable_ledger_health());
   out->set_server_version(kVersion);

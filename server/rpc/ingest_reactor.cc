@@ -904,6 +904,44 @@ void IngestReactor<Side>::HandleCalibration(const v1::CalibrationMessage& m, Ses
   AppendClient(std::move(r));
 }
 
+// A sync pulse's edge is mapped like a calibration event's time: through the
+// round-trip model (a pulse is shared with another recorder, so the route
+// must be the one every pulse of the client takes); its source bracket is
+// added to the uncertainty.
+template <typename Side>
+void IngestReactor<Side>::HandleSyncPulse(const v1::SyncPulseMessage& m, SessionTime arrival) {
+  const LiveService::Options& opt = service_->options();
+  const uint64_t cseq = m.client_sequence();
+  if (absl::Status s = ValidateSyncPulse(m); !s.ok()) return Reject(cseq, s);
+  absl::Status map_error;
+  auto [mapped, mapped_uncertainty] = Map(m.event_source_ns(), &map_error);
+  if (!map_error.ok()) return Reject(cseq, map_error);
+  const Duration bracket = Duration::Nanos(m.source_uncertainty_ns());
+  const EventTimeVerdict v = JudgeEventTime(mapped, mapped_uncertainty + bracket, arrival,
+                                            model_.ready(), opt.event_future_tolerance, opt.limits);
+  if (!v.status.ok()) return Reject(cseq, v.status);
+  v1::Record r;
+  r.set_written_session_ns(arrival.nanos());
+  v1::SyncPulse* p = r.mutable_sync_pulse();
+  p->set_client_id(client_.client_id());
+  p->set_client_sequence(cseq);
+  p->set_trainer(principal_.subject);
+  p->set_direction(m.direction());
+  p->set_line(m.line());
+  p->set_level(m.level());
+  p->set_event_source_ns(m.event_source_ns());
+  p->set_source_uncertainty_ns(m.source_uncertainty_ns());
+  p->set_event_session_ns(v.event.nanos());
+  p->set_uncertainty_ns(v.uncertainty.nanos());
+  p->set_arrival_session_ns(arrival.nanos());
+  p->set_reason(m.reason());
+  p->set_pulse_index(m.pulse_index());
+  p->set_marker_sequence(m.marker_sequence());
+  p->set_device(m.device());
+  p->set_simulated(m.simulated());
+  AppendClient(std::move(r));
+}
+
 namespace {
 
 // The pool half of a calibration finish (see StartCalibrationFinish).
@@ -1021,6 +1059,7 @@ void IngestReactor<Side>::DeliverCalibration(std::optional<v1::Calibration> cali
 template <>
 void IngestReactor<TrainerSide>::HandlePayload(const In& message, SessionTime arrival) {
   if (message.has_calibration()) return HandleCalibration(message.calibration(), arrival);
+  if (message.has_sync_pulse()) return HandleSyncPulse(message.sync_pulse(), arrival);
   const v1::FeedbackMessage& f = message.feedback();
   const LiveService::Options& opt = service_->options();
   if (absl::Status s = ValidateFeedback(f, opt.limits); !s.ok()) {

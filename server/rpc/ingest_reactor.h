@@ -49,9 +49,13 @@ struct TrainerSide {
   static constexpr const char* kPayload = "feedback";
   static bool IsHello(const In& m) { return m.has_hello(); }
   static bool IsProbeReply(const In& m) { return m.has_probe_reply(); }
-  // Feedback, and the messages of a calibration run (moves, answers, finish).
-  static bool IsPayload(const In& m) { return m.has_feedback() || m.has_calibration(); }
+  // Feedback, the messages of a calibration run (moves, answers, finish)
+  // and sync pulses.
+  static bool IsPayload(const In& m) {
+    return m.has_feedback() || m.has_calibration() || m.has_sync_pulse();
+  }
   static uint64_t Sequence(const In& m) {
+    if (m.has_sync_pulse()) return m.sync_pulse().client_sequence();
     return m.has_calibration() ? m.calibration().client_sequence()
                                : m.feedback().client_sequence();
   }
@@ -127,6 +131,7 @@ class IngestReactor final : public grpc::ServerBidiReactor<grpc::ByteBuffer, grp
   // fits the calibration on the pool and stores it (calibration_builder.h).
   void HandleCalibration(const tickmark::v1::CalibrationMessage& m, SessionTime arrival);
   void StartCalibrationFinish(const tickmark::v1::CalibrationMessage& m);
+  void HandleSyncPulse(const tickmark::v1::SyncPulseMessage& m, SessionTime arrival);
   // Sends the fitted (or stored) calibration, if any, then the finish's Ack.
   void DeliverCalibration(std::optional<tickmark::v1::Calibration> calibration,
                           tickmark::v1::Ack ack);

@@ -102,6 +102,9 @@ void SessionRuntime::AppendClientRecord(Record record, AckCallback done) {
   } else if (record.has_calibration_event()) {
     event_ns = record.calibration_event().at_session_ns();
     uncertainty_ns = record.calibration_event().uncertainty_ns();
+  } else if (record.has_sync_pulse()) {
+    event_ns = record.sync_pulse().event_session_ns();
+    uncertainty_ns = record.sync_pulse().uncertainty_ns();
   }
 
   // Claim the key under the lock; every ledger call below is made without

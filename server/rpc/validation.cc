@@ -126,6 +126,36 @@ absl::Status ValidateCalibration(const v1::CalibrationMessage& m) {
   return absl::InvalidArgumentError("a calibration message needs a move, an answer or a finish");
 }
 
+absl::Status ValidateSyncPulse(const v1::SyncPulseMessage& m) {
+  if (m.client_sequence() == 0) return absl::InvalidArgumentError("client_sequence starts at 1");
+  const std::string& line = m.line();
+  switch (m.direction()) {
+    case v1::SYNC_DIRECTION_OUT:
+      if (line != "DTR" && line != "RTS") {
+        return absl::InvalidArgumentError("an outgoing sync line is DTR or RTS");
+      }
+      break;
+    case v1::SYNC_DIRECTION_IN:
+      if (line != "CTS" && line != "DSR" && line != "DCD") {
+        return absl::InvalidArgumentError("an incoming sync line is CTS, DSR or DCD");
+      }
+      break;
+    default:
+      return absl::InvalidArgumentError("sync pulse direction must be out or in");
+  }
+  if (m.event_source_ns() <= 0) return absl::InvalidArgumentError("event_source_ns must be > 0");
+  if (m.source_uncertainty_ns() < 0 || m.source_uncertainty_ns() > 1'000'000'000) {
+    return absl::InvalidArgumentError("source_uncertainty_ns must be in [0, 1 s]");
+  }
+  if (m.reason() != v1::SYNC_REASON_INTERVAL && m.reason() != v1::SYNC_REASON_MARKER &&
+      m.reason() != v1::SYNC_REASON_EXTERNAL) {
+    return absl::InvalidArgumentError("sync pulse reason must be interval, marker or external");
+  }
+  if (m.pulse_index() == 0) return absl::InvalidArgumentError("pulse_index starts at 1");
+  if (m.device().size() > 256) return absl::InvalidArgumentError("device over 256 bytes");
+  return absl::OkStatus();
+}
+
 absl::Status ValidateStep(const v1::StepMessage& s, const Limits& limits) {
   if (s.client_sequence() == 0) return absl::InvalidArgumentError("client_sequence starts at 1");
   if (s.start_agent_ns() <= 0) return absl::InvalidArgumentError("start_agent_ns must be > 0");
@@ -267,6 +297,19 @@ std::optional<std::string> DescribeContentMismatch(const v1::Record& stored,
     for (int i = 0; i < a.features_size(); ++i) {
       // Bitwise, so that a resent NaN-free vector compares exactly.
       if (a.features(i) != b.features(i)) return Cat("feature ", i);
+    }
+    return std::nullopt;
+  }
+  if (stored.has_sync_pulse()) {
+    const v1::SyncPulse& a = stored.sync_pulse();
+    const v1::SyncPulse& b = resent.sync_pulse();
+    if (a.event_source_ns() != b.event_source_ns()) {
+      return Cat("event_source_ns ", b.event_source_ns(), " (stored: ", a.event_source_ns(), ")");
+    }
+    if (a.line() != b.line()) return Cat("line ", b.line(), " (stored: ", a.line(), ")");
+    if (a.level() != b.level()) return std::string("level");
+    if (a.pulse_index() != b.pulse_index()) {
+      return Cat("pulse_index ", b.pulse_index(), " (stored: ", a.pulse_index(), ")");
     }
     return std::nullopt;
   }

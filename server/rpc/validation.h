@@ -47,6 +47,11 @@ absl::Status ValidateCalibration(const tickmark::v1::CalibrationMessage& m);
 // The fields of one step message (not its time, not its order).
 absl::Status ValidateStep(const tickmark::v1::StepMessage& s, const Limits& limits);
 
+// A sync pulse (docs/sync.md): a sequence, a direction, a line that fits it
+// (DTR/RTS out, CTS/DSR/DCD in), a positive event time, a bracket of at most
+// 1 s, a reason, a pulse index from 1 and a device path of at most 256 bytes.
+absl::Status ValidateSyncPulse(const tickmark::v1::SyncPulseMessage& m);
+
 // A probe answer: every RFC 5905 §8 on-wire difference must be computable
 // in 64 bits (an absurd pair such as t2 = INT64_MIN, t3 = INT64_MAX would
 // wrap and move the clock model by hours). `t1` and `t4` are the server's

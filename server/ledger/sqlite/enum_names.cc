@@ -50,4 +50,12 @@ std::string SessionEventWord(tickmark::v1::SessionEvent::Kind kind) {
   return Word(tickmark::v1::SessionEvent::Kind_Name(kind), "KIND_");
 }
 
+std::string SyncDirectionWord(tickmark::v1::SyncDirection direction) {
+  return Word(tickmark::v1::SyncDirection_Name(direction), "SYNC_DIRECTION_");
+}
+
+std::string SyncReasonWord(tickmark::v1::SyncReason reason) {
+  return Word(tickmark::v1::SyncReason_Name(reason), "SYNC_REASON_");
+}
+
 }  // namespace tickmark::ledger

@@ -23,6 +23,9 @@ tickmark::v1::SourceKind SourceKindFromWord(std::string_view word);
 std::string CalibrationEventWord(tickmark::v1::CalibrationEvent::Kind kind);
 std::string ClientEventWord(tickmark::v1::ClientEvent::Kind kind);
 std::string SessionEventWord(tickmark::v1::SessionEvent::Kind kind);
+// "out", "in"; "interval", "marker", "external".
+std::string SyncDirectionWord(tickmark::v1::SyncDirection direction);
+std::string SyncReasonWord(tickmark::v1::SyncReason reason);
 
 }  // namespace tickmark::ledger
 

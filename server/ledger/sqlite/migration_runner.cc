@@ -1,5 +1,7 @@
 #include "server/ledger/sqlite/migration_runner.h"
 
+#include <set>
+
 #include "server/base/log.h"
 #include "server/base/strings.h"
 #include "server/ledger/sqlite/migrations.h"
@@ -14,21 +16,31 @@ absl::Status ApplyMigrations(sqlite3* db) {
            " version INTEGER PRIMARY KEY, description TEXT NOT NULL,"
            " applied_utc TEXT NOT NULL DEFAULT (strftime('%Y-%m-%dT%H:%M:%SZ','now')));");
   if (!s.ok()) return s;
-  int64_t have = 0;
+  // The versions applied, not only the highest: the list may have gaps
+  // (numbers are allocated to parallel work before it lands), and a version
+  // below one already applied that arrives later is still applied.
+  std::set<int64_t> applied;
   {
-    Statement q(db, "SELECT COALESCE(MAX(version), 0) FROM schema_migrations");
-    auto row = q.Step();
-    if (!row.ok()) return row.status();
-    have = q.Int(0);
+    Statement q(db, "SELECT version FROM schema_migrations");
+    while (true) {
+      auto row = q.Step();
+      if (!row.ok()) return row.status();
+      if (!*row) break;
+      applied.insert(q.Int(0));
+    }
   }
   auto all = SqliteMigrations();
-  if (have > static_cast<int64_t>(all.size())) {
-    return absl::FailedPreconditionError(Cat("ledger schema version ", have,
-                                             " is newer than this program knows (", all.size(),
-                                             "); use a newer tickmarkd"));
+  std::set<int64_t> known;
+  for (const Migration& m : all) known.insert(m.version);
+  for (int64_t v : applied) {
+    if (known.count(v) == 0) {
+      return absl::FailedPreconditionError(Cat("ledger schema version ", v,
+                                               " is newer than this program knows (it knows ",
+                                               *known.rbegin(), "); use a newer tickmarkd"));
+    }
   }
   for (const Migration& m : all) {
-    if (m.version <= have) continue;
+    if (applied.count(m.version) > 0) continue;
     if (s = Exec(db, "BEGIN IMMEDIATE"); !s.ok()) return s;
     s = Exec(db, m.sql);
     if (s.ok()) {

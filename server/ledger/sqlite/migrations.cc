@@ -317,6 +317,37 @@ CREATE TABLE derived_time (
   PRIMARY KEY (time_set, seq, kind)
 ) WITHOUT ROWID;
 )sql"},
+    {6, "sync pulses: the sync_pulse table (edges of sync lines shared with other recorders)",
+     R"sql(
+-- One row per SyncPulse record (docs/sync.md): an edge of a modem control
+-- line that a client drove (direction 'out': DTR, RTS) or saw (direction
+-- 'in': CTS, DSR, DCD). event_source_ns is on the client's CLOCK_MONOTONIC
+-- (source_uncertainty_ns: half the bracket around the ioctl);
+-- event_session_ns and uncertainty_ns are mapped like a feedback's.
+-- marker_seq names the marker record a marker pulse answers (NULL: none).
+CREATE TABLE sync_pulse (
+  session_id            TEXT NOT NULL,
+  seq                   INTEGER NOT NULL,
+  client_id             TEXT NOT NULL,
+  client_seq            INTEGER NOT NULL,
+  trainer               TEXT NOT NULL,
+  direction             TEXT NOT NULL CHECK (direction IN ('out', 'in')),
+  line                  TEXT NOT NULL,
+  level                 INTEGER NOT NULL,
+  event_source_ns       INTEGER NOT NULL,
+  source_uncertainty_ns INTEGER NOT NULL,
+  event_session_ns      INTEGER NOT NULL,
+  uncertainty_ns        INTEGER NOT NULL,
+  arrival_session_ns    INTEGER NOT NULL,
+  reason                TEXT NOT NULL,
+  pulse_index           INTEGER NOT NULL,
+  marker_seq            INTEGER,
+  device                TEXT NOT NULL,
+  simulated             INTEGER NOT NULL,
+  PRIMARY KEY (session_id, seq)
+) WITHOUT ROWID;
+CREATE INDEX sync_pulse_by_time ON sync_pulse (session_id, event_session_ns);
+)sql"},
 };
 
 }  // namespace

@@ -220,7 +220,8 @@ absl::StatusOr<RecordCounts> ReadConnection::Counts(std::string_view session_id)
               " (SELECT COUNT(*) FROM feedback WHERE session_id = ?1 AND late)"
               "  + (SELECT COUNT(*) FROM step WHERE session_id = ?1 AND late),"
               " (SELECT COUNT(*) FROM unmatched WHERE session_id = ?1 AND derived_set = 'live'),"
-              " (SELECT COUNT(*) FROM probe WHERE session_id = ?1 AND NOT accepted)");
+              " (SELECT COUNT(*) FROM probe WHERE session_id = ?1 AND NOT accepted),"
+              " (SELECT COUNT(*) FROM sync_pulse WHERE session_id = ?1)");
   auto row = q.Bind(session_id).Step();
   if (!row.ok()) return row.status();
   RecordCounts c;
@@ -232,6 +233,7 @@ absl::StatusOr<RecordCounts> ReadConnection::Counts(std::string_view session_id)
   c.late = static_cast<uint64_t>(q.Int(5));
   c.unmatched = static_cast<uint64_t>(q.Int(6));
   c.rejected_probes = static_cast<uint64_t>(q.Int(7));
+  c.sync_pulses = static_cast<uint64_t>(q.Int(8));
   return c;
 }
 

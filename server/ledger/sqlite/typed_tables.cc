@@ -200,6 +200,17 @@ absl::Status TypedTables::Insert(const Record& r) {
           .Bind(c.warnings_size() > 0).Bind(SourceKindWord(c.source_kind()))
           .Run();
     }
+    case Record::kSyncPulse: {
+      const auto& p = r.sync_pulse();
+      return Prepared("INSERT INTO sync_pulse VALUES (?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?)")
+          .Bind(sid).Bind(seq).Bind(p.client_id()).Bind(p.client_sequence()).Bind(p.trainer())
+          .Bind(SyncDirectionWord(p.direction())).Bind(p.line()).Bind(p.level())
+          .Bind(p.event_source_ns()).Bind(p.source_uncertainty_ns()).Bind(p.event_session_ns())
+          .Bind(p.uncertainty_ns()).Bind(p.arrival_session_ns()).Bind(SyncReasonWord(p.reason()))
+          .Bind(p.pulse_index()).BindOptional(static_cast<int64_t>(p.marker_sequence()))
+          .Bind(p.device()).Bind(p.simulated())
+          .Run();
+    }
     case Record::kSessionEvent: {
       const auto& e = r.session_event();
       return Prepared("INSERT INTO session_event VALUES (?,?,?,?,?)")
