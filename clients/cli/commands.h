@@ -20,6 +20,8 @@ void AddExportCommand(CommandTable& table);    // export
 void AddCalibrateCommands(CommandTable& table);  // calibrate new|list|show|plot|apply
 void AddRetimeCommand(CommandTable& table);      // retime
 void AddInviteCommand(CommandTable& table);      // invite (web page join links)
+void AddStudyCommands(CommandTable& table);      // study create|list|show|condition|enroll|schedule
+void AddReportCommand(CommandTable& table);      // report (HTML, through tickmark.report)
 
 }  // namespace tickmark::cli
 

@@ -39,6 +39,8 @@ int main(int argc, char** argv) {
   AddCalibrateCommands(table);
   AddRetimeCommand(table);
   AddInviteCommand(table);
+  AddStudyCommands(table);
+  AddReportCommand(table);
 
   if (argc < 2) {
     std::cerr << app.help();

@@ -26,6 +26,7 @@ std::string_view RecordKindName(const Record& record) {
     case Record::kKernel: return "kernel";
     case Record::kCalibrationEvent: return "calibration_event";
     case Record::kCalibration: return "calibration";
+    case Record::kStudy: return "study";
     case Record::BODY_NOT_SET: break;
   }
   return "unknown";
@@ -47,6 +48,7 @@ tickmark::v1::RecordKind RecordKindOf(const Record& record) {
     case Record::kKernel: return RECORD_KIND_KERNEL;
     case Record::kCalibrationEvent: return RECORD_KIND_CALIBRATION_EVENT;
     case Record::kCalibration: return RECORD_KIND_CALIBRATION;
+    case Record::kStudy: return RECORD_KIND_STUDY;
     case Record::BODY_NOT_SET: break;
   }
   return RECORD_KIND_UNSPECIFIED;
@@ -116,6 +118,14 @@ absl::StatusOr<TimeSetRow> Ledger::GetTimeSet(std::string_view) {
 
 absl::StatusOr<std::vector<DerivedTimeRow>> Ledger::ReadDerivedTimes(std::string_view) {
   return absl::UnimplementedError("this ledger keeps no time sets");
+}
+
+absl::StatusOr<std::vector<SessionRow>> Ledger::ListStudies() {
+  return absl::UnimplementedError("this ledger keeps no studies");
+}
+
+absl::StatusOr<SessionRow> Ledger::GetStudy(std::string_view) {
+  return absl::UnimplementedError("this ledger keeps no studies");
 }
 
 }  // namespace tickmark::ledger

@@ -206,10 +206,19 @@ class SessionHub {
   // Creates and opens a session anchored to UTC now, with `kernel` (text
   // form; empty: the server default) as its default delay kernel;
   // `pin_kernels` as in SessionRuntime::pin_kernels.
+  // `study_part` (sessions made under a study, docs/studies.md): the
+  // condition and participants stored with the session, and the allowed
+  // lateness recorded in its default kernel record (0: the server's).
+  struct StudyPart {
+    std::string condition;
+    std::vector<std::string> participants;
+    int64_t allowed_lateness_ns = 0;
+  };
   absl::StatusOr<std::shared_ptr<SessionRuntime>> Create(const std::string& title,
                                                          const std::string& study,
                                                          const std::string& kernel = "",
-                                                         bool pin_kernels = false);
+                                                         bool pin_kernels = false,
+                                                         const StudyPart& study_part = {});
   // Closes a session: records the event, ends its streams.
   absl::Status Close(const std::string& id);
   // Time on the server's own timeline (for tokens of no session).

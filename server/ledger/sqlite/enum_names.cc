@@ -50,4 +50,8 @@ std::string SessionEventWord(tickmark::v1::SessionEvent::Kind kind) {
   return Word(tickmark::v1::SessionEvent::Kind_Name(kind), "KIND_");
 }
 
+std::string StudyEventWord(tickmark::v1::StudyEvent::Kind kind) {
+  return Word(tickmark::v1::StudyEvent::Kind_Name(kind), "KIND_");
+}
+
 }  // namespace tickmark::ledger

@@ -23,6 +23,8 @@ tickmark::v1::SourceKind SourceKindFromWord(std::string_view word);
 std::string CalibrationEventWord(tickmark::v1::CalibrationEvent::Kind kind);
 std::string ClientEventWord(tickmark::v1::ClientEvent::Kind kind);
 std::string SessionEventWord(tickmark::v1::SessionEvent::Kind kind);
+// "created", "condition", "participants", "schedule", "session".
+std::string StudyEventWord(tickmark::v1::StudyEvent::Kind kind);
 
 }  // namespace tickmark::ledger
 
