@@ -56,8 +56,9 @@ int RunReport(const CommonFlags& common, const ReportFlags& f) {
   // The token travels in the environment, never on a command line (which
   // other users can read in /proc).
   setenv("TICKMARK_TOKEN", conn->token().c_str(), 1);
-  std::vector<std::string> args = {f.python, "-m", "tickmark.report", "--server",
-                                   common.connection.channel.target, "--out", f.out};
+  std::vector<std::string> args = {
+      f.python, "-m", "tickmark.report", "--server", common.connection.channel.target,
+      "--out",  f.out};
   if (!f.session.empty()) {
     args.insert(args.end(), {"--session", f.session});
   } else {

@@ -188,22 +188,16 @@ void AddShow(CommandTable& table, CLI::App* group) {
         return CallAdmin<v1::GetSessionRequest, v1::SessionSummary>(
             table.common(), &Admin::GetSession, *req, [max_ms](const v1::SessionSummary& r) {
               const auto& ss = r.session();
+              std::string participants;
+              for (const auto& p : ss.participants()) {
+                participants += (participants.empty() ? "" : " ") + p;
+              }
               std::cout << "session    " << ss.id() << "\n"
                         << "title      " << ss.title() << "\n"
                         << "study      " << (ss.study().empty() ? "-" : ss.study())
                         << (r.study_name().empty() ? "" : " (" + r.study_name() + ")") << "\n"
                         << (ss.condition().empty() ? "" : "condition  " + ss.condition() + "\n")
-                        << (ss.participants().empty() ? ""
-                                                      : "participants " +
-                                                            [&ss] {
-                                                              std::string out;
-                                                              for (const auto& p :
-                                                                   ss.participants()) {
-                                                                out += (out.empty() ? "" : " ") + p;
-                                                              }
-                                                              return out;
-                                                            }() +
-                                                            "\n")
+                        << (participants.empty() ? "" : "participants " + participants + "\n")
                         << "state      " << StateWord(ss.state()) << "\n"
                         << "kernel     "
                         << (r.default_kernel().empty() ? "-" : r.default_kernel()) << "\n"

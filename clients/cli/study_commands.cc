@@ -25,9 +25,11 @@ std::string Join(const google::protobuf::RepeatedPtrField<std::string>& items,
 
 std::string ConditionLine(const v1::StudyCondition& c) {
   std::ostringstream out;
-  out << c.name() << ": kernel " << (c.default_kernel().empty() ? "(server default)" : c.default_kernel());
+  out << c.name() << ": kernel "
+      << (c.default_kernel().empty() ? "(server default)" : c.default_kernel());
   if (c.pin_kernels()) out << ", kernels pinned";
-  if (c.allowed_lateness_ns() > 0) out << ", allowed lateness " << FormatMillis(c.allowed_lateness_ns());
+  if (c.allowed_lateness_ns() > 0)
+    out << ", allowed lateness " << FormatMillis(c.allowed_lateness_ns());
   if (!c.feedback_values().empty()) {
     out << ", values";
     for (double v : c.feedback_values()) out << " " << v;
@@ -54,11 +56,12 @@ void PrintSchedule(const v1::Study& s) {
   const auto& sc = s.schedule();
   std::cout << "schedule     " << sc.design() << ", " << sc.rows_size() << " orders\n";
   for (int i = 0; i < sc.rows_size(); ++i) {
-    std::cout << "  order " << std::setw(2) << i + 1 << "  " << Join(sc.rows(i).conditions(), " -> ")
-              << "\n";
+    std::cout << "  order " << std::setw(2) << i + 1 << "  "
+              << Join(sc.rows(i).conditions(), " -> ") << "\n";
   }
   // Each participant's order, with the conditions that have a session already.
-  std::map<std::string, std::map<std::string, std::string>> done;  // participant -> condition -> session
+  std::map<std::string, std::map<std::string, std::string>>
+      done;  // participant -> condition -> session
   for (const auto& e : s.sessions()) {
     for (const std::string& p : e.participants()) done[p][e.condition()] = e.session_id();
   }
@@ -131,11 +134,9 @@ void AddStudyCommands(CommandTable& table) {
 
   {
     auto req = std::make_shared<v1::CreateStudyRequest>();
-    CLI::App* cmd = table.AddCommand(group, "create", "Creates a study and prints its id.",
-                                     [&table, req] {
-                                       return CallStudy(table, &Admin::CreateStudy, *req,
-                                                        "study created");
-                                     });
+    CLI::App* cmd = table.AddCommand(
+        group, "create", "Creates a study and prints its id.",
+        [&table, req] { return CallStudy(table, &Admin::CreateStudy, *req, "study created"); });
     cmd->add_option_function<std::string>(
            "NAME", [req](const std::string& v) { req->set_name(v); },
            "the study's name (letters, digits, spaces, '.', '_', '-')")
@@ -151,7 +152,8 @@ void AddStudyCommands(CommandTable& table) {
           table.common(), &Admin::ListStudies, *req, [](const v1::ListStudiesResponse& r) {
             std::cout << std::left << std::setw(12) << "STUDY" << std::setw(28) << "CREATED"
                       << std::right << std::setw(11) << "CONDITIONS" << std::setw(13)
-                      << "PARTICIPANTS" << std::setw(10) << "SESSIONS" << "  NAME\n";
+                      << "PARTICIPANTS" << std::setw(10) << "SESSIONS"
+                      << "  NAME\n";
             for (const auto& s : r.studies()) {
               std::cout << std::left << std::setw(12) << s.id() << std::setw(28)
                         << FormatUtc(s.created_session_ns()) << std::right << std::setw(11)

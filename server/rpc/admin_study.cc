@@ -128,8 +128,8 @@ grpc::ServerUnaryReactor* AdminService::AddStudyCondition(grpc::CallbackServerCo
   if (!study.ok()) return Finish(ctx, study.status());
   for (const auto& c : study->conditions()) {
     if (c.name() == condition.name()) {
-      return Finish(ctx, absl::AlreadyExistsError(Cat("study ", req->study_id(),
-                                                      " has a condition '", c.name(), "'")));
+      return Finish(ctx, absl::AlreadyExistsError(
+                             Cat("study ", req->study_id(), " has a condition '", c.name(), "'")));
     }
   }
   if (study->has_schedule()) {
@@ -178,8 +178,8 @@ grpc::ServerUnaryReactor* AdminService::MakeStudySchedule(grpc::CallbackServerCo
   if (absl::Status s = NeedOperator(ctx, auth_); !s.ok()) return Finish(ctx, s);
   const std::string design = req->design().empty() ? "williams" : req->design();
   if (design != "williams" && design != "latin") {
-    return Finish(ctx, absl::InvalidArgumentError(
-                           Cat("design '", design, "': \"williams\" or \"latin\"")));
+    return Finish(
+        ctx, absl::InvalidArgumentError(Cat("design '", design, "': \"williams\" or \"latin\"")));
   }
   std::lock_guard<std::mutex> lock(StudyMutex());
   auto study = LoadStudy(hub_->ledger(), req->study_id());
@@ -210,8 +210,7 @@ grpc::ServerUnaryReactor* AdminService::MakeStudySchedule(grpc::CallbackServerCo
 }
 
 grpc::ServerUnaryReactor* AdminService::GetStudy(grpc::CallbackServerContext* ctx,
-                                                 const v1::GetStudyRequest* req,
-                                                 v1::Study* resp) {
+                                                 const v1::GetStudyRequest* req, v1::Study* resp) {
   if (absl::Status s = NeedOperator(ctx, auth_); !s.ok()) return Finish(ctx, s);
   auto study = LoadStudy(hub_->ledger(), req->study_id());
   if (!study.ok()) return Finish(ctx, study.status());

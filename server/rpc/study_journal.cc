@@ -90,7 +90,7 @@ absl::StatusOr<v1::Study> LoadStudy(ledger::Ledger* ledger, const std::string& i
 }
 
 absl::StatusOr<v1::Record> AppendStudyEvent(ledger::Ledger* ledger, const std::string& study_id,
-                                           v1::StudyEvent event, int64_t written_session_ns) {
+                                            v1::StudyEvent event, int64_t written_session_ns) {
   v1::Record r;
   r.set_written_session_ns(written_session_ns);
   *r.mutable_study() = std::move(event);

@@ -27,9 +27,9 @@ void FoldStudyRecord(const tickmark::v1::Record& record, tickmark::v1::Study* st
 // Appends one StudyEvent to the journal, written at `written_session_ns`
 // (UTC ns), and waits for its commit; returns the record as committed.
 absl::StatusOr<tickmark::v1::Record> AppendStudyEvent(ledger::Ledger* ledger,
-                                                     const std::string& study_id,
-                                                     tickmark::v1::StudyEvent event,
-                                                     int64_t written_session_ns);
+                                                      const std::string& study_id,
+                                                      tickmark::v1::StudyEvent event,
+                                                      int64_t written_session_ns);
 
 // Held across read-check-append of a study change, so two concurrent calls
 // cannot both add the same condition or participant.

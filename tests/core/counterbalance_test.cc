@@ -1,10 +1,10 @@
 #include "server/core/counterbalance.h"
 
+#include <gtest/gtest.h>
+
 #include <map>
 #include <string>
 #include <utility>
-
-#include <gtest/gtest.h>
 
 namespace tickmark {
 namespace {
@@ -33,8 +33,7 @@ TEST(Counterbalance, WilliamsFourMatchesThePublishedSquare) {
   // of residual effects of treatments", Aust. J. Sci. Res. A 2:149-168: the
   // four-treatment square ABDC / BCAD / CDBA / DACB, as reproduced in Jones &
   // Kenward, "Design and Analysis of Cross-Over Trials" (from memory).
-  EXPECT_EQ(Letters(WilliamsDesign(4)),
-            (std::vector<std::string>{"ABDC", "BCAD", "CDBA", "DACB"}));
+  EXPECT_EQ(Letters(WilliamsDesign(4)), (std::vector<std::string>{"ABDC", "BCAD", "CDBA", "DACB"}));
 }
 
 TEST(Counterbalance, WilliamsSixFirstRow) {
