@@ -96,7 +96,9 @@ def audit_status(cli: Optional[str], server: str, session_id: str,
                                text=True, timeout=30)
     except (OSError, subprocess.SubprocessError) as e:
         return {"state": "not checked", "detail": f"cannot run {cli}: {e}"}
-    if probe.returncode != 0:
+    # A CLI without the command prints its root help (and exits 0): the
+    # command's own help names it ("Usage: tickmark audit verify ...").
+    if probe.returncode != 0 or "tickmark audit verify" not in probe.stdout[:600]:
         return {"state": "not checked",
                 "detail": "this tickmark CLI has no `audit verify` command"}
     try:
@@ -175,14 +177,17 @@ def fig_feedback(d: SessionData) -> Optional[str]:
     import numpy as np
     trainers = sorted({r.feedback.trainer for r in feedback})
     times = [d.rel(r.feedback.event_session_ns) for r in feedback]
-    span = max(max(times) - min(0.0, min(times)), 1.0)
-    width = max(1.0, span / 30)
-    edges = np.arange(min(0.0, min(times)), max(times) + width, width)
+    end = max(times + [d.rel(d.session.closed_session_ns) if d.session.closed_session_ns else 0.0])
+    start = min(0.0, min(times))
+    width = max(1.0, (end - start) / 30)
+    edges = np.arange(start, end + width, width)
+    if len(edges) < 2:
+        edges = np.array([start, start + width])
     fig, (a1, a2) = plt.subplots(1, 2, figsize=(11, 3.4))
     for t in trainers:
         ts = [d.rel(r.feedback.event_session_ns) for r in feedback if r.feedback.trainer == t]
         counts, _ = np.histogram(ts, bins=edges)
-        a1.plot(edges[:-1] + width / 2, counts / width * 60, label=t)
+        a1.step(edges[:-1], counts / width * 60, where="post", marker="o", markersize=3, label=t)
     a1.set_xlabel("session time since opening (s)")
     a1.set_ylabel("feedback per minute")
     a1.set_title(f"Feedback rate per trainer ({width:.0f} s bins)")
@@ -284,7 +289,8 @@ def fig_clocks(d: SessionData) -> Optional[str]:
         by_client[r.clock_model.client_id].append(
             (d.rel(r.written_session_ns), max(r.clock_model.uncertainty_ns, 1) / 1e6))
     for client, pts in sorted(by_client.items()):
-        ax.step([p[0] for p in pts], [p[1] for p in pts], where="post", label=client)
+        ax.step([p[0] for p in pts], [p[1] for p in pts], where="post", marker="o",
+                markersize=3, label=client)
     ax.set_yscale("log")
     ax.set_xlabel("session time since opening (s)")
     ax.set_ylabel("uncertainty (ms)")
