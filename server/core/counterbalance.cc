@@ -32,7 +32,7 @@ std::vector<std::vector<int>> WilliamsDesign(int n) {
     for (int v : first) row.push_back((v + r) % n);
     rows.push_back(std::move(row));
   }
-  if (n % 2 == 1) {
+  if (n % 2 == 1 && n > 1) {
     for (int r = 0; r < n; ++r) rows.push_back(std::vector<int>(rows[r].rbegin(), rows[r].rend()));
   }
   return rows;

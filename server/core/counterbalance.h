@@ -17,7 +17,7 @@ std::vector<std::vector<int>> CyclicLatinSquare(int n);
 // is 0, 1, n-1, 2, n-2, 3, ... and row r adds r (mod n): every condition
 // appears once in every position and immediately follows every other
 // condition exactly once. For odd n no single square balances that, so the
-// design is that square followed by its mirror (each row reversed): 2n rows,
+// design (n > 1) is that square followed by its mirror (each row reversed): 2n rows,
 // every condition following every other exactly twice. Empty for n < 1.
 std::vector<std::vector<int>> WilliamsDesign(int n);
 

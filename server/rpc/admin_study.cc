@@ -111,7 +111,9 @@ grpc::ServerUnaryReactor* AdminService::CreateStudy(grpc::CallbackServerContext*
   e.set_description(req->description());
   e.set_author("operator");
   absl::Status s = AppendAndLoad(hub_, row.id, std::move(e), resp);
-  if (s.ok()) TM_LOG(kInfo) << "study " << row.id << " created (" << req->name() << ")";
+  if (s.ok()) {
+    TM_LOG(kInfo) << "study " << row.id << " created (" << req->name() << ")";
+  }
   return Finish(ctx, s);
 }
 
