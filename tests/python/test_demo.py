@@ -41,7 +41,9 @@ def test_demo_calibrates_then_compares_default_and_calibrated_kernels(tmp_path):
                for line in out.splitlines())
     report = next(line.split()[1] for line in out.splitlines() if line.startswith("report:"))
     with open(report, encoding="utf-8") as f:
-        assert f.read().count("data:image/png;base64,") >= 4
+        page = f.read()
+    assert page.count("data:image/png;base64,") >= 5
+    assert "alt='Calibration fits'" in page  # trainer-sim's calibration, applied on joining
 
 
 def test_compare_reads_precision_of_each_derived_set_from_a_ledger(tmp_path):

@@ -68,6 +68,19 @@ def load_session(channel: grpc.Channel, token: str, session_id: str) -> SessionD
                               timeout=30)
     with Subscription(channel, token, session_id, follow=False) as sub:
         records = list(sub)
+    # A trainer calibrated in another session credits here with that
+    # calibration (its kernel record names it): fetch it for the fit figure.
+    have = {r.calibration.id for r in records if r.WhichOneof("body") == "calibration"}
+    for r in list(records):
+        cal = r.kernel.calibration if r.WhichOneof("body") == "kernel" else ""
+        if cal and cal not in have:
+            have.add(cal)
+            try:
+                c = stub.GetCalibration(admin_pb2.GetCalibrationRequest(id=cal), metadata=md,
+                                        timeout=30)
+                records.append(records_pb2.Record(calibration=c))
+            except grpc.RpcError:
+                pass  # not visible to this token: the figure shows the others
     return SessionData(summary, records)
 
 
@@ -374,7 +387,7 @@ def session_html(d: SessionData, audit: Dict[str, str]) -> str:
         ["unmatched (no credit)", len(unmatched)],
         ["probes", sm.probe_count], ["rejected probes", sm.rejected_probe_count],
         ["markers", len(d.by_kind.get("marker", []))],
-        ["calibrations", len(d.by_kind.get("calibration", []))],
+        ["calibrations (measured or applied)", len(d.by_kind.get("calibration", []))],
     ]))
     if reasons:
         body.append(_table(["unmatched reason", "count"], sorted(reasons.items())))
@@ -391,7 +404,7 @@ def session_html(d: SessionData, audit: Dict[str, str]) -> str:
     body.append(_figure("Timeline", fig_timeline(d), "No steps, feedback or markers."))
     body.append(_figure("Feedback per trainer", fig_feedback(d), "No feedback."))
     body.append(_figure("Calibration fits", fig_calibrations(d),
-                        "No calibration was measured in this session."))
+                        "No calibration was measured in or applied to this session."))
     body.append(_figure("Credit and labels", fig_credit(d), "No credit or labels."))
     body.append(_figure("Clock uncertainty", fig_clocks(d), "No clock model updates."))
     css = {"verified": "ok", "FAILED": "bad"}.get(audit["state"], "none")
