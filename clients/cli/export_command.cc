@@ -3,14 +3,13 @@
 // (csv_export.h; docs/studies.md).
 #include <unistd.h>
 
-#include <filesystem>
-#include <map>
-
 #include <algorithm>
 #include <cctype>
 #include <chrono>
+#include <filesystem>
 #include <fstream>
 #include <iostream>
+#include <map>
 #include <memory>
 #include <sstream>
 
@@ -36,8 +35,9 @@ struct ExportFlags {
 
 // sessions.csv: one row per exported session (not a record kind: from
 // GetSession), so a study's tables can be joined with conditions.
-const char* kSessionsHeader[] = {"session_id", "title", "study", "condition", "participants",
-                                 "opened_session_ns", "closed_session_ns", "records"};
+const char* kSessionsHeader[] = {"session_id",        "title",        "study",
+                                 "condition",         "participants", "opened_session_ns",
+                                 "closed_session_ns", "records"};
 const char* kSessionsCodebook[][5] = {
     {"session_id", "string", "", "", "the session (s-...)"},
     {"title", "string", "", "", "free text given at creation"},
@@ -122,10 +122,10 @@ int RunCsv(const CommonFlags& common, const ExportFlags& f) {
     const auto& ss = summary.session();
     std::string participants;
     for (const auto& p : ss.participants()) participants += (participants.empty() ? "" : ";") + p;
-    sessions_csv += CsvRow({ss.id(), ss.title(), ss.study(), ss.condition(), participants,
-                            std::to_string(ss.opened_session_ns()),
-                            std::to_string(ss.closed_session_ns()),
-                            std::to_string(ss.last_sequence())});
+    sessions_csv +=
+        CsvRow({ss.id(), ss.title(), ss.study(), ss.condition(), participants,
+                std::to_string(ss.opened_session_ns()), std::to_string(ss.closed_session_ns()),
+                std::to_string(ss.last_sequence())});
     v1::SubscribeRequest req;
     req.set_session_id(id);
     req.set_from_sequence(1);

@@ -189,8 +189,8 @@ grpc::ServerUnaryReactor* AdminService::CreateSession(grpc::CallbackServerContex
     for (const std::string& p : req->participants()) {
       if (enrolled.count(p) == 0) {
         return Done(ctx, absl::FailedPreconditionError(
-                             Cat("participant '", p, "' is not enrolled in study ",
-                                 req->study_id(), " (tickmark study enroll)")));
+                             Cat("participant '", p, "' is not enrolled in study ", req->study_id(),
+                                 " (tickmark study enroll)")));
       }
     }
     study = req->study_id();
@@ -211,8 +211,8 @@ grpc::ServerUnaryReactor* AdminService::CreateSession(grpc::CallbackServerContex
     e.set_session_id((*rt)->id());
     *e.mutable_participants() = req->participants();
     e.set_author("operator");
-    auto committed = AppendStudyEvent(hub_->ledger(), req->study_id(), std::move(e),
-                                      hub_->UtcNowNanos());
+    auto committed =
+        AppendStudyEvent(hub_->ledger(), req->study_id(), std::move(e), hub_->UtcNowNanos());
     if (!committed.ok()) return Done(ctx, committed.status());
     resp->mutable_session()->set_study_sequence(committed->sequence());
   }

@@ -125,8 +125,9 @@ void ReadConnection::SetCheckpointOnClose(bool on) {
 absl::StatusOr<SessionRow> ReadConnection::GetSession(std::string_view id) {
   std::lock_guard<std::mutex> lock(mu_);
   if (db_ == nullptr) return absl::UnavailableError("ledger is closed");
-  Statement q(db_, Cat("SELECT ", kSessionColumns,
-                       " FROM session WHERE id = ? AND kind = 'session'").c_str());
+  Statement q(
+      db_,
+      Cat("SELECT ", kSessionColumns, " FROM session WHERE id = ? AND kind = 'session'").c_str());
   auto row = q.Bind(id).Step();
   if (!row.ok()) return row.status();
   if (!*row) return absl::NotFoundError(Cat("no session '", id, "'"));
@@ -136,8 +137,9 @@ absl::StatusOr<SessionRow> ReadConnection::GetSession(std::string_view id) {
 absl::StatusOr<SessionRow> ReadConnection::GetStudy(std::string_view id) {
   std::lock_guard<std::mutex> lock(mu_);
   if (db_ == nullptr) return absl::UnavailableError("ledger is closed");
-  Statement q(db_, Cat("SELECT ", kSessionColumns,
-                       " FROM session WHERE id = ? AND kind = 'study'").c_str());
+  Statement q(
+      db_,
+      Cat("SELECT ", kSessionColumns, " FROM session WHERE id = ? AND kind = 'study'").c_str());
   auto row = q.Bind(id).Step();
   if (!row.ok()) return row.status();
   if (!*row) return absl::NotFoundError(Cat("no study '", id, "'"));
@@ -163,9 +165,8 @@ absl::StatusOr<std::vector<SessionRow>> ReadConnection::ListStudies() {
 absl::StatusOr<std::vector<SessionRow>> ReadConnection::ListSessions(bool include_closed) {
   std::lock_guard<std::mutex> lock(mu_);
   if (db_ == nullptr) return absl::UnavailableError("ledger is closed");
-  Statement q(db_, Cat("SELECT ", kSessionColumns, " FROM session ",
-                       "WHERE kind = 'session' ", include_closed ? "" : "AND state = 'open' ",
-                       "ORDER BY opened_session_ns")
+  Statement q(db_, Cat("SELECT ", kSessionColumns, " FROM session ", "WHERE kind = 'session' ",
+                       include_closed ? "" : "AND state = 'open' ", "ORDER BY opened_session_ns")
                        .c_str());
   std::vector<SessionRow> out;
   while (true) {

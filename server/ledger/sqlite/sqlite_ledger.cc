@@ -544,7 +544,9 @@ absl::StatusOr<SessionRow> SqliteLedger::GetStudy(std::string_view id) {
   return reads_->GetStudy(id);
 }
 
-absl::StatusOr<std::vector<SessionRow>> SqliteLedger::ListStudies() { return reads_->ListStudies(); }
+absl::StatusOr<std::vector<SessionRow>> SqliteLedger::ListStudies() {
+  return reads_->ListStudies();
+}
 
 absl::Status SqliteLedger::CloseSession(std::string_view id, int64_t closed_session_ns) {
   return RunSync([id, closed_session_ns](sqlite3* db) -> absl::Status {
