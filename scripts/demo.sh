@@ -74,9 +74,16 @@ tail -n 1 "$DIR/calibration.log"
 "${TM[@]}" calibrate show --trainer trainer-sim --plot "$DIR/calibration.png"
 
 say "Session with the server's default kernel (uniform 0.2-4 s); tokens for the rover, the trainer, an observer"
-SESSION=$("${TM[@]}" session create --title "dock rover demo" \
-  --token-out "$DIR/admin.token" | sed -n 's/^session \(s-[0-9a-f]*\) opened.*/\1/p')
-echo "session $SESSION (trainer-sim's calibrated kernel applies when it joins)"
+# The session is made under a small study (docs/studies.md): one condition
+# (the server's default kernel, calibrations applied) and one participant.
+STUDY=$("${TM[@]}" study create "dock rover demo study" --description "the demo's one condition" \
+  | sed -n 's/^study  *\(y-[0-9a-f]*\)$/\1/p')
+"${TM[@]}" study condition "$STUDY" default --notes "server default kernel; calibrations apply" >/dev/null
+"${TM[@]}" study enroll "$STUDY" trainer-sim >/dev/null
+SESSION=$("${TM[@]}" session create --title "dock rover demo" --study "$STUDY" --condition default \
+  --participant trainer-sim --token-out "$DIR/admin.token" \
+  | sed -n 's/^session \(s-[0-9a-f]*\) opened.*/\1/p')
+echo "session $SESSION in study $STUDY (trainer-sim's calibrated kernel applies when it joins)"
 ADMIN=("$BIN/tickmark" --token-file "$DIR/admin.token")
 "${ADMIN[@]}" token issue --session "$SESSION" --role agent --subject rover-1 --out "$DIR/agent.token"
 "${ADMIN[@]}" token issue --session "$SESSION" --role trainer --subject trainer-sim --out "$DIR/trainer.token"
@@ -124,7 +131,11 @@ echo "(credit precision: the share of credit on the step the trainer judged; gre
 echo " the rover's approval model trained offline from that label set alone, from its first"
 echo " feedback and from all of it, its greedy policy on 100 seeded episodes)"
 
+"${TM[@]}" report --session "$SESSION" --out "$DIR/report.html" >/dev/null \
+  || echo "(the session report could not be written; see above)" >&2
+
 say "Files"
+echo "report:  $DIR/report.html   (tickmark report --session $SESSION; docs/studies.md)"
 echo "plot:    $DIR/dock-rover.png"
 echo "fits:    $DIR/calibration.png"
 echo "ledger:  $DIR/tickmark.db   (sqlite3 $DIR/tickmark.db .tables)"

@@ -21,6 +21,8 @@ void AddCalibrateCommands(CommandTable& table);  // calibrate new|list|show|plot
 void AddRetimeCommand(CommandTable& table);      // retime
 void AddInviteCommand(CommandTable& table);      // invite (web page join links)
 void AddAlignCommand(CommandTable& table);       // align (sync pulses, docs/sync.md)
+void AddStudyCommands(CommandTable& table);      // study create|list|show|condition|enroll|schedule
+void AddReportCommand(CommandTable& table);      // report (HTML, through tickmark.report)
 
 }  // namespace tickmark::cli
 

@@ -53,6 +53,10 @@ class Connection {
   tickmark::v1::SessionAdmin::Stub Admin() const;
   tickmark::v1::Live::Stub Live() const;
 
+  // The token the calls carry (for handing on to a helper program, as
+  // `tickmark report` does through $TICKMARK_TOKEN).
+  const std::string& token() const { return token_; }
+
   // Prints what a failed call means for the operator; returns kExitError.
   int Fail(const grpc::Status& status) const;
 

@@ -40,6 +40,8 @@ int main(int argc, char** argv) {
   AddRetimeCommand(table);
   AddInviteCommand(table);
   AddAlignCommand(table);
+  AddStudyCommands(table);
+  AddReportCommand(table);
 
   if (argc < 2) {
     std::cerr << app.help();

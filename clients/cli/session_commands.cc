@@ -90,10 +90,26 @@ void AddCreate(CommandTable& table, CLI::App* group) {
   auto token_out = std::make_shared<std::string>();
   CLI::App* cmd = table.AddCommand(
       group, "create", "Opens a session and prints its id and admin token.", [&table, req, token_out] {
+        // With --condition, --study names a study made with `tickmark study create`.
+        if (!req->condition().empty() || !req->participants().empty()) {
+          if (req->study().empty()) {
+            std::cerr << "tickmark session create: --condition and --participant need --study "
+                         "STUDY_ID (see tickmark study --help)\n";
+            return kExitUsage;
+          }
+          req->set_study_id(req->study());
+          req->clear_study();
+        }
         return CallAdmin<v1::CreateSessionRequest, v1::CreateSessionResponse>(
             table.common(), &Admin::CreateSession, *req, [&](const v1::CreateSessionResponse& r) {
               std::cout << "session " << r.session().id() << " opened at "
                         << FormatUtc(r.session().opened_session_ns()) << "\n";
+              if (!r.session().condition().empty()) {
+                std::cout << "study " << r.session().study() << ", condition "
+                          << r.session().condition() << ", participants";
+                for (const auto& p : r.session().participants()) std::cout << " " << p;
+                std::cout << " (study record #" << r.session().study_sequence() << ")\n";
+              }
               if (!token_out->empty()) {
                 if (!WriteSecretFile(*token_out, r.admin_secret())) return kExitError;
                 std::cout << "admin token " << r.admin_token().token_id() << " written to "
@@ -111,7 +127,17 @@ void AddCreate(CommandTable& table, CLI::App* group) {
       ->required();
   cmd->add_option_function<std::string>(
       "--study", [req](const std::string& v) { req->set_study(v); },
-      "study the session belongs to");
+      "study the session belongs to: free text, or with --condition a study id (y-...) made "
+      "with `tickmark study create`");
+  cmd->add_option_function<std::string>(
+      "--condition", [req](const std::string& v) { req->set_condition(v); },
+      "the study's condition whose settings (kernel, pinning, lateness) the session takes");
+  cmd->add_option_function<std::vector<std::string>>(
+      "--participant",
+      [req](const std::vector<std::string>& v) {
+        for (const auto& p : v) req->add_participants(p);
+      },
+      "participant pseudonym enrolled in the study (repeat for several)");
   cmd->add_option_function<std::string>(
       "--kernel", [req](const std::string& v) { req->set_default_kernel(v); },
       "default delay kernel, e.g. uniform:0.2,4.0 or gamma:2,0.28 (seconds); default: the "
@@ -162,9 +188,16 @@ void AddShow(CommandTable& table, CLI::App* group) {
         return CallAdmin<v1::GetSessionRequest, v1::SessionSummary>(
             table.common(), &Admin::GetSession, *req, [max_ms](const v1::SessionSummary& r) {
               const auto& ss = r.session();
+              std::string participants;
+              for (const auto& p : ss.participants()) {
+                participants += (participants.empty() ? "" : " ") + p;
+              }
               std::cout << "session    " << ss.id() << "\n"
                         << "title      " << ss.title() << "\n"
-                        << "study      " << (ss.study().empty() ? "-" : ss.study()) << "\n"
+                        << "study      " << (ss.study().empty() ? "-" : ss.study())
+                        << (r.study_name().empty() ? "" : " (" + r.study_name() + ")") << "\n"
+                        << (ss.condition().empty() ? "" : "condition  " + ss.condition() + "\n")
+                        << (participants.empty() ? "" : "participants " + participants + "\n")
                         << "state      " << StateWord(ss.state()) << "\n"
                         << "kernel     "
                         << (r.default_kernel().empty() ? "-" : r.default_kernel()) << "\n"

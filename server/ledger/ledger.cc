@@ -27,6 +27,7 @@ std::string_view RecordKindName(const Record& record) {
     case Record::kCalibrationEvent: return "calibration_event";
     case Record::kCalibration: return "calibration";
     case Record::kSyncPulse: return "sync_pulse";
+    case Record::kStudy: return "study";
     case Record::BODY_NOT_SET: break;
   }
   return "unknown";
@@ -49,6 +50,7 @@ tickmark::v1::RecordKind RecordKindOf(const Record& record) {
     case Record::kCalibrationEvent: return RECORD_KIND_CALIBRATION_EVENT;
     case Record::kCalibration: return RECORD_KIND_CALIBRATION;
     case Record::kSyncPulse: return RECORD_KIND_SYNC_PULSE;
+    case Record::kStudy: return RECORD_KIND_STUDY;
     case Record::BODY_NOT_SET: break;
   }
   return RECORD_KIND_UNSPECIFIED;
@@ -121,6 +123,14 @@ absl::StatusOr<TimeSetRow> Ledger::GetTimeSet(std::string_view) {
 
 absl::StatusOr<std::vector<DerivedTimeRow>> Ledger::ReadDerivedTimes(std::string_view) {
   return absl::UnimplementedError("this ledger keeps no time sets");
+}
+
+absl::StatusOr<std::vector<SessionRow>> Ledger::ListStudies() {
+  return absl::UnimplementedError("this ledger keeps no studies");
+}
+
+absl::StatusOr<SessionRow> Ledger::GetStudy(std::string_view) {
+  return absl::UnimplementedError("this ledger keeps no studies");
 }
 
 }  // namespace tickmark::ledger

@@ -47,6 +47,14 @@ struct SessionRow {
   // Trainers credit with the session's kernels only: a calibrated trainer
   // joining does not get their calibration (Session.pin_kernels).
   bool pin_kernels = false;
+  // "session", or "study": the row of a study's journal (docs/studies.md).
+  // A study's records are appended, chained and read exactly like a
+  // session's, keyed by the study id; GetSession and ListSessions never
+  // return study rows (ListStudies and GetStudy do).
+  std::string kind = "session";
+  // Sessions created under a study (Session.condition, .participants).
+  std::string condition;
+  std::vector<std::string> participants;
 };
 
 // A calibration as the server-wide index (table `calibration`) lists it; the
@@ -207,6 +215,12 @@ class Ledger {
   virtual absl::StatusOr<TimeSetRow> GetTimeSet(std::string_view id);
   // A time set's rows, by record sequence and kind.
   virtual absl::StatusOr<std::vector<DerivedTimeRow>> ReadDerivedTimes(std::string_view time_set);
+
+  // Studies: rows of kind "study" (made with CreateSession), by creation
+  // time; NOT_FOUND for an unknown study id. The default (for ledgers without
+  // studies) is UNIMPLEMENTED.
+  virtual absl::StatusOr<std::vector<SessionRow>> ListStudies();
+  virtual absl::StatusOr<SessionRow> GetStudy(std::string_view id);
 
   // Whether writes succeed now: OK, or the reason they are failing (for
   // example RESOURCE_EXHAUSTED "ledger disk full: ..." while the disk is

@@ -11,6 +11,7 @@
 #include "server/rpc/retime_runner.h"
 #include "server/rpc/status.h"
 #include "tickmark/version.h"
+#include "server/rpc/study_journal.h"
 
 namespace tickmark::rpc {
 
@@ -51,6 +52,8 @@ v1::Session ToProto(const ledger::SessionRow& row) {
   s.set_closed_session_ns(row.closed_session_ns);
   s.set_last_sequence(row.last_sequence);
   s.set_pin_kernels(row.pin_kernels);
+  s.set_condition(row.condition);
+  for (const std::string& p : row.participants) s.add_participants(p);
   return s;
 }
 
@@ -99,6 +102,17 @@ absl::Status Summarize(SessionHub* hub, const ledger::SessionRow& row, v1::Sessi
   out->set_rejected_probe_count(counts->rejected_probes);
   out->set_sync_pulse_count(counts->sync_pulses);
   out->set_default_kernel(DefaultKernelOf(hub, row.id));
+  // Made under a study: its name, and the study record that registered it.
+  if (!row.condition.empty()) {
+    if (auto study = LoadStudy(hub->ledger(), row.study); study.ok()) {
+      out->set_study_name(study->name());
+      for (const auto& entry : study->sessions()) {
+        if (entry.session_id() == row.id) {
+          out->mutable_session()->set_study_sequence(entry.sequence());
+        }
+      }
+    }
+  }
   FillLedgerHealth(hub->ledger(), out->mutable_ledger_health());
   out->set_server_version(kVersion);
   out->set_contract_version(kContractVersion);
@@ -145,13 +159,74 @@ grpc::ServerUnaryReactor* AdminService::CreateSession(grpc::CallbackServerContex
   if (req->title().size() > 256 || req->study().size() > 128) {
     return Done(ctx, absl::InvalidArgumentError("title (256) or study (128) too long"));
   }
-  auto rt = hub_->Create(req->title(), req->study(), req->default_kernel(), req->pin_kernels());
+  // Under a study (docs/studies.md): the condition's settings, enrolled
+  // participants, and a record in the study's journal naming the session.
+  std::unique_lock<std::mutex> study_lock(StudyMutex(), std::defer_lock);
+  std::string study = req->study();
+  std::string default_kernel = req->default_kernel();
+  bool pin_kernels = req->pin_kernels();
+  SessionHub::StudyPart part;
+  if (!req->study_id().empty()) {
+    if (!req->study().empty() && req->study() != req->study_id()) {
+      return Done(ctx, absl::InvalidArgumentError("give study_id or study, not both"));
+    }
+    if (!req->default_kernel().empty() || req->pin_kernels()) {
+      return Done(ctx, absl::InvalidArgumentError(
+                           "a session under a study takes its kernel settings from the "
+                           "condition; leave default_kernel and pin_kernels unset"));
+    }
+    if (req->condition().empty()) {
+      return Done(ctx, absl::InvalidArgumentError("a session under a study needs a condition"));
+    }
+    study_lock.lock();
+    auto loaded = LoadStudy(hub_->ledger(), req->study_id());
+    if (!loaded.ok()) return Done(ctx, loaded.status());
+    const v1::StudyCondition* condition = nullptr;
+    for (const auto& c : loaded->conditions()) {
+      if (c.name() == req->condition()) condition = &c;
+    }
+    if (condition == nullptr) {
+      return Done(ctx, absl::NotFoundError(Cat("study ", req->study_id(), " has no condition '",
+                                               req->condition(), "'")));
+    }
+    std::set<std::string> enrolled(loaded->participants().begin(), loaded->participants().end());
+    for (const std::string& p : req->participants()) {
+      if (enrolled.count(p) == 0) {
+        return Done(ctx, absl::FailedPreconditionError(
+                             Cat("participant '", p, "' is not enrolled in study ", req->study_id(),
+                                 " (tickmark study enroll)")));
+      }
+    }
+    study = req->study_id();
+    default_kernel = condition->default_kernel();
+    pin_kernels = condition->pin_kernels();
+    part.condition = condition->name();
+    part.participants.assign(req->participants().begin(), req->participants().end());
+    part.allowed_lateness_ns = condition->allowed_lateness_ns();
+  } else if (!req->condition().empty() || !req->participants().empty()) {
+    return Done(ctx, absl::InvalidArgumentError("condition and participants need a study_id"));
+  }
+  auto rt = hub_->Create(req->title(), study, default_kernel, pin_kernels, part);
   if (!rt.ok()) return Done(ctx, rt.status());
+  if (!req->study_id().empty()) {
+    v1::StudyEvent e;
+    e.set_event(v1::StudyEvent::KIND_SESSION);
+    e.set_name(part.condition);
+    e.set_session_id((*rt)->id());
+    *e.mutable_participants() = req->participants();
+    e.set_author("operator");
+    auto committed =
+        AppendStudyEvent(hub_->ledger(), req->study_id(), std::move(e), hub_->UtcNowNanos());
+    if (!committed.ok()) return Done(ctx, committed.status());
+    resp->mutable_session()->set_study_sequence(committed->sequence());
+  }
   auto issued = auth_->Issue((*rt)->id(), v1::ROLE_ADMIN, "", (*rt)->Now().nanos());
   if (!issued.ok()) return Done(ctx, issued.status());
   auto row = hub_->ledger()->GetSession((*rt)->id());
   if (!row.ok()) return Done(ctx, row.status());
+  const uint64_t study_sequence = resp->session().study_sequence();
   *resp->mutable_session() = ToProto(*row);
+  resp->mutable_session()->set_study_sequence(study_sequence);
   *resp->mutable_admin_token() = ToProto(issued->first);
   resp->set_admin_secret(issued->second);
   TM_LOG(kInfo) << "session " << row->id << " opened (" << row->title << ")";

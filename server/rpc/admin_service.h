@@ -62,6 +62,26 @@ class AdminService final : public tickmark::v1::SessionAdmin::CallbackService {
                                          const tickmark::v1::CreateInviteRequest* req,
                                          tickmark::v1::CreateInviteResponse* resp) override;
 
+  // In admin_study.cc (docs/studies.md).
+  grpc::ServerUnaryReactor* CreateStudy(grpc::CallbackServerContext* ctx,
+                                        const tickmark::v1::CreateStudyRequest* req,
+                                        tickmark::v1::Study* resp) override;
+  grpc::ServerUnaryReactor* AddStudyCondition(grpc::CallbackServerContext* ctx,
+                                              const tickmark::v1::AddStudyConditionRequest* req,
+                                              tickmark::v1::Study* resp) override;
+  grpc::ServerUnaryReactor* EnrollParticipants(grpc::CallbackServerContext* ctx,
+                                               const tickmark::v1::EnrollParticipantsRequest* req,
+                                               tickmark::v1::Study* resp) override;
+  grpc::ServerUnaryReactor* MakeStudySchedule(grpc::CallbackServerContext* ctx,
+                                              const tickmark::v1::MakeStudyScheduleRequest* req,
+                                              tickmark::v1::Study* resp) override;
+  grpc::ServerUnaryReactor* GetStudy(grpc::CallbackServerContext* ctx,
+                                     const tickmark::v1::GetStudyRequest* req,
+                                     tickmark::v1::Study* resp) override;
+  grpc::ServerUnaryReactor* ListStudies(grpc::CallbackServerContext* ctx,
+                                        const tickmark::v1::ListStudiesRequest* req,
+                                        tickmark::v1::ListStudiesResponse* resp) override;
+
  private:
   SessionHub* hub_;         // not owned
   TokenAuthority* auth_;    // not owned

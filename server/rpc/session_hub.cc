@@ -445,7 +445,8 @@ std::shared_ptr<SessionRuntime> SessionHub::Find(const std::string& id) {
 absl::StatusOr<std::shared_ptr<SessionRuntime>> SessionHub::Create(const std::string& title,
                                                                    const std::string& study,
                                                                    const std::string& kernel,
-                                                                   bool pin_kernels) {
+                                                                   bool pin_kernels,
+                                                                   const StudyPart& study_part) {
   DelayKernel k = options_.default_kernel;
   if (!kernel.empty()) {
     auto parsed = ParseKernel(kernel);
@@ -463,6 +464,8 @@ absl::StatusOr<std::shared_ptr<SessionRuntime>> SessionHub::Create(const std::st
   row.opened_session_ns = row.utc_anchor_ns;
   row.boot_id = boot_id_;
   row.pin_kernels = pin_kernels;
+  row.condition = study_part.condition;
+  row.participants = study_part.participants;
   if (absl::Status s = ledger_->CreateSession(row); !s.ok()) return s;
   auto runtime = std::make_shared<SessionRuntime>(row, mono_, ledger_);
   {
@@ -482,7 +485,9 @@ absl::StatusOr<std::shared_ptr<SessionRuntime>> SessionHub::Create(const std::st
   setting->set_weight(1.0);
   setting->set_description(k.Describe());
   setting->set_author("session default");
-  setting->set_allowed_lateness_ns(options_.allowed_lateness.nanos());
+  setting->set_allowed_lateness_ns(study_part.allowed_lateness_ns > 0
+                                       ? study_part.allowed_lateness_ns
+                                       : options_.allowed_lateness.nanos());
   if (auto s = runtime->AppendRecord(std::move(ks)); !s.ok()) return s.status();
   return runtime;
 }

@@ -186,6 +186,15 @@ class SessionRuntime {
   std::set<RecordSink*> sinks_;      // GUARDED_BY(streams_mu_)
 };
 
+// What a session made under a study (docs/studies.md) stores: the condition
+// and participants, and the allowed lateness recorded in its default kernel
+// record (0: the server's).
+struct SessionStudyPart {
+  std::string condition;
+  std::vector<std::string> participants;
+  int64_t allowed_lateness_ns = 0;
+};
+
 // All sessions of the server. Thread-safe.
 class SessionHub {
  public:
@@ -206,10 +215,14 @@ class SessionHub {
   // Creates and opens a session anchored to UTC now, with `kernel` (text
   // form; empty: the server default) as its default delay kernel;
   // `pin_kernels` as in SessionRuntime::pin_kernels.
+  // `study_part` (sessions made under a study, docs/studies.md): see
+  // SessionStudyPart.
+  using StudyPart = SessionStudyPart;
   absl::StatusOr<std::shared_ptr<SessionRuntime>> Create(const std::string& title,
                                                          const std::string& study,
                                                          const std::string& kernel = "",
-                                                         bool pin_kernels = false);
+                                                         bool pin_kernels = false,
+                                                         const StudyPart& study_part = {});
   // Closes a session: records the event, ends its streams.
   absl::Status Close(const std::string& id);
   // Time on the server's own timeline (for tokens of no session).

@@ -36,6 +36,14 @@ def test_demo_calibrates_then_compares_default_and_calibrated_kernels(tmp_path):
     assert any(line.startswith("greedy dock success") for line in out.splitlines())
     learned = [line for line in out.splitlines() if line.startswith("  from ")]
     assert learned and all(len(line.split()[-2:]) == 2 for line in learned)
+    # The session was made under a study and its report written (docs/studies.md).
+    assert any(line.startswith("session s-") and " in study y-" in line
+               for line in out.splitlines())
+    report = next(line.split()[1] for line in out.splitlines() if line.startswith("report:"))
+    with open(report, encoding="utf-8") as f:
+        page = f.read()
+    assert page.count("data:image/png;base64,") >= 5
+    assert "alt='Calibration fits'" in page  # trainer-sim's calibration, applied on joining
 
 
 def test_compare_reads_precision_of_each_derived_set_from_a_ledger(tmp_path):

@@ -26,6 +26,8 @@ std::string SessionEventWord(tickmark::v1::SessionEvent::Kind kind);
 // "out", "in"; "interval", "marker", "external".
 std::string SyncDirectionWord(tickmark::v1::SyncDirection direction);
 std::string SyncReasonWord(tickmark::v1::SyncReason reason);
+// "created", "condition", "participants", "schedule", "session".
+std::string StudyEventWord(tickmark::v1::StudyEvent::Kind kind);
 
 }  // namespace tickmark::ledger
 

@@ -317,6 +317,33 @@ CREATE TABLE derived_time (
   PRIMARY KEY (time_set, seq, kind)
 ) WITHOUT ROWID;
 )sql"},
+    {5, "studies: session.kind/condition/participants, study_event table", R"sql(
+-- A study's journal is a row of kind 'study' in session (id "y-...", title =
+-- the study's name) whose records live in record like a session's, with
+-- their own sequence numbers and hash chain (docs/studies.md). Sessions made
+-- under a study name its condition and participants (a JSON array of
+-- pseudonyms; study holds the study id).
+ALTER TABLE session ADD COLUMN kind TEXT NOT NULL DEFAULT 'session'
+  CHECK (kind IN ('session', 'study'));
+ALTER TABLE session ADD COLUMN condition TEXT NOT NULL DEFAULT '';
+ALTER TABLE session ADD COLUMN participants TEXT NOT NULL DEFAULT '[]';
+
+-- One row per StudyEvent record of a study's journal (session_id is the
+-- study id): event created/condition/participants/schedule/session; name is
+-- the study's name (created) or the condition's (condition, session);
+-- participants a JSON array of pseudonyms; linked_session the session made
+-- (event session); detail the condition's settings or the schedule's design.
+CREATE TABLE study_event (
+  session_id     TEXT NOT NULL, seq INTEGER NOT NULL,
+  event          TEXT NOT NULL,
+  name           TEXT NOT NULL,
+  participants   TEXT NOT NULL,
+  linked_session TEXT NOT NULL,
+  detail         TEXT NOT NULL,
+  at_session_ns  INTEGER NOT NULL,
+  PRIMARY KEY (session_id, seq)
+) WITHOUT ROWID;
+)sql"},
     {6, "sync pulses: the sync_pulse table (edges of sync lines shared with other recorders)",
      R"sql(
 -- One row per SyncPulse record (docs/sync.md): an edge of a modem control

@@ -24,13 +24,28 @@ SessionRow SessionFromRow(const Statement& q) {
   row.boot_id = q.Text(8);
   row.last_sequence = static_cast<uint64_t>(q.Int(9));
   row.pin_kernels = q.Int(10) != 0;
+  row.kind = q.Text(11);
+  row.condition = q.Text(12);
+  // participants: a JSON array of pseudonyms (no escapes: see typed_tables.cc).
+  std::string list = q.Text(13);
+  std::string current;
+  bool in_string = false;
+  for (char c : list) {
+    if (c == '"') {
+      if (in_string) row.participants.push_back(current);
+      current.clear();
+      in_string = !in_string;
+    } else if (in_string) {
+      current += c;
+    }
+  }
   return row;
 }
 
 constexpr const char* kSessionColumns =
     "id, title, study, state, opened_session_ns, closed_session_ns, utc_anchor_ns, "
     "mono_anchor_ns, boot_id, (SELECT COALESCE(MAX(seq), 0) FROM record r WHERE r.session_id = "
-    "session.id), pin_kernels";
+    "session.id), pin_kernels, kind, condition, participants";
 
 TokenRow TokenFromRow(const Statement& q) {
   TokenRow t;
@@ -110,18 +125,48 @@ void ReadConnection::SetCheckpointOnClose(bool on) {
 absl::StatusOr<SessionRow> ReadConnection::GetSession(std::string_view id) {
   std::lock_guard<std::mutex> lock(mu_);
   if (db_ == nullptr) return absl::UnavailableError("ledger is closed");
-  Statement q(db_, Cat("SELECT ", kSessionColumns, " FROM session WHERE id = ?").c_str());
+  Statement q(
+      db_,
+      Cat("SELECT ", kSessionColumns, " FROM session WHERE id = ? AND kind = 'session'").c_str());
   auto row = q.Bind(id).Step();
   if (!row.ok()) return row.status();
   if (!*row) return absl::NotFoundError(Cat("no session '", id, "'"));
   return SessionFromRow(q);
 }
 
+absl::StatusOr<SessionRow> ReadConnection::GetStudy(std::string_view id) {
+  std::lock_guard<std::mutex> lock(mu_);
+  if (db_ == nullptr) return absl::UnavailableError("ledger is closed");
+  Statement q(
+      db_,
+      Cat("SELECT ", kSessionColumns, " FROM session WHERE id = ? AND kind = 'study'").c_str());
+  auto row = q.Bind(id).Step();
+  if (!row.ok()) return row.status();
+  if (!*row) return absl::NotFoundError(Cat("no study '", id, "'"));
+  return SessionFromRow(q);
+}
+
+absl::StatusOr<std::vector<SessionRow>> ReadConnection::ListStudies() {
+  std::lock_guard<std::mutex> lock(mu_);
+  if (db_ == nullptr) return absl::UnavailableError("ledger is closed");
+  Statement q(db_, Cat("SELECT ", kSessionColumns,
+                       " FROM session WHERE kind = 'study' ORDER BY opened_session_ns, id")
+                       .c_str());
+  std::vector<SessionRow> out;
+  while (true) {
+    auto row = q.Step();
+    if (!row.ok()) return row.status();
+    if (!*row) break;
+    out.push_back(SessionFromRow(q));
+  }
+  return out;
+}
+
 absl::StatusOr<std::vector<SessionRow>> ReadConnection::ListSessions(bool include_closed) {
   std::lock_guard<std::mutex> lock(mu_);
   if (db_ == nullptr) return absl::UnavailableError("ledger is closed");
-  Statement q(db_, Cat("SELECT ", kSessionColumns, " FROM session ",
-                       include_closed ? "" : "WHERE state = 'open' ", "ORDER BY opened_session_ns")
+  Statement q(db_, Cat("SELECT ", kSessionColumns, " FROM session ", "WHERE kind = 'session' ",
+                       include_closed ? "" : "AND state = 'open' ", "ORDER BY opened_session_ns")
                        .c_str());
   std::vector<SessionRow> out;
   while (true) {

@@ -29,6 +29,8 @@ class ReadConnection {
   // The same contracts as the Ledger methods of the same names.
   absl::StatusOr<SessionRow> GetSession(std::string_view id);
   absl::StatusOr<std::vector<SessionRow>> ListSessions(bool include_closed);
+  absl::StatusOr<SessionRow> GetStudy(std::string_view id);
+  absl::StatusOr<std::vector<SessionRow>> ListStudies();
   absl::StatusOr<TokenRow> FindTokenByHash(std::string_view hash);
   absl::StatusOr<std::vector<TokenRow>> ListTokens(std::string_view session_id);
   absl::StatusOr<TokenRow> FindToken(std::string_view token_id);

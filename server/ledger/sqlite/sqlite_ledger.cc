@@ -517,7 +517,15 @@ absl::Status SqliteLedger::CreateSession(const SessionRow& row) {
   return RunSync([&row](sqlite3* db) {
     Statement q(db,
                 "INSERT INTO session (id, title, study, state, opened_session_ns, utc_anchor_ns, "
-                "mono_anchor_ns, boot_id, pin_kernels) VALUES (?, ?, ?, 'open', ?, ?, ?, ?, ?)");
+                "mono_anchor_ns, boot_id, pin_kernels, kind, condition, participants) "
+                "VALUES (?, ?, ?, 'open', ?, ?, ?, ?, ?, ?, ?, ?)");
+    // Pseudonyms are letters, digits, '-', '_', '.' (the admin service
+    // checks), so this JSON array needs no escaping.
+    std::string participants = "[";
+    for (const std::string& p : row.participants) {
+      participants += Cat(participants.size() > 1 ? "," : "", "\"", p, "\"");
+    }
+    participants += "]";
     return q.Bind(row.id)
         .Bind(row.title)
         .Bind(row.study)
@@ -526,6 +534,9 @@ absl::Status SqliteLedger::CreateSession(const SessionRow& row) {
         .Bind(row.mono_anchor_ns)
         .Bind(row.boot_id)
         .Bind(row.pin_kernels)
+        .Bind(row.kind)
+        .Bind(row.condition)
+        .Bind(participants)
         .Run();
   });
 }
@@ -536,6 +547,14 @@ absl::StatusOr<SessionRow> SqliteLedger::GetSession(std::string_view id) {
 
 absl::StatusOr<std::vector<SessionRow>> SqliteLedger::ListSessions(bool include_closed) {
   return reads_->ListSessions(include_closed);
+}
+
+absl::StatusOr<SessionRow> SqliteLedger::GetStudy(std::string_view id) {
+  return reads_->GetStudy(id);
+}
+
+absl::StatusOr<std::vector<SessionRow>> SqliteLedger::ListStudies() {
+  return reads_->ListStudies();
 }
 
 absl::Status SqliteLedger::CloseSession(std::string_view id, int64_t closed_session_ns) {

@@ -94,6 +94,8 @@ class SqliteLedger final : public Ledger {
   absl::Status CreateSession(const SessionRow& row) override;
   absl::StatusOr<SessionRow> GetSession(std::string_view id) override;
   absl::StatusOr<std::vector<SessionRow>> ListSessions(bool include_closed) override;
+  absl::StatusOr<SessionRow> GetStudy(std::string_view id) override;
+  absl::StatusOr<std::vector<SessionRow>> ListStudies() override;
   absl::Status CloseSession(std::string_view id, int64_t closed_session_ns) override;
   absl::Status ReanchorSession(std::string_view id, int64_t utc_anchor_ns, int64_t mono_anchor_ns,
                                std::string_view boot_id) override;

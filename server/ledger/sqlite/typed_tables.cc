@@ -3,6 +3,7 @@
 #include <charconv>
 #include <cmath>
 
+#include "server/base/strings.h"
 #include "server/ledger/ledger.h"
 #include "server/ledger/sqlite/enum_names.h"
 #include "server/ledger/sqlite/statement.h"
@@ -216,6 +217,29 @@ absl::Status TypedTables::Insert(const Record& r) {
       return Prepared("INSERT INTO session_event VALUES (?,?,?,?,?)")
           .Bind(sid).Bind(seq).Bind(SessionEventWord(e.event()))
           .Bind(e.detail()).Bind(r.written_session_ns())
+          .Run();
+    }
+    case Record::kStudy: {
+      const auto& e = r.study();
+      // Pseudonyms are letters, digits, '-', '_', '.' (the admin service
+      // checks), so the JSON array needs no escaping.
+      std::string participants = "[";
+      for (const std::string& p : e.participants()) {
+        participants += Cat(participants.size() > 1 ? "," : "", "\"", p, "\"");
+      }
+      participants += "]";
+      std::string detail = e.description();
+      if (e.has_condition()) {
+        const auto& c = e.condition();
+        detail = Cat("kernel=", c.default_kernel(), " pin_kernels=", c.pin_kernels() ? 1 : 0,
+                     " allowed_lateness_ns=", c.allowed_lateness_ns(), " notes=", c.notes());
+      } else if (e.has_schedule()) {
+        detail = Cat("design=", e.schedule().design(), " rows=", e.schedule().rows_size());
+      }
+      std::string name = e.has_condition() ? e.condition().name() : e.name();
+      return Prepared("INSERT INTO study_event VALUES (?,?,?,?,?,?,?,?)")
+          .Bind(sid).Bind(seq).Bind(StudyEventWord(e.event())).Bind(name).Bind(participants)
+          .Bind(e.session_id()).Bind(detail).Bind(r.written_session_ns())
           .Run();
     }
     case Record::BODY_NOT_SET:
