@@ -52,6 +52,23 @@ CsvColumn DurationNs(std::string name, std::string meaning, std::function<int64_
   return Int(std::move(name), "ns", kNoClock, std::move(meaning), std::move(f));
 }
 
+std::string SyncDirectionWord(v1::SyncDirection d) {
+  switch (d) {
+    case v1::SYNC_DIRECTION_OUT: return "out";
+    case v1::SYNC_DIRECTION_IN: return "in";
+    default: return "";
+  }
+}
+
+std::string SyncReasonWord(v1::SyncReason r) {
+  switch (r) {
+    case v1::SYNC_REASON_INTERVAL: return "interval";
+    case v1::SYNC_REASON_MARKER: return "marker";
+    case v1::SYNC_REASON_EXTERNAL: return "external";
+    default: return "";
+  }
+}
+
 std::string TimeSourceWord(v1::TimeSource s) {
   switch (s) {
     case v1::TIME_SOURCE_REALTIME:
@@ -208,6 +225,41 @@ std::vector<CsvTable> MakeTables() {
                    Str("text", "the marker's text", [](const R& r) { return r.marker().text(); }),
                    Str("author", "who added it", [](const R& r) { return r.marker().author(); }),
                })});
+  t.push_back(
+      {"sync_pulses.csv", R::kSyncPulse, v1::RECORD_KIND_SYNC_PULSE,
+       "one row per edge of a sync line shared with another recorder (docs/sync.md)",
+       WithCommon({
+           Str("client_id", "the client that drove or saw the line",
+               [](const R& r) { return r.sync_pulse().client_id(); }),
+           Str("trainer", "the pseudonym of the client's token",
+               [](const R& r) { return r.sync_pulse().trainer(); }),
+           Str("direction", "out: this client drove the line; in: another system did",
+               [](const R& r) { return SyncDirectionWord(r.sync_pulse().direction()); }),
+           Str("line", "DTR or RTS (out); CTS, DSR or DCD (in)",
+               [](const R& r) { return r.sync_pulse().line(); }),
+           Bool("level", "the line's level after the edge (1 asserted)",
+                [](const R& r) { return r.sync_pulse().level(); }),
+           Str("reason", "interval, marker or external",
+               [](const R& r) { return SyncReasonWord(r.sync_pulse().reason()); }),
+           Count("pulse_index", "counts the line's pulses from 1 per client run; both edges share it",
+                 [](const R& r) { return r.sync_pulse().pulse_index(); }),
+           Count("marker_sequence", "the marker record a marker pulse answers (0: none)",
+                 [](const R& r) { return r.sync_pulse().marker_sequence(); }),
+           Int("event_source_ns", "ns", "source clock",
+               "the edge on the client host's CLOCK_MONOTONIC (middle of the ioctl bracket)",
+               [](const R& r) { return r.sync_pulse().event_source_ns(); }),
+           DurationNs("source_uncertainty_ns", "half the width of the ioctl bracket",
+                      [](const R& r) { return r.sync_pulse().source_uncertainty_ns(); }),
+           SessionNs("event_session_ns", "the edge mapped to session time",
+                     [](const R& r) { return r.sync_pulse().event_session_ns(); }),
+           DurationNs("uncertainty_ns", "half-width of event_session_ns (clock model plus bracket)",
+                      [](const R& r) { return r.sync_pulse().uncertainty_ns(); }),
+           SessionNs("arrival_session_ns", "when the server received it",
+                     [](const R& r) { return r.sync_pulse().arrival_session_ns(); }),
+           Str("device", "the serial device", [](const R& r) { return r.sync_pulse().device(); }),
+           Bool("simulated", "1: no line moved (--sync-simulate)",
+                [](const R& r) { return r.sync_pulse().simulated(); }),
+       })});
   t.push_back(
       {"probes.csv", R::kProbe, v1::RECORD_KIND_PROBE,
        "one row per clock probe (RFC 5905 on-wire exchange)",

@@ -248,6 +248,19 @@ def test_sync_out_pulses_land_in_the_ledger_and_align(server, tmp_path):
     assert abs(m["a"] + 37.5) < 1e-3
     assert "offset" in p.stdout
 
+    # The CSV export's sync_pulses.csv holds the same edges, read back with
+    # Python's csv module and typed by the export's own codebook.
+    tm(server, "export", "--format", "csv", "--session", sid, "--out", str(tmp_path / "csv"))
+    with open(tmp_path / "csv" / "codebook.csv", newline="", encoding="utf-8") as f:
+        cols = [c for c in csv.DictReader(f) if c["file"] == "sync_pulses.csv"]
+    assert {c["column"]: c["clock"] for c in cols}["event_source_ns"] == "source clock"
+    with open(tmp_path / "csv" / "sync_pulses.csv", newline="", encoding="utf-8") as f:
+        exported = list(csv.DictReader(f))
+    assert list(exported[0].keys()) == [c["column"] for c in cols]
+    assert [int(r["event_session_ns"]) for r in exported] == \
+        [int(r["event_session_ns"]) for r in rows]
+    assert {r["line"] for r in exported} == {"DTR"} and {r["direction"] for r in exported} == {"out"}
+
 
 def test_a_sync_pulse_on_the_wrong_line_is_refused(server):
     """Validation (server/rpc/validation.cc): an outgoing pulse is on DTR or
