@@ -341,6 +341,7 @@ TYPED_TEST(LedgerBackendTest, CalibrationEventsAndTheIndex) {
     e->set_client_sequence(cseq);
     e->set_trainer("ava");
     e->set_run(run);
+    e->set_kind(v1::CalibrationEvent::KIND_MOVE);
     return r;
   };
   auto calibration = [](const std::string& id, uint64_t cseq, int64_t written) {

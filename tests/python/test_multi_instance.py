@@ -59,8 +59,8 @@ class Instance(Server):
         os.makedirs(data_dir, exist_ok=True)
         self.name = name
         port = free_port()
-        super().__init__(data_dir, extra=(
-            "--listen", f"127.0.0.1:{port}", "--advertise", f"127.0.0.1:{port}",
+        super().__init__(data_dir, listen=f"127.0.0.1:{port}", extra=(
+            "--advertise", f"127.0.0.1:{port}",
             "--ledger", url, "--lease-ms", str(LEASE_MS), "--instance-id", name,
             "--feedback-rate", "0", "--step-rate", "0"))
 

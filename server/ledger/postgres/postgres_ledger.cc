@@ -202,9 +202,18 @@ void PostgresLedger::Close() {
   if (writer_thread_.joinable()) writer_thread_.join();
   if (renewer_thread_.joinable()) renewer_thread_.join();
   if (listener_thread_.joinable()) listener_thread_.join();
-  // Leases are left to expire rather than handed back: an instance that
-  // stops cleanly could release them, but a successor must cope with a
-  // crashed one anyway, and releasing here would race a commit in flight.
+  // The writer is done (nothing of ours is in flight), so the leases can be
+  // handed back at once: after a clean stop another instance need not wait
+  // for them to expire.
+  if (options_.leases) {
+    std::lock_guard<std::mutex> o(ops_mu_);
+    if (ops_ && ops_->ok()) {
+      ops_->Exec("UPDATE session_lease SET expires_at = now() - interval '1 millisecond' WHERE "
+                 "owner = $1",
+                 Params().Text(options_.instance_id))
+          .IgnoreError();
+    }
+  }
   std::lock_guard<std::mutex> r(read_mu_);
   reader_.reset();
   std::lock_guard<std::mutex> o(ops_mu_);
