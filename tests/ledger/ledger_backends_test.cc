@@ -59,9 +59,10 @@ struct SqliteBackend {
   void MarkNewerSchema() {
     sqlite3* db = nullptr;
     ASSERT_EQ(sqlite3_open(path.c_str(), &db), SQLITE_OK);
-    ASSERT_EQ(sqlite3_exec(db, "INSERT INTO schema_migrations (version, description) VALUES (999, 'x')",
-                           nullptr, nullptr, nullptr),
-              SQLITE_OK);
+    ASSERT_EQ(
+        sqlite3_exec(db, "INSERT INTO schema_migrations (version, description) VALUES (999, 'x')",
+                     nullptr, nullptr, nullptr),
+        SQLITE_OK);
     sqlite3_close(db);
   }
   ~SqliteBackend() {
@@ -177,8 +178,8 @@ TYPED_TEST(LedgerBackendTest, ReadFromTheMiddleAndLimit) {
 TYPED_TEST(LedgerBackendTest, ClientSequenceLookups) {
   Ledger* l = this->ledger_.get();
   ASSERT_TRUE(l->CreateSession(Session("s-a")).ok());
-  this->AppendSync("s-a", {FeedbackRecord("c1", 1, 1), FeedbackRecord("c1", 5, 1),
-                           FeedbackRecord("c2", 2, 1)});
+  this->AppendSync(
+      "s-a", {FeedbackRecord("c1", 1, 1), FeedbackRecord("c1", 5, 1), FeedbackRecord("c2", 2, 1)});
   auto found = l->FindClientSequence("s-a", "c1", 5);
   ASSERT_TRUE(found.ok());
   ASSERT_TRUE(found->has_value());
@@ -231,8 +232,8 @@ TYPED_TEST(LedgerBackendTest, CountsByKind) {
   v1::Record joined;
   joined.mutable_client_event()->mutable_client()->set_client_id("agent-1");
   joined.mutable_client_event()->set_event(v1::ClientEvent::KIND_CONNECTED);
-  this->AppendSync("s-a", {joined, FeedbackRecord("c1", 1, 1), FeedbackRecord("c1", 2, 1), marker,
-                           step, probe});
+  this->AppendSync(
+      "s-a", {joined, FeedbackRecord("c1", 1, 1), FeedbackRecord("c1", 2, 1), marker, step, probe});
   auto c = l->Counts("s-a");
   ASSERT_TRUE(c.ok());
   EXPECT_EQ(c->feedback, 2u);
@@ -468,7 +469,8 @@ TEST_F(PostgresLeaseTest, OneOwnerAtATimeAndAFencedOwnerCannotWrite) {
   ASSERT_TRUE(lb.ok());
   EXPECT_FALSE(lb->owned);
   EXPECT_EQ(lb->owner_address, "a.example:7461");
-  EXPECT_TRUE(absl::IsUnavailable(AppendAndWait(b.get(), "s-a", {FeedbackRecord("c2", 1, 1)}).status));
+  EXPECT_TRUE(
+      absl::IsUnavailable(AppendAndWait(b.get(), "s-a", {FeedbackRecord("c2", 1, 1)}).status));
   EXPECT_TRUE(absl::IsNotFound(b->AcquireSession("s-none").status()));
 
   // A stops renewing (paused); its lease runs out; B takes over with a new
@@ -493,8 +495,9 @@ TEST_F(PostgresLeaseTest, OneOwnerAtATimeAndAFencedOwnerCannotWrite) {
   }
   // In the database (psql, outside the ledger): two records, the second
   // written under B's token, and nothing of A's after the takeover.
-  EXPECT_EQ(server_->Psql(db_, "SELECT string_agg(seq || ':' || lease_token || ':' || client_id, ',' "
-                               "ORDER BY seq) FROM record WHERE session_id = 's-a'"),
+  EXPECT_EQ(server_->Psql(db_,
+                          "SELECT string_agg(seq || ':' || lease_token || ':' || client_id, ',' "
+                          "ORDER BY seq) FROM record WHERE session_id = 's-a'"),
             "1:1:c1,2:2:c2");
   EXPECT_EQ(server_->Psql(db_, "SELECT owner || ' ' || token FROM session_lease"), "b 2");
   ExpectChainVerifies(b.get(), "s-a", 2);

@@ -50,8 +50,9 @@ class PgServer {
     if (geteuid() == 0) {
       const passwd* pw = getpwnam("postgres");
       if (pw == nullptr) {
-        *why_not = "running as root and there is no 'postgres' user to run initdb and pg_ctl as "
-                   "(they refuse root)";
+        *why_not =
+            "running as root and there is no 'postgres' user to run initdb and pg_ctl as "
+            "(they refuse root)";
         return nullptr;
       }
       s->uid_ = pw->pw_uid;
@@ -71,8 +72,10 @@ class PgServer {
     }
     s->port_ = FreePort();
     const std::string data = s->dir_ + "/data";
-    if (!s->Sh("initdb -D " + data + " -U postgres -A trust -E UTF8 --no-sync "
-               "--no-instructions > " + s->dir_ + "/initdb.log 2>&1")) {
+    if (!s->Sh("initdb -D " + data +
+               " -U postgres -A trust -E UTF8 --no-sync "
+               "--no-instructions > " +
+               s->dir_ + "/initdb.log 2>&1")) {
       *why_not = "initdb failed: " + ReadAll(s->dir_ + "/initdb.log");
       return nullptr;
     }

@@ -130,7 +130,8 @@ absl::StatusOr<std::unique_ptr<PgConn>> PgConn::Connect(const std::string& conni
   }
   std::unique_ptr<PgConn> conn(new PgConn(c));
   // Quiet NOTICEs (CREATE ... IF NOT EXISTS and the like) go nowhere.
-  PQsetNoticeProcessor(c, [](void*, const char*) {}, nullptr);
+  PQsetNoticeProcessor(
+      c, [](void*, const char*) {}, nullptr);
   return conn;
 }
 
@@ -165,7 +166,7 @@ absl::Status PgConn::Run(std::string_view sql) {
   PGresult* r = PQexec(conn_, text.c_str());
   const ExecStatusType st = r != nullptr ? PQresultStatus(r) : PGRES_FATAL_ERROR;
   absl::Status s = (st == PGRES_COMMAND_OK || st == PGRES_TUPLES_OK) ? absl::OkStatus()
-                                                                      : StatusOf(conn_, r, sql);
+                                                                     : StatusOf(conn_, r, sql);
   if (r != nullptr) PQclear(r);
   return s;
 }

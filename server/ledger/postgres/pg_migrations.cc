@@ -198,9 +198,9 @@ absl::Status ApplyPgMigrations(PgConn* conn) {
       !l.ok()) {
     return fail(l.status());
   }
-  if (absl::Status s = conn->Run(
-          "CREATE TABLE IF NOT EXISTS schema_migrations (version INTEGER PRIMARY KEY, "
-          "description TEXT NOT NULL, applied_utc TIMESTAMPTZ NOT NULL DEFAULT now())");
+  if (absl::Status s =
+          conn->Run("CREATE TABLE IF NOT EXISTS schema_migrations (version INTEGER PRIMARY KEY, "
+                    "description TEXT NOT NULL, applied_utc TIMESTAMPTZ NOT NULL DEFAULT now())");
       !s.ok()) {
     return fail(s);
   }
@@ -216,8 +216,7 @@ absl::Status ApplyPgMigrations(PgConn* conn) {
     if (m.version <= version) continue;
     absl::Status s = conn->Run(m.sql);
     if (s.ok()) {
-      s = conn
-              ->Exec("INSERT INTO schema_migrations (version, description) VALUES ($1, $2)",
+      s = conn->Exec("INSERT INTO schema_migrations (version, description) VALUES ($1, $2)",
                      Params().Int(m.version).Text(m.description))
               .status();
     }

@@ -208,9 +208,10 @@ void PostgresLedger::Close() {
   if (options_.leases) {
     std::lock_guard<std::mutex> o(ops_mu_);
     if (ops_ && ops_->ok()) {
-      ops_->Exec("UPDATE session_lease SET expires_at = now() - interval '1 millisecond' WHERE "
-                 "owner = $1",
-                 Params().Text(options_.instance_id))
+      ops_->Exec(
+              "UPDATE session_lease SET expires_at = now() - interval '1 millisecond' WHERE "
+              "owner = $1",
+              Params().Text(options_.instance_id))
           .IgnoreError();
     }
   }
@@ -413,20 +414,41 @@ absl::Status PostgresLedger::InsertRecord(const Record& r, uint64_t token) {
       return writer_
           ->Exec("INSERT INTO feedback VALUES ($1,$2,$3,$4,$5,$6,$7,$8,$9,$10,$11,$12)",
                  Params()
-                     .Text(sid).Int(seq).Text(f.client_id()).UInt(f.client_sequence())
-                     .Text(f.trainer()).Double(f.value()).Text(f.input())
-                     .Int(f.event_source_ns()).Int(f.arrival_session_ns())
-                     .Int(f.event_session_ns()).Int(f.uncertainty_ns()).Bool(f.late()))
+                     .Text(sid)
+                     .Int(seq)
+                     .Text(f.client_id())
+                     .UInt(f.client_sequence())
+                     .Text(f.trainer())
+                     .Double(f.value())
+                     .Text(f.input())
+                     .Int(f.event_source_ns())
+                     .Int(f.arrival_session_ns())
+                     .Int(f.event_session_ns())
+                     .Int(f.uncertainty_ns())
+                     .Bool(f.late()))
           .status();
     }
     case Record::kStep: {
       const auto& s = r.step();
       Params q;
-      q.Text(sid).Int(seq).Text(s.client_id()).UInt(s.client_sequence()).Text(s.agent())
-          .UInt(s.step_id()).UInt(s.episode()).Text(s.action()).Int(s.start_agent_ns());
-      if (s.end_agent_ns() != 0) q.Int(s.end_agent_ns()); else q.Null();
+      q.Text(sid)
+          .Int(seq)
+          .Text(s.client_id())
+          .UInt(s.client_sequence())
+          .Text(s.agent())
+          .UInt(s.step_id())
+          .UInt(s.episode())
+          .Text(s.action())
+          .Int(s.start_agent_ns());
+      if (s.end_agent_ns() != 0)
+        q.Int(s.end_agent_ns());
+      else
+        q.Null();
       q.Int(s.start_session_ns());
-      if (s.end_session_ns() != 0) q.Int(s.end_session_ns()); else q.Null();
+      if (s.end_session_ns() != 0)
+        q.Int(s.end_session_ns());
+      else
+        q.Null();
       q.Int(s.arrival_session_ns()).Int(s.uncertainty_ns()).Int(s.features_size()).Bool(s.late());
       return writer_
           ->Exec("INSERT INTO step VALUES ($1,$2,$3,$4,$5,$6,$7,$8,$9,$10,$11,$12,$13,$14,$15,$16)",
@@ -438,23 +460,38 @@ absl::Status PostgresLedger::InsertRecord(const Record& r, uint64_t token) {
       return writer_
           ->Exec("INSERT INTO probe VALUES ($1,$2,$3,$4,$5,$6,$7,$8,$9,$10,$11,$12)",
                  Params()
-                     .Text(sid).Int(seq).Text(pr.client_id()).UInt(pr.probe_id())
-                     .Int(pr.t1_session_ns()).Int(pr.t2_client_ns()).Int(pr.t3_client_ns())
-                     .Int(pr.t4_session_ns()).Int(pr.offset_ns()).Int(pr.delay_ns())
-                     .Bool(pr.accepted()).Text(pr.reject_reason()))
+                     .Text(sid)
+                     .Int(seq)
+                     .Text(pr.client_id())
+                     .UInt(pr.probe_id())
+                     .Int(pr.t1_session_ns())
+                     .Int(pr.t2_client_ns())
+                     .Int(pr.t3_client_ns())
+                     .Int(pr.t4_session_ns())
+                     .Int(pr.offset_ns())
+                     .Int(pr.delay_ns())
+                     .Bool(pr.accepted())
+                     .Text(pr.reject_reason()))
           .status();
     }
     case Record::kClientEvent: {
       const auto& c = r.client_event().client();
       return writer_
-          ->Exec("INSERT INTO client VALUES ($1,$2,$3,$4,$5,$6,$7,$8,$9,$9) ON CONFLICT "
-                 "(session_id, client_id) DO UPDATE SET last_seen_session_ns = "
-                 "excluded.last_seen_session_ns, source_description = "
-                 "excluded.source_description, software = excluded.software",
-                 Params()
-                     .Text(sid).Text(c.client_id()).Text(RoleWord(c.role())).Text(c.subject())
-                     .Text(SourceKindWord(c.source_kind())).Text(c.source_description())
-                     .Text(c.software()).Int(seq).Int(r.written_session_ns()))
+          ->Exec(
+              "INSERT INTO client VALUES ($1,$2,$3,$4,$5,$6,$7,$8,$9,$9) ON CONFLICT "
+              "(session_id, client_id) DO UPDATE SET last_seen_session_ns = "
+              "excluded.last_seen_session_ns, source_description = "
+              "excluded.source_description, software = excluded.software",
+              Params()
+                  .Text(sid)
+                  .Text(c.client_id())
+                  .Text(RoleWord(c.role()))
+                  .Text(c.subject())
+                  .Text(SourceKindWord(c.source_kind()))
+                  .Text(c.source_description())
+                  .Text(c.software())
+                  .Int(seq)
+                  .Int(r.written_session_ns()))
           .status();
     }
     case Record::kCalibrationEvent: {
@@ -472,9 +509,15 @@ absl::Status PostgresLedger::InsertRecord(const Record& r, uint64_t token) {
       return writer_
           ->Exec("INSERT INTO calibration VALUES ($1,$2,$3,$4,$5,$6,$7,$8,$9,$10)",
                  Params()
-                     .Text(c.id()).Text(c.trainer()).Text(sid).Int(seq)
-                     .Int(r.written_session_ns()).Text(family).Text(c.kernel_description())
-                     .Int(c.valid()).Bool(c.warnings_size() > 0)
+                     .Text(c.id())
+                     .Text(c.trainer())
+                     .Text(sid)
+                     .Int(seq)
+                     .Int(r.written_session_ns())
+                     .Text(family)
+                     .Text(c.kernel_description())
+                     .Int(c.valid())
+                     .Bool(c.warnings_size() > 0)
                      .Text(SourceKindWord(c.source_kind())))
           .status();
     }
@@ -487,8 +530,9 @@ absl::Status PostgresLedger::InsertRecord(const Record& r, uint64_t token) {
 
 absl::StatusOr<PostgresLedger::Head> PostgresLedger::LoadHead(PgConn* conn,
                                                               std::string_view session_id) {
-  auto q = conn->Exec("SELECT seq, hash FROM record WHERE session_id = $1 ORDER BY seq DESC LIMIT 1",
-                      Params().Text(session_id));
+  auto q =
+      conn->Exec("SELECT seq, hash FROM record WHERE session_id = $1 ORDER BY seq DESC LIMIT 1",
+                 Params().Text(session_id));
   if (!q.ok()) return q.status();
   if (q->rows() == 0) return Head{};
   return Head{static_cast<uint64_t>(q->Int(0, 0)), q->Bytes(0, 1)};
@@ -500,8 +544,8 @@ void PostgresLedger::CommitGroups(std::vector<Work>& batch) {
   for (const Work& w : batch) {
     if (!w.records.empty()) sessions.insert(w.session_id);
   }
-  std::map<std::string, uint64_t> tokens;       // session -> fencing token checked
-  std::map<std::string, std::string> lost;      // session -> the owner now
+  std::map<std::string, uint64_t> tokens;   // session -> fencing token checked
+  std::map<std::string, std::string> lost;  // session -> the owner now
   absl::Status fatal = WriteHealth();
   if (fatal.ok()) fatal = writer_->Run("BEGIN");
   // Fencing first: the lease row stays locked by this transaction until it
@@ -522,8 +566,11 @@ void PostgresLedger::CommitGroups(std::vector<Work>& batch) {
       auto q = writer_->Exec(
           "UPDATE session_lease SET expires_at = now() + $4::interval WHERE session_id = $1 AND "
           "owner = $2 AND token = $3",
-          Params().Text(session).Text(options_.instance_id).UInt(token).Text(
-              Interval(options_.lease)));
+          Params()
+              .Text(session)
+              .Text(options_.instance_id)
+              .UInt(token)
+              .Text(Interval(options_.lease)));
       if (!q.ok()) {
         fatal = q.status();
         break;
@@ -540,9 +587,10 @@ void PostgresLedger::CommitGroups(std::vector<Work>& batch) {
     Work& w = batch[j];
     if (w.records.empty()) continue;
     if (lost.count(w.session_id) != 0) {
-      results[j] = absl::UnavailableError(
-          Cat("session ", w.session_id, " is not owned by this instance (its lease was lost or "
-              "never taken); not stored, send it again to the owner"));
+      results[j] =
+          absl::UnavailableError(Cat("session ", w.session_id,
+                                     " is not owned by this instance (its lease was lost or "
+                                     "never taken); not stored, send it again to the owner"));
       continue;
     }
     absl::Status s = w.error;
@@ -656,9 +704,11 @@ void PostgresLedger::TryRecover() {
   }
   const auto failed_for =
       std::chrono::duration_cast<std::chrono::milliseconds>(SteadyClock::now() - failing_since_);
-  if (auto s = writer_->Exec("INSERT INTO ledger_event (event, detail) VALUES ($1, $2)",
-                             Params().Text("write_resumed").Text(Cat(
-                                 "after ", failed_for.count(), " ms of: ", health.message())));
+  if (auto s =
+          writer_->Exec("INSERT INTO ledger_event (event, detail) VALUES ($1, $2)",
+                        Params()
+                            .Text("write_resumed")
+                            .Text(Cat("after ", failed_for.count(), " ms of: ", health.message())));
       !s.ok()) {
     return again(s.status());
   }
@@ -679,8 +729,8 @@ absl::StatusOr<SessionLease> PostgresLedger::AcquireSession(std::string_view ses
     std::string previous_owner;
     Head head;
   };
-  auto taken = OnConn<absl::StatusOr<Taken>>(
-      ops_, ops_mu_, [&](PgConn* c) -> absl::StatusOr<Taken> {
+  auto taken =
+      OnConn<absl::StatusOr<Taken>>(ops_, ops_mu_, [&](PgConn* c) -> absl::StatusOr<Taken> {
         if (absl::Status s = c->Run("BEGIN"); !s.ok()) return s;
         auto fail = [c](absl::Status s) {
           c->Run("ROLLBACK").IgnoreError();
@@ -701,8 +751,11 @@ absl::StatusOr<SessionLease> PostgresLedger::AcquireSession(std::string_view ses
             "session_lease.acquired_at ELSE now() END "
             "WHERE session_lease.owner = excluded.owner OR session_lease.expires_at < now() "
             "RETURNING token",
-            Params().Text(session_id).Text(options_.instance_id).Text(options_.advertise).Text(
-                Interval(options_.lease)));
+            Params()
+                .Text(session_id)
+                .Text(options_.instance_id)
+                .Text(options_.advertise)
+                .Text(Interval(options_.lease)));
         if (!q.ok()) {
           if (absl::IsFailedPrecondition(q.status())) {  // foreign key: no such session
             c->Run("ROLLBACK").IgnoreError();
@@ -726,8 +779,12 @@ absl::StatusOr<SessionLease> PostgresLedger::AcquireSession(std::string_view ses
           auto e = c->Exec(
               "INSERT INTO lease_event (session_id, owner, owner_address, token, previous_owner) "
               "VALUES ($1, $2, $3, $4, $5)",
-              Params().Text(session_id).Text(options_.instance_id).Text(options_.advertise)
-                  .UInt(t.token).Text(previous));
+              Params()
+                  .Text(session_id)
+                  .Text(options_.instance_id)
+                  .Text(options_.advertise)
+                  .UInt(t.token)
+                  .Text(previous));
           if (!e.ok()) return fail(e.status());
         }
         auto head = LoadHead(c, session_id);
@@ -875,12 +932,19 @@ void PostgresLedger::ListenLoop() {
 absl::Status PostgresLedger::CreateSession(const SessionRow& row) {
   return RunTx([&](PgConn* c) {
     return c
-        ->Exec("INSERT INTO session (id, title, study, state, opened_session_ns, utc_anchor_ns, "
-               "mono_anchor_ns, boot_id, pin_kernels) VALUES ($1, $2, $3, 'open', $4, $5, $6, "
-               "$7, $8)",
-               Params().Text(row.id).Text(row.title).Text(row.study).Int(row.opened_session_ns)
-                   .Int(row.utc_anchor_ns).Int(row.mono_anchor_ns).Text(row.boot_id)
-                   .Bool(row.pin_kernels))
+        ->Exec(
+            "INSERT INTO session (id, title, study, state, opened_session_ns, utc_anchor_ns, "
+            "mono_anchor_ns, boot_id, pin_kernels) VALUES ($1, $2, $3, 'open', $4, $5, $6, "
+            "$7, $8)",
+            Params()
+                .Text(row.id)
+                .Text(row.title)
+                .Text(row.study)
+                .Int(row.opened_session_ns)
+                .Int(row.utc_anchor_ns)
+                .Int(row.mono_anchor_ns)
+                .Text(row.boot_id)
+                .Bool(row.pin_kernels))
         .status();
   });
 }
@@ -923,9 +987,10 @@ absl::Status PostgresLedger::ReanchorSession(std::string_view id, int64_t utc_an
                                              int64_t mono_anchor_ns, std::string_view boot_id) {
   return RunTx([&](PgConn* c) {
     return c
-        ->Exec("UPDATE session SET utc_anchor_ns = $1, mono_anchor_ns = $2, boot_id = $3 WHERE "
-               "id = $4",
-               Params().Int(utc_anchor_ns).Int(mono_anchor_ns).Text(boot_id).Text(id))
+        ->Exec(
+            "UPDATE session SET utc_anchor_ns = $1, mono_anchor_ns = $2, boot_id = $3 WHERE "
+            "id = $4",
+            Params().Int(utc_anchor_ns).Int(mono_anchor_ns).Text(boot_id).Text(id))
         .status();
   });
 }
@@ -939,12 +1004,16 @@ absl::Status PostgresLedger::PutToken(const TokenRow& row) {
     } else {
       p.Text(row.session_id);
     }
-    p.Text(RoleWord(row.role)).Text(row.subject).Bytes(row.hash).Int(row.issued_session_ns)
+    p.Text(RoleWord(row.role))
+        .Text(row.subject)
+        .Bytes(row.hash)
+        .Int(row.issued_session_ns)
         .Bool(row.revoked);
     return c
-        ->Exec("INSERT INTO token (id, session_id, role, subject, secret_sha256, "
-               "issued_session_ns, revoked) VALUES ($1, $2, $3, $4, $5, $6, $7)",
-               p)
+        ->Exec(
+            "INSERT INTO token (id, session_id, role, subject, secret_sha256, "
+            "issued_session_ns, revoked) VALUES ($1, $2, $3, $4, $5, $6, $7)",
+            p)
         .status();
   });
 }
@@ -1136,12 +1205,11 @@ absl::Status PostgresLedger::PutDerivedSet(std::string_view session_id, std::str
                         Params().Text(session_id).Text(name));
     if (!have.ok()) return have.status();
     if (have->Int(0, 0) > 0 && !overwrite) {
-      return absl::AlreadyExistsError(Cat("derived set '", name, "' exists in session ",
-                                          session_id, " (ask to overwrite it)"));
+      return absl::AlreadyExistsError(
+          Cat("derived set '", name, "' exists in session ", session_id, " (ask to overwrite it)"));
     }
-    for (const char* sql :
-         {"DELETE FROM derived_record WHERE session_id = $1 AND derived_set = $2",
-          "DELETE FROM derived_set WHERE session_id = $1 AND name = $2"}) {
+    for (const char* sql : {"DELETE FROM derived_record WHERE session_id = $1 AND derived_set = $2",
+                            "DELETE FROM derived_set WHERE session_id = $1 AND name = $2"}) {
       if (auto d = c->Exec(sql, Params().Text(session_id).Text(name)); !d.ok()) return d.status();
     }
     if (auto i = c->Exec("INSERT INTO derived_set (session_id, name, spec) VALUES ($1, $2, $3)",
@@ -1160,8 +1228,12 @@ absl::Status PostgresLedger::PutDerivedSet(std::string_view session_id, std::str
       std::string body;
       if (!copy.SerializeToString(&body)) return absl::InternalError("cannot serialise a record");
       if (auto i = c->Exec("INSERT INTO derived_record VALUES ($1, $2, $3, $4, $5)",
-                           Params().Text(session_id).Text(name).Int(++seq)
-                               .Text(RecordKindName(copy)).Bytes(body));
+                           Params()
+                               .Text(session_id)
+                               .Text(name)
+                               .Int(++seq)
+                               .Text(RecordKindName(copy))
+                               .Bytes(body));
           !i.ok()) {
         return i.status();
       }
@@ -1180,8 +1252,14 @@ absl::Status PostgresLedger::PutTimeSet(const TimeSetRow& set,
             "INSERT INTO time_set (id, session_id, created_utc, method, parameters, through_seq, "
             "head_hash, events, retimed) VALUES ($1, $2, to_char(now() AT TIME ZONE 'UTC', "
             "'YYYY-MM-DD\"T\"HH24:MI:SS.MS\"Z\"'), $3, $4, $5, $6, $7, $8)",
-            Params().Text(set.id).Text(set.session_id).Text(set.method).Text(set.parameters)
-                .UInt(set.through_sequence).Bytes(set.head_hash).UInt(set.events)
+            Params()
+                .Text(set.id)
+                .Text(set.session_id)
+                .Text(set.method)
+                .Text(set.parameters)
+                .UInt(set.through_sequence)
+                .Bytes(set.head_hash)
+                .UInt(set.events)
                 .UInt(set.retimed));
         !i.ok()) {
       return i.status();
@@ -1191,9 +1269,17 @@ absl::Status PostgresLedger::PutTimeSet(const TimeSetRow& set,
               "INSERT INTO derived_time (time_set, session_id, seq, kind, client_id, "
               "event_session_ns, uncertainty_ns, live_session_ns, live_uncertainty_ns, outcome, "
               "probes) VALUES ($1, $2, $3, $4, $5, $6, $7, $8, $9, $10, $11)",
-              Params().Text(set.id).Text(set.session_id).UInt(t.sequence).Text(t.kind)
-                  .Text(t.client_id).Int(t.event_session_ns).Int(t.uncertainty_ns)
-                  .Int(t.live_session_ns).Int(t.live_uncertainty_ns).Text(t.outcome)
+              Params()
+                  .Text(set.id)
+                  .Text(set.session_id)
+                  .UInt(t.sequence)
+                  .Text(t.kind)
+                  .Text(t.client_id)
+                  .Int(t.event_session_ns)
+                  .Int(t.uncertainty_ns)
+                  .Int(t.live_session_ns)
+                  .Int(t.live_uncertainty_ns)
+                  .Text(t.outcome)
                   .Int(t.probes));
           !i.ok()) {
         return i.status();

@@ -67,8 +67,8 @@ class PostgresLedger final : public Ledger {
     // Leases: off, the ledger writes any session (one process, tests of the
     // ledger alone); on, sessions must be acquired first (tickmarkd).
     bool leases = false;
-    std::string instance_id;     // unique per process; default host:pid:random
-    std::string advertise;       // host:port clients reach this instance at
+    std::string instance_id;  // unique per process; default host:pid:random
+    std::string advertise;    // host:port clients reach this instance at
     std::chrono::milliseconds lease{5'000};
     // Retries while writes fail: first after retry_initial, doubling up to retry_max.
     std::chrono::milliseconds retry_initial{100};
@@ -139,8 +139,8 @@ class PostgresLedger final : public Ledger {
     std::string session_id;
     std::vector<tickmark::v1::Record> records;
     CommitCallback done;
-    absl::Status error;              // set: fail the records with it
-    std::function<void()> barrier;   // for barriers
+    absl::Status error;             // set: fail the records with it
+    std::function<void()> barrier;  // for barriers
   };
 
   explicit PostgresLedger(Options options);
@@ -173,17 +173,17 @@ class PostgresLedger final : public Ledger {
 
   std::mutex mu_;
   std::condition_variable work_cv_;
-  std::deque<Work> queue_;        // GUARDED_BY(mu_)
-  Heads assigned_;                // GUARDED_BY(mu_)
-  Heads committed_;               // GUARDED_BY(mu_)
+  std::deque<Work> queue_;                              // GUARDED_BY(mu_)
+  Heads assigned_;                                      // GUARDED_BY(mu_)
+  Heads committed_;                                     // GUARDED_BY(mu_)
   std::map<std::string, uint64_t, std::less<>> owned_;  // GUARDED_BY(mu_): session -> token
-  bool closing_ = false;          // GUARDED_BY(mu_)
-  absl::Status health_;           // GUARDED_BY(mu_)
+  bool closing_ = false;                                // GUARDED_BY(mu_)
+  absl::Status health_;                                 // GUARDED_BY(mu_)
   std::function<void(const std::string&, const std::string&)> on_lease_lost_;  // GUARDED_BY(mu_)
-  std::function<void(const std::string&, uint64_t)> on_remote_commit_;          // GUARDED_BY(mu_)
-  std::chrono::steady_clock::time_point next_retry_;   // writer thread only
-  std::chrono::milliseconds backoff_{0};               // writer thread only
-  std::chrono::steady_clock::time_point failing_since_;  // writer thread only
+  std::function<void(const std::string&, uint64_t)> on_remote_commit_;         // GUARDED_BY(mu_)
+  std::chrono::steady_clock::time_point next_retry_;                           // writer thread only
+  std::chrono::milliseconds backoff_{0};                                       // writer thread only
+  std::chrono::steady_clock::time_point failing_since_;                        // writer thread only
 
   std::condition_variable stop_cv_;  // renewer and listener wait on it (with mu_)
   std::thread writer_thread_;
