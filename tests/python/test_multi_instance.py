@@ -213,8 +213,9 @@ def check_session(pg, db, session, trainers, follower):
         for cseq, seq in t.acked.items():
             if by_cseq.get(cseq) != seq:
                 lost += 1
-    last = int(pg.psql(db, f"SELECT COALESCE(MAX(seq), 0) FROM record WHERE session_id = '{session}'"))
-    count = int(pg.psql(db, f"SELECT COUNT(*) FROM record WHERE session_id = '{session}'"))
+    # One statement, so both are read at one moment.
+    count, last = map(int, pg.psql(db, f"SELECT COUNT(*), COALESCE(MAX(seq), 0) FROM record "
+                                       f"WHERE session_id = '{session}'").split("|"))
     assert count == last, "the journal has a hole"
     follower.until(last)
     seen = follower.seqs
@@ -299,7 +300,8 @@ def test_failover_and_fencing(pg, tmp_path):
               f"took {fenced_sid} (token {t_token})")
         assert late == 0
 
-        # -- wind down and count.
+        # -- wind down (every client, so the sessions stop growing) and count.
+        taker.close()
         for sid, (trainers, agent, follower) in work.items():
             for t in trainers:
                 t.finish()
