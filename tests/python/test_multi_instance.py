@@ -108,7 +108,10 @@ http {{
         self.conf = os.path.join(prefix, "nginx.conf")
         with open(self.conf, "w") as f:
             f.write(conf)
-        self.proc = subprocess.Popen([NGINX, "-p", prefix, "-c", self.conf],
+        # -e: the error log from the start (before the config is read,
+        # nginx would open its compiled-in /var/log/nginx/error.log).
+        self.proc = subprocess.Popen([NGINX, "-p", prefix, "-c", self.conf,
+                                      "-e", os.path.join(prefix, "logs", "error.log")],
                                      stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
         deadline = time.monotonic() + 10
         while time.monotonic() < deadline:
