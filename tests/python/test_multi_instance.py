@@ -251,10 +251,20 @@ def test_failover_and_fencing(pg, tmp_path):
         for sid, (trainers, agent, _) in work.items():
             for n in range(5):
                 agent.step(f"move-{n}")
+        # A C++ client too (the agent library's StreamClient), on the
+        # session whose owner will be killed: it must follow the owner and
+        # resend as the Python clients do.
+        victim_sid, victim_admin, victim_home = sessions[0]
+        token_file = tmp_path / "scripted.token"
+        token_file.write_text(victim_home.token(victim_sid, victim_admin, "agent", "scripted") + "\n")
+        scripted = subprocess.Popen(
+            [os.path.join(BIN, "tickmark-scripted-agent"), "--server", lb.address,
+             "--token-file", str(token_file), "--client-id", f"scripted:{victim_sid}",
+             "--seconds", "12", "--rate", "20", "--no-realtime"],
+            stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
         time.sleep(1.0)
 
         # -- failover: kill -9 the owner of the first session under load.
-        victim_sid = sessions[0][0]
         owner, token = owner_of(pg, db, victim_sid)
         victim = next(i for i in inst if i.name == owner)
         acked_before = sum(len(t.acked) for t in work[victim_sid][0])
@@ -317,6 +327,18 @@ def test_failover_and_fencing(pg, tmp_path):
                   f"lost {lost}, duplicated {dup}, subscriber gaps {gaps}")
             totals = [totals[0] + lost, totals[1] + dup, totals[2] + gaps]
         assert totals == [0, 0, 0], f"lost, duplicated, gaps: {totals}"
+        # The C++ client: it ran to its end (flushed everything), its steps
+        # are stored once each, without a hole in its client sequences, and
+        # some were written by the instance that took over.
+        _, err = scripted.communicate(timeout=60)
+        assert scripted.returncode == 0, err
+        cseqs = [int(x) for x in pg.psql(db, f"SELECT client_seq FROM record WHERE session_id = "
+                                             f"'{victim_sid}' AND client_id = 'scripted:{victim_sid}' "
+                                             f"ORDER BY client_seq").split()]
+        after = int(pg.psql(db, f"SELECT COUNT(*) FROM record WHERE session_id = '{victim_sid}' AND "
+                                f"client_id = 'scripted:{victim_sid}' AND lease_token = {new_token}"))
+        print(f"C++ agent on {victim_sid}: {len(cseqs)} steps stored, {after} after the takeover")
+        assert cseqs == list(range(1, len(cseqs) + 1)) and after > 0
         # Every chain continues across owners: sequences 1..n with no hole
         # (checked above); the hash chain itself is checked by the ledger
         # tests (ledger_backends_test) and by the server on resume.
