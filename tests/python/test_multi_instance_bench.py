@@ -11,7 +11,7 @@ HERE = os.path.dirname(os.path.abspath(__file__))
 def test_bench_smoke():
     p = subprocess.run(["/usr/bin/python3", os.path.join(HERE, "..", "..", "bench",
                                                           "multi_instance_bench.py"),
-                        "--seconds", "1", "--sessions", "3", "--window", "16"],
+                        "--seconds", "0.5", "--sessions", "2", "--window", "16"],
                        capture_output=True, text=True, timeout=120, env=os.environ)
     assert p.returncode == 0, p.stderr
     assert "sqlite, 1 instance" in p.stdout
