@@ -205,7 +205,8 @@ int main(int argc, char** argv) {
   std::string log_level = "info";
   CLI::App app(
       "The tickmark server: takes feedback from trainers and steps from agents over gRPC,\n"
-      "times them on one session timeline and keeps everything in a ledger (SQLite).",
+      "times them on one session timeline and keeps everything in a ledger (SQLite, or a "
+      "PostgreSQL database several instances share).",
       "tickmarkd");
   tickmark::ConfigureApp(app, std::string("The operator token (for the tickmark CLI) is written to\n"
                                           "DATA_DIR/operator.token on first start.\n\n") +

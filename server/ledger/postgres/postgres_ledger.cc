@@ -538,7 +538,7 @@ absl::StatusOr<PostgresLedger::Head> PostgresLedger::LoadHead(PgConn* conn,
   return Head{static_cast<uint64_t>(q->Int(0, 0)), q->Bytes(0, 1)};
 }
 
-void PostgresLedger::CommitGroups(std::vector<Work>& batch) {
+void PostgresLedger::CommitGroups(std::vector<Work>& batch, bool savepoints) {
   std::vector<absl::Status> results(batch.size());
   std::set<std::string> sessions;
   for (const Work& w : batch) {
@@ -596,16 +596,24 @@ void PostgresLedger::CommitGroups(std::vector<Work>& batch) {
     absl::Status s = w.error;
     bool inserted = false;
     if (s.ok()) {
-      if (fatal = writer_->Run("SAVEPOINT append_group"); !fatal.ok()) break;
+      if (savepoints) {
+        if (fatal = writer_->Run("SAVEPOINT append_group"); !fatal.ok()) break;
+      }
       const uint64_t token = tokens.count(w.session_id) ? tokens[w.session_id] : 0;
       for (const Record& r : w.records) {
         if (s = InsertRecord(r, token); !s.ok()) break;
       }
       if (s.ok()) {
-        fatal = writer_->Run("RELEASE append_group");
+        if (savepoints) fatal = writer_->Run("RELEASE append_group");
         inserted = fatal.ok();
       } else if (IsConnectionError(s, writer_.get())) {
         fatal = s;
+      } else if (!savepoints) {
+        // The fast path has no savepoints to undo one group: undo all and
+        // do the batch again with one savepoint per group. Nothing was
+        // committed or reported yet.
+        writer_->Run("ROLLBACK").IgnoreError();
+        return CommitGroups(batch, /*savepoints=*/true);
       } else {
         fatal = writer_->Run("ROLLBACK TO append_group");
         if (fatal.ok()) fatal = writer_->Run("RELEASE append_group");
