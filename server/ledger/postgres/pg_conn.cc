@@ -150,6 +150,13 @@ absl::StatusOr<Result> PgConn::Exec(std::string_view sql, const Params& params) 
     lengths[i] = static_cast<int>(params.values_[i].size());
   }
   const std::string text(sql);
+  if (pipelining_) {
+    if (PQsendQueryParams(conn_, text.c_str(), params.size(), nullptr, values.data(),
+                          lengths.data(), params.formats_.data(), /*resultFormat=*/1) != 1) {
+      return StatusOf(conn_, nullptr, sql);
+    }
+    return Result(nullptr);
+  }
   PGresult* r = PQexecParams(conn_, text.c_str(), params.size(), nullptr, values.data(),
                              lengths.data(), params.formats_.data(), /*resultFormat=*/1);
   const ExecStatusType st = r != nullptr ? PQresultStatus(r) : PGRES_FATAL_ERROR;
@@ -159,6 +166,37 @@ absl::StatusOr<Result> PgConn::Exec(std::string_view sql, const Params& params) 
     return s;
   }
   return Result(r);
+}
+
+absl::Status PgConn::BeginPipeline() {
+  if (PQenterPipelineMode(conn_) != 1) return StatusOf(conn_, nullptr, "pipeline");
+  pipelining_ = true;
+  return absl::OkStatus();
+}
+
+absl::Status PgConn::EndPipeline() {
+  absl::Status first;
+  if (PQpipelineSync(conn_) != 1) first = StatusOf(conn_, nullptr, "pipeline sync");
+  while (first.ok() || PQstatus(conn_) == CONNECTION_OK) {
+    PGresult* r = PQgetResult(conn_);
+    if (r == nullptr) {
+      if (PQstatus(conn_) != CONNECTION_OK) {
+        if (first.ok()) first = StatusOf(conn_, nullptr, "pipeline");
+        break;
+      }
+      continue;  // the end of one statement's results
+    }
+    const ExecStatusType st = PQresultStatus(r);
+    if (st == PGRES_PIPELINE_SYNC) {
+      PQclear(r);
+      break;
+    }
+    if (st == PGRES_FATAL_ERROR && first.ok()) first = StatusOf(conn_, r, "pipeline");
+    PQclear(r);  // PGRES_PIPELINE_ABORTED: skipped after the first error
+  }
+  pipelining_ = false;
+  if (PQexitPipelineMode(conn_) != 1 && first.ok()) first = StatusOf(conn_, nullptr, "pipeline");
+  return first;
 }
 
 absl::Status PgConn::Run(std::string_view sql) {

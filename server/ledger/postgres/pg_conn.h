@@ -73,6 +73,11 @@ class PgConn {
   // Several statements without parameters (migrations, BEGIN, COMMIT...).
   absl::Status Run(std::string_view sql);
   bool ok() const;
+  // Pipeline mode (libpq 14+, PostgreSQL docs "Pipeline Mode"): while on,
+  // Exec only sends (its Result is empty) and EndPipeline collects every
+  // statement's outcome: the first error, or OK. Run must not be used then.
+  absl::Status BeginPipeline();
+  absl::Status EndPipeline();
   pg_conn* raw() const { return conn_; }
   // The connection's socket (for LISTEN waits), -1 if broken.
   int socket() const;
@@ -80,6 +85,7 @@ class PgConn {
  private:
   explicit PgConn(pg_conn* c) : conn_(c) {}
   pg_conn* conn_;
+  bool pipelining_ = false;
 };
 
 // The conninfo without its password (for messages).

@@ -583,6 +583,10 @@ void PostgresLedger::CommitGroups(std::vector<Work>& batch, bool savepoints) {
     }
   }
   std::map<std::string, Head> tx_heads;
+  // The fast path sends every insert without waiting for each answer
+  // (pipeline mode): a round trip per batch rather than per record.
+  const bool pipelined = !savepoints && fatal.ok();
+  if (pipelined) fatal = writer_->BeginPipeline();
   for (size_t j = 0; fatal.ok() && j < batch.size(); ++j) {
     Work& w = batch[j];
     if (w.records.empty()) continue;
@@ -612,6 +616,7 @@ void PostgresLedger::CommitGroups(std::vector<Work>& batch, bool savepoints) {
         // The fast path has no savepoints to undo one group: undo all and
         // do the batch again with one savepoint per group. Nothing was
         // committed or reported yet.
+        if (pipelined) writer_->EndPipeline().IgnoreError();
         writer_->Run("ROLLBACK").IgnoreError();
         return CommitGroups(batch, /*savepoints=*/true);
       } else {
@@ -640,6 +645,18 @@ void PostgresLedger::CommitGroups(std::vector<Work>& batch, bool savepoints) {
                 ->Exec("SELECT pg_notify($1, $2)",
                        Params().Text(kNotifyChannel).Text(Cat(head.sequence, " ", session)))
                 .status();
+  }
+  if (pipelined) {
+    const absl::Status sent = writer_->EndPipeline();
+    if (fatal.ok() && !sent.ok()) {
+      if (!IsConnectionError(sent, writer_.get())) {
+        // An insert broke a constraint: redo the batch, one savepoint per
+        // append, so that only that append fails.
+        writer_->Run("ROLLBACK").IgnoreError();
+        return CommitGroups(batch, /*savepoints=*/true);
+      }
+      fatal = sent;
+    }
   }
   if (fatal.ok()) fatal = writer_->Run("COMMIT");
   if (!fatal.ok()) {

@@ -6,8 +6,9 @@
 // committed in batches (group commit: everything queued goes into one
 // transaction; if an Append group breaks a constraint, the batch is redone
 // with each group under its own SAVEPOINT so the bad group is undone alone)
-// and acknowledged from the commit callback, after COMMIT returned. Sequence numbers and the hash chain (ChainHash) are assigned at
-// Append, as in SQLite, from the session's head as this instance knows it.
+// and acknowledged from the commit callback, after COMMIT returned. Sequence numbers and the hash
+// chain (ChainHash) are assigned at Append, as in SQLite, from the session's head as this instance
+// knows it.
 //
 // Leases (Options::leases): a session is written by one instance at a time.
 // AcquireSession takes the session's row in `session_lease` when it is free,
