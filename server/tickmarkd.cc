@@ -52,7 +52,19 @@ CLI::Validator KernelText() {
 void AddServerFlags(CLI::App& app, tickmark::rpc::ServerOptions& o, std::string& log_level) {
   app.add_option("--listen", o.listen, "HOST:PORT for gRPC (port 0 picks a free port)");
   app.add_option("--data-dir", o.data_dir, "folder for tickmark.db and operator.token");
-  app.add_option("--ledger", o.ledger_path, "ledger file (default DATA_DIR/tickmark.db)");
+  app.add_option("--ledger", o.ledger_path,
+                 "ledger file (default DATA_DIR/tickmark.db), or a PostgreSQL database "
+                 "(postgresql://USER@HOST:PORT/DB) that several instances may share");
+  // Several instances on one PostgreSQL database (docs/architecture.md,
+  // "More than one machine").
+  app.add_option("--advertise", o.advertise,
+                 "HOST:PORT where clients reach this instance directly, told to clients of "
+                 "sessions it owns (PostgreSQL ledger; default: --listen)");
+  app.add_option("--instance-id", o.instance_id,
+                 "this instance's name in the lease table (default: host:pid:random)");
+  AddDuration(app, "--lease-ms", &o.lease, Duration::Millis, 200, 600'000,
+              "a session's lease on a PostgreSQL ledger: another instance takes the session "
+              "over this long after its owner stops renewing");
   app.add_option("--log-level", log_level, "debug, info, warning or error")
       ->check(CLI::IsMember({"debug", "info", "warning", "error"}));
   app.add_option_function<std::string>(
@@ -202,7 +214,8 @@ int main(int argc, char** argv) {
   std::string log_level = "info";
   CLI::App app(
       "The tickmark server: takes feedback from trainers and steps from agents over gRPC,\n"
-      "times them on one session timeline and keeps everything in a ledger (SQLite).",
+      "times them on one session timeline and keeps everything in a ledger (SQLite, or a "
+      "PostgreSQL database several instances share).",
       "tickmarkd");
   tickmark::ConfigureApp(app, std::string("The operator token (for the tickmark CLI) is written to\n"
                                           "DATA_DIR/operator.token on first start.\n\n") +

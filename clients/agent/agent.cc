@@ -145,6 +145,9 @@ void Subscription::Run() {
       req.set_stop_at_end(!options_.follow);
       for (auto k : options_.kinds) req.add_kinds(k);
       ctx.AddMetadata("authorization", "Bearer " + token_);
+      // Lets a load balancer route by session (several instances); any
+      // instance serves a subscription, so no owner needs to be followed.
+      ctx.AddMetadata(rpc::kSessionMetadata, session_id_);
       current_ = &ctx;
     }
     auto reader = stub->Subscribe(&ctx, req);

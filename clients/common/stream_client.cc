@@ -74,6 +74,8 @@ const MonotonicSource* SystemClock() {
 template <typename Kind>
 struct StreamClient<Kind>::Connection {
   grpc::ClientContext ctx;
+  tickmark::v1::Live::Stub* stub = nullptr;  // the original target's or a redirect's
+  std::string target;
   // Set by the reader thread under mu_ before `first` or `reader_done`.
   std::unique_ptr<grpc::ClientReaderWriter<Request, tickmark::v1::ServerMessage>>
       stream;
@@ -307,7 +309,7 @@ absl::Status StreamClient<Kind>::OnWelcomeLocked(const tickmark::v1::Welcome& w)
 
 template <typename Kind>
 void StreamClient<Kind>::ReadLoop(Connection* conn, Request hello) {
-  auto stream = Kind::Open(stub_.get(), &conn->ctx);
+  auto stream = Kind::Open(conn->stub, &conn->ctx);
   tickmark::v1::ServerMessage msg;
   // Stamped once the call is open, so connecting does not count as transit.
   hello.mutable_hello()->set_sent_client_ns(clock_->NowNanos());
@@ -414,6 +416,14 @@ absl::Status StreamClient<Kind>::RunConnection(bool* welcomed) {
   {
     std::lock_guard<std::mutex> lock(mu_);
     if (closing_ || stop_) return absl::CancelledError("closed");
+    // Several server instances (docs/architecture.md, "More than one
+    // machine"): go where the last answer said the session's owner is, and
+    // name the session so a load balancer can route by it.
+    conn.stub = redirect_stub_ ? redirect_stub_.get() : stub_.get();
+    conn.target = redirect_stub_ ? redirect_target_ : options_.target;
+    if (!status_.session_id.empty()) {
+      conn.ctx.AddMetadata(rpc::kSessionMetadata, status_.session_id);
+    }
     conn_ = &conn;
     last_written_ = 0;  // resend everything unacknowledged
     SetStateLocked(StreamState::kConnecting);
@@ -442,6 +452,7 @@ absl::Status StreamClient<Kind>::RunConnection(bool* welcomed) {
     absl::Status finished = rpc::FromGrpc(conn.stream->Finish());
     lock.lock();
     conn_ = nullptr;
+    FollowOwnerLocked(conn, /*welcomed=*/false);
     return why.ok() ? finished : why;
   };
   auto first_arrived = [&] { return conn.first.has_value() || conn.reader_done; };
@@ -526,12 +537,41 @@ absl::Status StreamClient<Kind>::RunConnection(bool* welcomed) {
   absl::Status s = rpc::FromGrpc(conn.stream->Finish());
   lock.lock();
   conn_ = nullptr;
+  FollowOwnerLocked(conn, conn.welcomed);
   if (!conn.retry_later.ok() && !stop_ && !closing_) {
     // Not a healthy connection: back off as after a failed attempt.
     *welcomed = false;
     return conn.retry_later;
   }
   return s;
+}
+
+template <typename Kind>
+void StreamClient<Kind>::FollowOwnerLocked(const Connection& conn, bool welcomed) {
+  const auto& trailers = conn.ctx.GetServerTrailingMetadata();
+  auto it = trailers.find(rpc::kOwnerMetadata);
+  if (it != trailers.end()) {
+    const std::string owner(it->second.data(), it->second.size());
+    if (owner.empty() || owner == conn.target) return;
+    if (owner == options_.target) {
+      redirect_stub_.reset();
+      redirect_target_.clear();
+      return;
+    }
+    grpc::ChannelArguments args;
+    args.SetString(GRPC_ARG_PRIMARY_USER_AGENT_STRING, options_.source.software);
+    redirect_target_ = owner;
+    redirect_stub_ = tickmark::v1::Live::NewStub(
+        grpc::CreateCustomChannel(owner, options_.credentials, args));
+    ++status_.redirects;
+    return;
+  }
+  // A redirect target that did not welcome us (the owner died, or moved
+  // without saying where): back to the original target (the balancer).
+  if (!welcomed && redirect_stub_ && conn.target == redirect_target_) {
+    redirect_stub_.reset();
+    redirect_target_.clear();
+  }
 }
 
 template <typename Kind>

@@ -218,6 +218,7 @@ struct StreamStatus {
   uint64_t pending = 0;   // accepted, not yet acknowledged
   uint64_t connections = 0;  // Welcomes received
   uint64_t reconnects = 0;   // connection attempts after the first
+  uint64_t redirects = 0;    // times a server named another instance as the owner
   uint64_t probes_answered = 0;
   uint64_t udp_probes = 0;   // UDP probe exchanges completed (all connections)
   std::optional<AckInfo> last_ack;
@@ -315,11 +316,19 @@ class StreamClient {
   bool HasUnwrittenLocked() const;
   bool AllDoneLocked() const;
 
+  // After an attempt: follows the owner named in its trailing metadata
+  // (tickmark-owner), or drops a redirect that did not welcome us.
+  void FollowOwnerLocked(const Connection& conn, bool welcomed);
+
   const MonotonicSource* clock_;
   StreamOptions options_;
   Callbacks callbacks_;
   std::shared_ptr<grpc::Channel> channel_;
   std::unique_ptr<tickmark::v1::Live::Stub> stub_;
+  // Where the session's owner is, when a server named another instance;
+  // worker thread and mu_.
+  std::string redirect_target_;
+  std::unique_ptr<tickmark::v1::Live::Stub> redirect_stub_;
 
   mutable std::mutex mu_;
   std::condition_variable cv_;  // any change of the state below

@@ -129,6 +129,14 @@ struct RecordCounts {
 using CommitCallback =
     std::function<void(const absl::Status& status, const std::vector<tickmark::v1::Record>& records)>;
 
+// Several instances on one database (docs/architecture.md, "More than one
+// machine"): the right to write a session, held by one instance at a time.
+struct SessionLease {
+  bool owned = true;          // this instance may write the session now
+  std::string owner_address;  // not owned: where clients reach the owner
+  uint64_t token = 0;         // the fencing token held (0: a ledger without leases)
+};
+
 class Ledger {
  public:
   virtual ~Ledger() = default;
@@ -229,6 +237,25 @@ class Ledger {
   // not OK, appends still return a sequence but their commit callbacks get
   // this status (promptly: nothing waits for the disk).
   virtual absl::Status WriteHealth() { return absl::OkStatus(); }
+
+  // Takes (or keeps) the write lease of a session. While another instance
+  // holds an unexpired lease, answers owned = false with its address. The
+  // default (a ledger only one process writes: SQLite) is always owned.
+  virtual absl::StatusOr<SessionLease> AcquireSession(std::string_view /*session_id*/) {
+    return SessionLease{};
+  }
+  // Called (on a ledger thread, with no ledger lock held) when this instance
+  // lost a session's lease: another instance took it (`owner_address`), or
+  // a write found the fencing token changed. Appends of that session fail
+  // UNAVAILABLE until AcquireSession succeeds again. Set before appending.
+  virtual void SetLeaseLostHandler(
+      std::function<void(const std::string& session_id, const std::string& owner_address)>) {}
+  // Called when records of a session were committed by any instance (the
+  // database's notifications), with the highest sequence known; lets
+  // subscribers on an instance that does not own the session wake. The
+  // default never calls it.
+  virtual void SetRemoteCommitHandler(
+      std::function<void(const std::string& session_id, uint64_t sequence)>) {}
 
   // Commits what is queued, stops the writer and closes the database.
   // Appends after Close fail with UNAVAILABLE.

@@ -828,6 +828,12 @@ void IngestReactor<Side>::FinishNow(const grpc::Status& status) {
   if (!status.ok() && status.error_code() != grpc::StatusCode::CANCELLED) {
     TM_LOG(kInfo) << Side::kName << " stream ended: " << status.error_message();
   }
+  // Another instance owns the session: say where, so the client reconnects
+  // there (docs/architecture.md, "More than one machine").
+  if (status.error_code() == grpc::StatusCode::UNAVAILABLE && !principal_.session_id.empty()) {
+    const std::string owner = service_->hub()->OwnerHint(principal_.session_id);
+    if (!owner.empty()) ctx_->AddTrailingMetadata(kOwnerMetadata, owner);
+  }
   Finish(status);
 }
 

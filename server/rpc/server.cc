@@ -23,6 +23,8 @@
 
 #include "server/base/log.h"
 #include "server/base/strings.h"
+#include "server/ledger/postgres/pg_conn.h"
+#include "server/ledger/postgres/postgres_ledger.h"
 #include "server/ledger/sqlite/sqlite_ledger.h"
 #include "server/net/address.h"
 #include "server/net/udp_probe_server.h"
@@ -132,6 +134,11 @@ absl::StatusOr<std::unique_ptr<TickmarkServer>> TickmarkServer::Start(
   if (options.data_dir.empty() && options.ledger_path.empty()) {
     return absl::InvalidArgumentError("give --data-dir (or --ledger)");
   }
+  const bool postgres = ledger::IsPostgresUrl(options.ledger_path);
+  if (postgres && options.data_dir.empty()) {
+    return absl::InvalidArgumentError(
+        "a PostgreSQL ledger needs --data-dir too (for this instance's operator.token)");
+  }
   if (!options.data_dir.empty()) {
     std::error_code ec;
     std::filesystem::create_directories(options.data_dir, ec);
@@ -139,7 +146,9 @@ absl::StatusOr<std::unique_ptr<TickmarkServer>> TickmarkServer::Start(
   }
   s->ledger_path_ = options.ledger_path.empty() ? options.data_dir + "/tickmark.db"
                                                 : options.ledger_path;
-  std::filesystem::path ledger_dir = std::filesystem::path(s->ledger_path_).parent_path();
+  std::filesystem::path ledger_dir =
+      postgres ? std::filesystem::path(options.data_dir)
+               : std::filesystem::path(s->ledger_path_).parent_path();
   s->operator_token_path_ =
       (options.data_dir.empty() ? ledger_dir.string() : options.data_dir) + "/operator.token";
   if (s->operator_token_path_.front() == '/' && ledger_dir.empty()) {
@@ -171,6 +180,17 @@ absl::StatusOr<std::unique_ptr<TickmarkServer>> TickmarkServer::Start(
 
   if (opened) {
     s->ledger_ = std::move(opened);
+  } else if (postgres) {
+    ledger::PostgresLedger::Options lo;
+    lo.conninfo = options.ledger_path;
+    lo.leases = true;
+    lo.instance_id = options.instance_id;
+    lo.advertise = options.advertise.empty() ? options.listen : options.advertise;
+    lo.lease = std::chrono::milliseconds(options.lease.nanos() / 1'000'000);
+    auto ledger = ledger::PostgresLedger::Open(lo);
+    if (!ledger.ok()) return ledger.status();
+    s->ledger_path_ = ledger::pg::Redacted(options.ledger_path);
+    s->ledger_ = std::move(*ledger);
   } else {
     ledger::SqliteLedger::Options lo;
     lo.path = s->ledger_path_;

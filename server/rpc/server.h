@@ -35,6 +35,14 @@ struct ServerOptions {
   std::string listen = "127.0.0.1:7461";  // host:port; port 0 picks a free one
   std::string data_dir;                   // holds tickmark.db and operator.token
   std::string ledger_path;                // default: data_dir/tickmark.db
+  // With a postgresql:// ledger (several instances may share it): where
+  // clients reach this instance directly (default: listen), this
+  // instance's id in the lease table (default: host:pid:random), and how
+  // long a session's lease lasts without renewal (the takeover delay after
+  // a crash).
+  std::string advertise;
+  std::string instance_id;
+  Duration lease = Duration::Seconds(5);
   bool durable_power_loss = false;        // SQLite synchronous=FULL
   // Start a new, empty ledger although the data folder shows one existed
   // (operator.token, tickmark.db.heads); see SqliteLedger::Options.

@@ -384,6 +384,12 @@ void SessionRuntime::MarkClosed(const absl::Status& why) {
   for (StreamHandle* s : streams_) s->End(status);
 }
 
+void SessionRuntime::EndStreams(const absl::Status& why) {
+  const grpc::Status status = ToGrpc(why);
+  std::lock_guard<std::mutex> lock(streams_mu_);
+  for (StreamHandle* s : streams_) s->End(status);
+}
+
 void SessionRuntime::EndStreamsOf(const std::string& token_id, const absl::Status& why) {
   const grpc::Status status = ToGrpc(why);
   std::lock_guard<std::mutex> lock(streams_mu_);
@@ -398,13 +404,87 @@ SessionHub::SessionHub(ledger::Ledger* ledger, const MonotonicSource* mono,
       mono_(mono),
       utc_now_ns_(utc_now_ns),
       boot_id_(ReadBootId()),
-      options_(std::move(options)) {}
+      options_(std::move(options)) {
+  // Several instances on one database: a session whose lease this instance
+  // lost is dropped here, and its streams end UNAVAILABLE naming the owner,
+  // so clients reconnect there and resend what was not acknowledged.
+  ledger_->SetLeaseLostHandler([this](const std::string& session, const std::string& owner) {
+    OnLeaseLost(session, owner);
+  });
+  ledger_->SetRemoteCommitHandler([this](const std::string& session, uint64_t) {
+    std::lock_guard<std::mutex> lock(watch_mu_);
+    auto it = watchers_.find(session);
+    if (it == watchers_.end()) return;
+    for (RecordSink* sink : it->second) sink->OnCommitted({});
+  });
+}
+
+SessionHub::~SessionHub() {
+  ledger_->SetLeaseLostHandler({});
+  ledger_->SetRemoteCommitHandler({});
+}
+
+void SessionHub::Watch(const std::string& id, RecordSink* sink) {
+  std::lock_guard<std::mutex> lock(watch_mu_);
+  watchers_[id].insert(sink);
+}
+
+void SessionHub::Unwatch(const std::string& id, RecordSink* sink) {
+  std::lock_guard<std::mutex> lock(watch_mu_);
+  auto it = watchers_.find(id);
+  if (it == watchers_.end()) return;
+  it->second.erase(sink);
+  if (it->second.empty()) watchers_.erase(it);
+}
+
+void SessionHub::OnLeaseLost(const std::string& id, const std::string& owner) {
+  std::shared_ptr<SessionRuntime> runtime;
+  {
+    std::lock_guard<std::mutex> lock(mu_);
+    if (auto it = sessions_.find(id); it != sessions_.end()) {
+      runtime = std::move(it->second);
+      sessions_.erase(it);
+    }
+    owners_[id] = owner;
+  }
+  if (runtime) {
+    runtime->EndStreams(absl::UnavailableError(
+        Cat("session ", id, " moved to another instance",
+            owner.empty() ? std::string() : Cat(" (", owner, ")"), "; reconnect")));
+  }
+}
+
+std::string SessionHub::OwnerHint(const std::string& id) {
+  std::lock_guard<std::mutex> lock(mu_);
+  auto it = owners_.find(id);
+  return it == owners_.end() ? std::string() : it->second;
+}
+
+absl::Status SessionHub::NotOwnedError(const std::string& id, const std::string& owner) {
+  {
+    std::lock_guard<std::mutex> lock(mu_);
+    owners_[id] = owner;
+  }
+  return absl::UnavailableError(Cat("session ", id, " is served by another instance",
+                                    owner.empty() ? std::string() : Cat(" at ", owner),
+                                    "; reconnect there"));
+}
 
 absl::StatusOr<std::shared_ptr<SessionRuntime>> SessionHub::Get(const std::string& id) {
   std::unique_lock<std::mutex> lock(mu_);
   if (auto it = sessions_.find(id); it != sessions_.end()) return it->second;
   auto row = ledger_->GetSession(id);
   if (!row.ok()) return row.status();
+  // Only the lease holder writes a session; taking the lease also gives the
+  // ledger the session's head as the database holds it (another instance
+  // may have written it), and Rebuild below replays the rest from there.
+  auto lease = ledger_->AcquireSession(id);
+  if (!lease.ok()) return lease.status();
+  if (!lease->owned) {
+    lock.unlock();
+    return NotOwnedError(id, lease->owner_address);
+  }
+  owners_.erase(id);
   bool reanchored = false;
   if (row->boot_id != boot_id_) {
     // The monotonic anchor belongs to an earlier boot: continue session time
@@ -467,6 +547,10 @@ absl::StatusOr<std::shared_ptr<SessionRuntime>> SessionHub::Create(const std::st
   row.condition = study_part.condition;
   row.participants = study_part.participants;
   if (absl::Status s = ledger_->CreateSession(row); !s.ok()) return s;
+  if (auto lease = ledger_->AcquireSession(row.id); !lease.ok() || !lease->owned) {
+    return lease.ok() ? absl::UnavailableError(Cat("session ", row.id, " was taken at once"))
+                      : lease.status();
+  }
   auto runtime = std::make_shared<SessionRuntime>(row, mono_, ledger_);
   {
     std::lock_guard<std::mutex> lock(mu_);

@@ -132,6 +132,9 @@ class SessionRuntime {
 
   // Marks the session closed and ends every stream with `why`.
   void MarkClosed(const absl::Status& why);
+  // Ends every stream (and subscriber) with `why`; the session stays open
+  // (its lease moved to another instance).
+  void EndStreams(const absl::Status& why);
   // Ends the streams that use this token.
   void EndStreamsOf(const std::string& token_id, const absl::Status& why);
 
@@ -205,9 +208,13 @@ class SessionHub {
   };
   SessionHub(ledger::Ledger* ledger, const MonotonicSource* mono, int64_t (*utc_now_ns)(),
              Options options);
+  ~SessionHub();
 
   // The runtime of a session, loaded from the ledger on first use.
-  // NOT_FOUND for an unknown session.
+  // NOT_FOUND for an unknown session. With several instances on one
+  // database, loading takes the session's lease: UNAVAILABLE ("served by
+  // another instance at ADDR") while another instance holds it, and
+  // OwnerHint then names that address.
   absl::StatusOr<std::shared_ptr<SessionRuntime>> Get(const std::string& id);
   // The runtime of a session if it is loaded already, else null. Unlike Get
   // this never loads (loading replays the ledger into the credit engine).
@@ -228,8 +235,18 @@ class SessionHub {
   // Time on the server's own timeline (for tokens of no session).
   int64_t UtcNowNanos() const { return utc_now_ns_(); }
   ledger::Ledger* ledger() const { return ledger_; }
+  // Where the session's owner is reached, when another instance owns it
+  // (as last learned: a refused Get or a lost lease); "" if unknown.
+  std::string OwnerHint(const std::string& id);
+  // Subscribers here to a session another instance owns: woken (an empty
+  // OnCommitted) when the database says records of it were committed.
+  void Watch(const std::string& id, RecordSink* sink);
+  void Unwatch(const std::string& id, RecordSink* sink);
 
  private:
+  void OnLeaseLost(const std::string& id, const std::string& owner);
+  absl::Status NotOwnedError(const std::string& id, const std::string& owner);
+
   ledger::Ledger* const ledger_;
   const MonotonicSource* const mono_;
   int64_t (*const utc_now_ns_)();
@@ -238,6 +255,9 @@ class SessionHub {
 
   std::mutex mu_;
   std::map<std::string, std::shared_ptr<SessionRuntime>> sessions_;  // GUARDED_BY(mu_)
+  std::map<std::string, std::string> owners_;  // GUARDED_BY(mu_): session -> owner address
+  std::mutex watch_mu_;  // a leaf: sinks' OnCommitted only posts
+  std::map<std::string, std::set<RecordSink*>> watchers_;  // GUARDED_BY(watch_mu_)
 };
 
 // The kernel's boot id (/proc/sys/kernel/random/boot_id), or "" if unknown.

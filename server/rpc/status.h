@@ -11,6 +11,14 @@
 
 namespace tickmark::rpc {
 
+// Several instances on one database (docs/architecture.md, "More than one
+// machine"). A stream refused or ended UNAVAILABLE because another instance
+// owns its session carries the owner's host:port in this trailing metadata
+// key; clients reconnect there. Clients send the session id (once a Welcome
+// told them) in kSessionMetadata, so that a load balancer can hash on it.
+inline constexpr char kOwnerMetadata[] = "tickmark-owner";
+inline constexpr char kSessionMetadata[] = "tickmark-session";
+
 inline grpc::Status ToGrpc(const absl::Status& s) {
   if (s.ok()) return grpc::Status::OK;
   return grpc::Status(static_cast<grpc::StatusCode>(s.code()), std::string(s.message()));

@@ -50,12 +50,33 @@ void SubscribeReactor::Begin() {
     return FinishNow(ToGrpc(s));
   }
   auto runtime = service_->hub()->Get(req_.session_id());
-  if (!runtime.ok()) return FinishNow(ToGrpc(runtime.status()));
-  runtime_ = *runtime;
+  if (!runtime.ok()) {
+    // Owned by another instance: read it from the shared database here
+    // rather than sending the subscriber away.
+    if (!absl::IsUnavailable(runtime.status()) ||
+        service_->hub()->OwnerHint(req_.session_id()).empty()) {
+      return FinishNow(ToGrpc(runtime.status()));
+    }
+    remote_ = true;
+  } else {
+    runtime_ = *runtime;
+  }
   for (int k : req_.kinds()) kinds_.insert(k);
   next_ = std::max<uint64_t>(1, req_.from_sequence());
   ledger::Ledger* ledger = service_->hub()->ledger();
   bool follow = !req_.stop_at_end();
+  if (remote_) {
+    auto row = ledger->GetSession(req_.session_id());
+    if (!row.ok()) return FinishNow(ToGrpc(row.status()));
+    if (follow) {
+      token_id_ = principal_.token_id;
+      service_->hub()->Watch(req_.session_id(), this);
+      registered_ = true;
+    } else {
+      stop_after_ = row->last_sequence;
+    }
+    return Pump();
+  }
   if (follow && !runtime_->open()) {
     // Closed, or closing: the ledger row is marked closed only after the
     // "closed" record has committed. Until then follow up to that record
@@ -94,7 +115,9 @@ void SubscribeReactor::OnCommitted(const std::vector<v1::Record>& records) {
     }
     ops::ObserveSubscriberBacklog(inbox_.size());
   }
-  if (idle_.load()) PostPump();
+  // Remote: an empty batch is a wake-up from the database; always pump (a
+  // wake-up during a read must not be lost; PostPump runs once).
+  if (idle_.load() || remote_) PostPump();
 }
 
 void SubscribeReactor::PostPump() {
@@ -121,7 +144,9 @@ void SubscribeReactor::OnDone() {
 }
 
 void SubscribeReactor::Cleanup() {
-  if (registered_) {
+  if (registered_ && remote_) {
+    service_->hub()->Unwatch(req_.session_id(), this);
+  } else if (registered_) {
     runtime_->RemoveSink(this);
     runtime_->RemoveStream(this);
   }
@@ -151,7 +176,7 @@ std::optional<v1::Record> SubscribeReactor::Next() {
     }
   }
   ledger::Ledger* ledger = service_->hub()->ledger();
-  if (ledger->CommittedSequence(req_.session_id()) >= next_) {
+  if (remote_ || ledger->CommittedSequence(req_.session_id()) >= next_) {
     auto chunk = ledger->Read(req_.session_id(), next_, 512);
     if (!chunk.ok()) {
       FinishNow(ToGrpc(chunk.status()));
@@ -168,7 +193,7 @@ std::optional<v1::Record> SubscribeReactor::Next() {
 }
 
 void SubscribeReactor::Pump() {
-  if (writing_ || finished_ || !runtime_) return;
+  if (writing_ || finished_ || (!runtime_ && !remote_)) return;
   while (true) {
     if (next_ > stop_after_) return FinishNow(grpc::Status::OK);
     std::optional<v1::Record> r = Next();
@@ -201,6 +226,10 @@ void SubscribeReactor::Pump() {
 void SubscribeReactor::FinishNow(const grpc::Status& status) {
   if (finished_) return;
   finished_ = true;
+  if (status.error_code() == grpc::StatusCode::UNAVAILABLE) {
+    const std::string owner = service_->hub()->OwnerHint(req_.session_id());
+    if (!owner.empty()) ctx_->AddTrailingMetadata(kOwnerMetadata, owner);
+  }
   Finish(status);
 }
 

@@ -64,6 +64,10 @@ class SubscribeReactor final : public grpc::ServerWriteReactor<tickmark::v1::Rec
   void Cleanup();
 
   static constexpr uint64_t kFollow = std::numeric_limits<uint64_t>::max();
+  // The session is owned by another instance (several instances on one
+  // database): no runtime here; records are read from the ledger, woken by
+  // the database's commit notifications (SessionHub::Watch). Strand only.
+  bool remote_ = false;
 
   LiveService* const service_;              // not owned
   grpc::CallbackServerContext* const ctx_;  // valid until OnDone; used only in Start

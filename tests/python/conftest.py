@@ -45,10 +45,10 @@ def _wait_line(proc, pattern, timeout=15.0):
 
 
 class Server:
-    def __init__(self, data_dir, extra=()):
+    def __init__(self, data_dir, extra=(), listen="127.0.0.1:0"):
         self.data_dir = data_dir
         self.proc = subprocess.Popen(
-            [os.path.join(BIN, "tickmarkd"), "--data-dir", data_dir, "--listen", "127.0.0.1:0",
+            [os.path.join(BIN, "tickmarkd"), "--data-dir", data_dir, "--listen", listen,
              "--log-level", "warning", *extra],
             stdout=subprocess.PIPE, stderr=subprocess.DEVNULL, text=True)
         self.port = int(_wait_line(self.proc, r"listening port=(\d+)").group(1))

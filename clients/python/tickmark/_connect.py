@@ -54,3 +54,24 @@ def open_channel(target: str, ca_file: Optional[str] = None, insecure: bool = Fa
     if insecure or _is_loopback(target):
         return grpc.insecure_channel(target)
     return grpc.secure_channel(target, grpc.ssl_channel_credentials())
+
+
+# Several server instances on one database (docs/architecture.md, "More than
+# one machine"): a stream refused or ended UNAVAILABLE because another
+# instance owns the session names the owner's host:port in this trailing
+# metadata key; clients send the session id in SESSION_METADATA once known,
+# so a load balancer can route by it.
+OWNER_METADATA = "tickmark-owner"
+SESSION_METADATA = "tickmark-session"
+
+
+def owner_of(error) -> Optional[str]:
+    """The owner address an RpcError's trailing metadata names, if any."""
+    try:
+        trailers = error.trailing_metadata() or ()
+    except Exception:  # not a call error
+        return None
+    for key, value in trailers:
+        if key == OWNER_METADATA and value:
+            return value.decode() if isinstance(value, bytes) else value
+    return None

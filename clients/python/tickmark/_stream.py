@@ -19,6 +19,7 @@ from typing import Callable, Dict, Optional
 import grpc
 
 from tickmark import _discipline
+from tickmark._connect import SESSION_METADATA, owner_of
 from tickmark.v1 import records_pb2, stream_pb2, stream_pb2_grpc
 
 # Codes after which reconnecting cannot help.
@@ -54,9 +55,15 @@ class ReconnectingStream:
                  on_calibration: Optional[Callable[[records_pb2.Calibration], None]] = None,
                  send_realtime: bool = True,
                  discipline: Optional[Callable[[], "_discipline.DisciplineState"]] = None,
-                 realtime: Optional[Callable[[], int]] = None):
-        stub = stream_pb2_grpc.LiveStub(channel)
-        self._call = stub.Train if kind == "train" else stub.Act
+                 realtime: Optional[Callable[[], int]] = None,
+                 channel_for: Optional[Callable[[str], grpc.Channel]] = None):
+        self._kind = kind
+        self._home = channel
+        # Opens a channel to another instance that owns the session (None:
+        # redirects are not followed).
+        self._channel_for = channel_for
+        self._redirect: Optional[tuple] = None  # (target, channel) while redirected
+        self._call = self._call_on(channel)
         self._message = stream_pb2.TrainerMessage if kind == "train" else stream_pb2.AgentMessage
         self._field = "feedback" if kind == "train" else "step"
         self._hello = stream_pb2.Hello(token=token, client_id=client_id, source_kind=source_kind,
@@ -84,6 +91,7 @@ class ReconnectingStream:
         self.acked = 0
         self.rejected: Dict[int, str] = {}
         self.reconnects = 0
+        self.redirects = 0
         self._thread = threading.Thread(target=self._run, name=f"tickmark-{kind}", daemon=True)
         self._connected = threading.Event()
         self._thread.start()
@@ -143,6 +151,31 @@ class ReconnectingStream:
             self._thread.join(timeout)
 
     # -- internals --------------------------------------------------------
+    def _call_on(self, channel: grpc.Channel):
+        stub = stream_pb2_grpc.LiveStub(channel)
+        return stub.Train if self._kind == "train" else stub.Act
+
+    def _follow(self, error, welcomed: bool) -> None:
+        """After a call ended: go to the owner it named, or back home when a
+        redirect target did not welcome us (the owner died)."""
+        owner = owner_of(error) if error is not None else None
+        if owner and self._channel_for is not None:
+            if self._redirect is None or self._redirect[0] != owner:
+                self._drop_redirect()
+                channel = self._channel_for(owner)
+                self._redirect = (owner, channel)
+                self._call = self._call_on(channel)
+                self.redirects += 1
+            return
+        if self._redirect is not None and not welcomed:
+            self._drop_redirect()
+
+    def _drop_redirect(self) -> None:
+        if self._redirect is not None:
+            self._redirect[1].close()
+            self._redirect = None
+        self._call = self._call_on(self._home)
+
     def _add_realtime(self, payload) -> None:
         """While the kernel says this host's clock is synchronised (NTP/PTP),
         a feedback or step also carries its CLOCK_REALTIME at the event and
@@ -206,9 +239,11 @@ class ReconnectingStream:
                 if self._closing or self._error:
                     return
             outbox: queue.Queue = queue.Queue()
-            call = self._call(self._requests(outbox))
+            metadata = ((SESSION_METADATA, self.session_id),) if self.session_id else None
+            call = self._call(self._requests(outbox), metadata=metadata)
             welcomed = False
             retry_later = False
+            ended = None
             try:
                 for reply in call:
                     if reply.HasField("probe"):
@@ -232,6 +267,7 @@ class ReconnectingStream:
                     if self._closing:
                         return
             except grpc.RpcError as e:
+                ended = e
                 code = e.code()
                 with self._lock:
                     if self._closing and code == grpc.StatusCode.CANCELLED:
@@ -246,6 +282,7 @@ class ReconnectingStream:
                 outbox.put(None)  # ends this connection's request generator
                 self._connected.clear()
             self.reconnects += 1
+            self._follow(ended, welcomed)
             # A server that could not store keeps the backoff growing.
             self._storage_backoff = retry_later
             time.sleep(backoff * random.uniform(0.8, 1.2))  # backoff before reconnecting

@@ -38,12 +38,14 @@ class Agent:
                  connect_timeout: float = 10.0, send_realtime: bool = True):
         self._token = read_token(token, token_file)
         self._channel = open_channel(server, ca_file=ca_file, insecure=insecure)
+        # Another instance owning the session is reached the same way.
+        self._channel_for = lambda target: open_channel(target, ca_file=ca_file, insecure=insecure)
         self._clock = clock
         self._client_id = client_id or f"{socket.gethostname()[:40]}:agent-py"
         self._stream = ReconnectingStream(
             self._channel, "act", self._token, self._client_id,
             records_pb2.SOURCE_KIND_SCRIPT, description, "tickmark-python 0.1", clock,
-            send_realtime=send_realtime)
+            send_realtime=send_realtime, channel_for=self._channel_for)
         if not self._stream.wait_connected(connect_timeout):
             error = self._stream._error  # a refused hello says why
             self._stream.close(0)
@@ -109,7 +111,7 @@ class Agent:
                 follow: bool = True) -> Subscription:
         """The session's records (of the given kinds) as an iterable Subscription."""
         sub = Subscription(self._channel, self._token, self.session_id, from_sequence,
-                           kinds, follow)
+                           kinds, follow, channel_for=self._channel_for)
         self._subscriptions.append(sub)
         return sub
 

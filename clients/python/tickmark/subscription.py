@@ -9,6 +9,7 @@ from typing import Iterable, Iterator, Optional
 
 import grpc
 
+from tickmark._connect import SESSION_METADATA, owner_of
 from tickmark.v1 import records_pb2, stream_pb2, stream_pb2_grpc
 
 _RETRY = {grpc.StatusCode.UNAVAILABLE, grpc.StatusCode.INTERNAL, grpc.StatusCode.UNKNOWN,
@@ -33,8 +34,14 @@ class Subscription:
     """
 
     def __init__(self, channel: grpc.Channel, token: str, session_id: str,
-                 from_sequence: int = 1, kinds: Iterable[str] = (), follow: bool = True):
-        self._stub = stream_pb2_grpc.LiveStub(channel)
+                 from_sequence: int = 1, kinds: Iterable[str] = (), follow: bool = True,
+                 channel_for=None):
+        self._home = stream_pb2_grpc.LiveStub(channel)
+        self._stub = self._home
+        # Opens a channel to the instance that owns the session, when a
+        # server names another one (None: not followed).
+        self._channel_for = channel_for
+        self._redirect = None
         self._token = token
         self._session_id = session_id
         self._kinds = []
@@ -67,7 +74,8 @@ class Subscription:
                 session_id=self._session_id, from_sequence=self.position + 1,
                 kinds=self._kinds, stop_at_end=not self._follow)
             self._call = self._stub.Subscribe(
-                request, metadata=(("authorization", "Bearer " + self._token),))
+                request, metadata=(("authorization", "Bearer " + self._token),
+                                   (SESSION_METADATA, self._session_id)))
             try:
                 for record in self._call:
                     if record.sequence <= self.position:
@@ -81,5 +89,15 @@ class Subscription:
                     return
                 if e.code() not in _RETRY:
                     raise
+                owner = owner_of(e)
+                if owner and self._channel_for is not None:
+                    if self._redirect is not None:
+                        self._redirect.close()
+                    self._redirect = self._channel_for(owner)
+                    self._stub = stream_pb2_grpc.LiveStub(self._redirect)
+                elif self._redirect is not None:
+                    self._redirect.close()
+                    self._redirect = None
+                    self._stub = self._home
             time.sleep(backoff * random.uniform(0.8, 1.2))
             backoff = min(backoff * 2, 5.0)
