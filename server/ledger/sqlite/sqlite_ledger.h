@@ -163,6 +163,10 @@ class SqliteLedger final : public Ledger {
   void RechainLocked(const std::string& session, const SessionHead& head, std::vector<Work>& batch,
                      size_t from);
   // The failure state: entered on a storage error, left by TryRecover.
+  // Rewrites the side file if commits changed the heads since it was last
+  // written and it is due (every batch under synchronous=FULL; else when
+  // `idle` or kHeadsInterval after the last rewrite). Writer thread only.
+  void WriteHeadsIfDue(bool idle);
   void EnterFailing(const absl::Status& cause);
   void TryRecover();
   absl::Status NoteLedgerEvent(const char* event, const std::string& detail);
@@ -186,6 +190,8 @@ class SqliteLedger final : public Ledger {
   std::chrono::steady_clock::time_point next_retry_;  // writer thread only, while failing
   std::chrono::milliseconds backoff_{0};              // writer thread only, while failing
   std::chrono::steady_clock::time_point failing_since_;  // writer thread only
+  bool heads_dirty_ = false;  // writer thread: committed_ changed since the side file was written
+  std::chrono::steady_clock::time_point heads_written_at_;  // writer thread only
   std::thread writer_;                                   // runs WriterLoop
 };
 
