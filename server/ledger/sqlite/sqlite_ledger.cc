@@ -201,6 +201,7 @@ void SqliteLedger::Close() {
   work_cv_.notify_all();
   if (writer_.joinable()) writer_.join();
   tables_.reset();  // finalise its statements before closing the connection
+  cached_.clear();
   if (reads_) reads_->Close();
   // A clean close checkpoints the WAL into the main file (unless writes are
   // failing: then EnterFailing turned that off and the WAL stays, intact).
@@ -398,19 +399,19 @@ void SqliteLedger::CommitGroups(std::vector<Work>& batch, size_t begin, size_t e
   }
   absl::Status fatal = WriteHealth();
   SessionHeads tx_heads;  // each session's head after its last group inserted here
-  if (fatal.ok()) fatal = Exec(writer_db_, "BEGIN IMMEDIATE");
+  if (fatal.ok()) fatal = ExecCached("BEGIN IMMEDIATE");
   for (size_t j = begin; fatal.ok() && j < end; ++j) {
     Work& w = batch[j];
     if (w.records.empty()) continue;
     absl::Status s = w.error;
     bool inserted = false;
     if (s.ok()) {
-      if (fatal = Exec(writer_db_, "SAVEPOINT append_group"); !fatal.ok()) break;
+      if (fatal = ExecCached("SAVEPOINT append_group"); !fatal.ok()) break;
       for (const Record& r : w.records) {
         if (s = tables_->Insert(r); !s.ok()) break;
       }
       if (s.ok()) {
-        fatal = Exec(writer_db_, "RELEASE append_group");
+        fatal = ExecCached("RELEASE append_group");
         inserted = fatal.ok();
       } else if (IsStorageError(s)) {
         fatal = s;
@@ -434,7 +435,7 @@ void SqliteLedger::CommitGroups(std::vector<Work>& batch, size_t begin, size_t e
     RechainLocked(w.session_id, t != tx_heads.end() ? t->second : committed_[w.session_id], batch,
                   j + 1);
   }
-  if (fatal.ok()) fatal = Exec(writer_db_, "COMMIT");
+  if (fatal.ok()) fatal = ExecCached("COMMIT");
   if (!fatal.ok()) {
     if (!sqlite3_get_autocommit(writer_db_)) Exec(writer_db_, "ROLLBACK").IgnoreError();
     absl::Status health = WriteHealth();
@@ -465,6 +466,22 @@ void SqliteLedger::CommitGroups(std::vector<Work>& batch, size_t begin, size_t e
   for (size_t j = begin; j < end; ++j) {
     if (batch[j].done) batch[j].done(results[j - begin], batch[j].records);
   }
+}
+
+absl::Status SqliteLedger::ExecCached(const char* sql) {
+  // sqlite3_exec parses its SQL every time: per appended group that was the
+  // SAVEPOINT and RELEASE text, parsed on the writer thread for each feedback.
+  auto it = cached_.find(sql);
+  if (it == cached_.end()) {
+    it = cached_.emplace(sql, std::make_unique<Statement>(writer_db_, sql)).first;
+  }
+  Statement& st = *it->second;
+  if (!st.status().ok()) return Exec(writer_db_, sql);
+  absl::Status s = st.Reset().Run();
+  // The same status as Exec would give (storage errors are told apart by it).
+  if (!s.ok()) s = SqlError(writer_db_, Cat("sqlite ", std::string_view(sql).substr(0, 40)));
+  st.Reset();  // nothing stays pending on the connection (ROLLBACK follows a failure)
+  return s;
 }
 
 void SqliteLedger::WriteHeadsIfDue(bool idle) {

@@ -57,6 +57,7 @@ struct sqlite3;
 namespace tickmark::ledger {
 
 class ReadConnection;
+class Statement;
 class TypedTables;
 
 class SqliteLedger final : public Ledger {
@@ -167,6 +168,9 @@ class SqliteLedger final : public Ledger {
   // written and it is due (every batch under synchronous=FULL; else when
   // `idle` or kHeadsInterval after the last rewrite). Writer thread only.
   void WriteHeadsIfDue(bool idle);
+  // Runs one statement of fixed text (BEGIN, SAVEPOINT, RELEASE, COMMIT)
+  // from a prepared statement kept for the connection. Writer thread only.
+  absl::Status ExecCached(const char* sql);
   void EnterFailing(const absl::Status& cause);
   void TryRecover();
   absl::Status NoteLedgerEvent(const char* event, const std::string& detail);
@@ -179,6 +183,7 @@ class SqliteLedger final : public Ledger {
   HeadsFile heads_file_;                   // writer thread only (after Open)
   ReserveFile reserve_;                    // writer thread only (after Open)
   std::unique_ptr<TypedTables> tables_;    // writer thread only
+  std::map<std::string, std::unique_ptr<Statement>> cached_;  // writer thread only (ExecCached)
 
   std::mutex mu_;
   std::condition_variable work_cv_;                   // signalled when queue_ grows or closing_
