@@ -112,7 +112,9 @@ class Conn final : public grpc::ClientBidiReactor<v1::TrainerMessage, v1::Server
     v1::TrainerMessage hello;
     v1::Hello* h = hello.mutable_hello();
     h->set_token(token);
-    h->set_client_id("conn-" + std::to_string(index));
+    // Unique per client process: each row of the table is a new set of clients
+    // (a client id reused with sequence 1 again would be a resend).
+    h->set_client_id("conn-" + std::to_string(getpid()) + "-" + std::to_string(index));
     h->set_source_kind(v1::SOURCE_KIND_SCRIPT);
     h->set_source_description("connections_bench");
     h->set_software("tickmark-bench");
@@ -200,7 +202,10 @@ class Conn final : public grpc::ClientBidiReactor<v1::TrainerMessage, v1::Server
 
   void NoteAck(const v1::Ack& a, int64_t now) {
     if (a.code() != 0) {
-      errors_.fetch_add(1);
+      if (errors_.fetch_add(1) == 0 && index_ < 3) {
+        std::fprintf(stderr, "connections_bench: conn %d: ack %d: %s\n", index_, a.code(),
+                     a.message().c_str());
+      }
       return;
     }
     if (!measuring_.load()) return;
@@ -456,7 +461,7 @@ int Main(int argc, char** argv) {
     std::fprintf(stderr, "connections_bench: %s\n", std::string(server.status().message()).c_str());
     return 1;
   }
-  const std::string target = "127.0.0.1:" + std::to_string((*server)->port());
+  target = "127.0.0.1:" + std::to_string((*server)->port());
   std::string operator_token;
   std::getline(std::ifstream((*server)->operator_token_path()), operator_token);
   e2e::SessionWithToken session;
@@ -500,15 +505,15 @@ int Main(int argc, char** argv) {
   auto print = [](const Row& r, long rss_idle) {
     const double k = std::max(1, r.connected) / 1000.0;
     std::printf("%-7d %9d %9.0f %9.0f %8zu %6llu %7.0f M %11.1f %8.2f %11.3f %7ld %7.2f\n", r.n,
-                r.connected, r.p50_us, r.p99_us, r.samples, r.errors, r.server_rss_kb / 1024.0,
-                (r.server_rss_kb - rss_idle) / 1024.0 / k, r.server_cpu_per_s,
+                r.connected, r.p50_us, r.p99_us, r.samples, r.errors, static_cast<double>(r.server_rss_kb) / 1024.0,
+                static_cast<double>(r.server_rss_kb - rss_idle) / 1024.0 / k, r.server_cpu_per_s,
                 r.server_cpu_per_s / k, r.server_threads, r.client_cpu_per_s);
   };
   print(base, rss_idle_kb);
   for (const Row& r : rows) print(r, rss_idle_kb);
   std::printf("\n(CPU in cores busy over the measured window; MiB/1k is RSS above the idle "
               "server's %.0f MiB, per 1k connections; srv thr: the server's threads)\n",
-              rss_idle_kb / 1024.0);
+              static_cast<double>(rss_idle_kb) / 1024.0);
   // Targets, at the largest N run.
   if (!rows.empty()) {
     const Row& top = *std::max_element(rows.begin(), rows.end(),
@@ -521,7 +526,7 @@ int Main(int argc, char** argv) {
     std::printf("  ack p99 %.2f ms <= 5 ms (%.1f× the one-connection p99 %.2f ms): %s\n",
                 top.p99_us / 1000, base.p99_us > 0 ? top.p99_us / base.p99_us : 0,
                 base.p99_us / 1000, p99_ok ? "met" : "NOT met");
-    std::printf("  server RSS %.0f MiB <= 2048 MiB: %s\n", top.server_rss_kb / 1024.0,
+    std::printf("  server RSS %.0f MiB <= 2048 MiB: %s\n", static_cast<double>(top.server_rss_kb) / 1024.0,
                 rss_ok ? "met" : "NOT met");
     std::printf("  no thread per connection: server %ld threads for %d connections: %s\n",
                 top.server_threads, top.connected,
