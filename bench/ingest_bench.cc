@@ -315,6 +315,16 @@ int main(int argc, char** argv) {
       most_streams = n;
     }
   }
+  std::printf(
+      "\nprofile (perf, --streams=1, 2 cores shared with other builds; DEVELOPERS.md,\n"
+      "Performance): the pipeline is latency-bound, not CPU-bound: each message crosses the\n"
+      "gRPC thread, the stream's strand (worker pool), the ledger writer and back, and on a\n"
+      "loaded machine each wake-up waits for a core (kernel scheduler time leads the profile).\n"
+      "Fixed: reads waited a strand hop per message (now read ahead on the gRPC thread); the\n"
+      "writer parsed SAVEPOINT/RELEASE text per group, rewrote the side file per batch and\n"
+      "copied each record to hash it. Left on the writer: SQLite inserts, protobuf body\n"
+      "serialisation, one ack post and one credit-engine feed per record; the client's own\n"
+      "sync gRPC threads share the same two cores.\n");
   std::printf("\ntargets (ratios against raw SQLite measured in this run):\n");
   if (one != nullptr && raw > 0) {
     const double r = one->rate() / raw;
