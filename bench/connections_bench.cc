@@ -18,6 +18,7 @@
 //
 // Targets: 10k connections at 2/s, ack p99 <= 5 ms, server RSS <= 2 GiB.
 // Prints; never asserts. Bounded: about (connect + --seconds + 2 s) per N.
+#include <grpcpp/grpcpp.h>
 #include <sys/resource.h>
 #include <sys/wait.h>
 #include <unistd.h>
@@ -37,8 +38,6 @@
 #include <string>
 #include <thread>
 #include <vector>
-
-#include <grpcpp/grpcpp.h>
 
 #include "server/base/log.h"
 #include "server/rpc/server.h"
@@ -81,8 +80,7 @@ double CpuSeconds(pid_t pid) {
 
 // A field of /proc/PID/status ("VmRSS", "Threads"), as a number (kB for sizes).
 long StatusField(pid_t pid, const std::string& name) {
-  std::ifstream in(pid == 0 ? "/proc/self/status"
-                            : "/proc/" + std::to_string(pid) + "/status");
+  std::ifstream in(pid == 0 ? "/proc/self/status" : "/proc/" + std::to_string(pid) + "/status");
   std::string line;
   while (std::getline(in, line)) {
     if (line.rfind(name + ":", 0) == 0) return std::atol(line.c_str() + name.size() + 1);
@@ -258,7 +256,8 @@ int RunClient(const std::string& target, const std::string& token, int n, double
       while (Clock::now() < connect_deadline) {
         int ready = 0;
         for (int j = std::max(0, i - 199); j <= i; ++j) {
-          ready += conns[static_cast<size_t>(j)]->welcomed() || conns[static_cast<size_t>(j)]->done();
+          ready +=
+              conns[static_cast<size_t>(j)]->welcomed() || conns[static_cast<size_t>(j)]->done();
         }
         if (ready == 200) break;
         std::this_thread::sleep_for(std::chrono::milliseconds(5));
@@ -353,7 +352,8 @@ bool RunPhase(const std::string& self, const std::string& target, const std::str
     close(out[0]);
     close(out[1]);
     const std::string a_target = "--target=" + target, a_token = "--token=" + token,
-                      a_n = "--n=" + std::to_string(n), a_s = "--seconds=" + std::to_string(seconds),
+                      a_n = "--n=" + std::to_string(n),
+                      a_s = "--seconds=" + std::to_string(seconds),
                       a_r = "--rate=" + std::to_string(rate);
     execl(self.c_str(), self.c_str(), "--client", a_target.c_str(), a_token.c_str(), a_n.c_str(),
           a_s.c_str(), a_r.c_str(), static_cast<char*>(nullptr));
@@ -466,8 +466,8 @@ int Main(int argc, char** argv) {
   std::getline(std::ifstream((*server)->operator_token_path()), operator_token);
   e2e::SessionWithToken session;
   {
-    auto admin = v1::SessionAdmin::NewStub(
-        grpc::CreateChannel(target, grpc::InsecureChannelCredentials()));
+    auto admin =
+        v1::SessionAdmin::NewStub(grpc::CreateChannel(target, grpc::InsecureChannelCredentials()));
     grpc::Status s = e2e::CreateSessionWithToken(admin.get(), operator_token, "connections bench",
                                                  v1::ROLE_TRAINER, "ava", &session);
     if (!s.ok()) {
@@ -480,11 +480,11 @@ int Main(int argc, char** argv) {
   if (len <= 0) return 1;
   self[len] = '\0';
 
-  std::printf("connections_bench: separate trainer connections at %.1f feedback/s each, probes "
-              "on; clients in a second process; %.0f s measured per row; %u hardware threads; "
-              "open-file limit %llu\n\n",
-              rate, seconds, std::thread::hardware_concurrency(),
-              static_cast<unsigned long long>(files));
+  std::printf(
+      "connections_bench: separate trainer connections at %.1f feedback/s each, probes "
+      "on; clients in a second process; %.0f s measured per row; %u hardware threads; "
+      "open-file limit %llu\n\n",
+      rate, seconds, std::thread::hardware_concurrency(), static_cast<unsigned long long>(files));
   const long rss_idle_kb = StatusField(0, "VmRSS");
   std::vector<Row> rows;
   Row base;
@@ -505,15 +505,17 @@ int Main(int argc, char** argv) {
   auto print = [](const Row& r, long rss_idle) {
     const double k = std::max(1, r.connected) / 1000.0;
     std::printf("%-7d %9d %9.0f %9.0f %8zu %6llu %7.0f M %11.1f %8.2f %11.3f %7ld %7.2f\n", r.n,
-                r.connected, r.p50_us, r.p99_us, r.samples, r.errors, static_cast<double>(r.server_rss_kb) / 1024.0,
+                r.connected, r.p50_us, r.p99_us, r.samples, r.errors,
+                static_cast<double>(r.server_rss_kb) / 1024.0,
                 static_cast<double>(r.server_rss_kb - rss_idle) / 1024.0 / k, r.server_cpu_per_s,
                 r.server_cpu_per_s / k, r.server_threads, r.client_cpu_per_s);
   };
   print(base, rss_idle_kb);
   for (const Row& r : rows) print(r, rss_idle_kb);
-  std::printf("\n(CPU in cores busy over the measured window; MiB/1k is RSS above the idle "
-              "server's %.0f MiB, per 1k connections; srv thr: the server's threads)\n",
-              static_cast<double>(rss_idle_kb) / 1024.0);
+  std::printf(
+      "\n(CPU in cores busy over the measured window; MiB/1k is RSS above the idle "
+      "server's %.0f MiB, per 1k connections; srv thr: the server's threads)\n",
+      static_cast<double>(rss_idle_kb) / 1024.0);
   // Targets, at the largest N run.
   if (!rows.empty()) {
     const Row& top = *std::max_element(rows.begin(), rows.end(),
@@ -526,8 +528,8 @@ int Main(int argc, char** argv) {
     std::printf("  ack p99 %.2f ms <= 5 ms (%.1f× the one-connection p99 %.2f ms): %s\n",
                 top.p99_us / 1000, base.p99_us > 0 ? top.p99_us / base.p99_us : 0,
                 base.p99_us / 1000, p99_ok ? "met" : "NOT met");
-    std::printf("  server RSS %.0f MiB <= 2048 MiB: %s\n", static_cast<double>(top.server_rss_kb) / 1024.0,
-                rss_ok ? "met" : "NOT met");
+    std::printf("  server RSS %.0f MiB <= 2048 MiB: %s\n",
+                static_cast<double>(top.server_rss_kb) / 1024.0, rss_ok ? "met" : "NOT met");
     std::printf("  no thread per connection: server %ld threads for %d connections: %s\n",
                 top.server_threads, top.connected,
                 top.server_threads < std::max(64, top.connected / 4) ? "met" : "NOT met");

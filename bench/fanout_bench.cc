@@ -476,9 +476,10 @@ int Main(int argc, char** argv) {
   std::vector<int64_t> acks;
   const Stats credit = Summarise(bench.CreditLatency(&acks));
   const Stats ping = Summarise(PingPong(config.seconds));
-  std::printf("trainer -> subscriber credit update at %d feedback/s vs bare gRPC bidi ping-pong "
-              "(same run):\n",
-              config.feedback_per_second);
+  std::printf(
+      "trainer -> subscriber credit update at %d feedback/s vs bare gRPC bidi ping-pong "
+      "(same run):\n",
+      config.feedback_per_second);
   PrintRow("feedback send -> first CreditUpdate received", credit);
   PrintRow("  (its ack to the trainer: one ledger commit)", Summarise(acks));
   PrintRow("bare bidi ping-pong round trip", ping);
@@ -490,9 +491,10 @@ int Main(int argc, char** argv) {
   // second commit (derived records are durable before anyone sees them) and
   // the subscriber's strand and write.
   const Stats ack = Summarise(acks);
-  std::printf("  breakdown at p50: ack (read, strand, commit, ack write) %.0f µs; credit after "
-              "ack (engine, 2nd commit, fan-out) %.0f µs; ping-pong %.0f µs\n",
-              ack.p50_us, credit.p50_us - ack.p50_us, ping.p50_us);
+  std::printf(
+      "  breakdown at p50: ack (read, strand, commit, ack write) %.0f µs; credit after "
+      "ack (engine, 2nd commit, fan-out) %.0f µs; ping-pong %.0f µs\n",
+      ack.p50_us, credit.p50_us - ack.p50_us, ping.p50_us);
   // A profile summary (perf record over this bench, 2 cores shared with
   // other builds, load ~25; DEVELOPERS.md, Performance): re-take it when the
   // paths change.

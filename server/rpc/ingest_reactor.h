@@ -199,13 +199,13 @@ class IngestReactor final : public grpc::ServerBidiReactor<grpc::ByteBuffer, grp
   // Reading (OnReadDone reads ahead without a hop to the strand while the
   // gate is open; see MaybeRead). A StartRead is issued by StartReadOnce
   // only, from the gRPC thread or the strand.
-  static constexpr int kMaxReadAhead = 8;      // read, not yet handled on the strand
-  bool StartReadOnce();                        // false: a read is in flight, or finished
-  std::atomic<bool> read_in_flight_{false};    // a StartRead is outstanding
-  std::atomic<bool> read_ahead_open_{false};   // written on the strand (MaybeRead)
-  std::atomic<int> read_ahead_{0};             // messages posted, not yet handled
+  static constexpr int kMaxReadAhead = 8;     // read, not yet handled on the strand
+  bool StartReadOnce();                       // false: a read is in flight, or finished
+  std::atomic<bool> read_in_flight_{false};   // a StartRead is outstanding
+  std::atomic<bool> read_ahead_open_{false};  // written on the strand (MaybeRead)
+  std::atomic<int> read_ahead_{0};            // messages posted, not yet handled
   std::atomic<bool> finish_called_{false};    // set by FinishNow before Finish
-  std::atomic<int> issuing_{0};                // StartReadOnce calls between check and StartRead
+  std::atomic<int> issuing_{0};               // StartReadOnce calls between check and StartRead
 
   // Buffers owned by gRPC operations in flight.
   grpc::ByteBuffer in_buf_;   // the read in flight

@@ -29,9 +29,8 @@ LiveService::LiveService(SessionHub* hub, TokenAuthority* auth, const MonotonicS
   // top server symbols. Our own locks are std::mutex; TSan finds lock-order
   // bugs in tests. Process-wide, set once.
   static std::once_flag no_cycle_detection;
-  std::call_once(no_cycle_detection, [] {
-    absl::SetMutexDeadlockDetectionMode(absl::OnDeadlockCycle::kIgnore);
-  });
+  std::call_once(no_cycle_detection,
+                 [] { absl::SetMutexDeadlockDetectionMode(absl::OnDeadlockCycle::kIgnore); });
 }
 
 LiveService::~LiveService() { Stop(); }

@@ -69,10 +69,10 @@ class Ticker {
   void Loop();
 
   std::mutex mu_;
-  std::condition_variable cv_;                     // wakes the loop: stop, or an earlier timer
-  std::map<const MonotonicSource*, Heap> heaps_;   // GUARDED_BY(mu_)
-  bool stopping_ = false;                          // GUARDED_BY(mu_)
-  std::thread thread_;                             // runs Loop
+  std::condition_variable cv_;                    // wakes the loop: stop, or an earlier timer
+  std::map<const MonotonicSource*, Heap> heaps_;  // GUARDED_BY(mu_)
+  bool stopping_ = false;                         // GUARDED_BY(mu_)
+  std::thread thread_;                            // runs Loop
 };
 
 }  // namespace tickmark::rpc
