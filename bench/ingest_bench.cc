@@ -13,6 +13,7 @@
 // Prints; never asserts. Runtime is bounded: about --seconds per row.
 #include <sqlite3.h>
 
+#include <algorithm>
 #include <atomic>
 #include <chrono>
 #include <cstdio>
@@ -39,6 +40,7 @@ struct Config {
   double seconds = 3.0;            // measuring time per row of the table
   std::vector<int> streams = {1, 4};
   size_t window = 256;             // unacknowledged feedback per stream
+  bool ack_batches = true;         // ask for AckBatch (stream.proto); --single-acks: one per Ack
 };
 
 struct Result {
@@ -195,6 +197,7 @@ Result ServerIngest(const std::string& dir, int streams, const Config& config) {
         channel, [&acked](const v1::Ack& a) {
           if (a.code() == 0) acked.fetch_add(1, std::memory_order_relaxed);
         });
+    if (config.ack_batches) stream->RequestAckBatches();
     if (!stream->Hello(session.token, "bench-trainer-" + std::to_string(i),
                        Clock::now() + std::chrono::seconds(10))) {
       std::fprintf(stderr, "ingest_bench: no welcome on stream %d\n", i);
@@ -235,7 +238,7 @@ Result ServerIngest(const std::string& dir, int streams, const Config& config) {
 
 void Usage() {
   std::printf(
-      "ingest_bench [--seconds=S] [--streams=1,4] [--window=N]\n"
+      "ingest_bench [--seconds=S] [--streams=1,4] [--window=N] [--single-acks]\n"
       "  Durable feedback ingest through tickmarkd's trainer streams vs raw SQLite\n"
       "  inserts of the same rows. Prints a table; asserts nothing.\n");
 }
@@ -250,6 +253,8 @@ int main(int argc, char** argv) {
     const std::string a = argv[i];
     if (a.rfind("--seconds=", 0) == 0) {
       config.seconds = std::atof(a.c_str() + 10);
+    } else if (a == "--single-acks") {
+      config.ack_batches = false;
     } else if (a.rfind("--window=", 0) == 0) {
       config.window = static_cast<size_t>(std::atol(a.c_str() + 9));
     } else if (a.rfind("--streams=", 0) == 0) {
@@ -296,6 +301,41 @@ int main(int argc, char** argv) {
   }
   std::printf("\nrows/s for tickmarkd counts acknowledged (committed) feedback; each feedback\n"
               "is one record-journal row plus one feedback row, as in the raw baseline.\n");
+  // Targets (issue 16): one stream >= 0.5 × raw batched inserts (the better
+  // of the two batch sizes), and more streams no slower than one.
+  const double raw = std::max(base100, base1000);
+  const Result* one = nullptr;
+  const Result* most = nullptr;
+  int most_streams = 1;
+  for (size_t i = 2; i < results.size(); ++i) {
+    const int n = config.streams[i - 2];
+    if (n == 1) one = &results[i];
+    if (n > most_streams) {
+      most = &results[i];
+      most_streams = n;
+    }
+  }
+  std::printf(
+      "\nprofile (perf, --streams=1, 2 cores shared with other builds; DEVELOPERS.md,\n"
+      "Performance): the pipeline is latency-bound, not CPU-bound: each message crosses the\n"
+      "gRPC thread, the stream's strand (worker pool), the ledger writer and back, and on a\n"
+      "loaded machine each wake-up waits for a core (kernel scheduler time leads the profile).\n"
+      "Fixed: reads waited a strand hop per message (now read ahead on the gRPC thread); the\n"
+      "writer parsed SAVEPOINT/RELEASE text per group, rewrote the side file per batch and\n"
+      "copied each record to hash it. Left on the writer: SQLite inserts, protobuf body\n"
+      "serialisation, one ack post and one credit-engine feed per record; the client's own\n"
+      "sync gRPC threads share the same two cores.\n");
+  std::printf("\ntargets (ratios against raw SQLite measured in this run):\n");
+  if (one != nullptr && raw > 0) {
+    const double r = one->rate() / raw;
+    std::printf("  one stream / raw SQLite batched = %.3f   target >= 0.5: %s\n", r,
+                r >= 0.5 ? "met" : "NOT met");
+  }
+  if (one != nullptr && most != nullptr && one->rate() > 0) {
+    const double r = most->rate() / one->rate();
+    std::printf("  %s / one stream = %.3f   target >= 1: %s\n", most->what.c_str(), r,
+                r >= 1 ? "met" : "NOT met");
+  }
   std::error_code ec;
   std::filesystem::remove_all(dir, ec);
   return 0;

@@ -6,6 +6,7 @@
 #include <chrono>
 #include <cmath>
 #include <limits>
+#include <thread>
 #include <tuple>
 
 #include "server/base/log.h"
@@ -31,6 +32,9 @@ constexpr int64_t kNever = std::numeric_limits<int64_t>::max();
 // How long a stream is not read after a message of it was refused by a rate
 // limit (common practice, no source: a short tarpit).
 constexpr Duration kRefusalPause = Duration::Millis(10);
+// When a timer fired but what was due could not be done yet, it is tried
+// again this much later (the old ticker's fixed period).
+constexpr Duration kRetryTick = Duration::Millis(10);
 
 v1::Ack ErrorAck(uint64_t cseq, const absl::Status& s) {
   v1::Ack ack;
@@ -134,11 +138,20 @@ void IngestReactor<Side>::Start(const absl::Status& admitted, std::string peer_h
   ops::StreamOpened(Side::kRole == v1::ROLE_AGENT ? ops::StreamRole::kAgent
                                                   : ops::StreamRole::kTrainer);
   const Duration timeout = service_->options().hello_timeout;
-  hello_deadline_.store(
-      timeout > Duration::Zero() ? service_->limits_clock()->NowNanos() + timeout.nanos() : kNever);
-  service_->ticker().Add(self_);
-  reading_ = true;
-  StartRead(&in_buf_);
+  const int64_t deadline =
+      timeout > Duration::Zero() ? service_->limits_clock()->NowNanos() + timeout.nanos() : kNever;
+  hello_deadline_.store(deadline);
+  // Timers are one-shot (ticker.h): the hello deadline on the limits clock;
+  // the stream's own due times are armed by UpdateTickDue.
+  if (deadline != kNever) service_->ticker().WakeAt(self_, service_->limits_clock(), deadline);
+  // Opt-in ack coalescing (stream.proto, AckBatch); old clients get one Ack
+  // per message.
+  {
+    const auto& md = ctx_->client_metadata();
+    auto it = md.find("tickmark-ack-batch");
+    batch_acks_ = it != md.end() && std::string_view(it->second.data(), it->second.size()) == "1";
+  }
+  StartReadOnce();
 }
 
 template <typename Side>
@@ -150,8 +163,8 @@ template <typename Side>
 void IngestReactor<Side>::OnReadDone(bool ok) {
   const int64_t arrival_mono = service_->mono()->NowNanos();
   if (!ok) {
+    read_in_flight_.store(false);
     Post([](IngestReactor& r) {
-      r.reading_ = false;
       r.read_closed_ = true;
       r.MaybeFinishGracefully();
     });
@@ -160,17 +173,40 @@ void IngestReactor<Side>::OnReadDone(bool ok) {
   In message;
   if (!grpc::SerializationTraits<In>::Deserialize(&in_buf_, &message).ok()) {
     service_->counters().undecodable.fetch_add(1);
+    read_in_flight_.store(false);
     Post([](IngestReactor& r) {
-      r.reading_ = false;
       r.FinishNow(ToGrpc(absl::InvalidArgumentError(
           Cat("a message did not decode as ", In::descriptor()->full_name()))));
     });
     return;
   }
+  read_ahead_.fetch_add(1);
+  read_in_flight_.store(false);  // in_buf_ is free again
   Post([message = std::move(message), arrival_mono](IngestReactor& r) mutable {
-    r.reading_ = false;
+    r.read_ahead_.fetch_sub(1);
     r.HandleMessage(std::move(message), arrival_mono);
   });
+  // Read the next message right here, on the gRPC thread, while the strand
+  // says there is room (MaybeRead opens the gate): reading no longer waits
+  // for a hop to the strand and back per message, which is what kept one
+  // pipelining stream far below the ledger's rate. Posted first, so the
+  // strand still sees messages in the order they were read.
+  if (read_ahead_open_.load() && read_ahead_.load() < kMaxReadAhead) StartReadOnce();
+}
+
+template <typename Side>
+bool IngestReactor<Side>::StartReadOnce() {
+  // No lock is held across StartRead (gRPC may run a reaction inline);
+  // `issuing_` lets FinishNow wait until a read being started is started,
+  // so no read is started after Finish.
+  issuing_.fetch_add(1);
+  bool started = false;
+  if (!finish_called_.load() && !read_in_flight_.exchange(true)) {
+    StartRead(&in_buf_);
+    started = true;
+  }
+  issuing_.fetch_sub(1);
+  return started;
 }
 
 template <typename Side>
@@ -196,7 +232,6 @@ void IngestReactor<Side>::OnDone() {
 
 template <typename Side>
 void IngestReactor<Side>::Cleanup() {
-  service_->ticker().Remove(this);
   if (udp_tag_ != 0) service_->options().probe_port.remove_stream(udp_tag_);
   if (admitted_) {
     service_->admission().Release(peer_host_);
@@ -267,12 +302,12 @@ void IngestReactor<Side>::Tick() {
     ReleaseHeld();
   }
   MaybeRead();  // after a rate-limit pause
-  UpdateTickDue();
+  UpdateTickDue(/*from_tick=*/true);
 }
 
 // The earliest service-clock time at which Tick has something to do.
 template <typename Side>
-void IngestReactor<Side>::UpdateTickDue() {
+void IngestReactor<Side>::UpdateTickDue(bool from_tick) {
   if (finished_ || !hello_done_) {
     tick_due_mono_.store(kNever);
     return;
@@ -285,6 +320,16 @@ void IngestReactor<Side>::UpdateTickDue() {
   }
   if (reads_paused_until_mono_ != 0) due = std::min(due, reads_paused_until_mono_);
   tick_due_mono_.store(due);
+  // Arm a one-shot timer (ticker.h) for a new due time. A due time that
+  // Tick could not clear (no probe budget, reads still held back by
+  // in-flight acks) is looked at again kRetryTick later, as the old 10 ms
+  // poll did, rather than spinning between the ticker and this strand.
+  if (due == kNever) return;
+  const int64_t now = service_->mono()->NowNanos();
+  if (due == armed_due_mono_ && due > now) return;  // that timer is set already
+  armed_due_mono_ = due;
+  const int64_t at = from_tick && due <= now ? now + kRetryTick.nanos() : due;
+  service_->ticker().WakeAt(this->weak_from_this(), service_->mono(), at);
 }
 
 template <typename Side>
@@ -311,6 +356,7 @@ void IngestReactor<Side>::HandleMessage(In message, int64_t arrival_mono) {
       // then costs the server about one refusal per pause, not one per
       // message it can push, and other streams keep their share.
       reads_paused_until_mono_ = service_->mono()->NowNanos() + kRefusalPause.nanos();
+      read_ahead_open_.store(false);
       UpdateTickDue();
       Reject(Side::Sequence(message),
              absl::ResourceExhaustedError(Cat(
@@ -780,6 +826,20 @@ void IngestReactor<Side>::WriteNext() {
   if (writing_ || finished_ || out_.empty()) return;
   current_ = std::move(out_.front());
   out_.pop_front();
+  if (batch_acks_ && current_.has_ack() && !out_.empty() && out_.front().has_ack()) {
+    // Acks that queued while the last write was in flight go out as one
+    // AckBatch, in order (stream.proto): one write, one serialisation and
+    // one OnWriteDone instead of one each. Only consecutive acks are merged,
+    // so a Calibration still precedes its Ack.
+    v1::ServerMessage batch;
+    v1::AckBatch* acks = batch.mutable_ack_batch();
+    acks->mutable_acks()->Add(std::move(*current_.mutable_ack()));
+    while (!out_.empty() && out_.front().has_ack()) {
+      acks->mutable_acks()->Add(std::move(*out_.front().mutable_ack()));
+      out_.pop_front();
+    }
+    current_ = std::move(batch);
+  }
   if (current_.has_probe()) {
     // T1 as late as possible: the moment the probe goes to the transport.
     const SessionTime t1 = runtime_->Now();
@@ -801,14 +861,23 @@ void IngestReactor<Side>::WriteNext() {
 // it waits for acks to drain (fairness between streams; see Options).
 template <typename Side>
 void IngestReactor<Side>::MaybeRead() {
-  if (reading_ || finished_ || read_closed_ || !hello_done_) return;
-  if (pending_acks_ + out_.size() >= service_->options().max_in_flight_per_stream) return;
+  // The read-ahead gate (OnReadDone) stays open only while a few more
+  // messages fit under the in-flight cap, so the cap holds to within
+  // kMaxReadAhead messages.
+  const size_t in_flight = pending_acks_ + out_.size();
+  const size_t cap = service_->options().max_in_flight_per_stream;
+  const bool room = !finished_ && !read_closed_ && hello_done_ && in_flight < cap;
+  if (!room) {
+    read_ahead_open_.store(false);
+    return;
+  }
   if (reads_paused_until_mono_ != 0) {
+    read_ahead_open_.store(false);
     if (service_->mono()->NowNanos() < reads_paused_until_mono_) return;  // Tick resumes
     reads_paused_until_mono_ = 0;
   }
-  reading_ = true;
-  StartRead(&in_buf_);
+  read_ahead_open_.store(in_flight + static_cast<size_t>(kMaxReadAhead) < cap);
+  StartReadOnce();
 }
 
 template <typename Side>
@@ -822,6 +891,9 @@ template <typename Side>
 void IngestReactor<Side>::FinishNow(const grpc::Status& status) {
   if (finished_) return;
   finished_ = true;
+  read_ahead_open_.store(false);
+  finish_called_.store(true);  // no StartRead after Finish (StartReadOnce)
+  while (issuing_.load() != 0) std::this_thread::yield();
   tick_due_mono_.store(kNever);
   hello_deadline_.store(kNever);
   end_reason_ = status.ok() ? "closed by client" : status.error_message();

@@ -107,7 +107,8 @@ class IngestReactor final : public grpc::ServerBidiReactor<grpc::ByteBuffer, grp
   void OnCancel() override;
   void OnDone() override;
 
-  // Tickable (ticker thread): posts only when something is due.
+  // Tickable (ticker thread, when a timer set by Start or UpdateTickDue
+  // fires): posts only when something is due.
   void OnTick() override;
 
  private:
@@ -160,7 +161,9 @@ class IngestReactor final : public grpc::ServerBidiReactor<grpc::ByteBuffer, grp
   void MaybeRead();
   void MaybeFinishGracefully();
   void FinishNow(const grpc::Status& status);
-  void UpdateTickDue();
+  // Stores the next due time and arms a ticker timer for it; from Tick, a
+  // due time already past is retried a little later (see the .cc).
+  void UpdateTickDue(bool from_tick = false);
 
   // What operators see of the clock model (Clock()): copied on the strand
   // when the model or the probe counts change, read from any thread.
@@ -194,9 +197,22 @@ class IngestReactor final : public grpc::ServerBidiReactor<grpc::ByteBuffer, grp
   std::atomic<int64_t> hello_deadline_{0};         // limits clock; INT64_MAX once hello is in
   std::atomic<int64_t> tick_due_mono_{INT64_MAX};  // service clock
   std::atomic<bool> tick_posted_{false};
+  int64_t armed_due_mono_ = INT64_MAX;  // strand: the due time a ticker timer is set for
+  bool batch_acks_ = false;             // set in Start: the client takes AckBatch
 
   // Written once in HandleHello before AddStream; read by the runtime.
   std::string token_id_;
+
+  // Reading (OnReadDone reads ahead without a hop to the strand while the
+  // gate is open; see MaybeRead). A StartRead is issued by StartReadOnce
+  // only, from the gRPC thread or the strand.
+  static constexpr int kMaxReadAhead = 8;     // read, not yet handled on the strand
+  bool StartReadOnce();                       // false: a read is in flight, or finished
+  std::atomic<bool> read_in_flight_{false};   // a StartRead is outstanding
+  std::atomic<bool> read_ahead_open_{false};  // written on the strand (MaybeRead)
+  std::atomic<int> read_ahead_{0};            // messages posted, not yet handled
+  std::atomic<bool> finish_called_{false};    // set by FinishNow before Finish
+  std::atomic<int> issuing_{0};               // StartReadOnce calls between check and StartRead
 
   // Buffers owned by gRPC operations in flight.
   grpc::ByteBuffer in_buf_;   // the read in flight
@@ -205,7 +221,6 @@ class IngestReactor final : public grpc::ServerBidiReactor<grpc::ByteBuffer, grp
   // Strand state.
   tickmark::v1::ServerMessage current_;          // the message being written
   std::deque<tickmark::v1::ServerMessage> out_;  // waiting to be written
-  bool reading_ = false;
   bool writing_ = false;
   bool read_closed_ = false;
   bool finished_ = false;

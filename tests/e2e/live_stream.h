@@ -84,6 +84,10 @@ class LiveStream {
   LiveStream(const LiveStream&) = delete;
   LiveStream& operator=(const LiveStream&) = delete;
 
+  // Asks the server to coalesce acks (ServerMessage.ack_batch, stream.proto);
+  // call before Hello. Either way every Ack reaches on_ack and State::acks.
+  void RequestAckBatches() { ctx_.AddMetadata("tickmark-ack-batch", "1"); }
+
   // Opens the call, sends the Hello and waits for the Welcome. nullopt when
   // the call ended first (see Finish for its status) or the deadline passed.
   std::optional<v1::Welcome> Hello(const std::string& token, const std::string& client_id,
@@ -172,6 +176,13 @@ class LiveStream {
         if (on_ack_) on_ack_(m.ack());
         std::lock_guard<std::mutex> lock(mu_);
         state_.acks.push_back(m.ack());
+        cv_.notify_all();
+      } else if (m.has_ack_batch()) {
+        if (on_ack_) {
+          for (const v1::Ack& a : m.ack_batch().acks()) on_ack_(a);
+        }
+        std::lock_guard<std::mutex> lock(mu_);
+        for (const v1::Ack& a : m.ack_batch().acks()) state_.acks.push_back(a);
         cv_.notify_all();
       }
     }

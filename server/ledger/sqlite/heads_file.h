@@ -1,6 +1,9 @@
 // The side file <ledger>.heads: every session's last committed sequence and
 // head hash, rewritten (temp file + rename, so a reader sees the old or the
-// new file, never a torn one) after each commit batch.
+// new file, never a torn one) after commits: after each batch under
+// synchronous=FULL; under NORMAL when the writer has caught up, before a
+// barrier (Flush) fires and at least every 20 ms under sustained load
+// (SqliteLedger::WriteHeadsIfDue).
 //
 // Why: SQLite silently drops WAL frames it cannot trust (a damaged or
 // removed -wal file after a kill), so a ledger can open "fine" without

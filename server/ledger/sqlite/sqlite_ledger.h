@@ -57,6 +57,7 @@ struct sqlite3;
 namespace tickmark::ledger {
 
 class ReadConnection;
+class Statement;
 class TypedTables;
 
 class SqliteLedger final : public Ledger {
@@ -165,6 +166,13 @@ class SqliteLedger final : public Ledger {
   void RechainLocked(const std::string& session, const SessionHead& head, std::vector<Work>& batch,
                      size_t from);
   // The failure state: entered on a storage error, left by TryRecover.
+  // Rewrites the side file if commits changed the heads since it was last
+  // written and it is due (every batch under synchronous=FULL; else when
+  // `idle` or kHeadsInterval after the last rewrite). Writer thread only.
+  void WriteHeadsIfDue(bool idle);
+  // Runs one statement of fixed text (BEGIN, SAVEPOINT, RELEASE, COMMIT)
+  // from a prepared statement kept for the connection. Writer thread only.
+  absl::Status ExecCached(const char* sql);
   void EnterFailing(const absl::Status& cause);
   void TryRecover();
   absl::Status NoteLedgerEvent(const char* event, const std::string& detail);
@@ -177,6 +185,7 @@ class SqliteLedger final : public Ledger {
   HeadsFile heads_file_;                   // writer thread only (after Open)
   ReserveFile reserve_;                    // writer thread only (after Open)
   std::unique_ptr<TypedTables> tables_;    // writer thread only
+  std::map<std::string, std::unique_ptr<Statement>> cached_;  // writer thread only (ExecCached)
 
   std::mutex mu_;
   std::condition_variable work_cv_;                   // signalled when queue_ grows or closing_
@@ -188,6 +197,8 @@ class SqliteLedger final : public Ledger {
   std::chrono::steady_clock::time_point next_retry_;  // writer thread only, while failing
   std::chrono::milliseconds backoff_{0};              // writer thread only, while failing
   std::chrono::steady_clock::time_point failing_since_;  // writer thread only
+  bool heads_dirty_ = false;  // writer thread: committed_ changed since the side file was written
+  std::chrono::steady_clock::time_point heads_written_at_;  // writer thread only
   std::thread writer_;                                   // runs WriterLoop
 };
 
