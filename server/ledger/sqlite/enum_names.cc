@@ -56,6 +56,8 @@ std::string SyncDirectionWord(tickmark::v1::SyncDirection direction) {
 
 std::string SyncReasonWord(tickmark::v1::SyncReason reason) {
   return Word(tickmark::v1::SyncReason_Name(reason), "SYNC_REASON_");
+}
+
 std::string StudyEventWord(tickmark::v1::StudyEvent::Kind kind) {
   return Word(tickmark::v1::StudyEvent::Kind_Name(kind), "KIND_");
 }
