@@ -5,6 +5,9 @@ namespace tickmark::cli {
 CommandTable::CommandTable(CLI::App* root, CommonFlags* common) : root_(root), common_(common) {}
 
 CLI::App* CommandTable::AddGroup(const std::string& name, const std::string& description) {
+  // Two command files may add verbs to one group (study: audit's
+  // erase-participant beside the study commands): the first makes it.
+  if (CLI::App* existing = root_->get_subcommand_no_throw(name)) return existing;
   CLI::App* group = root_->add_subcommand(name, description);
   group->require_subcommand(0, 1);
   AddCommonFlags(*group, common_);

@@ -20,6 +20,10 @@ void AddExportCommand(CommandTable& table);    // export
 void AddCalibrateCommands(CommandTable& table);  // calibrate new|list|show|plot|apply
 void AddRetimeCommand(CommandTable& table);      // retime
 void AddInviteCommand(CommandTable& table);      // invite (web page join links)
+// audit verify|receipt, archive, study erase-participant (audit_commands.cc)
+void AddAuditCommands(CommandTable& table);
+// Prints a closed session's receipt from the server (session close uses it).
+int PrintReceiptOf(const CommonFlags& common, const std::string& session_id);
 
 }  // namespace tickmark::cli
 

@@ -39,6 +39,7 @@ int main(int argc, char** argv) {
   AddCalibrateCommands(table);
   AddRetimeCommand(table);
   AddInviteCommand(table);
+  AddAuditCommands(table);
 
   if (argc < 2) {
     std::cerr << app.help();

@@ -29,6 +29,7 @@
 #include <string>
 #include <vector>
 
+#include "server/audit/receipt.h"
 #include "server/core/delay_kernel.h"
 #include "server/core/time.h"
 #include "server/ledger/ledger.h"
@@ -193,6 +194,8 @@ class SessionHub {
     // Kernel of new sessions that name none.
     DelayKernel default_kernel = *DelayKernel::Uniform(Duration::Millis(200), Duration::Millis(4000));
     Duration allowed_lateness = Duration::Seconds(2);
+    // Signs a receipt when a session closes (docs/audit.md); null: none.
+    std::shared_ptr<const audit::ReceiptKey> receipt_key;
   };
   SessionHub(ledger::Ledger* ledger, const MonotonicSource* mono, int64_t (*utc_now_ns)(),
              Options options);
@@ -210,7 +213,8 @@ class SessionHub {
                                                          const std::string& study,
                                                          const std::string& kernel = "",
                                                          bool pin_kernels = false);
-  // Closes a session: records the event, ends its streams.
+  // Closes a session: records the event, ends its streams, and stores the
+  // close receipt signed with options.receipt_key (if any).
   absl::Status Close(const std::string& id);
   // Time on the server's own timeline (for tokens of no session).
   int64_t UtcNowNanos() const { return utc_now_ns_(); }

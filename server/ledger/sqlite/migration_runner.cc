@@ -1,5 +1,8 @@
 #include "server/ledger/sqlite/migration_runner.h"
 
+#include <algorithm>
+#include <set>
+
 #include "server/base/log.h"
 #include "server/base/strings.h"
 #include "server/ledger/sqlite/migrations.h"
@@ -14,21 +17,29 @@ absl::Status ApplyMigrations(sqlite3* db) {
            " version INTEGER PRIMARY KEY, description TEXT NOT NULL,"
            " applied_utc TEXT NOT NULL DEFAULT (strftime('%Y-%m-%dT%H:%M:%SZ','now')));");
   if (!s.ok()) return s;
-  int64_t have = 0;
+  // Applied versions as a set: migrations are numbered by who added them
+  // (branches merge in any order), so the known list may have gaps and a
+  // lower number may arrive after a higher one was applied.
+  std::set<int64_t> have;
   {
-    Statement q(db, "SELECT COALESCE(MAX(version), 0) FROM schema_migrations");
-    auto row = q.Step();
-    if (!row.ok()) return row.status();
-    have = q.Int(0);
+    Statement q(db, "SELECT version FROM schema_migrations");
+    while (true) {
+      auto row = q.Step();
+      if (!row.ok()) return row.status();
+      if (!*row) break;
+      have.insert(q.Int(0));
+    }
   }
   auto all = SqliteMigrations();
-  if (have > static_cast<int64_t>(all.size())) {
-    return absl::FailedPreconditionError(Cat("ledger schema version ", have,
-                                             " is newer than this program knows (", all.size(),
+  int64_t newest_known = 0;
+  for (const Migration& m : all) newest_known = std::max<int64_t>(newest_known, m.version);
+  if (!have.empty() && *have.rbegin() > newest_known) {
+    return absl::FailedPreconditionError(Cat("ledger schema version ", *have.rbegin(),
+                                             " is newer than this program knows (", newest_known,
                                              "); use a newer tickmarkd"));
   }
   for (const Migration& m : all) {
-    if (m.version <= have) continue;
+    if (have.count(m.version) > 0) continue;
     if (s = Exec(db, "BEGIN IMMEDIATE"); !s.ok()) return s;
     s = Exec(db, m.sql);
     if (s.ok()) {

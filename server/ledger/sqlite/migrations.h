@@ -11,7 +11,7 @@
 namespace tickmark::ledger {
 
 struct Migration {
-  int version;              // 1, 2, 3, ... without gaps
+  int version;              // 1, 2, 3, ... (gaps allowed; applied in list order)
   const char* description;  // one line, shown in schema_migrations
   const char* sql;          // statements run in one transaction
 };
