@@ -47,6 +47,7 @@ class CommandTable {
   CLI::App* root_;
   CommonFlags* common_;
   std::map<const CLI::App*, Action> actions_;
+  std::map<std::string, CLI::App*> groups_;  // by name
 };
 
 }  // namespace tickmark::cli

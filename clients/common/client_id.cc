@@ -121,3 +121,5 @@ std::string DefaultClientId(std::string_view program, std::string_view source) {
   }
   return MakeClientId(who, "", program, source);
 }
+
+}  // namespace tickmark::client
