@@ -48,8 +48,9 @@ absl::Status Copy(const std::string& ledger_path, const std::string& session_id,
   }
   src.reset();
   sqlite3* d = dst.get();
-  if (absl::Status s = ExecSql(d, "PRAGMA journal_mode=DELETE; PRAGMA secure_delete=ON; "
-                                  "PRAGMA foreign_keys=OFF;");
+  if (absl::Status s = ExecSql(d,
+                               "PRAGMA journal_mode=DELETE; PRAGMA secure_delete=ON; "
+                               "PRAGMA foreign_keys=OFF;");
       !s.ok()) {
     return s;
   }

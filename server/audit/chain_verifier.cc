@@ -104,10 +104,10 @@ absl::Status VerifySession(sqlite3* db, SessionVerdict* v) {
     const std::string body = q.Blob(1);
     const std::string hash = q.Blob(2);
     if (seq != expected) {
-      broken(expected, seq == expected + 1
-                           ? Cat("missing: record ", expected, " is not in the ledger")
-                           : Cat("missing: records ", expected, "..", seq - 1,
-                                 " are not in the ledger"));
+      broken(expected,
+             seq == expected + 1
+                 ? Cat("missing: record ", expected, " is not in the ledger")
+                 : Cat("missing: records ", expected, "..", seq - 1, " are not in the ledger"));
       return absl::OkStatus();
     }
     Record r;
@@ -140,7 +140,8 @@ absl::Status VerifySession(sqlite3* db, SessionVerdict* v) {
         ++v->personal_kept;
       }
     }
-    if (r.has_erasure()) erased.insert(r.erasure().sequences().begin(), r.erasure().sequences().end());
+    if (r.has_erasure())
+      erased.insert(r.erasure().sequences().begin(), r.erasure().sequences().end());
     prev = hash;
     ++expected;
     ++v->records;
@@ -162,8 +163,9 @@ absl::Status CheckStoredReceipt(sqlite3* db, SessionVerdict* v) {
     v->stored_receipt = "none";
     return absl::OkStatus();
   }
-  Query q(db, "SELECT last_seq, head_hash, message, signature, public_key_pem FROM receipt "
-              "WHERE session_id = ?");
+  Query q(db,
+          "SELECT last_seq, head_hash, message, signature, public_key_pem FROM receipt "
+          "WHERE session_id = ?");
   q.Bind(v->session_id);
   auto row = q.Step();
   if (!row.ok()) return row.status();
@@ -233,13 +235,13 @@ absl::StatusOr<VerifyResult> VerifyLedgerFile(const VerifyOptions& options) {
   std::string only = options.session;
   if (options.receipt) {
     if (!only.empty() && only != options.receipt->session_id()) {
-      return absl::InvalidArgumentError(Cat("the receipt is for session ",
-                                            options.receipt->session_id(), ", not ", only));
+      return absl::InvalidArgumentError(
+          Cat("the receipt is for session ", options.receipt->session_id(), ", not ", only));
     }
     only = options.receipt->session_id();
   }
-  Query q(raw, Cat("SELECT id, ", versions ? "chain_version" : "1",
-                   " FROM session", only.empty() ? "" : " WHERE id = ?", " ORDER BY id"));
+  Query q(raw, Cat("SELECT id, ", versions ? "chain_version" : "1", " FROM session",
+                   only.empty() ? "" : " WHERE id = ?", " ORDER BY id"));
   if (!only.empty()) q.Bind(only);
   VerifyResult result;
   while (true) {
@@ -299,13 +301,14 @@ absl::StatusOr<VerifyResult> VerifyLedgerFile(const VerifyOptions& options) {
   }
   const SessionVerdict& v = result.sessions.front();
   if (!v.ok) {
-    return fail(Cat("the session's chain is broken at record ", v.broken_sequence, ": ",
-                    v.problem));
+    return fail(
+        Cat("the session's chain is broken at record ", v.broken_sequence, ": ", v.problem));
   }
   auto at = HashAt(raw, r.session_id(), r.last_sequence());
   if (!at.ok()) return at.status();
   if (!at->has_value()) {
-    return fail(Cat("record ", r.last_sequence(), " named by the receipt is missing: the ledger "
+    return fail(Cat("record ", r.last_sequence(),
+                    " named by the receipt is missing: the ledger "
                     "was cut after the receipt"));
   }
   if (**at != r.head_hash()) {
@@ -314,8 +317,10 @@ absl::StatusOr<VerifyResult> VerifyLedgerFile(const VerifyOptions& options) {
   }
   result.receipt_ok = true;
   result.receipt_detail =
-      Cat("signature verifies; record ", r.last_sequence(), " has the receipt's head hash and the "
-          "chain verifies through record ", v.records, ": records 1..", r.last_sequence(),
+      Cat("signature verifies; record ", r.last_sequence(),
+          " has the receipt's head hash and the "
+          "chain verifies through record ",
+          v.records, ": records 1..", r.last_sequence(),
           " are as they were when the receipt was signed (", r.signed_utc(), ")");
   return result;
 }

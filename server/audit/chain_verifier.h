@@ -39,8 +39,8 @@ struct VerifyOptions {
 struct SessionVerdict {
   std::string session_id;
   uint32_t chain_version = 1;
-  uint64_t records = 0;       // rows checked
-  std::string head_hash;      // hash of the last record checked (raw)
+  uint64_t records = 0;          // rows checked
+  std::string head_hash;         // hash of the last record checked (raw)
   uint64_t personal_kept = 0;    // personal contents matching their digests
   uint64_t personal_erased = 0;  // personal contents erased (covered by Erasure records)
   bool ok = true;

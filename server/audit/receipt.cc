@@ -56,7 +56,8 @@ absl::StatusOr<std::string> DerSha256(EVP_PKEY* key) {
   unsigned char* der = nullptr;
   int len = i2d_PUBKEY(key, &der);
   if (len <= 0) return absl::InternalError("cannot encode the receipt public key (OpenSSL)");
-  std::string out = Sha256(std::string_view(reinterpret_cast<char*>(der), static_cast<size_t>(len)));
+  std::string out =
+      Sha256(std::string_view(reinterpret_cast<char*>(der), static_cast<size_t>(len)));
   OPENSSL_free(der);
   return out;
 }
@@ -71,7 +72,8 @@ std::string ReadAll(const std::string& path, bool* ok) {
 
 absl::Status WriteFileMode(const std::string& path, std::string_view data, mode_t mode) {
   int fd = ::open(path.c_str(), O_WRONLY | O_CREAT | O_EXCL | O_CLOEXEC, mode);
-  if (fd < 0) return absl::UnavailableError(Cat("cannot create ", path, ": ", std::strerror(errno)));
+  if (fd < 0)
+    return absl::UnavailableError(Cat("cannot create ", path, ": ", std::strerror(errno)));
   size_t done = 0;
   while (done < data.size()) {
     ssize_t n = ::write(fd, data.data() + done, data.size() - done);
@@ -81,7 +83,8 @@ absl::Status WriteFileMode(const std::string& path, std::string_view data, mode_
     }
     done += static_cast<size_t>(n);
   }
-  if (::fsync(fd) != 0 || ::close(fd) != 0) return absl::UnavailableError(Cat("cannot write ", path));
+  if (::fsync(fd) != 0 || ::close(fd) != 0)
+    return absl::UnavailableError(Cat("cannot write ", path));
   return absl::OkStatus();
 }
 
@@ -187,8 +190,8 @@ absl::StatusOr<Receipt> ParseReceiptFile(std::string_view text) {
     return absl::InvalidArgumentError(
         Cat("not a tickmark receipt (want 8 lines starting \"", kFirstLine, "\")"));
   }
-  static const char* kKeys[] = {"session",       "last_sequence", "head_hash", "chain_version",
-                                "signed_utc",    "public_key_sha256", "signature"};
+  static const char* kKeys[] = {"session",    "last_sequence",     "head_hash", "chain_version",
+                                "signed_utc", "public_key_sha256", "signature"};
   std::string_view values[7];
   for (int i = 0; i < 7; ++i) {
     std::string_view line = lines[static_cast<size_t>(i) + 1];
@@ -212,7 +215,8 @@ absl::StatusOr<Receipt> ParseReceiptFile(std::string_view text) {
   r.set_head_hash(bytes);
   std::string version(values[3]);
   r.set_chain_version(static_cast<uint32_t>(std::strtoul(version.c_str(), &end, 10)));
-  if (version.empty() || *end != '\0') return absl::InvalidArgumentError("receipt: bad chain_version");
+  if (version.empty() || *end != '\0')
+    return absl::InvalidArgumentError("receipt: bad chain_version");
   r.set_signed_utc(std::string(values[4]));
   if (!Unhex(values[5], &bytes) || bytes.size() != 32) {
     return absl::InvalidArgumentError("receipt: public_key_sha256 is not 64 hex digits");
@@ -253,14 +257,12 @@ absl::Status VerifySignature(std::string_view public_pem, std::string_view messa
   }
   int ok = EVP_DigestVerify(ctx.get(), reinterpret_cast<const unsigned char*>(signature.data()),
                             signature.size(),
-                            reinterpret_cast<const unsigned char*>(message.data()),
-                            message.size());
+                            reinterpret_cast<const unsigned char*>(message.data()), message.size());
   if (ok != 1) return absl::FailedPreconditionError("signature does not verify");
   return absl::OkStatus();
 }
 
-absl::StatusOr<std::shared_ptr<const ReceiptKey>> ReceiptKey::LoadOrCreate(
-    const std::string& dir) {
+absl::StatusOr<std::shared_ptr<const ReceiptKey>> ReceiptKey::LoadOrCreate(const std::string& dir) {
   const std::string path = Cat(dir.empty() ? "." : dir, "/", kReceiptKeyFile);
   const std::string pub_path = Cat(dir.empty() ? "." : dir, "/", kReceiptPublicKeyFile);
   std::shared_ptr<ReceiptKey> key(new ReceiptKey());
@@ -286,12 +288,14 @@ absl::StatusOr<std::shared_ptr<const ReceiptKey>> ReceiptKey::LoadOrCreate(
     if (p == nullptr) return absl::InternalError("cannot make an Ed25519 key (OpenSSL)");
     key->pkey_ = p;
     Bio bio(BIO_new(BIO_s_mem()));
-    if (!bio || PEM_write_bio_PrivateKey(bio.get(), p, nullptr, nullptr, 0, nullptr, nullptr) != 1) {
+    if (!bio ||
+        PEM_write_bio_PrivateKey(bio.get(), p, nullptr, nullptr, 0, nullptr, nullptr) != 1) {
       return absl::InternalError("cannot write the receipt key (OpenSSL)");
     }
     char* data = nullptr;
     long len = BIO_get_mem_data(bio.get(), &data);
-    if (absl::Status s = WriteFileMode(path, std::string_view(data, static_cast<size_t>(len)), 0600);
+    if (absl::Status s =
+            WriteFileMode(path, std::string_view(data, static_cast<size_t>(len)), 0600);
         !s.ok()) {
       return s;
     }
@@ -326,7 +330,8 @@ absl::Status ReceiptKey::Sign(Receipt* receipt) const {
   size_t len = sizeof sig;
   const std::string& m = receipt->message();
   if (!ctx ||
-      EVP_DigestSignInit(ctx.get(), nullptr, nullptr, nullptr, static_cast<EVP_PKEY*>(pkey_)) != 1 ||
+      EVP_DigestSignInit(ctx.get(), nullptr, nullptr, nullptr, static_cast<EVP_PKEY*>(pkey_)) !=
+          1 ||
       EVP_DigestSign(ctx.get(), sig, &len, reinterpret_cast<const unsigned char*>(m.data()),
                      m.size()) != 1 ||
       len != 64) {

@@ -32,7 +32,7 @@
 namespace tickmark::audit {
 
 // File names of the key pair in the server's data folder.
-inline constexpr const char* kReceiptKeyFile = "receipt-key.pem";      // private, mode 0600
+inline constexpr const char* kReceiptKeyFile = "receipt-key.pem";  // private, mode 0600
 inline constexpr const char* kReceiptPublicKeyFile = "receipt-key.pub.pem";
 
 // UTC time as RFC 3339 with nine fraction digits ("2026-12-03T10:15:02.123456789Z").

@@ -27,13 +27,15 @@ class Query {
   Query& operator=(const Query&) = delete;
 
   Query& Bind(std::string_view text) {
-    if (stmt_) sqlite3_bind_text(stmt_, ++bound_, text.data(), static_cast<int>(text.size()),
-                                 SQLITE_TRANSIENT);
+    if (stmt_)
+      sqlite3_bind_text(stmt_, ++bound_, text.data(), static_cast<int>(text.size()),
+                        SQLITE_TRANSIENT);
     return *this;
   }
   Query& BindBlob(std::string_view bytes) {
-    if (stmt_) sqlite3_bind_blob(stmt_, ++bound_, bytes.data(), static_cast<int>(bytes.size()),
-                                 SQLITE_TRANSIENT);
+    if (stmt_)
+      sqlite3_bind_blob(stmt_, ++bound_, bytes.data(), static_cast<int>(bytes.size()),
+                        SQLITE_TRANSIENT);
     return *this;
   }
   Query& Bind(int64_t v) {

@@ -20,6 +20,7 @@
 #include <grpcpp/security/server_credentials.h>
 #include <grpcpp/server_builder.h>
 
+#include "server/audit/receipt.h"
 #include "server/base/log.h"
 #include "server/base/strings.h"
 #include "server/ledger/sqlite/sqlite_ledger.h"

@@ -5,6 +5,7 @@
 #include <algorithm>
 #include <fstream>
 
+#include "server/audit/receipt.h"
 #include "server/base/log.h"
 #include "server/base/strings.h"
 #include "server/rpc/auth.h"

@@ -29,13 +29,16 @@
 #include <string>
 #include <vector>
 
-#include "server/audit/receipt.h"
 #include "server/core/delay_kernel.h"
 #include "server/core/time.h"
 #include "server/ledger/ledger.h"
 #include "server/rpc/credit_driver.h"
 #include "tickmark/v1/admin.pb.h"
 #include "tickmark/v1/stream.pb.h"
+
+namespace tickmark::audit {
+class ReceiptKey;  // server/audit/receipt.h
+}  // namespace tickmark::audit
 
 namespace tickmark::rpc {
 

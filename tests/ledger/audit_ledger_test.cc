@@ -2,6 +2,7 @@
 // verifier (server/audit), and the Ed25519 receipt format (docs/audit.md).
 // The end-to-end checks (openssl CLI, tampered files, byte scans through a
 // real tickmarkd) are in tests/python/test_audit.py.
+#include <gtest/gtest.h>
 #include <sqlite3.h>
 #include <sys/stat.h>
 
@@ -9,8 +10,6 @@
 #include <fstream>
 #include <future>
 #include <sstream>
-
-#include <gtest/gtest.h>
 
 #include "server/audit/chain_verifier.h"
 #include "server/audit/receipt.h"
@@ -164,7 +163,7 @@ TEST(ReceiptTest, SignedFileRoundTripsAndVerifies) {
   r.set_chain_version(2);
   r.set_signed_utc(audit::Rfc3339Nanos(1'764'756'902'123'456'789));
   ASSERT_TRUE((*key)->Sign(&r).ok());
-  EXPECT_EQ(r.signature().size(), 64u);  // RFC 8032 §5.1.6
+  EXPECT_EQ(r.signature().size(), 64u);                         // RFC 8032 §5.1.6
   EXPECT_EQ(r.signed_utc(), "2025-12-03T10:15:02.123456789Z");  // date(1): @1764756902 UTC
   const std::string text = audit::ReceiptFileText(r);
   EXPECT_EQ(text.substr(0, 48), "tickmark receipt 1\nsession: s-7f3a2c91\nlast_sequ");
