@@ -31,7 +31,8 @@ inline constexpr size_t kMaxClientIdLength = 64;
 // (stream.proto, Hello.client_id); INVALID_ARGUMENT naming the problem else.
 absl::Status ValidateClientId(std::string_view id);
 
-// Builds "host:user:program:source" from the parts, replacing characters
+// Builds "host:user:program:source" (DefaultClientId passes the
+// installation id as host and no user) from the parts, replacing characters
 // outside the allowed set by '-'. If longer than 64 characters the result is
 // cut and ends in '.' plus 8 hex digits of a hash of the full text, so it
 // stays unique and stable. Empty parts are left out.
