@@ -115,7 +115,7 @@ class Agent {
     std::string server = "127.0.0.1:7461";
     std::string token;        // the secret; or
     std::string token_file;   // a file holding it; else $TICKMARK_TOKEN
-    std::string client_id;    // stable id; default: host:user:agent
+    std::string client_id;    // stable id; default: <installation id>:agent:cpp
     std::string description = "C++ agent";
     std::string ca_file;      // TLS roots; plaintext on loopback otherwise
     bool insecure = false;    // plaintext to a non-loopback server

@@ -5,7 +5,11 @@ namespace tickmark::cli {
 CommandTable::CommandTable(CLI::App* root, CommonFlags* common) : root_(root), common_(common) {}
 
 CLI::App* CommandTable::AddGroup(const std::string& name, const std::string& description) {
+  // Two command files may add verbs to one group (study: audit's
+  // erase-participant beside the study commands): the first makes it.
+  if (auto it = groups_.find(name); it != groups_.end()) return it->second;
   CLI::App* group = root_->add_subcommand(name, description);
+  groups_[name] = group;
   group->require_subcommand(0, 1);
   AddCommonFlags(*group, common_);
   return group;

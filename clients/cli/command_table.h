@@ -26,7 +26,8 @@ class CommandTable {
   // `root` and `common` must outlive the table.
   CommandTable(CLI::App* root, CommonFlags* common);
 
-  // A group word (session, token, ...) whose verbs are commands.
+  // A group word (session, token, ...) whose verbs are commands; the group
+  // already added under that name, if any (command files may share a group).
   CLI::App* AddGroup(const std::string& name, const std::string& description);
   // A command under `parent` (a group, or root() for a one-word command)
   // with the common flags; `action` runs when the command line chose it.
@@ -46,6 +47,7 @@ class CommandTable {
   CLI::App* root_;
   CommonFlags* common_;
   std::map<const CLI::App*, Action> actions_;
+  std::map<std::string, CLI::App*> groups_;  // by name
 };
 
 }  // namespace tickmark::cli

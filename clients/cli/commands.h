@@ -23,6 +23,10 @@ void AddInviteCommand(CommandTable& table);      // invite (web page join links)
 void AddAlignCommand(CommandTable& table);       // align (sync pulses, docs/sync.md)
 void AddStudyCommands(CommandTable& table);      // study create|list|show|condition|enroll|schedule
 void AddReportCommand(CommandTable& table);      // report (HTML, through tickmark.report)
+// audit verify|receipt, archive, study erase-participant (audit_commands.cc)
+void AddAuditCommands(CommandTable& table);
+// Prints a closed session's receipt from the server (session close uses it).
+int PrintReceiptOf(const CommonFlags& common, const std::string& session_id);
 
 }  // namespace tickmark::cli
 

@@ -42,6 +42,7 @@ int main(int argc, char** argv) {
   AddAlignCommand(table);
   AddStudyCommands(table);
   AddReportCommand(table);
+  AddAuditCommands(table);
 
   if (argc < 2) {
     std::cerr << app.help();

@@ -245,10 +245,15 @@ void AddClose(CommandTable& table, CLI::App* group) {
       group, "close", "Ends a session: its streams end and no record is taken after.",
       [&table, req] {
         return CallAdmin<v1::CloseSessionRequest, v1::Session>(
-            table.common(), &Admin::CloseSession, *req, [](const v1::Session& r) {
+            table.common(), &Admin::CloseSession, *req, [&table](const v1::Session& r) {
               std::cout << "session " << r.id() << " closed at "
                         << FormatUtc(r.closed_session_ns()) << " (" << r.last_sequence()
                         << " records)\n";
+              // The signed receipt (docs/audit.md): keep it to prove the
+              // ledger later (tickmark audit verify --receipt).
+              std::cout << "receipt (save it; tickmark audit receipt --session " << r.id()
+                        << " prints it again):\n";
+              PrintReceiptOf(table.common(), r.id());
               return kExitOk;
             });
       });

@@ -14,7 +14,8 @@ std::string Footer(const std::string& legend) {
          R"(
 Ctrl-C quits too; Ctrl-Z suspends (the terminal is restored meanwhile).
 
---client-id defaults to host:user:tickmark-keys:<tty>, or ...:stdin with
+--client-id defaults to <installation id>:tickmark-keys:<tty> (a random id kept in
+~/.local/state/tickmark/installation-id), or ...:stdin with
 --stdin-lines, or ...:<device> with --device.
 
 Input devices (--device): a path (/dev/input/event5), a vendor:product id in

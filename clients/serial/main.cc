@@ -40,7 +40,8 @@ constexpr char kDescription[] =
     "box to a tickmark session (a trainer source).";
 
 constexpr char kFooter[] =
-    R"usage(--client-id defaults to host:user:tickmark-serial:<port>.
+    R"usage(--client-id defaults to <installation id>:tickmark-serial:<port> (a random id
+kept in ~/.local/state/tickmark/installation-id; never the user or host name).
 
 Timing: a line "B1 down 123456" carries the box's clock (µs). That clock is
 not the host's, so it is mapped to the host's CLOCK_MONOTONIC (the clock

@@ -86,7 +86,8 @@ files must be 16 kHz (sox IN -r 16000 -c 1 -b 16 OUT.wav converts).
 --detect-only needs no server or token: it prints each phrase heard
 ("heard phrase=... onset_s=... method=... latency_ms=...") and sends nothing.
 
---client-id defaults to host:user:tickmark-voice:<device or file name>.
+--client-id defaults to <installation id>:tickmark-voice:<device or file name> (a random
+id kept in ~/.local/state/tickmark/installation-id; never the user or host name).
 Exit status: 0 when everything sent was acknowledged; 1 otherwise (or an
 audio error); 2 for usage and configuration errors. Ctrl-C quits.
 

@@ -10,7 +10,11 @@
 //
 // Hash chain: record.hash = SHA-256(previous record's hash || body), where
 // body is the deterministic serialisation of the record with its hash field
-// empty; the first record of a session chains from 32 zero bytes.
+// empty; the first record of a session chains from 32 zero bytes. In chain
+// version 2 (every session created since) a record's personal fields are
+// cleared from the body and enter it only as a salted digest (SealPersonal);
+// the salt and the personal content are kept beside the record so that they
+// can be erased (docs/audit.md, "Erasure").
 //
 // Thread safety: every method may be called from any thread. Commit
 // callbacks run on the writer thread, in commit order; they must be quick
@@ -55,6 +59,30 @@ struct SessionRow {
   // Sessions created under a study (Session.condition, .participants).
   std::string condition;
   std::vector<std::string> participants;
+  // How the session's records are chained (Session.chain_version): 1, the
+  // whole record is hashed; 2, personal fields enter only as a salted digest.
+  uint32_t chain_version = 1;
+};
+
+// The chain version of new sessions.
+constexpr uint32_t kChainVersion = 2;
+
+// A record's personal content as kept beside it in chain version 2 (table
+// `personal`): the serialised PersonalContent and the random salt of its
+// digest. Erasing a participant deletes these.
+struct PersonalPart {
+  std::string participant;  // the trainer pseudonym
+  std::string salt;         // 32 random bytes
+  std::string content;      // PersonalContent, deterministic serialisation
+};
+
+// A session whose personal content of one participant was erased, and how
+// much (EraseParticipant below).
+struct PersonalHolding {
+  std::string session_id;
+  bool open = false;
+  uint32_t chain_version = 1;
+  std::vector<uint64_t> sequences;  // records holding the participant's content
 };
 
 // A calibration as the server-wide index (table `calibration`) lists it; the
@@ -229,6 +257,24 @@ class Ledger {
   // studies) is UNIMPLEMENTED.
   virtual absl::StatusOr<std::vector<SessionRow>> ListStudies();
   virtual absl::StatusOr<SessionRow> GetStudy(std::string_view id);
+  // Audit (docs/audit.md). The defaults return UNIMPLEMENTED.
+  // Stores a session's close receipt (one per session; replaced if present).
+  virtual absl::Status PutReceipt(const tickmark::v1::Receipt& receipt,
+                                  std::string_view public_key_pem);
+  // A session's receipt, if it has one.
+  virtual absl::StatusOr<std::optional<tickmark::v1::Receipt>> GetReceipt(
+      std::string_view session_id);
+  // Every session holding personal content of `participant` still kept
+  // (chain version 2), and the sessions of chain version 1 holding records
+  // of that trainer (sequences empty: those cannot be erased).
+  virtual absl::StatusOr<std::vector<PersonalHolding>> FindPersonalContent(
+      std::string_view participant);
+  // Deletes the personal content of `participant` in these sessions (rows of
+  // `personal`, and the same fields in the typed tables), then removes every
+  // copy from the file (secure_delete, VACUUM, WAL checkpoint TRUNCATE).
+  // The caller has appended the Erasure records first. Synchronous.
+  virtual absl::Status ErasePersonalContent(std::string_view participant,
+                                            const std::vector<std::string>& session_ids);
 
   // Whether writes succeed now: OK, or the reason they are failing (for
   // example RESOURCE_EXHAUSTED "ledger disk full: ..." while the disk is
@@ -272,9 +318,25 @@ tickmark::v1::RecordKind RecordKindOf(const tickmark::v1::Record& record);
 std::optional<std::pair<std::string, uint64_t>> ClientKeyOf(const tickmark::v1::Record& record);
 
 // The bytes stored as a record's body and hashed: its deterministic
-// serialisation with the hash field empty. INTERNAL if it cannot be
+// serialisation with the hash field empty, and, when it holds a personal
+// digest (chain version 2), with its personal fields empty. INTERNAL if it cannot be
 // serialised (never an empty or partial body).
 absl::StatusOr<std::string> CanonicalBody(const tickmark::v1::Record& record);
+
+// Chain version 2: moves nothing, but computes the digest of the record's
+// personal content (Feedback value/input/audio_sha256; a calibration
+// answer's approve/detail) under a fresh random salt, sets the record's
+// personal_digest and returns the part to keep beside it. nullopt for a
+// record without personal content (or already sealed). The record keeps its
+// personal fields in memory; CanonicalBody leaves them out once sealed.
+absl::StatusOr<std::optional<PersonalPart>> SealPersonal(tickmark::v1::Record* record);
+// Puts a record's personal content (PersonalPart::content) back into it.
+// DATA_LOSS if the content does not parse.
+absl::Status RestorePersonal(tickmark::v1::Record* record, std::string_view content);
+// SHA-256(salt || content): the digest a sealed record holds.
+absl::StatusOr<std::string> PersonalDigest(std::string_view salt, std::string_view content);
+// The digest a record holds (empty if none).
+std::string_view PersonalDigestOf(const tickmark::v1::Record& record);
 
 // SHA-256(prev_hash || CanonicalBody(record)); see the header comment.
 // INTERNAL if OpenSSL fails: a failure is an error, never a wrong hash.

@@ -2,6 +2,8 @@
 
 #include <cmath>
 #include <deque>
+#include <future>
+#include <mutex>
 #include <set>
 #include <thread>
 
@@ -54,6 +56,7 @@ v1::Session ToProto(const ledger::SessionRow& row) {
   s.set_pin_kernels(row.pin_kernels);
   s.set_condition(row.condition);
   for (const std::string& p : row.participants) s.add_participants(p);
+  s.set_chain_version(row.chain_version);
   return s;
 }
 
@@ -116,6 +119,9 @@ absl::Status Summarize(SessionHub* hub, const ledger::SessionRow& row, v1::Sessi
   FillLedgerHealth(hub->ledger(), out->mutable_ledger_health());
   out->set_server_version(kVersion);
   out->set_contract_version(kContractVersion);
+  if (auto receipt = hub->ledger()->GetReceipt(row.id); receipt.ok() && receipt->has_value()) {
+    *out->mutable_receipt() = **receipt;
+  }
   // A session nobody has touched since the start has no streams; Find
   // avoids loading it (and replaying its ledger) just to say so.
   if (auto rt = hub->Find(row.id)) {
@@ -830,6 +836,80 @@ grpc::ServerWriteReactor<v1::RetimeResponse>* AdminService::Retime(grpc::Callbac
         reactor->End(status);
       });
   return reactor;
+}
+
+grpc::ServerUnaryReactor* AdminService::EraseParticipant(
+    grpc::CallbackServerContext* ctx, const v1::EraseParticipantRequest* req,
+    v1::EraseParticipantResponse* resp) {
+  auto who = AuthenticateContext(*ctx, *auth_);
+  if (!who.ok()) return Done(ctx, who.status());
+  if (!who->operator_token()) {
+    return Done(ctx, absl::PermissionDeniedError("erasing a participant needs the operator token"));
+  }
+  if (!IsValidName(req->participant())) {
+    return Done(ctx, absl::InvalidArgumentError(
+                         "participant: the trainer pseudonym, 1-64 characters of letters, "
+                         "digits, '.', '_', ':' or '-'"));
+  }
+  if (req->reason().size() > 256) return Done(ctx, absl::InvalidArgumentError("reason too long"));
+  // One erasure at a time: the Erasure records and the deletion belong together.
+  static std::mutex erase_mu;
+  std::lock_guard<std::mutex> lock(erase_mu);
+  ledger::Ledger* ledger = hub_->ledger();
+  auto holdings = ledger->FindPersonalContent(req->participant());
+  if (!holdings.ok()) return Done(ctx, holdings.status());
+  for (const ledger::PersonalHolding& h : *holdings) {
+    if (h.open && !h.sequences.empty()) {
+      return Done(ctx, absl::FailedPreconditionError(
+                           Cat("session ", h.session_id, " holding records of ",
+                               req->participant(), " is open; close it first")));
+    }
+  }
+  std::vector<std::string> sessions;
+  const std::string author = who->subject.empty() ? who->token_id : who->subject;
+  for (const ledger::PersonalHolding& h : *holdings) {
+    if (h.sequences.empty()) {
+      resp->add_version1_sessions(h.session_id);
+      continue;
+    }
+    // First the record saying what is erased (chained like any record, the
+    // one record a closed session takes), then the erasure itself: verify
+    // accepts missing content only where an Erasure record names it.
+    v1::Record r;
+    r.set_written_session_ns(hub_->UtcNowNanos());
+    v1::Erasure* e = r.mutable_erasure();
+    e->set_participant(req->participant());
+    e->set_author(author);
+    e->set_reason(req->reason());
+    for (uint64_t seq : h.sequences) e->add_sequences(seq);
+    std::promise<absl::StatusOr<uint64_t>> committed;
+    auto appended = ledger->Append(
+        h.session_id, {std::move(r)},
+        [&committed](const absl::Status& st, const std::vector<v1::Record>& records) {
+          if (!st.ok()) {
+            committed.set_value(st);
+          } else {
+            committed.set_value(records.front().sequence());
+          }
+        });
+    if (!appended.ok()) return Done(ctx, appended.status());
+    auto seq = committed.get_future().get();
+    if (!seq.ok()) return Done(ctx, seq.status());
+    auto* out = resp->add_sessions();
+    out->set_session_id(h.session_id);
+    out->set_records(h.sequences.size());
+    out->set_erasure_sequence(*seq);
+    sessions.push_back(h.session_id);
+  }
+  if (!sessions.empty()) {
+    if (absl::Status s = ledger->ErasePersonalContent(req->participant(), sessions); !s.ok()) {
+      return Done(ctx, absl::Status(s.code(), Cat("erasure recorded but not finished (run it "
+                                                   "again): ", s.message())));
+    }
+  }
+  TM_LOG(kInfo) << "participant " << req->participant() << " erased from " << sessions.size()
+                << " session(s) by " << author;
+  return Done(ctx, absl::OkStatus());
 }
 
 }  // namespace tickmark::rpc

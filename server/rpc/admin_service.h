@@ -61,6 +61,9 @@ class AdminService final : public tickmark::v1::SessionAdmin::CallbackService {
   grpc::ServerUnaryReactor* CreateInvite(grpc::CallbackServerContext* ctx,
                                          const tickmark::v1::CreateInviteRequest* req,
                                          tickmark::v1::CreateInviteResponse* resp) override;
+  grpc::ServerUnaryReactor* EraseParticipant(grpc::CallbackServerContext* ctx,
+                                             const tickmark::v1::EraseParticipantRequest* req,
+                                             tickmark::v1::EraseParticipantResponse* resp) override;
 
   // In admin_study.cc (docs/studies.md).
   grpc::ServerUnaryReactor* CreateStudy(grpc::CallbackServerContext* ctx,

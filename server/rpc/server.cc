@@ -21,6 +21,7 @@
 #include <grpcpp/security/server_credentials.h>
 #include <grpcpp/server_builder.h>
 
+#include "server/audit/receipt.h"
 #include "server/base/log.h"
 #include "server/base/strings.h"
 #include "server/ledger/postgres/pg_conn.h"
@@ -203,8 +204,16 @@ absl::StatusOr<std::unique_ptr<TickmarkServer>> TickmarkServer::Start(
     if (!ledger.ok()) return ledger.status();
     s->ledger_ = std::move(*ledger);
   }
+  SessionHub::Options hub_options = options.sessions;
+  if (!hub_options.receipt_key) {
+    // The receipt key lives with the operator token (docs/audit.md).
+    auto key = audit::ReceiptKey::LoadOrCreate(
+        std::filesystem::path(s->operator_token_path_).parent_path().string());
+    if (!key.ok()) return key.status();
+    hub_options.receipt_key = *key;
+  }
   s->hub_ = std::make_unique<SessionHub>(s->ledger_.get(), &s->mono_, &SystemUtcNowNanos,
-                                         options.sessions);
+                                         hub_options);
   s->auth_ = std::make_unique<TokenAuthority>(s->ledger_.get());
   if (absl::Status st = EnsureOperatorToken(s->auth_.get(), s->operator_token_path_,
                                             SystemUtcNowNanos());

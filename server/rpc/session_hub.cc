@@ -5,6 +5,7 @@
 #include <algorithm>
 #include <fstream>
 
+#include "server/audit/receipt.h"
 #include "server/base/log.h"
 #include "server/base/strings.h"
 #include "server/rpc/auth.h"
@@ -546,6 +547,7 @@ absl::StatusOr<std::shared_ptr<SessionRuntime>> SessionHub::Create(const std::st
   row.pin_kernels = pin_kernels;
   row.condition = study_part.condition;
   row.participants = study_part.participants;
+  row.chain_version = ledger::kChainVersion;
   if (absl::Status s = ledger_->CreateSession(row); !s.ok()) return s;
   if (auto lease = ledger_->AcquireSession(row.id); !lease.ok() || !lease->owned) {
     return lease.ok() ? absl::UnavailableError(Cat("session ", row.id, " was taken at once"))
@@ -591,7 +593,24 @@ absl::Status SessionHub::Close(const std::string& id) {
   r.mutable_session_event()->set_event(tickmark::v1::SessionEvent::KIND_CLOSED);
   if (auto s = (*runtime)->AppendRecord(std::move(r)); !s.ok()) return s.status();
   if (absl::Status s = ledger_->Flush(); !s.ok()) return s;
-  return ledger_->CloseSession(id, now);
+  if (absl::Status s = ledger_->CloseSession(id, now); !s.ok()) return s;
+  if (!options_.receipt_key) return absl::OkStatus();
+  // The receipt: what the chain held at the close, signed (docs/audit.md).
+  const uint64_t last = ledger_->CommittedSequence(id);
+  auto head = ledger_->Read(id, last, 1);
+  if (!head.ok() || head->empty()) {
+    return absl::InternalError(Cat("session ", id, " closed, but its last record ", last,
+                                   " cannot be read for the receipt"));
+  }
+  v1::Receipt receipt;
+  receipt.set_session_id(id);
+  receipt.set_last_sequence(last);
+  receipt.set_head_hash(head->front().hash());
+  auto row = ledger_->GetSession(id);
+  receipt.set_chain_version(row.ok() ? row->chain_version : 1);
+  receipt.set_signed_utc(audit::Rfc3339Nanos(utc_now_ns_()));
+  if (absl::Status s = options_.receipt_key->Sign(&receipt); !s.ok()) return s;
+  return ledger_->PutReceipt(receipt, options_.receipt_key->public_pem());
 }
 
 }  // namespace tickmark::rpc

@@ -36,6 +36,10 @@
 #include "tickmark/v1/admin.pb.h"
 #include "tickmark/v1/stream.pb.h"
 
+namespace tickmark::audit {
+class ReceiptKey;  // server/audit/receipt.h
+}  // namespace tickmark::audit
+
 namespace tickmark::rpc {
 
 // Bounds on what clients may send (docs/architecture.md §7: validated at the edge).
@@ -205,6 +209,8 @@ class SessionHub {
     // Kernel of new sessions that name none.
     DelayKernel default_kernel = *DelayKernel::Uniform(Duration::Millis(200), Duration::Millis(4000));
     Duration allowed_lateness = Duration::Seconds(2);
+    // Signs a receipt when a session closes (docs/audit.md); null: none.
+    std::shared_ptr<const audit::ReceiptKey> receipt_key;
   };
   SessionHub(ledger::Ledger* ledger, const MonotonicSource* mono, int64_t (*utc_now_ns)(),
              Options options);
@@ -230,7 +236,8 @@ class SessionHub {
                                                          const std::string& kernel = "",
                                                          bool pin_kernels = false,
                                                          const StudyPart& study_part = {});
-  // Closes a session: records the event, ends its streams.
+  // Closes a session: records the event, ends its streams, and stores the
+  // close receipt signed with options.receipt_key (if any).
   absl::Status Close(const std::string& id);
   // Time on the server's own timeline (for tokens of no session).
   int64_t UtcNowNanos() const { return utc_now_ns_(); }

@@ -4,6 +4,7 @@
 #include <unistd.h>
 
 #include <cstdio>
+#include <cstring>
 #include <fstream>
 #include <string>
 
@@ -38,6 +39,24 @@ TEST(ClientIdTest, MadeIdsAreValidAndStable) {
   EXPECT_TRUE(ValidateClientId(DefaultClientId("tickmark-keys", "stdin")).ok());
   EXPECT_EQ(DefaultClientId("tickmark-keys", "stdin"),
             DefaultClientId("tickmark-keys", "stdin"));
+}
+
+// Issue 15 part 6: the default id must not hold the OS user name; it stays
+// stable across runs (reconnect deduplication) through the state file.
+TEST(ClientIdTest, DefaultIdIsStableRandomAndNamesNoUser) {
+  const std::string dir = ::testing::TempDir() + "/tm-state-" + std::to_string(getpid());
+  const std::string first = InstallationId(dir);
+  ASSERT_EQ(first.size(), 14u);
+  EXPECT_EQ(first.rfind("i-", 0), 0u);
+  EXPECT_EQ(InstallationId(dir), first);  // read back, not made again
+  struct stat st {};
+  ASSERT_EQ(stat((dir + "/installation-id").c_str(), &st), 0);
+  EXPECT_EQ(st.st_mode & 0777, 0600u);
+  EXPECT_NE(InstallationId(dir + "-other"), first);  // random per state folder
+  if (const char* user = std::getenv("USER"); user != nullptr && std::strlen(user) >= 3) {
+    EXPECT_EQ(DefaultClientId("tickmark-keys", "stdin").find(user), std::string::npos);
+  }
+  EXPECT_EQ(InstallationId(""), "");
 }
 
 class TokenTest : public ::testing::Test {

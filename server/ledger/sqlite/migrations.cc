@@ -375,6 +375,44 @@ CREATE TABLE sync_pulse (
 ) WITHOUT ROWID;
 CREATE INDEX sync_pulse_by_time ON sync_pulse (session_id, event_session_ns);
 )sql"},
+    {7, "chain version 2: personal content beside the chain, receipts, erasure", R"sql(
+-- How a session's records are chained (docs/audit.md): 1 for the sessions
+-- made before this migration (the whole record is hashed), 2 for new ones
+-- (SqliteLedger::CreateSession sets it).
+ALTER TABLE session ADD COLUMN chain_version INTEGER NOT NULL DEFAULT 1;
+
+-- Chain version 2: the personal content of a record (PersonalContent,
+-- serialised) and the random salt of the digest its body holds:
+-- SHA-256(salt || content). Erasing a participant deletes their rows.
+CREATE TABLE personal (
+  session_id  TEXT NOT NULL,
+  seq         INTEGER NOT NULL,
+  participant TEXT NOT NULL,
+  salt        BLOB NOT NULL,
+  content     BLOB NOT NULL,
+  PRIMARY KEY (session_id, seq)
+) WITHOUT ROWID;
+CREATE INDEX personal_by_participant ON personal (participant);
+
+-- The typed copies of erased fields read 0 / '' with erased = 1.
+ALTER TABLE feedback ADD COLUMN erased INTEGER NOT NULL DEFAULT 0;
+ALTER TABLE calibration_event ADD COLUMN erased INTEGER NOT NULL DEFAULT 0;
+
+-- A session's close receipt (docs/audit.md, "Receipts"): message is exactly
+-- the bytes signed, signature the Ed25519 signature (64 bytes),
+-- public_key_pem the signing key's public half.
+CREATE TABLE receipt (
+  session_id        TEXT PRIMARY KEY REFERENCES session(id),
+  last_seq          INTEGER NOT NULL,
+  head_hash         BLOB NOT NULL,
+  chain_version     INTEGER NOT NULL,
+  signed_utc        TEXT NOT NULL,
+  message           BLOB NOT NULL,
+  signature         BLOB NOT NULL,
+  public_key_sha256 BLOB NOT NULL,
+  public_key_pem    TEXT NOT NULL
+);
+)sql"},
 };
 
 }  // namespace

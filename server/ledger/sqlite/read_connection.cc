@@ -39,13 +39,14 @@ SessionRow SessionFromRow(const Statement& q) {
       current += c;
     }
   }
+  row.chain_version = static_cast<uint32_t>(q.Int(14));
   return row;
 }
 
 constexpr const char* kSessionColumns =
     "id, title, study, state, opened_session_ns, closed_session_ns, utc_anchor_ns, "
     "mono_anchor_ns, boot_id, (SELECT COALESCE(MAX(seq), 0) FROM record r WHERE r.session_id = "
-    "session.id), pin_kernels, kind, condition, participants";
+    "session.id), pin_kernels, kind, condition, participants, chain_version";
 
 TokenRow TokenFromRow(const Statement& q) {
   TokenRow t;
@@ -59,16 +60,25 @@ TokenRow TokenFromRow(const Statement& q) {
   return t;
 }
 
-// A record's body and hash from the current row (columns `body_col`, +1).
+// A record's body and hash from the current row (columns `body_col`, +1),
+// and its personal content (chain version 2) from column `body_col` + 2 when
+// `with_personal` (NULL: none kept, or erased).
 absl::StatusOr<Record> RecordFromRow(const Statement& q, int body_col,
-                                     std::string_view session_id) {
+                                     std::string_view session_id, bool with_personal = false) {
   Record r;
   if (!r.ParseFromString(q.Blob(body_col))) {
     return absl::DataLossError(Cat("record body does not parse in session ", session_id));
   }
   r.set_hash(q.Blob(body_col + 1));
+  if (with_personal && !q.IsNull(body_col + 2)) {
+    if (absl::Status s = RestorePersonal(&r, q.Blob(body_col + 2)); !s.ok()) return s;
+  }
   return r;
 }
+
+// Joins a record (alias r) to its personal content (alias p).
+constexpr const char* kPersonalJoin =
+    " LEFT JOIN personal p ON p.session_id = r.session_id AND p.seq = r.seq ";
 
 CalibrationRow CalibrationFromRow(const Statement& q) {
   CalibrationRow c;
@@ -209,22 +219,18 @@ absl::StatusOr<std::vector<Record>> ReadConnection::Read(std::string_view sessio
                                                          size_t max) {
   std::lock_guard<std::mutex> lock(mu_);
   if (db_ == nullptr) return absl::UnavailableError("ledger is closed");
-  Statement q(db_,
-              "SELECT body, hash FROM record WHERE session_id = ? AND seq >= ? ORDER BY seq "
-              "LIMIT ?");
+  Statement q(db_, Cat("SELECT r.body, r.hash, p.content FROM record r", kPersonalJoin,
+                       "WHERE r.session_id = ? AND r.seq >= ? ORDER BY r.seq LIMIT ?")
+                       .c_str());
   q.Bind(session_id).Bind(from).Bind(static_cast<int64_t>(max));
   std::vector<Record> out;
   while (true) {
     auto row = q.Step();
     if (!row.ok()) return row.status();
     if (!*row) break;
-    Record r;
-    std::string body = q.Blob(0);
-    if (!r.ParseFromString(body)) {
-      return absl::DataLossError(Cat("record body does not parse in session ", session_id));
-    }
-    r.set_hash(q.Blob(1));
-    out.push_back(std::move(r));
+    auto r = RecordFromRow(q, 0, session_id, /*with_personal=*/true);
+    if (!r.ok()) return r.status();
+    out.push_back(*std::move(r));
   }
   return out;
 }
@@ -286,17 +292,18 @@ absl::StatusOr<std::vector<Record>> ReadConnection::ReadCalibrationEvents(
     std::string_view session_id, std::string_view client_id, std::string_view run) {
   std::lock_guard<std::mutex> lock(mu_);
   if (db_ == nullptr) return absl::UnavailableError("ledger is closed");
-  Statement q(db_,
-              "SELECT r.body, r.hash FROM calibration_event e JOIN record r ON r.session_id = "
-              "e.session_id AND r.seq = e.seq WHERE e.session_id = ? AND e.client_id = ? AND "
-              "e.run = ? ORDER BY e.seq");
+  Statement q(db_, Cat("SELECT r.body, r.hash, p.content FROM calibration_event e JOIN record r "
+                       "ON r.session_id = e.session_id AND r.seq = e.seq",
+                       kPersonalJoin,
+                       "WHERE e.session_id = ? AND e.client_id = ? AND e.run = ? ORDER BY e.seq")
+                       .c_str());
   q.Bind(session_id).Bind(client_id).Bind(run);
   std::vector<Record> out;
   while (true) {
     auto row = q.Step();
     if (!row.ok()) return row.status();
     if (!*row) break;
-    auto r = RecordFromRow(q, 0, session_id);
+    auto r = RecordFromRow(q, 0, session_id, /*with_personal=*/true);
     if (!r.ok()) return r.status();
     out.push_back(*std::move(r));
   }
@@ -412,6 +419,60 @@ absl::StatusOr<std::vector<DerivedTimeRow>> ReadConnection::ReadDerivedTimes(
     t.outcome = q.Text(7);
     t.probes = static_cast<uint32_t>(q.Int(8));
     out.push_back(std::move(t));
+  }
+  return out;
+}
+
+absl::StatusOr<std::optional<tickmark::v1::Receipt>> ReadConnection::GetReceipt(
+    std::string_view session_id) {
+  std::lock_guard<std::mutex> lock(mu_);
+  if (db_ == nullptr) return absl::UnavailableError("ledger is closed");
+  Statement q(db_,
+              "SELECT session_id, last_seq, head_hash, chain_version, signed_utc, message, "
+              "signature, public_key_sha256 FROM receipt WHERE session_id = ?");
+  auto row = q.Bind(session_id).Step();
+  if (!row.ok()) return row.status();
+  if (!*row) return std::optional<tickmark::v1::Receipt>();
+  tickmark::v1::Receipt r;
+  r.set_session_id(q.Text(0));
+  r.set_last_sequence(static_cast<uint64_t>(q.Int(1)));
+  r.set_head_hash(q.Blob(2));
+  r.set_chain_version(static_cast<uint32_t>(q.Int(3)));
+  r.set_signed_utc(q.Text(4));
+  r.set_message(q.Blob(5));
+  r.set_signature(q.Blob(6));
+  r.set_public_key_sha256(q.Blob(7));
+  return std::optional<tickmark::v1::Receipt>(std::move(r));
+}
+
+absl::StatusOr<std::vector<PersonalHolding>> ReadConnection::FindPersonalContent(
+    std::string_view participant) {
+  std::lock_guard<std::mutex> lock(mu_);
+  if (db_ == nullptr) return absl::UnavailableError("ledger is closed");
+  // Version 2: the kept personal rows. Version 1: any feedback or answer of
+  // the trainer (hashed whole, so it cannot be erased).
+  Statement q(db_,
+              "SELECT s.id, s.state = 'open', s.chain_version, p.seq FROM personal p JOIN "
+              "session s ON s.id = p.session_id WHERE p.participant = ?1 "
+              "UNION ALL SELECT DISTINCT s.id, s.state = 'open', s.chain_version, NULL FROM "
+              "session s WHERE s.chain_version < 2 AND (EXISTS (SELECT 1 FROM feedback f WHERE "
+              "f.session_id = s.id AND f.trainer = ?1) OR EXISTS (SELECT 1 FROM "
+              "calibration_event e WHERE e.session_id = s.id AND e.trainer = ?1)) "
+              "ORDER BY 1, 4");
+  q.Bind(participant);
+  std::vector<PersonalHolding> out;
+  while (true) {
+    auto row = q.Step();
+    if (!row.ok()) return row.status();
+    if (!*row) break;
+    if (out.empty() || out.back().session_id != q.Text(0)) {
+      PersonalHolding h;
+      h.session_id = q.Text(0);
+      h.open = q.Int(1) != 0;
+      h.chain_version = static_cast<uint32_t>(q.Int(2));
+      out.push_back(std::move(h));
+    }
+    if (!q.IsNull(3)) out.back().sequences.push_back(static_cast<uint64_t>(q.Int(3)));
   }
   return out;
 }

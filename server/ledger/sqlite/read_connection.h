@@ -50,6 +50,8 @@ class ReadConnection {
   absl::StatusOr<std::vector<TimeSetRow>> ListTimeSets(std::string_view session_id);
   absl::StatusOr<TimeSetRow> GetTimeSet(std::string_view id);
   absl::StatusOr<std::vector<DerivedTimeRow>> ReadDerivedTimes(std::string_view time_set);
+  absl::StatusOr<std::optional<tickmark::v1::Receipt>> GetReceipt(std::string_view session_id);
+  absl::StatusOr<std::vector<PersonalHolding>> FindPersonalContent(std::string_view participant);
 
   // Whether closing this connection may checkpoint the WAL (off while
   // writes fail for lack of space; see SqliteLedger).

@@ -40,7 +40,11 @@ absl::StatusOr<sqlite3*> OpenDb(const std::string& path, bool full) {
     return s;
   }
   sqlite3_busy_timeout(db, 5000);
-  absl::Status s = Exec(db, "PRAGMA journal_mode=WAL; PRAGMA foreign_keys=ON;");
+  // secure_delete: deleted content (an erased participant's, docs/audit.md)
+  // is overwritten with zeros rather than left in free pages (SQLite docs,
+  // PRAGMA secure_delete).
+  absl::Status s =
+      Exec(db, "PRAGMA journal_mode=WAL; PRAGMA foreign_keys=ON; PRAGMA secure_delete=ON;");
   if (s.ok()) s = Exec(db, full ? "PRAGMA synchronous=FULL;" : "PRAGMA synchronous=NORMAL;");
   if (!s.ok()) {
     sqlite3_close(db);
@@ -145,6 +149,13 @@ absl::Status SqliteLedger::LoadHeads() {
     assigned_[q.Text(0)] = head;
     committed_[q.Text(0)] = head;
   }
+  Statement v(writer_db_, "SELECT id, chain_version FROM session");
+  while (true) {
+    auto row = v.Step();
+    if (!row.ok()) return row.status();
+    if (!*row) break;
+    chain_versions_[v.Text(0)] = static_cast<uint32_t>(v.Int(1));
+  }
   return absl::OkStatus();
 }
 
@@ -210,7 +221,8 @@ void SqliteLedger::Close() {
   writer_db_ = nullptr;
 }
 
-absl::Status SqliteLedger::RunSync(std::function<absl::Status(sqlite3*)> op) {
+absl::Status SqliteLedger::RunSync(std::function<absl::Status(sqlite3*)> op,
+                                   bool outside_transaction) {
   std::promise<absl::Status> result;
   auto future = result.get_future();
   {
@@ -218,6 +230,7 @@ absl::Status SqliteLedger::RunSync(std::function<absl::Status(sqlite3*)> op) {
     if (closing_) return absl::UnavailableError("ledger is closed");
     Work w;
     w.op = std::move(op);
+    w.outside_transaction = outside_transaction;
     w.op_done = [&result](absl::Status s) { result.set_value(std::move(s)); };
     queue_.push_back(std::move(w));
   }
@@ -235,6 +248,14 @@ absl::StatusOr<uint64_t> SqliteLedger::Append(std::string_view session_id,
     if (it == assigned_.end()) it = assigned_.emplace(std::string(session_id), SessionHead{}).first;
     SessionHead head = it->second;
     first = head.sequence + 1;
+    auto version = chain_versions_.find(session_id);
+    const bool seal = version != chain_versions_.end() && version->second >= 2;
+    std::vector<std::optional<PersonalPart>> personal(records.size());
+    for (size_t k = 0; seal && k < records.size(); ++k) {
+      auto part = SealPersonal(&records[k]);
+      if (!part.ok()) return part.status();  // nothing handed out yet
+      personal[k] = std::move(*part);
+    }
     for (Record& r : records) {
       r.set_session_id(std::string(session_id));
       r.set_sequence(head.sequence + 1);
@@ -247,6 +268,7 @@ absl::StatusOr<uint64_t> SqliteLedger::Append(std::string_view session_id,
     Work w;
     w.session_id = std::string(session_id);
     w.records = std::move(records);
+    w.personal = std::move(personal);
     w.done = std::move(done);
     queue_.push_back(std::move(w));
     ops::SetLedgerQueueDepth(queue_.size());
@@ -352,7 +374,13 @@ void SqliteLedger::WriterLoop() {
 
 void SqliteLedger::RunOp(Work& w) {
   absl::Status s = WriteHealth();
-  if (s.ok()) {
+  if (s.ok() && w.outside_transaction) {
+    s = w.op(writer_db_);
+    if (!s.ok() && IsStorageError(s)) {
+      EnterFailing(s);
+      s = WriteHealth();
+    }
+  } else if (s.ok()) {
     s = Exec(writer_db_, "BEGIN IMMEDIATE");
     if (s.ok()) s = w.op(writer_db_);
     if (s.ok()) {
@@ -412,8 +440,10 @@ void SqliteLedger::CommitGroups(std::vector<Work>& batch, size_t begin, size_t e
     bool inserted = false;
     if (s.ok()) {
       if (fatal = ExecCached("SAVEPOINT append_group"); !fatal.ok()) break;
-      for (const Record& r : w.records) {
-        if (s = tables_->Insert(r); !s.ok()) break;
+      for (size_t k = 0; k < w.records.size(); ++k) {
+        const PersonalPart* part =
+            k < w.personal.size() && w.personal[k] ? &*w.personal[k] : nullptr;
+        if (s = tables_->Insert(w.records[k], part); !s.ok()) break;
       }
       if (s.ok()) {
         fatal = ExecCached("RELEASE append_group");
@@ -567,11 +597,11 @@ void SqliteLedger::TryRecover() {
 }
 
 absl::Status SqliteLedger::CreateSession(const SessionRow& row) {
-  return RunSync([&row](sqlite3* db) {
+  absl::Status s = RunSync([&row](sqlite3* db) {
     Statement q(db,
                 "INSERT INTO session (id, title, study, state, opened_session_ns, utc_anchor_ns, "
-                "mono_anchor_ns, boot_id, pin_kernels, kind, condition, participants) "
-                "VALUES (?, ?, ?, 'open', ?, ?, ?, ?, ?, ?, ?, ?)");
+                "mono_anchor_ns, boot_id, pin_kernels, kind, condition, participants, chain_version) "
+                "VALUES (?, ?, ?, 'open', ?, ?, ?, ?, ?, ?, ?, ?, ?)");
     // Pseudonyms are letters, digits, '-', '_', '.' (the admin service
     // checks), so this JSON array needs no escaping.
     std::string participants = "[";
@@ -590,8 +620,14 @@ absl::Status SqliteLedger::CreateSession(const SessionRow& row) {
         .Bind(row.kind)
         .Bind(row.condition)
         .Bind(participants)
+        .Bind(static_cast<int64_t>(row.chain_version))
         .Run();
   });
+  if (s.ok()) {
+    std::lock_guard<std::mutex> lock(mu_);
+    chain_versions_[row.id] = row.chain_version;
+  }
+  return s;
 }
 
 absl::StatusOr<SessionRow> SqliteLedger::GetSession(std::string_view id) {
@@ -796,6 +832,71 @@ absl::StatusOr<TimeSetRow> SqliteLedger::GetTimeSet(std::string_view id) {
 absl::StatusOr<std::vector<DerivedTimeRow>> SqliteLedger::ReadDerivedTimes(
     std::string_view time_set) {
   return reads_->ReadDerivedTimes(time_set);
+}
+
+absl::Status SqliteLedger::PutReceipt(const tickmark::v1::Receipt& receipt,
+                                      std::string_view public_key_pem) {
+  return RunSync([&](sqlite3* db) {
+    Statement q(db,
+                "INSERT OR REPLACE INTO receipt (session_id, last_seq, head_hash, chain_version, "
+                "signed_utc, message, signature, public_key_sha256, public_key_pem) "
+                "VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)");
+    return q.Bind(receipt.session_id())
+        .Bind(receipt.last_sequence())
+        .BindBlob(receipt.head_hash())
+        .Bind(static_cast<int64_t>(receipt.chain_version()))
+        .Bind(receipt.signed_utc())
+        .BindBlob(receipt.message())
+        .BindBlob(receipt.signature())
+        .BindBlob(receipt.public_key_sha256())
+        .Bind(public_key_pem)
+        .Run();
+  });
+}
+
+absl::StatusOr<std::optional<tickmark::v1::Receipt>> SqliteLedger::GetReceipt(
+    std::string_view session_id) {
+  return reads_->GetReceipt(session_id);
+}
+
+absl::StatusOr<std::vector<PersonalHolding>> SqliteLedger::FindPersonalContent(
+    std::string_view participant) {
+  return reads_->FindPersonalContent(participant);
+}
+
+absl::Status SqliteLedger::ErasePersonalContent(std::string_view participant,
+                                                const std::vector<std::string>& session_ids) {
+  absl::Status s = RunSync([&](sqlite3* db) -> absl::Status {
+    for (const std::string& sid : session_ids) {
+      for (const char* sql :
+           {"UPDATE feedback SET value = 0, input = '', erased = 1 WHERE session_id = ?1 AND "
+            "seq IN (SELECT seq FROM personal WHERE session_id = ?1 AND participant = ?2)",
+            "UPDATE calibration_event SET approve = 0, detail = '', erased = 1 WHERE "
+            "session_id = ?1 AND seq IN (SELECT seq FROM personal WHERE session_id = ?1 AND "
+            "participant = ?2)",
+            "DELETE FROM personal WHERE session_id = ?1 AND participant = ?2"}) {
+        Statement q(db, sql);
+        if (absl::Status st = q.Bind(sid).Bind(participant).Run(); !st.ok()) return st;
+      }
+    }
+    return absl::OkStatus();
+  });
+  if (!s.ok()) return s;
+  // No copy left in the file: secure_delete zeroed the deleted cells; VACUUM
+  // rebuilds the file without free pages; the checkpoint moves the rebuilt
+  // pages into the main file and truncates the WAL, which still held the
+  // old pages (SQLite docs: VACUUM, PRAGMA wal_checkpoint(TRUNCATE)).
+  return RunSync(
+      [](sqlite3* db) -> absl::Status {
+        if (absl::Status st = Exec(db, "VACUUM"); !st.ok()) return st;
+        int log = 0, done = 0;
+        if (sqlite3_wal_checkpoint_v2(db, nullptr, SQLITE_CHECKPOINT_TRUNCATE, &log, &done) !=
+            SQLITE_OK) {
+          return SqlError(db, "WAL checkpoint after erasure");
+        }
+        return absl::OkStatus();
+      },
+      /*outside_transaction=*/true);
 }
 
 uint64_t SqliteLedger::CommittedSequence(std::string_view session_id) {

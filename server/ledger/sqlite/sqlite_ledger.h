@@ -133,6 +133,14 @@ class SqliteLedger final : public Ledger {
   absl::StatusOr<std::vector<TimeSetRow>> ListTimeSets(std::string_view session_id) override;
   absl::StatusOr<TimeSetRow> GetTimeSet(std::string_view id) override;
   absl::StatusOr<std::vector<DerivedTimeRow>> ReadDerivedTimes(std::string_view time_set) override;
+  absl::Status PutReceipt(const tickmark::v1::Receipt& receipt,
+                          std::string_view public_key_pem) override;
+  absl::StatusOr<std::optional<tickmark::v1::Receipt>> GetReceipt(
+      std::string_view session_id) override;
+  absl::StatusOr<std::vector<PersonalHolding>> FindPersonalContent(
+      std::string_view participant) override;
+  absl::Status ErasePersonalContent(std::string_view participant,
+                                    const std::vector<std::string>& session_ids) override;
   absl::Status WriteHealth() override;
   void Close() override;
 
@@ -146,11 +154,15 @@ class SqliteLedger final : public Ledger {
   struct Work {
     std::string session_id;
     std::vector<tickmark::v1::Record> records;
+    // Chain version 2: each record's personal part (nullopt: none), stored
+    // beside it in table `personal`.
+    std::vector<std::optional<PersonalPart>> personal;
     CommitCallback done;                        // for records
     absl::Status error;                         // set: fail the records with it, do not insert
     std::function<absl::Status(sqlite3*)> op;   // for synchronous changes
     std::function<void(absl::Status)> op_done;  // result of op
     std::function<void()> barrier;              // for barriers
+    bool outside_transaction = false;           // op runs without BEGIN/COMMIT (VACUUM)
   };
 
   SqliteLedger(Options options, sqlite3* writer);
@@ -177,7 +189,7 @@ class SqliteLedger final : public Ledger {
   void TryRecover();
   absl::Status NoteLedgerEvent(const char* event, const std::string& detail);
   void SetHealth(absl::Status health);
-  absl::Status RunSync(std::function<absl::Status(sqlite3*)> op);
+  absl::Status RunSync(std::function<absl::Status(sqlite3*)> op, bool outside_transaction = false);
 
   const Options options_;
   sqlite3* writer_db_;                     // used only on the writer thread (and in Open/Close)
@@ -192,6 +204,7 @@ class SqliteLedger final : public Ledger {
   std::deque<Work> queue_;                            // GUARDED_BY(mu_)
   SessionHeads assigned_;                             // GUARDED_BY(mu_): last sequence handed out
   SessionHeads committed_;                            // GUARDED_BY(mu_): last sequence committed
+  std::map<std::string, uint32_t, std::less<>> chain_versions_;  // GUARDED_BY(mu_): per session
   bool closing_ = false;                              // GUARDED_BY(mu_)
   absl::Status health_;                               // GUARDED_BY(mu_): WriteHealth()
   std::chrono::steady_clock::time_point next_retry_;  // writer thread only, while failing

@@ -92,7 +92,7 @@ absl::Status TypedTables::InsertDerived(std::string_view set, uint64_t seq, cons
   }
 }
 
-absl::Status TypedTables::Insert(const Record& r) {
+absl::Status TypedTables::Insert(const Record& r, const PersonalPart* personal) {
   const std::string& sid = r.session_id();
   const auto seq = r.sequence();
   auto body = CanonicalBody(r);
@@ -108,11 +108,18 @@ absl::Status TypedTables::Insert(const Record& r) {
     journal.BindNull().BindNull();
   }
   if (absl::Status s = journal.BindBlob(*body).BindBlob(r.hash()).Run(); !s.ok()) return s;
+  if (personal != nullptr) {
+    absl::Status s = Prepared("INSERT INTO personal VALUES (?,?,?,?,?)")
+                         .Bind(sid).Bind(seq).Bind(personal->participant)
+                         .BindBlob(personal->salt).BindBlob(personal->content)
+                         .Run();
+    if (!s.ok()) return s;
+  }
 
   switch (r.body_case()) {
     case Record::kFeedback: {
       const auto& f = r.feedback();
-      return Prepared("INSERT INTO feedback VALUES (?,?,?,?,?,?,?,?,?,?,?,?)")
+      return Prepared("INSERT INTO feedback VALUES (?,?,?,?,?,?,?,?,?,?,?,?,0)")
           .Bind(sid).Bind(seq).Bind(f.client_id()).Bind(f.client_sequence()).Bind(f.trainer())
           .Bind(f.value()).Bind(f.input()).Bind(f.event_source_ns()).Bind(f.arrival_session_ns())
           .Bind(f.event_session_ns()).Bind(f.uncertainty_ns()).Bind(f.late())
@@ -183,7 +190,7 @@ absl::Status TypedTables::Insert(const Record& r) {
     }
     case Record::kCalibrationEvent: {
       const auto& e = r.calibration_event();
-      return Prepared("INSERT INTO calibration_event VALUES (?,?,?,?,?,?,?,?,?,?,?,?,?,?,?)")
+      return Prepared("INSERT INTO calibration_event VALUES (?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,0)")
           .Bind(sid).Bind(seq).Bind(e.client_id()).Bind(e.client_sequence()).Bind(e.trainer())
           .Bind(e.run()).Bind(CalibrationEventWord(e.kind())).Bind(static_cast<int64_t>(e.move()))
           .Bind(e.at_source_ns()).Bind(e.approve()).Bind(e.practice()).Bind(e.detail())
@@ -212,6 +219,8 @@ absl::Status TypedTables::Insert(const Record& r) {
           .Bind(p.device()).Bind(p.simulated())
           .Run();
     }
+    case Record::kErasure:
+      return absl::OkStatus();  // the journal row is all it has
     case Record::kSessionEvent: {
       const auto& e = r.session_event();
       return Prepared("INSERT INTO session_event VALUES (?,?,?,?,?)")

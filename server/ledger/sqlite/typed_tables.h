@@ -17,6 +17,7 @@
 #include <string_view>
 
 #include "absl/status/status.h"
+#include "server/ledger/ledger.h"
 #include "tickmark/v1/records.pb.h"
 
 struct sqlite3;
@@ -33,8 +34,8 @@ class TypedTables {
   TypedTables& operator=(const TypedTables&) = delete;
 
   // The record (session_id, sequence and hash filled) into the journal and
-  // its typed table.
-  absl::Status Insert(const tickmark::v1::Record& record);
+  // its typed table, and its personal part (chain version 2) into `personal`.
+  absl::Status Insert(const tickmark::v1::Record& record, const PersonalPart* personal = nullptr);
   // A credit, label or unmatched row of derived set `set`, numbered `seq`
   // within the set.
   absl::Status InsertDerived(std::string_view set, uint64_t seq,
