@@ -955,6 +955,12 @@ void PostgresLedger::ListenLoop() {
 // ---------------------------------------------------------------- sessions, tokens
 
 absl::Status PostgresLedger::CreateSession(const SessionRow& row) {
+  // Studies and sessions made under them are kept by the SQLite ledger only
+  // (deploy/README.md, "Limits today"): refuse rather than store a study's
+  // journal as an ordinary session.
+  if (row.kind != "session" || !row.condition.empty() || !row.participants.empty()) {
+    return absl::UnimplementedError("studies need the SQLite ledger; this server uses PostgreSQL");
+  }
   return RunTx([&](PgConn* c) {
     return c
         ->Exec(
