@@ -8,6 +8,7 @@
 #include "server/audit/receipt.h"
 #include "server/base/log.h"
 #include "server/base/strings.h"
+#include "server/ops/server_metrics.h"
 #include "server/rpc/auth.h"
 #include "server/rpc/status.h"
 
@@ -438,7 +439,14 @@ void SessionHub::Unwatch(const std::string& id, RecordSink* sink) {
   if (it->second.empty()) watchers_.erase(it);
 }
 
+// The lease gauges of /metrics (docs/operations.md); a ledger without leases
+// (token 0, SQLite) shows none.
+void SessionHub::NoteLease(const std::string& id, const ledger::SessionLease& lease) {
+  if (lease.token != 0) ops::SetSessionLease(id, lease.owned, lease.token);
+}
+
 void SessionHub::OnLeaseLost(const std::string& id, const std::string& owner) {
+  ops::SetSessionLease(id, false, 0);
   std::shared_ptr<SessionRuntime> runtime;
   {
     std::lock_guard<std::mutex> lock(mu_);
@@ -481,6 +489,7 @@ absl::StatusOr<std::shared_ptr<SessionRuntime>> SessionHub::Get(const std::strin
   // may have written it), and Rebuild below replays the rest from there.
   auto lease = ledger_->AcquireSession(id);
   if (!lease.ok()) return lease.status();
+  NoteLease(id, *lease);
   if (!lease->owned) {
     lock.unlock();
     return NotOwnedError(id, lease->owner_address);
@@ -549,7 +558,9 @@ absl::StatusOr<std::shared_ptr<SessionRuntime>> SessionHub::Create(const std::st
   row.participants = study_part.participants;
   row.chain_version = ledger::kChainVersion;
   if (absl::Status s = ledger_->CreateSession(row); !s.ok()) return s;
-  if (auto lease = ledger_->AcquireSession(row.id); !lease.ok() || !lease->owned) {
+  auto lease = ledger_->AcquireSession(row.id);
+  if (lease.ok()) NoteLease(row.id, *lease);
+  if (!lease.ok() || !lease->owned) {
     return lease.ok() ? absl::UnavailableError(Cat("session ", row.id, " was taken at once"))
                       : lease.status();
   }

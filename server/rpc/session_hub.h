@@ -251,6 +251,7 @@ class SessionHub {
   void Unwatch(const std::string& id, RecordSink* sink);
 
  private:
+  void NoteLease(const std::string& id, const ledger::SessionLease& lease);
   void OnLeaseLost(const std::string& id, const std::string& owner);
   absl::Status NotOwnedError(const std::string& id, const std::string& owner);
 
