@@ -236,6 +236,8 @@ absl::StatusOr<std::vector<SessionRow>> Ledger::ListStudies() {
 
 absl::StatusOr<SessionRow> Ledger::GetStudy(std::string_view) {
   return absl::UnimplementedError("this ledger keeps no studies");
+}
+
 absl::Status Ledger::PutReceipt(const tickmark::v1::Receipt&, std::string_view) {
   return absl::UnimplementedError("this ledger keeps no receipts");
 }
