@@ -162,36 +162,43 @@ void IngestReactor<Side>::End(const grpc::Status& status) {
 template <typename Side>
 void IngestReactor<Side>::OnReadDone(bool ok) {
   const int64_t arrival_mono = service_->mono()->NowNanos();
+  // Every outcome is posted BEFORE read_in_flight_ is cleared: clearing it
+  // lets the strand (MaybeRead) start the next read, whose OnReadDone may run
+  // on another gRPC thread at once; posting first keeps the strand's order
+  // the order the messages were read (a trainer's client sequences commit in
+  // order, which resending after a reconnect relies on).
   if (!ok) {
-    read_in_flight_.store(false);
     Post([](IngestReactor& r) {
       r.read_closed_ = true;
       r.MaybeFinishGracefully();
     });
+    read_in_flight_.store(false);
     return;
   }
   In message;
   if (!grpc::SerializationTraits<In>::Deserialize(&in_buf_, &message).ok()) {
     service_->counters().undecodable.fetch_add(1);
-    read_in_flight_.store(false);
     Post([](IngestReactor& r) {
       r.FinishNow(ToGrpc(absl::InvalidArgumentError(
           Cat("a message did not decode as ", In::descriptor()->full_name()))));
     });
+    read_in_flight_.store(false);
     return;
   }
   read_ahead_.fetch_add(1);
-  read_in_flight_.store(false);  // in_buf_ is free again
   Post([message = std::move(message), arrival_mono](IngestReactor& r) mutable {
     r.read_ahead_.fetch_sub(1);
     r.HandleMessage(std::move(message), arrival_mono);
   });
+  read_in_flight_.store(false);  // in_buf_ is free again
   // Read the next message right here, on the gRPC thread, while the strand
   // says there is room (MaybeRead opens the gate): reading no longer waits
   // for a hop to the strand and back per message, which is what kept one
-  // pipelining stream far below the ledger's rate. Posted first, so the
-  // strand still sees messages in the order they were read.
-  if (read_ahead_open_.load() && read_ahead_.load() < kMaxReadAhead) StartReadOnce();
+  // pipelining stream far below the ledger's rate. A read the strand asked
+  // for while this one was in flight is started here too.
+  if ((read_ahead_open_.load() && read_ahead_.load() < kMaxReadAhead) || read_requested_.load()) {
+    StartReadOnce();
+  }
 }
 
 template <typename Side>
@@ -202,6 +209,7 @@ bool IngestReactor<Side>::StartReadOnce() {
   issuing_.fetch_add(1);
   bool started = false;
   if (!finish_called_.load() && !read_in_flight_.exchange(true)) {
+    read_requested_.store(false);
     StartRead(&in_buf_);
     started = true;
   }
@@ -877,6 +885,7 @@ void IngestReactor<Side>::MaybeRead() {
     reads_paused_until_mono_ = 0;
   }
   read_ahead_open_.store(in_flight + static_cast<size_t>(kMaxReadAhead) < cap);
+  read_requested_.store(true);  // taken by OnReadDone if a read is still in flight
   StartReadOnce();
 }
 

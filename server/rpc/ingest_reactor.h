@@ -210,6 +210,9 @@ class IngestReactor final : public grpc::ServerBidiReactor<grpc::ByteBuffer, grp
   bool StartReadOnce();                       // false: a read is in flight, or finished
   std::atomic<bool> read_in_flight_{false};   // a StartRead is outstanding
   std::atomic<bool> read_ahead_open_{false};  // written on the strand (MaybeRead)
+  // The strand asked for a read (MaybeRead) while one was still in flight:
+  // OnReadDone starts it once the in-flight read is handed over.
+  std::atomic<bool> read_requested_{false};
   std::atomic<int> read_ahead_{0};            // messages posted, not yet handled
   std::atomic<bool> finish_called_{false};    // set by FinishNow before Finish
   std::atomic<int> issuing_{0};               // StartReadOnce calls between check and StartRead
