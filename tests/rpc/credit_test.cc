@@ -153,7 +153,9 @@ class CreditTest : public ::testing::Test {
   }
 
   // Every record of the session as the ledger file holds it (record.body,
-  // parsed), read with the sqlite3 C API outside the server's own reader.
+  // parsed, with a feedback's personal content from the `personal` table:
+  // chain version 2, docs/audit.md), read with the sqlite3 C API outside the
+  // server's own reader.
   std::vector<v1::Record> LedgerFileRecords() {
     std::vector<v1::Record> out;
     sqlite3* db = nullptr;
@@ -166,8 +168,9 @@ class CreditTest : public ::testing::Test {
     sqlite3_busy_timeout(db, 5000);
     sqlite3_stmt* q = nullptr;
     EXPECT_EQ(sqlite3_prepare_v2(db,
-                                 "SELECT seq, body, hash FROM record WHERE session_id = ? "
-                                 "ORDER BY seq",
+                                 "SELECT r.seq, r.body, r.hash, p.content FROM record r "
+                                 "LEFT JOIN personal p ON p.session_id = r.session_id AND "
+                                 "p.seq = r.seq WHERE r.session_id = ? ORDER BY r.seq",
                                  -1, &q, nullptr),
               SQLITE_OK);
     sqlite3_bind_text(q, 1, session_.c_str(), -1, SQLITE_TRANSIENT);
@@ -178,6 +181,12 @@ class CreditTest : public ::testing::Test {
       r.set_sequence(static_cast<uint64_t>(sqlite3_column_int64(q, 0)));
       r.set_hash(std::string(static_cast<const char*>(sqlite3_column_blob(q, 2)),
                              static_cast<size_t>(sqlite3_column_bytes(q, 2))));
+      if (r.has_feedback() && sqlite3_column_type(q, 3) != SQLITE_NULL) {
+        v1::PersonalContent personal;
+        EXPECT_TRUE(personal.ParseFromArray(sqlite3_column_blob(q, 3), sqlite3_column_bytes(q, 3)));
+        r.mutable_feedback()->set_value(personal.value());
+        r.mutable_feedback()->set_input(personal.input());
+      }
       out.push_back(std::move(r));
     }
     sqlite3_finalize(q);

@@ -58,9 +58,12 @@ def test_feedback_times_are_the_onsets_mapped_to_session_time(server, tmp_path):
     rows = db.execute("SELECT client_seq, value, input, event_source_ns, event_session_ns, "
                       "uncertainty_ns FROM feedback WHERE session_id = ? ORDER BY client_seq",
                       (session,)).fetchall()
-    bodies = {seq: body for seq, body in db.execute(
-        "SELECT client_seq, body FROM record WHERE session_id = ? AND client_id = 'voice-e2e'",
-        (session,))}
+    # Chain version 2 (docs/audit.md): the body holds a digest of the personal
+    # fields; the fields themselves sit in the `personal` table.
+    bodies = {seq: (body, salt, content) for seq, body, salt, content in db.execute(
+        "SELECT r.client_seq, r.body, p.salt, p.content FROM record r JOIN personal p "
+        "ON p.session_id = r.session_id AND p.seq = r.seq "
+        "WHERE r.session_id = ? AND r.client_id = 'voice-e2e'", (session,))}
     assert len(rows) == len(SAID)
     for (seq, value, label, source_ns, session_ns, uncertainty_ns), ins in zip(
             rows, entry["insertions"]):
@@ -81,11 +84,16 @@ def test_feedback_times_are_the_onsets_mapped_to_session_time(server, tmp_path):
               f"mapped {(session_ns - true_session_ns) / 1e3:+.1f} us from the true session time, "
               f"stated uncertainty {uncertainty_ns / 1e3:.1f} us; {label}")
         # --keep-audio: the file named by the client sequence, its SHA-256 in
-        # the ledger's record, readable by Python's wave module.
-        record = records_pb2.Record.FromString(bodies[seq])
+        # the record's personal content, which the chained body commits to as
+        # SHA-256(salt || content); hashlib is the outside SHA-256. The file
+        # is readable by Python's wave module.
+        body, salt, content = bodies[seq]
+        record = records_pb2.Record.FromString(body)
+        personal = records_pb2.PersonalContent.FromString(content)
         kept = keep / f"feedback-{seq}.wav"
         data = kept.read_bytes()
-        assert record.feedback.audio_sha256 == hashlib.sha256(data).digest()
+        assert personal.audio_sha256 == hashlib.sha256(data).digest()
+        assert record.feedback.personal_digest == hashlib.sha256(salt + content).digest()
         with wave.open(str(kept)) as w:
             assert (w.getnchannels(), w.getsampwidth(), w.getframerate()) == (1, 2, RATE)
             assert w.getnframes() >= ins["end"] - ins["start"]
