@@ -131,7 +131,7 @@ echo "(credit precision: the share of credit on the step the trainer judged; gre
 echo " the rover's approval model trained offline from that label set alone, from its first"
 echo " feedback and from all of it, its greedy policy on 100 seeded episodes)"
 
-"${TM[@]}" report --session "$SESSION" --out "$DIR/report.html" >/dev/null \
+"${TM[@]}" report --session "$SESSION" --ledger "$DIR/tickmark.db" --out "$DIR/report.html" >/dev/null \
   || echo "(the session report could not be written; see above)" >&2
 
 say "Files"

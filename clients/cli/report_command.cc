@@ -23,6 +23,7 @@ struct ReportFlags {
   std::string study;
   std::string out;
   std::string python = "/usr/bin/python3";
+  std::string ledger;  // for the audit status (tickmark audit verify --ledger)
 };
 
 // build/bin/tickmark -> build/python (the package beside the stubs), if it
@@ -68,6 +69,7 @@ int RunReport(const CommonFlags& common, const ReportFlags& f) {
   if (!common.connection.channel.ca_file.empty()) {
     args.insert(args.end(), {"--ca-file", common.connection.channel.ca_file});
   }
+  if (!f.ledger.empty()) args.insert(args.end(), {"--ledger", f.ledger});
   std::error_code ec;
   if (auto self = std::filesystem::read_symlink("/proc/self/exe", ec); !ec) {
     args.insert(args.end(), {"--cli", self.string()});
@@ -93,6 +95,10 @@ void AddReportCommand(CommandTable& table) {
   cmd->add_option("--session", f->session, "session id (s-...)");
   cmd->add_option("--study", f->study, "study id (y-...): a summary across its sessions");
   cmd->add_option("--out", f->out, "HTML file to write")->required()->type_name("FILE");
+  cmd->add_option("--ledger", f->ledger,
+                  "the ledger file (or a copy) to recompute the session's hash chain in for the "
+                  "audit status (tickmark audit verify); without it: \"not checked\"")
+      ->type_name("FILE");
   cmd->add_option("--python", f->python, "the Python interpreter to run")
       ->capture_default_str()
       ->type_name("PATH");

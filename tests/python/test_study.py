@@ -272,14 +272,25 @@ def _open_and_shoot(browser, path, name):
 def test_session_report_is_one_self_contained_page(study, tmp_path, browser):
     s = study["server"]
     path = tmp_path / "report.html"
-    out = tm(s, "report", "--session", study["session"], "--out", str(path), timeout=300)
+    out = tm(s, "report", "--session", study["session"], "--out", str(path),
+             "--ledger", os.path.join(study["dir"], "tickmark.db"), timeout=300)
     assert str(path) in out.stdout
     text = path.read_text(encoding="utf-8")
     _check_self_contained(text)
     for title in ("Timeline", "Feedback per trainer", "Credit and labels", "Clock uncertainty"):
         assert f"alt='{title}'" in text, title
     assert "No calibration was measured in or applied" in text  # none here
-    assert re.search(r"id='audit-state'>(not checked|verified)<", text)
+    # The chain recomputed by `tickmark audit verify` from the server's own
+    # file, and the receipt its close signed (both described in docs/audit.md).
+    assert "id='audit-state'>verified<" in text
+    summary = s.admin.GetSession(admin_pb2.GetSessionRequest(session_id=study["session"]),
+                                 metadata=s.md(s.operator))
+    assert f"id='receipt'>{summary.receipt.signed_utc}<" in text
+    assert summary.receipt.head_hash.hex() in text
+    # Without the file the report makes no claim.
+    bare = tmp_path / "bare.html"
+    tm(s, "report", "--session", study["session"], "--out", str(bare), timeout=300)
+    assert "id='audit-state'>not checked<" in bare.read_text(encoding="utf-8")
     assert "P01" in text and "binary" in text
     images = _open_and_shoot(browser, path, "study_session_report.png")
     assert len(images) >= 4

@@ -92,35 +92,30 @@ def load_study(channel: grpc.Channel, token: str, study_id: str) -> admin_pb2.St
 
 # ---------------------------------------------------------------- audit hook
 
-# AUDIT HOOK. The audit status comes from `tickmark audit verify --session S`
-# when the CLI has that command (docs/studies.md, "Report"). Without it (an
-# older CLI, or none given) the report says "not checked" — never "passed".
-# The command's exit status decides: 0 = verified; anything else = failed,
-# with its output shown. A receipt, when the command prints one, is shown as
-# part of that output.
+# The audit status comes from `tickmark audit verify --session S --ledger F`
+# (docs/audit.md), which recomputes the chain from the ledger file itself, so
+# it needs that file: without --ledger the report says "not checked" — never
+# "verified" without a check. Exit codes: 0 verified, 1 broken (FAILED), else
+# not checked (no such file, an older CLI without the command, ...), with
+# the command's output shown either way.
 
 
-def audit_status(cli: Optional[str], server: str, session_id: str,
-                 extra_args: List[str]) -> Dict[str, str]:
+def audit_status(cli: Optional[str], ledger: Optional[str],
+                 session_id: str) -> Dict[str, str]:
+    if not ledger:
+        return {"state": "not checked",
+                "detail": "the chain is recomputed from the ledger file: give --ledger FILE "
+                          "(a copy will do) to check it"}
     if not cli or not os.access(cli, os.X_OK):
         return {"state": "not checked", "detail": "no tickmark CLI to run `audit verify` with"}
     try:
-        probe = subprocess.run([cli, "audit", "verify", "--help"], capture_output=True,
-                               text=True, timeout=30)
-    except (OSError, subprocess.SubprocessError) as e:
-        return {"state": "not checked", "detail": f"cannot run {cli}: {e}"}
-    # A CLI without the command prints its root help (and exits 0): the
-    # command's own help names it ("Usage: tickmark audit verify ...").
-    if probe.returncode != 0 or "tickmark audit verify" not in probe.stdout[:600]:
-        return {"state": "not checked",
-                "detail": "this tickmark CLI has no `audit verify` command"}
-    try:
-        run = subprocess.run([cli, "audit", "verify", "--session", session_id, "--server", server]
-                             + extra_args, capture_output=True, text=True, timeout=300)
+        run = subprocess.run([cli, "audit", "verify", "--session", session_id, "--ledger", ledger],
+                             capture_output=True, text=True, timeout=300)
     except (OSError, subprocess.SubprocessError) as e:
         return {"state": "not checked", "detail": f"audit verify did not run: {e}"}
     out = (run.stdout + run.stderr).strip()
-    return {"state": "verified" if run.returncode == 0 else "FAILED", "detail": out}
+    state = {0: "verified", 1: "FAILED"}.get(run.returncode, "not checked")
+    return {"state": state, "detail": out}
 
 
 # ---------------------------------------------------------------- figures
@@ -413,6 +408,14 @@ def session_html(d: SessionData, audit: Dict[str, str]) -> str:
                 "</p>")
     if audit.get("detail"):
         body.append(f"<pre>{_e(audit['detail'])}</pre>")
+    if sm.HasField("receipt"):
+        r = sm.receipt
+        body.append("<p>Close receipt (Ed25519, docs/audit.md): signed "
+                    f"<span id='receipt'>{_e(r.signed_utc)}</span>, last sequence "
+                    f"{r.last_sequence}, head hash {_e(r.head_hash.hex())}.</p>")
+    else:
+        body.append("<p>No close receipt (the session is open, or was closed before receipts "
+                    "existed).</p>")
     return _page(f"tickmark session {s.id}", body)
 
 
@@ -492,6 +495,8 @@ def main(argv: Optional[List[str]] = None) -> int:
     p.add_argument("--out", required=True, help="HTML file to write")
     p.add_argument("--cli", help="the tickmark CLI, for the audit status "
                                  "(`tickmark audit verify`)")
+    p.add_argument("--ledger", help="the ledger file (or a copy) to check the session's chain "
+                                    "in; without it the audit status is \"not checked\"")
     args = p.parse_args(argv)
     try:
         token = read_token(token_file=args.token_file)
@@ -502,10 +507,7 @@ def main(argv: Optional[List[str]] = None) -> int:
     try:
         if args.session:
             data = load_session(channel, token, args.session)
-            extra = ["--insecure"] if args.insecure else []
-            if args.ca_file:
-                extra += ["--ca-file", args.ca_file]
-            audit = audit_status(args.cli, args.server, args.session, extra)
+            audit = audit_status(args.cli, args.ledger, args.session)
             page = session_html(data, audit)
         else:
             study = load_study(channel, token, args.study)
