@@ -269,6 +269,30 @@ TYPED_TEST(LedgerBackendTest, SessionsOpenCloseAndList) {
   EXPECT_EQ(b->boot_id, "boot-2");
 }
 
+TYPED_TEST(LedgerBackendTest, AReceiptIsKeptPerSessionAndReplaced) {
+  Ledger* l = this->ledger_.get();
+  ASSERT_TRUE(l->CreateSession(Session("s-r")).ok());
+  auto none = l->GetReceipt("s-r");
+  ASSERT_TRUE(none.ok()) << none.status().message();
+  EXPECT_FALSE(none->has_value());
+  v1::Receipt r;
+  r.set_session_id("s-r");
+  r.set_last_sequence(3);
+  r.set_head_hash(std::string(32, '\x01'));
+  r.set_chain_version(2);
+  r.set_signed_utc("2026-12-03T10:15:02.123456789Z");
+  r.set_message(std::string("bytes\0signed", 12));  // a NUL survives (bytea / BLOB)
+  r.set_signature(std::string(64, '\xfe'));
+  r.set_public_key_sha256(std::string(32, '\x7f'));
+  ASSERT_TRUE(l->PutReceipt(r, "-----BEGIN PUBLIC KEY-----").ok());
+  r.set_last_sequence(4);  // a second close of the same session replaces it
+  ASSERT_TRUE(l->PutReceipt(r, "-----BEGIN PUBLIC KEY-----").ok());
+  auto got = l->GetReceipt("s-r");
+  ASSERT_TRUE(got.ok()) << got.status().message();
+  ASSERT_TRUE(got->has_value());
+  EXPECT_EQ((*got)->SerializeAsString(), r.SerializeAsString());
+}
+
 TYPED_TEST(LedgerBackendTest, TokensAreFoundByHashAndRevoked) {
   Ledger* l = this->ledger_.get();
   ASSERT_TRUE(l->CreateSession(Session("s-a")).ok());

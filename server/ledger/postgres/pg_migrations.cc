@@ -177,6 +177,22 @@ CREATE TABLE lease_event (
   token BIGINT NOT NULL, previous_owner TEXT NOT NULL DEFAULT ''
 );
 )sql"},
+    {3, "close receipts (docs/audit.md, \"Receipts\")", R"sql(
+-- As the SQLite ledger's receipt table: message is exactly the bytes
+-- signed, signature the Ed25519 signature, public_key_pem the signing key's
+-- public half.
+CREATE TABLE receipt (
+  session_id        TEXT PRIMARY KEY REFERENCES session(id),
+  last_seq          BIGINT NOT NULL,
+  head_hash         BYTEA NOT NULL,
+  chain_version     INTEGER NOT NULL,
+  signed_utc        TEXT NOT NULL,
+  message           BYTEA NOT NULL,
+  signature         BYTEA NOT NULL,
+  public_key_sha256 BYTEA NOT NULL,
+  public_key_pem    TEXT NOT NULL
+);
+)sql"},
 };
 
 // pg_advisory_xact_lock key: "tmrk" as a number (any constant would do).

@@ -1320,6 +1320,57 @@ absl::Status PostgresLedger::PutTimeSet(const TimeSetRow& set,
   });
 }
 
+absl::Status PostgresLedger::PutReceipt(const tickmark::v1::Receipt& receipt,
+                                        std::string_view public_key_pem) {
+  return RunTx([&](PgConn* c) {
+    Params p;
+    p.Text(receipt.session_id())
+        .UInt(receipt.last_sequence())
+        .Bytes(receipt.head_hash())
+        .Int(receipt.chain_version())
+        .Text(receipt.signed_utc())
+        .Bytes(receipt.message())
+        .Bytes(receipt.signature())
+        .Bytes(receipt.public_key_sha256())
+        .Text(public_key_pem);
+    return c
+        ->Exec(
+            "INSERT INTO receipt (session_id, last_seq, head_hash, chain_version, signed_utc, "
+            "message, signature, public_key_sha256, public_key_pem) "
+            "VALUES ($1, $2, $3, $4, $5, $6, $7, $8, $9) ON CONFLICT (session_id) DO UPDATE SET "
+            "last_seq = EXCLUDED.last_seq, head_hash = EXCLUDED.head_hash, "
+            "chain_version = EXCLUDED.chain_version, signed_utc = EXCLUDED.signed_utc, "
+            "message = EXCLUDED.message, signature = EXCLUDED.signature, "
+            "public_key_sha256 = EXCLUDED.public_key_sha256, "
+            "public_key_pem = EXCLUDED.public_key_pem",
+            p)
+        .status();
+  });
+}
+
+absl::StatusOr<std::optional<tickmark::v1::Receipt>> PostgresLedger::GetReceipt(
+    std::string_view session_id) {
+  using Out = absl::StatusOr<std::optional<tickmark::v1::Receipt>>;
+  return OnConn<Out>(reader_, read_mu_, [&](PgConn* c) -> Out {
+    auto q = c->Exec(
+        "SELECT session_id, last_seq, head_hash, chain_version, signed_utc, message, signature, "
+        "public_key_sha256 FROM receipt WHERE session_id = $1",
+        Params().Text(session_id));
+    if (!q.ok()) return q.status();
+    if (q->rows() == 0) return std::optional<tickmark::v1::Receipt>();
+    tickmark::v1::Receipt r;
+    r.set_session_id(q->Bytes(0, 0));
+    r.set_last_sequence(static_cast<uint64_t>(q->Int(0, 1)));
+    r.set_head_hash(q->Bytes(0, 2));
+    r.set_chain_version(static_cast<uint32_t>(q->Int(0, 3)));
+    r.set_signed_utc(q->Bytes(0, 4));
+    r.set_message(q->Bytes(0, 5));
+    r.set_signature(q->Bytes(0, 6));
+    r.set_public_key_sha256(q->Bytes(0, 7));
+    return std::optional<tickmark::v1::Receipt>(std::move(r));
+  });
+}
+
 absl::StatusOr<std::vector<TimeSetRow>> PostgresLedger::ListTimeSets(std::string_view session_id) {
   return OnConn<absl::StatusOr<std::vector<TimeSetRow>>>(
       reader_, read_mu_, [&](PgConn* c) -> absl::StatusOr<std::vector<TimeSetRow>> {

@@ -121,6 +121,10 @@ class PostgresLedger final : public Ledger {
   absl::StatusOr<std::vector<TimeSetRow>> ListTimeSets(std::string_view session_id) override;
   absl::StatusOr<TimeSetRow> GetTimeSet(std::string_view id) override;
   absl::StatusOr<std::vector<DerivedTimeRow>> ReadDerivedTimes(std::string_view time_set) override;
+  absl::Status PutReceipt(const tickmark::v1::Receipt& receipt,
+                          std::string_view public_key_pem) override;
+  absl::StatusOr<std::optional<tickmark::v1::Receipt>> GetReceipt(
+      std::string_view session_id) override;
   absl::Status WriteHealth() override;
   absl::StatusOr<SessionLease> AcquireSession(std::string_view session_id) override;
   void SetLeaseLostHandler(
