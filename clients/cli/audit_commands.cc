@@ -12,6 +12,7 @@
 
 #include "clients/cli/commands.h"
 #include "clients/cli/output.h"
+#include "absl/strings/escaping.h"
 #include "server/audit/archive.h"
 #include "server/audit/chain_verifier.h"
 #include "server/audit/receipt.h"
@@ -85,7 +86,7 @@ int RunVerify(const VerifyFlags& f) {
               << " records  ";
     if (v.ok) {
       std::cout << "OK";
-      if (v.records > 0) std::cout << "  head " << audit::Hex(v.head_hash).substr(0, 16);
+      if (v.records > 0) std::cout << "  head " << absl::BytesToHexString(v.head_hash).substr(0, 16);
       if (v.personal_erased > 0) std::cout << "  " << v.personal_erased << " erased";
       std::cout << "  receipt " << v.stored_receipt << "\n";
     } else {

@@ -7,8 +7,10 @@
 #include <set>
 #include <sstream>
 
+#include "absl/strings/escaping.h"
 #include "server/audit/receipt.h"
 #include "server/audit/sqlite_file.h"
+#include "server/base/sha256.h"
 
 namespace tickmark::audit {
 namespace {
@@ -39,12 +41,10 @@ absl::StatusOr<Db> OpenReadOnly(const std::string& path) {
   return db;
 }
 
+// SHA-256 of a then b; empty (never equal to a stored hash) if OpenSSL fails.
 std::string Sha256Of(std::string_view a, std::string_view b) {
-  std::string both;
-  both.reserve(a.size() + b.size());
-  both.append(a);
-  both.append(b);
-  return Sha256(both);
+  auto digest = Sha256(a, b);
+  return digest.ok() ? *digest : std::string();
 }
 
 std::string_view DigestOf(const Record& r) {
@@ -293,8 +293,9 @@ absl::StatusOr<VerifyResult> VerifyLedgerFile(const VerifyOptions& options) {
   auto sha = PublicKeySha256(pem);
   if (!sha.ok()) return fail(Cat("public key: ", sha.status().message()));
   if (*sha != r.public_key_sha256()) {
-    return fail(Cat("the receipt was signed by another key (", Hex(r.public_key_sha256()),
-                    ") than the one given (", Hex(*sha), ")"));
+    return fail(Cat("the receipt was signed by another key (",
+                    absl::BytesToHexString(r.public_key_sha256()), ") than the one given (",
+                    absl::BytesToHexString(*sha), ")"));
   }
   if (absl::Status s = VerifySignature(pem, r.message(), r.signature()); !s.ok()) {
     return fail("the receipt's signature does not verify: the receipt was altered");
@@ -312,8 +313,9 @@ absl::StatusOr<VerifyResult> VerifyLedgerFile(const VerifyOptions& options) {
                     "was cut after the receipt"));
   }
   if (**at != r.head_hash()) {
-    return fail(Cat("record ", r.last_sequence(), " has hash ", Hex(**at), " but the receipt says ",
-                    Hex(r.head_hash()), ": the chain was rewritten after the receipt"));
+    return fail(Cat("record ", r.last_sequence(), " has hash ", absl::BytesToHexString(**at),
+                    " but the receipt says ", absl::BytesToHexString(r.head_hash()),
+                    ": the chain was rewritten after the receipt"));
   }
   result.receipt_ok = true;
   result.receipt_detail =

@@ -15,6 +15,8 @@
 #include <sstream>
 #include <vector>
 
+#include "absl/strings/escaping.h"
+#include "server/base/sha256.h"
 #include "server/base/strings.h"
 
 namespace tickmark::audit {
@@ -56,8 +58,7 @@ absl::StatusOr<std::string> DerSha256(EVP_PKEY* key) {
   unsigned char* der = nullptr;
   int len = i2d_PUBKEY(key, &der);
   if (len <= 0) return absl::InternalError("cannot encode the receipt public key (OpenSSL)");
-  std::string out =
-      Sha256(std::string_view(reinterpret_cast<char*>(der), static_cast<size_t>(len)));
+  auto out = Sha256(std::string_view(reinterpret_cast<char*>(der), static_cast<size_t>(len)));
   OPENSSL_free(der);
   return out;
 }
@@ -86,31 +87,6 @@ absl::Status WriteFileMode(const std::string& path, std::string_view data, mode_
   if (::fsync(fd) != 0 || ::close(fd) != 0)
     return absl::UnavailableError(Cat("cannot write ", path));
   return absl::OkStatus();
-}
-
-std::string Base64(std::string_view bytes) {
-  std::string out(4 * ((bytes.size() + 2) / 3) + 1, '\0');
-  int n = EVP_EncodeBlock(reinterpret_cast<unsigned char*>(out.data()),
-                          reinterpret_cast<const unsigned char*>(bytes.data()),
-                          static_cast<int>(bytes.size()));
-  out.resize(static_cast<size_t>(n));
-  return out;
-}
-
-bool Unbase64(std::string_view text, std::string* out) {
-  if (text.size() % 4 != 0 || text.empty()) return false;
-  std::string buf(text.size() / 4 * 3, '\0');
-  int n = EVP_DecodeBlock(reinterpret_cast<unsigned char*>(buf.data()),
-                          reinterpret_cast<const unsigned char*>(text.data()),
-                          static_cast<int>(text.size()));
-  if (n < 0) return false;
-  size_t len = static_cast<size_t>(n);
-  // EVP_DecodeBlock counts the padding as zero bytes (OpenSSL docs, EVP_EncodeInit(3)).
-  if (text.size() >= 1 && text.back() == '=') --len;
-  if (text.size() >= 2 && text[text.size() - 2] == '=') --len;
-  buf.resize(len);
-  *out = std::move(buf);
-  return true;
 }
 
 bool Unhex(std::string_view hex, std::string* out) {
@@ -148,33 +124,16 @@ std::string Rfc3339Nanos(int64_t unix_ns) {
   return buf;
 }
 
-std::string Hex(std::string_view bytes) {
-  static const char* kDigits = "0123456789abcdef";
-  std::string out;
-  out.reserve(bytes.size() * 2);
-  for (unsigned char c : bytes) {
-    out.push_back(kDigits[c >> 4]);
-    out.push_back(kDigits[c & 15]);
-  }
-  return out;
-}
-
-std::string Sha256(std::string_view bytes) {
-  unsigned char digest[EVP_MAX_MD_SIZE];
-  unsigned int len = 0;
-  EVP_Digest(bytes.data(), bytes.size(), digest, &len, EVP_sha256(), nullptr);
-  return std::string(reinterpret_cast<char*>(digest), len);
-}
-
 std::string ReceiptMessage(const Receipt& r) {
   return Cat(kFirstLine, "\n", "session: ", r.session_id(), "\n",
-             "last_sequence: ", r.last_sequence(), "\n", "head_hash: ", Hex(r.head_hash()), "\n",
+             "last_sequence: ", r.last_sequence(), "\n",
+             "head_hash: ", absl::BytesToHexString(r.head_hash()), "\n",
              "chain_version: ", r.chain_version(), "\n", "signed_utc: ", r.signed_utc(), "\n",
-             "public_key_sha256: ", Hex(r.public_key_sha256()), "\n");
+             "public_key_sha256: ", absl::BytesToHexString(r.public_key_sha256()), "\n");
 }
 
 std::string ReceiptFileText(const Receipt& r) {
-  return Cat(r.message(), "signature: ", Base64(r.signature()), "\n");
+  return Cat(r.message(), "signature: ", absl::Base64Escape(r.signature()), "\n");
 }
 
 absl::StatusOr<Receipt> ParseReceiptFile(std::string_view text) {
@@ -222,7 +181,8 @@ absl::StatusOr<Receipt> ParseReceiptFile(std::string_view text) {
     return absl::InvalidArgumentError("receipt: public_key_sha256 is not 64 hex digits");
   }
   r.set_public_key_sha256(bytes);
-  if (!Unbase64(values[6], &bytes) || bytes.size() != 64) {
+  if (!absl::Base64Unescape(absl::string_view(values[6].data(), values[6].size()), &bytes) ||
+      bytes.size() != 64) {
     return absl::InvalidArgumentError("receipt: signature is not 64 bytes of base64");
   }
   r.set_signature(bytes);

@@ -37,10 +37,6 @@ inline constexpr const char* kReceiptPublicKeyFile = "receipt-key.pub.pem";
 
 // UTC time as RFC 3339 with nine fraction digits ("2026-12-03T10:15:02.123456789Z").
 std::string Rfc3339Nanos(int64_t unix_ns);
-// Lowercase hex of bytes.
-std::string Hex(std::string_view bytes);
-// SHA-256 of bytes (32 raw bytes).
-std::string Sha256(std::string_view bytes);
 
 // The message of a receipt: the exact bytes signed, built from its fields
 // (session_id, last_sequence, head_hash, chain_version, signed_utc,

@@ -6,6 +6,7 @@
 #include <memory>
 #include <optional>
 
+#include "server/base/sha256.h"
 #include "server/base/strings.h"
 
 #include <google/protobuf/io/coded_stream.h>
@@ -100,20 +101,6 @@ absl::StatusOr<std::string> Deterministic(const google::protobuf::MessageLite& m
   return bytes;
 }
 
-absl::StatusOr<std::string> Sha256(std::string_view a, std::string_view b) {
-  unsigned char digest[EVP_MAX_MD_SIZE];
-  unsigned int len = 0;
-  std::unique_ptr<EVP_MD_CTX, decltype(&EVP_MD_CTX_free)> ctx(EVP_MD_CTX_new(), &EVP_MD_CTX_free);
-  // OpenSSL docs, EVP_DigestInit(3): these return 1 for success, 0 for failure.
-  if (ctx == nullptr || EVP_DigestInit_ex(ctx.get(), EVP_sha256(), nullptr) != 1 ||
-      EVP_DigestUpdate(ctx.get(), a.data(), a.size()) != 1 ||
-      EVP_DigestUpdate(ctx.get(), b.data(), b.size()) != 1 ||
-      EVP_DigestFinal_ex(ctx.get(), digest, &len) != 1 || len != 32) {
-    return absl::InternalError("SHA-256 of a ledger record failed (OpenSSL EVP)");
-  }
-  return std::string(reinterpret_cast<char*>(digest), len);
-}
-
 bool IsAnswer(const Record& record) {
   return record.has_calibration_event() &&
          record.calibration_event().kind() == tickmark::v1::CalibrationEvent::KIND_ANSWER;
@@ -136,6 +123,10 @@ void ClearPersonal(Record* record) {
 }  // namespace
 
 absl::StatusOr<std::string> CanonicalBody(const Record& record) {
+  // A record being chained by Append (no hash yet) with no sealed personal
+  // content is its own body: no copy (a whole-record copy per append showed
+  // in the ingest profile).
+  if (record.hash().empty() && PersonalDigestOf(record).empty()) return Deterministic(record);
   Record body = record;
   body.clear_hash();
   ClearPersonal(&body);

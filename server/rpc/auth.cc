@@ -1,11 +1,11 @@
 #include "server/rpc/auth.h"
 
 #include <openssl/err.h>
-#include <openssl/evp.h>
 #include <openssl/rand.h>
 
 #include "absl/strings/escaping.h"
 #include "absl/strings/string_view.h"
+#include "server/base/sha256.h"
 #include "server/base/strings.h"
 
 namespace tickmark::rpc {
@@ -40,17 +40,7 @@ absl::StatusOr<std::string> NewSecret() {
   return "tmk_" + absl::WebSafeBase64Escape(AbslView(*raw));
 }
 
-absl::StatusOr<std::string> HashSecret(std::string_view secret) {
-  unsigned char digest[EVP_MAX_MD_SIZE];
-  unsigned int len = 0;
-  // OpenSSL docs, EVP_Digest(3): returns 1 on success.
-  if (EVP_Digest(secret.data(), secret.size(), digest, &len, EVP_sha256(), nullptr) != 1 ||
-      len != 32) {
-    ERR_clear_error();
-    return absl::InternalError("SHA-256 failed in OpenSSL (EVP_Digest)");
-  }
-  return std::string(reinterpret_cast<char*>(digest), len);
-}
+absl::StatusOr<std::string> HashSecret(std::string_view secret) { return Sha256(secret); }
 
 std::string_view BearerSecret(std::string_view authorization) {
   constexpr std::string_view kBearer = "Bearer ";

@@ -1,10 +1,10 @@
 #include "server/web/join_codes.h"
 
-#include <openssl/evp.h>
 #include <openssl/rand.h>
 
 #include <array>
 
+#include "server/base/sha256.h"
 #include "server/base/strings.h"
 
 namespace tickmark::web {
@@ -15,14 +15,10 @@ constexpr char kAlphabet[] = "0123456789ABCDEFGHJKMNPQRSTVWXYZ";
 constexpr size_t kCodeChars = 16;  // 80 bits
 
 // The key codes_ is indexed by: SHA-256 of the canonical code, 32 raw
-// bytes (OpenSSL EVP_Digest); empty if hashing fails.
+// bytes; empty if hashing fails.
 std::string KeyOf(const std::string& canonical) {
-  unsigned char digest[EVP_MAX_MD_SIZE];
-  unsigned int n = 0;
-  if (EVP_Digest(canonical.data(), canonical.size(), digest, &n, EVP_sha256(), nullptr) != 1) {
-    return std::string();
-  }
-  return std::string(reinterpret_cast<const char*>(digest), n);
+  auto key = Sha256(canonical);
+  return key.ok() ? *key : std::string();
 }
 
 }  // namespace
