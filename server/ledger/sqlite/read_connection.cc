@@ -2,6 +2,7 @@
 
 #include <sqlite3.h>
 
+#include "absl/strings/str_split.h"
 #include "server/base/strings.h"
 #include "server/ledger/sqlite/enum_names.h"
 #include "server/ledger/sqlite/statement.h"
@@ -26,19 +27,9 @@ SessionRow SessionFromRow(const Statement& q) {
   row.pin_kernels = q.Int(10) != 0;
   row.kind = q.Text(11);
   row.condition = q.Text(12);
-  // participants: a JSON array of pseudonyms (no escapes: see typed_tables.cc).
-  std::string list = q.Text(13);
-  std::string current;
-  bool in_string = false;
-  for (char c : list) {
-    if (c == '"') {
-      if (in_string) row.participants.push_back(current);
-      current.clear();
-      in_string = !in_string;
-    } else if (in_string) {
-      current += c;
-    }
-  }
+  // participants: the JSON array's elements, joined by the unit separator
+  // (kSessionColumns unpacks it with json_each).
+  row.participants = absl::StrSplit(q.Text(13), '\x1f', absl::SkipEmpty());
   row.chain_version = static_cast<uint32_t>(q.Int(14));
   return row;
 }
@@ -46,7 +37,9 @@ SessionRow SessionFromRow(const Statement& q) {
 constexpr const char* kSessionColumns =
     "id, title, study, state, opened_session_ns, closed_session_ns, utc_anchor_ns, "
     "mono_anchor_ns, boot_id, (SELECT COALESCE(MAX(seq), 0) FROM record r WHERE r.session_id = "
-    "session.id), pin_kernels, kind, condition, participants, chain_version";
+    "session.id), pin_kernels, kind, condition, "
+    "(SELECT group_concat(value, char(31)) FROM "
+    "(SELECT value FROM json_each(session.participants) ORDER BY key)), chain_version";
 
 TokenRow TokenFromRow(const Statement& q) {
   TokenRow t;
@@ -63,8 +56,8 @@ TokenRow TokenFromRow(const Statement& q) {
 // A record's body and hash from the current row (columns `body_col`, +1),
 // and its personal content (chain version 2) from column `body_col` + 2 when
 // `with_personal` (NULL: none kept, or erased).
-absl::StatusOr<Record> RecordFromRow(const Statement& q, int body_col,
-                                     std::string_view session_id, bool with_personal = false) {
+absl::StatusOr<Record> RecordFromRow(const Statement& q, int body_col, std::string_view session_id,
+                                     bool with_personal = false) {
   Record r;
   if (!r.ParseFromString(q.Blob(body_col))) {
     return absl::DataLossError(Cat("record body does not parse in session ", session_id));
@@ -132,60 +125,51 @@ void ReadConnection::SetCheckpointOnClose(bool on) {
   if (db_ != nullptr) sqlite3_db_config(db_, SQLITE_DBCONFIG_NO_CKPT_ON_CLOSE, on ? 0 : 1, nullptr);
 }
 
-absl::StatusOr<SessionRow> ReadConnection::GetSession(std::string_view id) {
+// A row of `session` of one kind ("session" or "study"), by id.
+absl::StatusOr<SessionRow> ReadConnection::GetSessionRow(std::string_view id,
+                                                         std::string_view kind) {
   std::lock_guard<std::mutex> lock(mu_);
   if (db_ == nullptr) return absl::UnavailableError("ledger is closed");
-  Statement q(
-      db_,
-      Cat("SELECT ", kSessionColumns, " FROM session WHERE id = ? AND kind = 'session'").c_str());
-  auto row = q.Bind(id).Step();
+  Statement q(db_,
+              Cat("SELECT ", kSessionColumns, " FROM session WHERE id = ? AND kind = ?").c_str());
+  auto row = q.Bind(id).Bind(kind).Step();
   if (!row.ok()) return row.status();
-  if (!*row) return absl::NotFoundError(Cat("no session '", id, "'"));
+  if (!*row) return absl::NotFoundError(Cat("no ", kind, " '", id, "'"));
   return SessionFromRow(q);
+}
+
+// The rows of `session` a WHERE clause selects, oldest first.
+absl::StatusOr<std::vector<SessionRow>> ReadConnection::ListSessionRows(std::string_view where) {
+  std::lock_guard<std::mutex> lock(mu_);
+  if (db_ == nullptr) return absl::UnavailableError("ledger is closed");
+  Statement q(db_, Cat("SELECT ", kSessionColumns, " FROM session WHERE ", where,
+                       " ORDER BY opened_session_ns, id")
+                       .c_str());
+  std::vector<SessionRow> out;
+  while (true) {
+    auto row = q.Step();
+    if (!row.ok()) return row.status();
+    if (!*row) break;
+    out.push_back(SessionFromRow(q));
+  }
+  return out;
+}
+
+absl::StatusOr<SessionRow> ReadConnection::GetSession(std::string_view id) {
+  return GetSessionRow(id, "session");
 }
 
 absl::StatusOr<SessionRow> ReadConnection::GetStudy(std::string_view id) {
-  std::lock_guard<std::mutex> lock(mu_);
-  if (db_ == nullptr) return absl::UnavailableError("ledger is closed");
-  Statement q(
-      db_,
-      Cat("SELECT ", kSessionColumns, " FROM session WHERE id = ? AND kind = 'study'").c_str());
-  auto row = q.Bind(id).Step();
-  if (!row.ok()) return row.status();
-  if (!*row) return absl::NotFoundError(Cat("no study '", id, "'"));
-  return SessionFromRow(q);
+  return GetSessionRow(id, "study");
 }
 
 absl::StatusOr<std::vector<SessionRow>> ReadConnection::ListStudies() {
-  std::lock_guard<std::mutex> lock(mu_);
-  if (db_ == nullptr) return absl::UnavailableError("ledger is closed");
-  Statement q(db_, Cat("SELECT ", kSessionColumns,
-                       " FROM session WHERE kind = 'study' ORDER BY opened_session_ns, id")
-                       .c_str());
-  std::vector<SessionRow> out;
-  while (true) {
-    auto row = q.Step();
-    if (!row.ok()) return row.status();
-    if (!*row) break;
-    out.push_back(SessionFromRow(q));
-  }
-  return out;
+  return ListSessionRows("kind = 'study'");
 }
 
 absl::StatusOr<std::vector<SessionRow>> ReadConnection::ListSessions(bool include_closed) {
-  std::lock_guard<std::mutex> lock(mu_);
-  if (db_ == nullptr) return absl::UnavailableError("ledger is closed");
-  Statement q(db_, Cat("SELECT ", kSessionColumns, " FROM session ", "WHERE kind = 'session' ",
-                       include_closed ? "" : "AND state = 'open' ", "ORDER BY opened_session_ns")
-                       .c_str());
-  std::vector<SessionRow> out;
-  while (true) {
-    auto row = q.Step();
-    if (!row.ok()) return row.status();
-    if (!*row) break;
-    out.push_back(SessionFromRow(q));
-  }
-  return out;
+  return ListSessionRows(include_closed ? "kind = 'session'"
+                                        : "kind = 'session' AND state = 'open'");
 }
 
 absl::StatusOr<TokenRow> ReadConnection::FindTokenByHash(std::string_view hash) {

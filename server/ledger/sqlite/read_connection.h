@@ -60,6 +60,8 @@ class ReadConnection {
   void Close();
 
  private:
+  absl::StatusOr<SessionRow> GetSessionRow(std::string_view id, std::string_view kind);
+  absl::StatusOr<std::vector<SessionRow>> ListSessionRows(std::string_view where);
   std::mutex mu_;  // serialises use of db_
   sqlite3* db_;    // GUARDED_BY(mu_)
 };

@@ -602,13 +602,8 @@ absl::Status SqliteLedger::CreateSession(const SessionRow& row) {
                 "INSERT INTO session (id, title, study, state, opened_session_ns, utc_anchor_ns, "
                 "mono_anchor_ns, boot_id, pin_kernels, kind, condition, participants, chain_version) "
                 "VALUES (?, ?, ?, 'open', ?, ?, ?, ?, ?, ?, ?, ?, ?)");
-    // Pseudonyms are letters, digits, '-', '_', '.' (the admin service
-    // checks), so this JSON array needs no escaping.
-    std::string participants = "[";
-    for (const std::string& p : row.participants) {
-      participants += Cat(participants.size() > 1 ? "," : "", "\"", p, "\"");
-    }
-    participants += "]";
+    auto participants = JsonStringArray(db, row.participants);
+    if (!participants.ok()) return participants.status();
     return q.Bind(row.id)
         .Bind(row.title)
         .Bind(row.study)
@@ -619,7 +614,7 @@ absl::Status SqliteLedger::CreateSession(const SessionRow& row) {
         .Bind(row.pin_kernels)
         .Bind(row.kind)
         .Bind(row.condition)
-        .Bind(participants)
+        .Bind(*participants)
         .Bind(static_cast<int64_t>(row.chain_version))
         .Run();
   });

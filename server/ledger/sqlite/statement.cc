@@ -117,4 +117,17 @@ std::string Statement::Blob(int col) const {
            : std::string();
 }
 
+absl::StatusOr<std::string> JsonStringArray(sqlite3* db, const std::vector<std::string>& items) {
+  std::string json = "[]";
+  // SQLite docs, JSON functions: json_insert with path '$[#]' appends.
+  Statement q(db, "SELECT json_insert(?1, '$[#]', ?2)");
+  for (const std::string& item : items) {
+    auto row = q.Reset().Bind(json).Bind(item).Step();
+    if (!row.ok()) return row.status();
+    if (!*row) return absl::InternalError("json_insert returned no row");
+    json = q.Text(0);
+  }
+  return json;
+}
+
 }  // namespace tickmark::ledger

@@ -11,6 +11,7 @@
 #include <cstdint>
 #include <string>
 #include <string_view>
+#include <vector>
 
 #include "absl/status/status.h"
 #include "absl/status/statusor.h"
@@ -33,6 +34,10 @@ bool IsStorageError(const absl::Status& status);
 
 // Runs statements that return no rows.
 absl::Status Exec(sqlite3* db, const char* sql);
+
+// A JSON array of these strings, built by SQLite's own JSON functions (no
+// escaping of ours; columns read it back with json_each).
+absl::StatusOr<std::string> JsonStringArray(sqlite3* db, const std::vector<std::string>& items);
 
 class Statement {
  public:

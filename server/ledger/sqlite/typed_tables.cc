@@ -230,13 +230,9 @@ absl::Status TypedTables::Insert(const Record& r, const PersonalPart* personal) 
     }
     case Record::kStudy: {
       const auto& e = r.study();
-      // Pseudonyms are letters, digits, '-', '_', '.' (the admin service
-      // checks), so the JSON array needs no escaping.
-      std::string participants = "[";
-      for (const std::string& p : e.participants()) {
-        participants += Cat(participants.size() > 1 ? "," : "", "\"", p, "\"");
-      }
-      participants += "]";
+      auto participants = JsonStringArray(
+          db_, std::vector<std::string>(e.participants().begin(), e.participants().end()));
+      if (!participants.ok()) return participants.status();
       std::string detail = e.description();
       if (e.has_condition()) {
         const auto& c = e.condition();
@@ -247,7 +243,7 @@ absl::Status TypedTables::Insert(const Record& r, const PersonalPart* personal) 
       }
       std::string name = e.has_condition() ? e.condition().name() : e.name();
       return Prepared("INSERT INTO study_event VALUES (?,?,?,?,?,?,?,?)")
-          .Bind(sid).Bind(seq).Bind(StudyEventWord(e.event())).Bind(name).Bind(participants)
+          .Bind(sid).Bind(seq).Bind(StudyEventWord(e.event())).Bind(name).Bind(*participants)
           .Bind(e.session_id()).Bind(detail).Bind(r.written_session_ns())
           .Run();
     }
