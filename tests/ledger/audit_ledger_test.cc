@@ -21,35 +21,14 @@ namespace {
 
 namespace v1 = tickmark::v1;
 
-class AuditLedgerTest : public ::testing::Test {
+class AuditLedgerTest : public testing::SqliteLedgerTest {
  protected:
   void SetUp() override {
-    dir_ = testing::MakeTempDir("tm-audit");
-    path_ = dir_ + "/t.db";
-    SqliteLedger::Options o;
-    o.path = path_;
-    auto l = SqliteLedger::Open(o);
-    ASSERT_TRUE(l.ok()) << l.status().message();
-    ledger_ = std::move(*l);
+    testing::SqliteLedgerTest::SetUp();
     SessionRow row = testing::Session("s-2");
     row.chain_version = kChainVersion;
     ASSERT_TRUE(ledger_->CreateSession(row).ok());
     ASSERT_TRUE(ledger_->CreateSession(testing::Session("s-1")).ok());  // chain version 1
-  }
-  void TearDown() override {
-    ledger_.reset();
-    std::filesystem::remove_all(dir_);
-  }
-  std::vector<v1::Record> AppendSync(const std::string& session, std::vector<v1::Record> records) {
-    std::promise<std::vector<v1::Record>> done;
-    auto f = done.get_future();
-    auto first = ledger_->Append(session, std::move(records),
-                                 [&done](const absl::Status& s, const std::vector<v1::Record>& rs) {
-                                   EXPECT_TRUE(s.ok()) << s.message();
-                                   done.set_value(rs);
-                                 });
-    EXPECT_TRUE(first.ok()) << first.status().message();
-    return f.get();
   }
   static v1::Record Secret(const std::string& trainer, uint64_t cseq, const std::string& input) {
     v1::Record r = testing::FeedbackRecord("c-" + trainer, cseq, 0.25);
@@ -75,9 +54,6 @@ class AuditLedgerTest : public ::testing::Test {
     EXPECT_TRUE(r.ok()) << r.status().message();
     return r.ok() ? *r : audit::VerifyResult{};
   }
-
-  std::string dir_, path_;
-  std::unique_ptr<SqliteLedger> ledger_;
 };
 
 TEST_F(AuditLedgerTest, PersonalFieldsEnterTheChainOnlyAsASaltedDigest) {

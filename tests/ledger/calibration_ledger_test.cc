@@ -61,37 +61,7 @@ v1::Record CalibrationRecord(const std::string& id, const std::string& trainer, 
   return r;
 }
 
-// Runs the sqlite3 CLI on `db` with one SQL statement; its stdout.
-std::string Sqlite3(const std::string& db, const std::string& sql) {
-  const std::string cmd = "sqlite3 -readonly '" + db + "' \"" + sql + "\" 2>&1";
-  std::string out;
-  FILE* p = popen(cmd.c_str(), "r");
-  if (p == nullptr) return "popen failed";
-  char buf[4096];
-  size_t n;
-  while ((n = fread(buf, 1, sizeof buf, p)) > 0) out.append(buf, n);
-  pclose(p);
-  return out;
-}
-
-class CalibrationLedgerTest : public ::testing::Test {
- protected:
-  void SetUp() override {
-    dir_ = testing::MakeTempDir("tm-calib-ledger");
-    path_ = dir_ + "/t.db";
-    SqliteLedger::Options o;
-    o.path = path_;
-    auto l = SqliteLedger::Open(o);
-    ASSERT_TRUE(l.ok()) << l.status().message();
-    ledger_ = std::move(*l);
-  }
-  void TearDown() override {
-    ledger_.reset();
-    std::filesystem::remove_all(dir_);
-  }
-  std::string dir_, path_;
-  std::unique_ptr<SqliteLedger> ledger_;
-};
+using CalibrationLedgerTest = testing::SqliteLedgerTest;
 
 TEST_F(CalibrationLedgerTest, EventsCalibrationsAndTheIndex) {
   SessionRow row = testing::Session("s-1");
@@ -172,27 +142,33 @@ TEST_F(CalibrationLedgerTest, EventsCalibrationsAndTheIndex) {
   ledger_->Close();
 
   // The outside reader: Debian's sqlite3 CLI.
-  EXPECT_EQ(Sqlite3(path_,
-                    "SELECT seq, client_seq, run, kind, move, at_source_ns, approve, practice, "
-                    "detail FROM calibration_event WHERE session_id = 's-1' ORDER BY seq"),
+  EXPECT_EQ(testing::Sqlite3Cli(
+                path_,
+                "SELECT seq, client_seq, run, kind, move, at_source_ns, approve, practice, "
+                "detail FROM calibration_event WHERE session_id = 's-1' ORDER BY seq"),
             "1|1|run-1|move|1|1000000000|1|1|right\n"
             "2|2|run-1|answer|0|1400000000|1|0|key:g\n"
             "3|3|run-2|move|1|9000000000|0|1|right\n"
             "4|4|run-1|move|2|2000000000|0|0|right\n");
-  EXPECT_EQ(Sqlite3(path_,
-                    "SELECT id, trainer, session_id, seq, created_session_ns, family, "
-                    "kernel_description, valid, warning, source_kind FROM calibration ORDER BY id"),
+  EXPECT_EQ(testing::Sqlite3Cli(
+                path_,
+                "SELECT id, trainer, session_id, seq, created_session_ns, family, "
+                "kernel_description, valid, warning, source_kind FROM calibration ORDER BY id"),
             "c-00000001|ava|s-1|5|7000|gamma|gamma:2,0.3|41|0|terminal\n"
             "c-00000002|ava|s-2|1|8000|gamma|gamma:2,0.3|41|0|terminal\n"
             "c-00000003|ben|s-2|2|9000|gamma|gamma:2,0.3|41|0|terminal\n");
-  EXPECT_EQ(Sqlite3(path_,
-                    "SELECT kind, client_id, client_seq FROM record WHERE session_id = 's-1' AND "
-                    "seq = 5"),
+  EXPECT_EQ(testing::Sqlite3Cli(
+                path_,
+                "SELECT kind, client_id, client_seq FROM record WHERE session_id = 's-1' AND "
+                "seq = 5"),
             "calibration|keys:ava:1|5\n");
-  EXPECT_EQ(Sqlite3(path_, "SELECT id, pin_kernels FROM session ORDER BY id"), "s-1|1\ns-2|0\n");
-  EXPECT_EQ(Sqlite3(path_, "SELECT trainer, calibration FROM kernel_setting"), "ava|c-00000002\n");
+  EXPECT_EQ(testing::Sqlite3Cli(path_, "SELECT id, pin_kernels FROM session ORDER BY id"),
+            "s-1|1\ns-2|0\n");
+  EXPECT_EQ(testing::Sqlite3Cli(path_, "SELECT trainer, calibration FROM kernel_setting"),
+            "ava|c-00000002\n");
   // Migration 4 (time sets) is applied; later migrations may follow it.
-  EXPECT_EQ(Sqlite3(path_, "SELECT COUNT(*) FROM schema_migrations WHERE version = 4"), "1\n");
+  EXPECT_EQ(testing::Sqlite3Cli(path_, "SELECT COUNT(*) FROM schema_migrations WHERE version = 4"),
+            "1\n");
 }
 
 }  // namespace

@@ -1,15 +1,18 @@
 // Helpers shared by the ledger tests: temporary folders, records, appends
-// that wait for their commit (with a deadline, never forever) and a chain
-// check that recomputes every hash.
+// that wait for their commit (with a deadline, never forever), a chain
+// check that recomputes every hash, a fixture with a fresh SQLite ledger and
+// the sqlite3 command-line tool as an outside reader of its file.
 #ifndef TICKMARK_TESTS_LEDGER_LEDGER_TEST_UTIL_H_
 #define TICKMARK_TESTS_LEDGER_LEDGER_TEST_UTIL_H_
 
 #include <gtest/gtest.h>
 
 #include <chrono>
+#include <cstdio>
 #include <cstdlib>
 #include <filesystem>
 #include <future>
+#include <memory>
 #include <string>
 #include <vector>
 
@@ -97,6 +100,51 @@ inline void ExpectChainVerifies(Ledger* ledger, const std::string& session, uint
   }
   EXPECT_EQ(ledger->CommittedSequence(session), expect_last);
 }
+
+// Runs the sqlite3 command-line tool (Debian's sqlite3 package: the outside
+// reader of the ledger file) read-only on `db` with one SQL statement; its
+// stdout and stderr.
+inline std::string Sqlite3Cli(const std::string& db, const std::string& sql) {
+  const std::string cmd = "sqlite3 -readonly '" + db + "' \"" + sql + "\" 2>&1";
+  std::string out;
+  FILE* p = popen(cmd.c_str(), "r");
+  if (p == nullptr) return "popen failed";
+  char buf[4096];
+  size_t n;
+  while ((n = fread(buf, 1, sizeof buf, p)) > 0) out.append(buf, n);
+  pclose(p);
+  return out;
+}
+
+// A fresh SQLite ledger in a temporary folder for each test.
+class SqliteLedgerTest : public ::testing::Test {
+ protected:
+  void SetUp() override {
+    dir_ = MakeTempDir("tm-ledger");
+    path_ = dir_ + "/t.db";
+    Reopen();
+  }
+  void TearDown() override {
+    ledger_.reset();
+    std::filesystem::remove_all(dir_);
+  }
+  void Reopen() {
+    ledger_.reset();
+    SqliteLedger::Options o;
+    o.path = path_;
+    auto l = SqliteLedger::Open(o);
+    ASSERT_TRUE(l.ok()) << l.status().message();
+    ledger_ = std::move(*l);
+  }
+  // Appends and waits for the commit; the committed records.
+  std::vector<v1::Record> AppendSync(const std::string& session, std::vector<v1::Record> records) {
+    Committed c = AppendAndWait(ledger_.get(), session, std::move(records));
+    EXPECT_TRUE(c.status.ok()) << c.status.message();
+    return c.records;
+  }
+  std::string dir_, path_;
+  std::unique_ptr<SqliteLedger> ledger_;
+};
 
 }  // namespace tickmark::ledger::testing
 

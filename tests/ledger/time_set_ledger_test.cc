@@ -19,19 +19,6 @@ namespace {
 namespace v1 = tickmark::v1;
 using testing::AppendAndWait;
 
-// Runs the sqlite3 CLI on `db` with one SQL statement; its stdout.
-std::string Sqlite3(const std::string& db, const std::string& sql) {
-  const std::string cmd = "sqlite3 -readonly '" + db + "' \"" + sql + "\" 2>&1";
-  std::string out;
-  FILE* p = popen(cmd.c_str(), "r");
-  if (p == nullptr) return "popen failed";
-  char buf[4096];
-  size_t n;
-  while ((n = fread(buf, 1, sizeof buf, p)) > 0) out.append(buf, n);
-  pclose(p);
-  return out;
-}
-
 v1::Record StepRecord(uint64_t cseq) {
   v1::Record r;
   r.set_written_session_ns(3000);
@@ -63,21 +50,8 @@ DerivedTimeRow Row(uint64_t seq, const std::string& kind, int64_t at, int64_t u,
   return t;
 }
 
-class TimeSetLedgerTest : public ::testing::Test {
+class TimeSetLedgerTest : public testing::SqliteLedgerTest {
  protected:
-  void SetUp() override {
-    dir_ = testing::MakeTempDir("tm-timeset-ledger");
-    path_ = dir_ + "/t.db";
-    SqliteLedger::Options o;
-    o.path = path_;
-    auto l = SqliteLedger::Open(o);
-    ASSERT_TRUE(l.ok()) << l.status().message();
-    ledger_ = std::move(*l);
-  }
-  void TearDown() override {
-    ledger_.reset();
-    std::filesystem::remove_all(dir_);
-  }
   TimeSetRow Set(const std::string& id, uint64_t through, const std::string& head) {
     TimeSetRow t;
     t.id = id;
@@ -90,8 +64,6 @@ class TimeSetLedgerTest : public ::testing::Test {
     t.retimed = 2;
     return t;
   }
-  std::string dir_, path_;
-  std::unique_ptr<SqliteLedger> ledger_;
 };
 
 TEST_F(TimeSetLedgerTest, SetsAreStoredBesideTheUntouchedRecords) {
@@ -142,28 +114,31 @@ TEST_F(TimeSetLedgerTest, SetsAreStoredBesideTheUntouchedRecords) {
   ledger_->Close();
 
   // The outside reader: Debian's sqlite3 CLI.
-  EXPECT_EQ(Sqlite3(path_,
-                    "SELECT seq, event_session_ns, uncertainty_ns FROM feedback "
-                    "WHERE session_id = 's-1' ORDER BY seq"),
+  EXPECT_EQ(testing::Sqlite3Cli(path_,
+                                "SELECT seq, event_session_ns, uncertainty_ns FROM feedback "
+                                "WHERE session_id = 's-1' ORDER BY seq"),
             "1|1990|0\n2|1990|0\n");
-  EXPECT_EQ(Sqlite3(path_, "SELECT start_session_ns, end_session_ns FROM step"), "2900|2950\n");
-  EXPECT_EQ(Sqlite3(path_,
-                    "SELECT time_set, seq, kind, client_id, event_session_ns, "
-                    "uncertainty_ns, live_session_ns, outcome FROM derived_time "
-                    "ORDER BY time_set, seq, kind"),
+  EXPECT_EQ(testing::Sqlite3Cli(path_, "SELECT start_session_ns, end_session_ns FROM step"),
+            "2900|2950\n");
+  EXPECT_EQ(testing::Sqlite3Cli(path_,
+                                "SELECT time_set, seq, kind, client_id, event_session_ns, "
+                                "uncertainty_ns, live_session_ns, outcome FROM derived_time "
+                                "ORDER BY time_set, seq, kind"),
             "ts-00000001|1|feedback|keys:ava:1|1985|7|1990|retimed\n"
             "ts-00000001|3|step_end|agent-1|2951|9|2950|retimed\n"
             "ts-00000001|3|step_start|agent-1|2898|9|2900|retimed\n"
             "ts-00000002|2|feedback|keys:ava:1|1991|6|1990|retimed\n");
   // SQLite's JSON1 json_extract reads the parameters; the head hash is the
   // hash of the record the set was computed through.
-  EXPECT_EQ(Sqlite3(path_,
-                    "SELECT id, json_extract(parameters, '$.half_window_s'), events, "
-                    "retimed, hex(t.head_hash) = hex(r.hash) FROM time_set t JOIN record r "
-                    "ON r.session_id = t.session_id AND r.seq = t.through_seq ORDER BY id"),
-            "ts-00000001|30|3|2|1\nts-00000002|30|3|2|1\n");
+  EXPECT_EQ(
+      testing::Sqlite3Cli(path_,
+                          "SELECT id, json_extract(parameters, '$.half_window_s'), events, "
+                          "retimed, hex(t.head_hash) = hex(r.hash) FROM time_set t JOIN record r "
+                          "ON r.session_id = t.session_id AND r.seq = t.through_seq ORDER BY id"),
+      "ts-00000001|30|3|2|1\nts-00000002|30|3|2|1\n");
   // Migration 4 (time sets) is applied; later migrations may follow it.
-  EXPECT_EQ(Sqlite3(path_, "SELECT COUNT(*) FROM schema_migrations WHERE version = 4"), "1\n");
+  EXPECT_EQ(testing::Sqlite3Cli(path_, "SELECT COUNT(*) FROM schema_migrations WHERE version = 4"),
+            "1\n");
 }
 
 TEST_F(TimeSetLedgerTest, ParametersMustBeJson) {

@@ -6,7 +6,6 @@ import os
 import re
 import signal
 import subprocess
-import sys
 import tempfile
 import time
 
@@ -112,6 +111,36 @@ class Link:
         if self.proc.poll() is None:
             self.proc.terminate()
             self.proc.wait(5)
+
+
+def wait_until(pred, timeout, what):
+    """Polls pred() every 50 ms; AssertionError naming `what` after `timeout` s."""
+    deadline = time.monotonic() + timeout
+    while time.monotonic() < deadline:
+        if pred():
+            return
+        time.sleep(0.05)
+    raise AssertionError(f"timed out waiting for {what}")
+
+
+def first_ack(server, token, client_id, message):
+    """Sends a hello and one TrainerMessage over a raw Train stream; the first Ack."""
+    from tickmark.v1 import stream_pb2, stream_pb2_grpc
+    stub = stream_pb2_grpc.LiveStub(grpc.insecure_channel(server.address))
+
+    def messages():
+        yield stream_pb2.TrainerMessage(hello=stream_pb2.Hello(
+            token=token, client_id=client_id, sent_client_ns=time.monotonic_ns()))
+        yield message
+
+    call = stub.Train(messages(), timeout=20)
+    try:
+        for m in call:
+            if m.HasField("ack"):
+                return m.ack
+    finally:
+        call.cancel()
+    raise AssertionError("the stream ended without an Ack")
 
 
 @pytest.fixture

@@ -22,6 +22,8 @@ import socket
 import subprocess
 import tempfile
 
+import pytest
+
 BIN_DIR = "/usr/lib/postgresql/15/bin"
 
 
@@ -108,3 +110,15 @@ class PgServer:
 
     def __exit__(self, *exc):
         self.stop()
+
+
+@pytest.fixture(scope="module")
+def pg():
+    """A PostgreSQL server of the test's own for the module; skipped with the reason if none
+    can be started here."""
+    try:
+        server = PgServer()
+    except Unavailable as e:
+        pytest.skip(f"PostgreSQL not available: {e}")
+    yield server
+    server.stop()

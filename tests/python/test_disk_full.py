@@ -27,18 +27,9 @@ import urllib.request
 import grpc
 import pytest
 
-from conftest import BIN, Server, _wait_line
+from conftest import BIN, Server, _wait_line, wait_until
 from tickmark._stream import ReconnectingStream
-from tickmark.v1 import admin_pb2, records_pb2, stream_pb2
-
-
-def _wait(pred, timeout, what):
-    deadline = time.monotonic() + timeout
-    while time.monotonic() < deadline:
-        if pred():
-            return
-        time.sleep(0.05)
-    raise AssertionError(f"timed out waiting for {what}")
+from tickmark.v1 import records_pb2, stream_pb2
 
 
 def _fill(path):
@@ -110,7 +101,7 @@ def test_full_disk_loses_nothing_and_recovers_without_restart(small_disk):
         for _ in range(10):
             stream.send(stream_pb2.FeedbackMessage(value=-1.0, event_source_ns=time.monotonic_ns()))
         # The server notices, says so, and keeps answering.
-        _wait(lambda: "NOT WRITABLE" in _show(server, session).stdout, 30,
+        wait_until(lambda: "NOT WRITABLE" in _show(server, session).stdout, 30,
               "session show to report the ledger not writable")
         shown = _show(server, session)
         assert shown.returncode == 0, shown.stderr
@@ -118,7 +109,7 @@ def test_full_disk_loses_nothing_and_recovers_without_restart(small_disk):
         assert stream.pending > 0, "feedback was acknowledged although the disk is full"
         assert not stream.rejected, f"feedback dropped as rejected: {stream.rejected}"
         # The metrics say the same (docs/operations.md).
-        _wait(lambda: _metric(server, "tickmark_ledger_disk_full") == 1, 30,
+        wait_until(lambda: _metric(server, "tickmark_ledger_disk_full") == 1, 30,
               "tickmark_ledger_disk_full to say 1")
         assert _metric(server, "tickmark_ledger_writable") == 0
         assert _metric(server, 'tickmark_ingest_rejected_total{kind="feedback",'
@@ -126,9 +117,9 @@ def test_full_disk_loses_nothing_and_recovers_without_restart(small_disk):
 
         os.remove(filler)  # room again: no restart
         assert stream.flush(60), f"{stream.pending} feedback never stored after space returned"
-        _wait(lambda: "ledger     writable" in _show(server, session).stdout, 30,
+        wait_until(lambda: "ledger     writable" in _show(server, session).stdout, 30,
               "the ledger to report writable again")
-        _wait(lambda: _metric(server, "tickmark_ledger_writable") == 1, 30,
+        wait_until(lambda: _metric(server, "tickmark_ledger_writable") == 1, 30,
               "tickmark_ledger_writable to say 1 again")
         assert _metric(server, "tickmark_ledger_disk_full") == 0
         assert not stream.rejected

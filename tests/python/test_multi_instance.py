@@ -29,8 +29,8 @@ import time
 import grpc
 import pytest
 
-from conftest import BIN, Server, _wait_line
-from pg_fixture import PgServer, Unavailable, free_port
+from conftest import BIN, Server
+from pg_fixture import free_port, pg  # noqa: F401 (pg: the module's PostgreSQL fixture)
 from tickmark import Agent
 from tickmark._connect import open_channel
 from tickmark._stream import ReconnectingStream
@@ -39,16 +39,6 @@ from tickmark.v1 import records_pb2, stream_pb2
 
 LEASE_MS = 1500  # short, to keep the test short; the default is 5000
 NGINX = "/usr/sbin/nginx"
-
-
-@pytest.fixture(scope="module")
-def pg():
-    try:
-        server = PgServer()
-    except Unavailable as e:
-        pytest.skip(f"PostgreSQL not available: {e}")
-    yield server
-    server.stop()
 
 
 class Instance(Server):

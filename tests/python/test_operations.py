@@ -16,7 +16,6 @@ from __future__ import annotations
 
 import importlib
 import os
-import re
 import subprocess
 import sys
 import tempfile
@@ -27,22 +26,13 @@ import grpc
 import pytest
 
 import tickmark
-from conftest import Server, _wait_line
+from conftest import Server, _wait_line, wait_until
 from tickmark._connect import open_channel
 from tickmark._stream import ReconnectingStream
 from tickmark.v1 import records_pb2, stream_pb2
 
 GRPC_PROTO = "/usr/share/grpc-proto/grpc"  # Debian's grpc-proto package
 PROMTOOL = "/usr/bin/promtool"  # Debian's prometheus package
-
-
-def _wait(pred, timeout, what):
-    deadline = time.monotonic() + timeout
-    while time.monotonic() < deadline:
-        if pred():
-            return
-        time.sleep(0.05)
-    raise AssertionError(f"timed out waiting for {what}")
 
 
 @pytest.fixture(scope="module")
@@ -145,7 +135,7 @@ def test_metrics_count_the_traffic_and_pass_promtool(ops_server):
         return _get(server.metrics_port)[2]
 
     # Streams close asynchronously after the clients hang up.
-    _wait(lambda: _samples(text_now())['tickmark_open_streams{role="trainer"}'] == 0, 10,
+    wait_until(lambda: _samples(text_now())['tickmark_open_streams{role="trainer"}'] == 0, 10,
           "the trainer stream to close")
     text = text_now()
     m = _samples(text)

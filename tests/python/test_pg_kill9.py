@@ -11,30 +11,18 @@ hash is SHA-256(previous hash || body) (DEVELOPERS.md, "The ledger").
 from __future__ import annotations
 
 import os
-import signal
 import subprocess
 import threading
 import time
 
-import pytest
 
 from conftest import Server
-from pg_fixture import PgServer, Unavailable, free_port
+from pg_fixture import free_port, pg  # noqa: F401 (pg: the module's PostgreSQL fixture)
 from tickmark._connect import open_channel
 from tickmark._stream import ReconnectingStream
 from tickmark.v1 import records_pb2, stream_pb2
 
 LEASE_MS = 1000
-
-
-@pytest.fixture(scope="module")
-def pg():
-    try:
-        server = PgServer()
-    except Unavailable as e:
-        pytest.skip(f"PostgreSQL not available: {e}")
-    yield server
-    server.stop()
 
 
 def start(data_dir, url, port, name):

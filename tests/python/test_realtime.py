@@ -19,7 +19,7 @@ from tickmark._connect import open_channel
 from tickmark._stream import ReconnectingStream
 from tickmark.v1 import records_pb2, stream_pb2, stream_pb2_grpc
 
-from conftest import Server
+from conftest import Server, first_ack
 
 SYNCED = _discipline.DisciplineState(synced=True, max_error_ns=1_000_000, est_error_ns=100_000,
                                      status=0x0001, clock_state=0)
@@ -161,22 +161,9 @@ def test_a_synced_reading_without_a_bound_is_refused(server):
     in (0, 16 s); the Ack names the field and nothing is stored."""
     session, admin = server.session()
     token = server.token(session, admin, "trainer", "p07")
-    stub = stream_pb2_grpc.LiveStub(grpc.insecure_channel(server.address))
-
-    def messages():
-        yield stream_pb2.TrainerMessage(hello=stream_pb2.Hello(
-            token=token, client_id="py-raw", sent_client_ns=time.monotonic_ns()))
-        yield stream_pb2.TrainerMessage(feedback=stream_pb2.FeedbackMessage(
+    ack = first_ack(server, token, "py-raw", stream_pb2.TrainerMessage(
+        feedback=stream_pb2.FeedbackMessage(
             client_sequence=1, value=1.0, event_source_ns=time.monotonic_ns(),
-            event_realtime_ns=time.time_ns(), realtime_synced=True))
-
-    acks = []
-    call = stub.Train(messages(), timeout=20)
-    for m in call:
-        if m.HasField("ack"):
-            acks.append(m.ack)
-            break
-    call.cancel()
-    assert len(acks) == 1
-    assert acks[0].code == grpc.StatusCode.INVALID_ARGUMENT.value[0]
-    assert "realtime_bound_ns" in acks[0].message
+            event_realtime_ns=time.time_ns(), realtime_synced=True)))
+    assert ack.code == grpc.StatusCode.INVALID_ARGUMENT.value[0]
+    assert "realtime_bound_ns" in ack.message

@@ -29,8 +29,8 @@ from scipy import stats
 
 import grpc
 
-from conftest import BIN, tm
-from tickmark.v1 import admin_pb2, records_pb2, stream_pb2, stream_pb2_grpc
+from conftest import BIN, first_ack, tm
+from tickmark.v1 import admin_pb2, records_pb2, stream_pb2
 
 TICKMARK = os.path.join(BIN, "tickmark")
 PROFILE = os.path.join(os.path.dirname(__file__), "..", "..", "clients", "serial", "profiles",
@@ -267,26 +267,13 @@ def test_a_sync_pulse_on_the_wrong_line_is_refused(server):
     RTS; the Ack names the rule and nothing is stored."""
     session, admin = server.session()
     token = server.token(session, admin, "trainer", "p11")
-    stub = stream_pb2_grpc.LiveStub(grpc.insecure_channel(server.address))
-
-    def messages():
-        yield stream_pb2.TrainerMessage(hello=stream_pb2.Hello(
-            token=token, client_id="py-sync-raw", sent_client_ns=time.monotonic_ns()))
-        yield stream_pb2.TrainerMessage(sync_pulse=stream_pb2.SyncPulseMessage(
+    ack = first_ack(server, token, "py-sync-raw", stream_pb2.TrainerMessage(
+        sync_pulse=stream_pb2.SyncPulseMessage(
             client_sequence=1, direction=records_pb2.SYNC_DIRECTION_OUT, line="CTS", level=True,
             event_source_ns=time.monotonic_ns(), reason=records_pb2.SYNC_REASON_INTERVAL,
-            pulse_index=1))
-
-    acks = []
-    call = stub.Train(messages(), timeout=20)
-    for m in call:
-        if m.HasField("ack"):
-            acks.append(m.ack)
-            break
-    call.cancel()
-    assert len(acks) == 1
-    assert acks[0].code == grpc.StatusCode.INVALID_ARGUMENT.value[0]
-    assert "DTR or RTS" in acks[0].message
+            pulse_index=1)))
+    assert ack.code == grpc.StatusCode.INVALID_ARGUMENT.value[0]
+    assert "DTR or RTS" in ack.message
     summary = server.admin.GetSession(admin_pb2.GetSessionRequest(session_id=session),
                                       metadata=server.md(admin))
     assert summary.sync_pulse_count == 0
