@@ -39,6 +39,17 @@ HttpResponse Text(int status, const std::string& text, bool tls) {
   return r;
 }
 
+// 405 naming the methods a path takes (RFC 9110 §15.5.6: Allow is required).
+HttpResponse NotAllowed(const std::string& allow, bool tls) {
+  HttpResponse r = Text(405, "use " + allow, tls);
+  r.headers.emplace_back("Allow", allow);
+  return r;
+}
+
+bool IsGetOrHead(const HttpRequest& request) {
+  return request.method == "GET" || request.method == "HEAD";
+}
+
 HttpResponse Json(int status, const pb::Struct& body, bool tls) {
   HttpResponse r;
   r.status = status;
@@ -155,19 +166,11 @@ bool HttpRouter::OriginAllowed(const HttpRequest& request) const {
 HttpResponse HttpRouter::Route(const HttpRequest& request) const {
   const std::string path = PathOf(request.target);
   if (path == "/api/join") {
-    if (request.method != "POST") {
-      HttpResponse r = Text(405, "use POST", request.tls);
-      r.headers.emplace_back("Allow", "POST");
-      return r;
-    }
+    if (request.method != "POST") return NotAllowed("POST", request.tls);
     return Join(request);
   }
   if (path == "/metrics" && metrics_) {
-    if (request.method != "GET" && request.method != "HEAD") {
-      HttpResponse r = Text(405, "use GET", request.tls);
-      r.headers.emplace_back("Allow", "GET, HEAD");
-      return r;
-    }
+    if (!IsGetOrHead(request)) return NotAllowed("GET, HEAD", request.tls);
     HttpResponse r;
     r.headers = SecurityHeaders(request.tls);
     r.headers.emplace_back("Content-Type", ops::kContentType);
@@ -177,11 +180,7 @@ HttpResponse HttpRouter::Route(const HttpRequest& request) const {
   }
   const Asset* asset = PageFor(path);
   if (asset == nullptr) return Text(404, "not found", request.tls);
-  if (request.method != "GET" && request.method != "HEAD") {
-    HttpResponse r = Text(405, "use GET", request.tls);
-    r.headers.emplace_back("Allow", "GET, HEAD");
-    return r;
-  }
+  if (!IsGetOrHead(request)) return NotAllowed("GET, HEAD", request.tls);
   HttpResponse r;
   r.headers = SecurityHeaders(request.tls);
   r.headers.emplace_back("Content-Type", std::string(asset->content_type));
