@@ -112,6 +112,32 @@ class PgServer:
         self.stop()
 
 
+def assert_chain(server: "PgServer", db: str, session: str, workdir) -> int:
+    """Recomputes a session's hash chain from the stored bytes with sha256sum
+    (coreutils, the outside SHA-256): hash = SHA-256(previous hash || body),
+    32 zero bytes before sequence 1 (DEVELOPERS.md, "The ledger"). Sequences
+    must run 1..n without a hole. Returns n."""
+    rows = server.psql(db, f"SELECT seq, encode(body, 'hex'), encode(hash, 'hex') FROM record "
+                           f"WHERE session_id = '{session}' ORDER BY seq").splitlines()
+    prev = bytes(32)
+    files, hashes = [], []
+    for i, line in enumerate(rows):
+        seq, body, digest = line.split("|")
+        assert int(seq) == i + 1, f"a hole in the sequence of {session} at {i + 1}"
+        path = os.path.join(str(workdir), f"{session}-r{seq}")
+        with open(path, "wb") as f:
+            f.write(prev + bytes.fromhex(body))
+        files.append(path)
+        hashes.append(digest)
+        prev = bytes.fromhex(digest)
+    if files:
+        out = subprocess.run(["sha256sum", *files], capture_output=True, text=True,
+                             check=True).stdout
+        assert [line.split()[0] for line in out.splitlines()] == hashes, \
+            f"the hash chain of {session} does not recompute"
+    return len(rows)
+
+
 @pytest.fixture(scope="module")
 def pg():
     """A PostgreSQL server of the test's own for the module; skipped with the reason if none

@@ -11,13 +11,12 @@ hash is SHA-256(previous hash || body) (DEVELOPERS.md, "The ledger").
 from __future__ import annotations
 
 import os
-import subprocess
 import threading
 import time
 
 
 from conftest import Server
-from pg_fixture import free_port, pg  # noqa: F401 (pg: the module's PostgreSQL fixture)
+from pg_fixture import assert_chain, free_port, pg  # noqa: F401 (pg: the module's PostgreSQL fixture)
 from tickmark._connect import open_channel
 from tickmark._stream import ReconnectingStream
 from tickmark.v1 import records_pb2, stream_pb2
@@ -104,19 +103,4 @@ def test_kill9_loses_and_doubles_nothing(pg, tmp_path):
     assert (lost, doubled) == (0, 0)
 
     # The chain, recomputed with sha256sum (coreutils) from the stored bytes.
-    chain = pg.psql(db, f"SELECT seq, encode(body, 'hex'), encode(hash, 'hex') FROM record "
-                        f"WHERE session_id = '{sid}' ORDER BY seq").splitlines()
-    prev = bytes(32)  # the first record chains from 32 zero bytes
-    files = []
-    hashes = []
-    for i, line in enumerate(chain):
-        seq, body, digest = line.split("|")
-        assert int(seq) == i + 1, "a hole in the sequence"
-        path = tmp_path / f"r{seq}"
-        path.write_bytes(prev + bytes.fromhex(body))
-        files.append(str(path))
-        hashes.append(digest)
-        prev = bytes.fromhex(digest)
-    out = subprocess.run(["sha256sum", *files], capture_output=True, text=True, check=True).stdout
-    computed = [line.split()[0] for line in out.splitlines()]
-    assert computed == hashes
+    assert_chain(pg, db, sid, tmp_path)
