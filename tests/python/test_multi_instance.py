@@ -332,7 +332,7 @@ def test_failover_and_fencing(pg, tmp_path):
         # Every chain continues across owners: recomputed from the stored
         # bytes, whichever instance wrote each record.
         for sid in set(work) | {fenced_sid}:
-            assert_chain(pg, db, sid, tmp_path)
+            assert_chain(pg, db, sid)
     finally:
         for c in clients:
             try:
