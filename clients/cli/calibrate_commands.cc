@@ -194,7 +194,7 @@ void AddNew(CommandTable& table, CLI::App* group) {
       ->type_name("FILE");
 }
 
-void AddList(CommandTable& table, CLI::App* group) {
+void AddCalibrationList(CommandTable& table, CLI::App* group) {
   auto req = std::make_shared<v1::ListCalibrationsRequest>();
   CLI::App* cmd =
       table.AddCommand(group, "list", "Lists calibrations, newest first.", [&table, req] {
@@ -220,7 +220,7 @@ void AddList(CommandTable& table, CLI::App* group) {
       "only this trainer's calibrations");
 }
 
-void AddShow(CommandTable& table, CLI::App* group) {
+void AddCalibrationShow(CommandTable& table, CLI::App* group) {
   struct Flags {
     v1::GetCalibrationRequest req;
     std::string plot;
@@ -325,8 +325,8 @@ void AddCalibrateCommands(CommandTable& table) {
   CLI::App* group =
       table.AddGroup("calibrate", "measure a trainer's reaction delays and fit their delay kernel");
   AddNew(table, group);
-  AddList(table, group);
-  AddShow(table, group);
+  AddCalibrationList(table, group);
+  AddCalibrationShow(table, group);
   AddPlot(table, group);
   AddApply(table, group);
 }

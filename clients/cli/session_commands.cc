@@ -151,7 +151,7 @@ void AddCreate(CommandTable& table, CLI::App* group) {
       ->type_name("FILE");
 }
 
-void AddList(CommandTable& table, CLI::App* group) {
+void AddSessionList(CommandTable& table, CLI::App* group) {
   auto req = std::make_shared<v1::ListSessionsRequest>();
   CLI::App* cmd = table.AddCommand(
       group, "list", "Lists sessions with their counts (open ones unless --all).", [&table, req] {
@@ -178,7 +178,7 @@ void AddList(CommandTable& table, CLI::App* group) {
                          "include closed sessions");
 }
 
-void AddShow(CommandTable& table, CLI::App* group) {
+void AddSessionShow(CommandTable& table, CLI::App* group) {
   auto req = std::make_shared<v1::GetSessionRequest>();
   auto max_ms = std::make_shared<double>(50);
   CLI::App* cmd = table.AddCommand(
@@ -267,8 +267,8 @@ void AddClose(CommandTable& table, CLI::App* group) {
 void AddSessionCommands(CommandTable& table) {
   CLI::App* group = table.AddGroup("session", "open, list, show and close sessions");
   AddCreate(table, group);
-  AddList(table, group);
-  AddShow(table, group);
+  AddSessionList(table, group);
+  AddSessionShow(table, group);
   AddClose(table, group);
 }
 

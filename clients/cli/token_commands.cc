@@ -65,7 +65,7 @@ void AddIssue(CommandTable& table, CLI::App* group) {
       ->type_name("FILE");
 }
 
-void AddList(CommandTable& table, CLI::App* group) {
+void AddTokenList(CommandTable& table, CLI::App* group) {
   auto req = std::make_shared<v1::ListTokensRequest>();
   CLI::App* cmd = table.AddCommand(
       group, "list", "Lists a session's tokens (never their secrets).", [&table, req] {
@@ -108,7 +108,7 @@ void AddRevoke(CommandTable& table, CLI::App* group) {
 void AddTokenCommands(CommandTable& table) {
   CLI::App* group = table.AddGroup("token", "issue, list and revoke a session's tokens");
   AddIssue(table, group);
-  AddList(table, group);
+  AddTokenList(table, group);
   AddRevoke(table, group);
 }
 

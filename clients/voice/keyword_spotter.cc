@@ -14,16 +14,13 @@
 #include <sstream>
 #include <utility>
 
+#include "clients/voice/sample_clock.h"
+
 #ifndef TICKMARK_POCKETSPHINX_MODELDIR
 #define TICKMARK_POCKETSPHINX_MODELDIR "/usr/share/pocketsphinx/model"
 #endif
 
 namespace tickmark::voice {
-namespace {
-// Nearest integer as int64_t (llround gives long long, which the
-// std::min/max calls here would not mix with int64_t).
-int64_t Round(double v) { return static_cast<int64_t>(std::llround(v)); }
-}  // namespace
 namespace {
 
 constexpr int kSamplesPerFrame = kModelSampleRate / 100;  // -frate 100

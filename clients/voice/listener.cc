@@ -8,11 +8,6 @@
 #include <utility>
 
 namespace tickmark::voice {
-namespace {
-// Nearest integer as int64_t (llround gives long long, which the
-// std::min/max calls here would not mix with int64_t).
-int64_t Round(double v) { return static_cast<int64_t>(std::llround(v)); }
-}  // namespace
 
 std::string InputLabel(const VoiceEvent& e, std::optional<int64_t> recognised_ns) {
   std::string s = "voice:" + e.phrase->text + " onset=" + OnsetMethodName(e.onset.method);

@@ -4,12 +4,9 @@
 #include <cmath>
 #include <vector>
 
+#include "clients/voice/sample_clock.h"
+
 namespace tickmark::voice {
-namespace {
-// Nearest integer as int64_t (llround gives long long, which the
-// std::min/max calls here would not mix with int64_t).
-int64_t Round(double v) { return static_cast<int64_t>(std::llround(v)); }
-}  // namespace
 namespace {
 
 double Percentile(std::vector<double> v, double p) {

@@ -8,11 +8,6 @@
 #include "server/core/clock_model.h"
 
 namespace tickmark::voice {
-namespace {
-// Nearest integer as int64_t (llround gives long long, which the
-// std::min/max calls here would not mix with int64_t).
-int64_t Round(double v) { return static_cast<int64_t>(std::llround(v)); }
-}  // namespace
 
 SampleClock::SampleClock(double nominal_rate, Options options)
     : nominal_period_ns_(1e9 / nominal_rate), options_(options) {}

@@ -23,6 +23,7 @@
 #ifndef TICKMARK_CLIENTS_VOICE_SAMPLE_CLOCK_H_
 #define TICKMARK_CLIENTS_VOICE_SAMPLE_CLOCK_H_
 
+#include <cmath>
 #include <cstdint>
 #include <deque>
 #include <optional>
@@ -30,6 +31,10 @@
 #include <utility>
 
 namespace tickmark::voice {
+
+// Nearest integer as int64_t, for sample counts (llround gives long long,
+// which std::min/max would not mix with int64_t).
+inline int64_t Round(double v) { return static_cast<int64_t>(std::llround(v)); }
 
 class SampleClock {
  public:

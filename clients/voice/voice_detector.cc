@@ -6,11 +6,6 @@
 
 namespace tickmark::voice {
 namespace {
-// Nearest integer as int64_t (llround gives long long, which the
-// std::min/max calls here would not mix with int64_t).
-int64_t Round(double v) { return static_cast<int64_t>(std::llround(v)); }
-}  // namespace
-namespace {
 
 constexpr int64_t kBlock = kModelSampleRate / 20;  // 50 ms
 constexpr size_t kQuietHistory = 200;              // 10 s of blocks

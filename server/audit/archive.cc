@@ -9,11 +9,6 @@
 namespace tickmark::audit {
 namespace {
 
-struct DbClose {
-  void operator()(sqlite3* db) const { sqlite3_close(db); }
-};
-using Db = std::unique_ptr<sqlite3, DbClose>;
-
 absl::Status Copy(const std::string& ledger_path, const std::string& session_id,
                   const std::string& out) {
   sqlite3* raw = nullptr;

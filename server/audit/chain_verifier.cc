@@ -17,11 +17,6 @@ namespace {
 
 using tickmark::v1::Record;
 
-struct DbClose {
-  void operator()(sqlite3* db) const { sqlite3_close(db); }
-};
-using Db = std::unique_ptr<sqlite3, DbClose>;
-
 absl::StatusOr<Db> OpenReadOnly(const std::string& path) {
   std::error_code ec;
   if (!std::filesystem::is_regular_file(path, ec)) {

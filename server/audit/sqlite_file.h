@@ -5,6 +5,7 @@
 
 #include <sqlite3.h>
 
+#include <memory>
 #include <string>
 #include <string_view>
 
@@ -12,6 +13,12 @@
 #include "server/base/strings.h"
 
 namespace tickmark::audit {
+
+// An open SQLite connection, closed when it goes.
+struct DbClose {
+  void operator()(sqlite3* db) const { sqlite3_close(db); }
+};
+using Db = std::unique_ptr<sqlite3, DbClose>;
 
 // One prepared statement; not thread-safe.
 class Query {

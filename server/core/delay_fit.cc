@@ -11,17 +11,17 @@
 #include "server/core/ex_gaussian.h"
 #include "server/core/gamma_fit.h"
 #include "server/core/internal/boost_policy.h"
+#include "server/core/internal/normal.h"
 
 namespace tickmark {
 namespace {
 
-using BoostPolicy = internal::NoThrowPolicy;
-
-constexpr double kLogSqrt2Pi = 0.91893853320467274178;  // ln sqrt(2 pi)
+using FitPolicy = internal::NoThrowPolicy;
+using internal::kLogSqrt2Pi;
 constexpr double kInf = std::numeric_limits<double>::infinity();
 constexpr double kMinExGaussianSigma = 1e-3;  // seconds
 
-bool Usable(std::span<const double> x, size_t min_size) {
+bool UsableDelays(std::span<const double> x, size_t min_size) {
   if (x.size() < min_size) return false;
   for (double v : x) {
     // The bound keeps every delay convertible to a Duration.
@@ -110,7 +110,7 @@ double Mean(std::span<const double> x) {
 double GammaLogLikelihood(std::span<const double> seconds, double shape, double scale_seconds,
                           double shift_seconds) {
   // Boost rather than std::lgamma, which writes the global signgam.
-  const double norm = boost::math::lgamma(shape, BoostPolicy()) + shape * std::log(scale_seconds);
+  const double norm = boost::math::lgamma(shape, FitPolicy()) + shape * std::log(scale_seconds);
   double sum = 0;
   for (double x : seconds) {
     const double y = x - shift_seconds;
@@ -138,7 +138,7 @@ double ExGaussianLogLikelihood(std::span<const double> seconds, double mu, doubl
 }
 
 std::optional<ShiftedGammaFit> FitShiftedGamma(std::span<const double> seconds) {
-  if (!Usable(seconds, 3)) return std::nullopt;
+  if (!UsableDelays(seconds, 3)) return std::nullopt;
   std::vector<double> sorted(seconds.begin(), seconds.end());
   std::sort(sorted.begin(), sorted.end());
   const double gap = std::max(1e-3, 0.5 * (sorted[1] - sorted[0]));
@@ -188,7 +188,7 @@ std::optional<ShiftedGammaFit> FitShiftedGamma(std::span<const double> seconds) 
 }
 
 std::optional<LognormalFit> FitLognormal(std::span<const double> seconds) {
-  if (!Usable(seconds, 2)) return std::nullopt;
+  if (!UsableDelays(seconds, 2)) return std::nullopt;
   double mu = 0;
   for (double x : seconds) mu += std::log(x);
   mu /= static_cast<double>(seconds.size());
@@ -200,7 +200,7 @@ std::optional<LognormalFit> FitLognormal(std::span<const double> seconds) {
 }
 
 std::optional<ExGaussianFit> FitExGaussian(std::span<const double> seconds) {
-  if (!Usable(seconds, 3)) return std::nullopt;
+  if (!UsableDelays(seconds, 3)) return std::nullopt;
   const double n = static_cast<double>(seconds.size());
   const double mean = Mean(seconds);
   double m2 = 0, m3 = 0;
@@ -268,8 +268,8 @@ double LognormalMixtureLogLikelihood(std::span<const double> seconds,
 double LognormalMixtureCdf(double seconds, const LognormalMixtureFit& f) {
   if (!(seconds > 0)) return 0.0;
   const double y = std::log(seconds);
-  auto phi = [](double z) { return 0.5 * std::erfc(-z * 0.70710678118654752440); };
-  return f.weight * phi((y - f.mu1) / f.sigma1) + (1 - f.weight) * phi((y - f.mu2) / f.sigma2);
+  return f.weight * internal::NormalCdf((y - f.mu1) / f.sigma1) +
+         (1 - f.weight) * internal::NormalCdf((y - f.mu2) / f.sigma2);
 }
 
 std::optional<DelayKernel> LognormalMixtureKernel(const LognormalMixtureFit& fit,
@@ -301,7 +301,7 @@ std::optional<DelayKernel> LognormalMixtureKernel(const LognormalMixtureFit& fit
 }
 
 std::optional<LognormalMixtureFit> FitLognormalMixture(std::span<const double> seconds) {
-  if (!Usable(seconds, 5)) return std::nullopt;
+  if (!UsableDelays(seconds, 5)) return std::nullopt;
   std::vector<double> y;
   for (double x : seconds) y.push_back(std::log(x));
   std::sort(y.begin(), y.end());
@@ -502,7 +502,7 @@ std::optional<DelayFitReport> FitDelays(std::span<const double> seconds,
     return std::nullopt;
   };
   if (seconds.size() < 3) return fail("fewer than 3 delays");
-  if (!Usable(seconds, 3))
+  if (!UsableDelays(seconds, 3))
     return fail("a delay is not finite, <= 0 or > 86400 s, or all are equal");
   DelayFitReport report;
   report.answers = seconds.size();

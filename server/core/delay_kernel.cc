@@ -17,7 +17,7 @@
 namespace tickmark {
 namespace {
 
-using BoostPolicy = internal::FastNoThrowPolicy;
+using KernelPolicy = internal::FastNoThrowPolicy;
 
 bool Fail(std::string* error, std::string message) {
   if (error != nullptr) *error = std::move(message);
@@ -239,7 +239,7 @@ bool DelayKernel::Finish(std::string* error) {
       if (!std::isfinite(scale_s_) || scale_s_ <= 0) {
         return Fail(error, "gamma scale must be finite and > 0");
       }
-      double x = boost::math::gamma_p_inv(shape_, q_, BoostPolicy());
+      double x = boost::math::gamma_p_inv(shape_, q_, KernelPolicy());
       std::optional<Duration> width = BoundedSeconds(scale_s_ * x);
       if (!width || shift_ + *width > kMaxHorizon) {
         return Fail(error, "gamma horizon not finite or > 86400 s");
@@ -266,7 +266,7 @@ bool DelayKernel::Finish(std::string* error) {
         return Fail(error, "lognormal sigma must be finite and > 0");
       }
       std::optional<Duration> width = BoundedSeconds(boost::math::quantile(
-          boost::math::lognormal_distribution<double, BoostPolicy>(mu_, sigma_), q_));
+          boost::math::lognormal_distribution<double, KernelPolicy>(mu_, sigma_), q_));
       if (!width || shift_ + *width > kMaxHorizon) {
         return Fail(error, "lognormal horizon not finite or > 86400 s");
       }
@@ -357,7 +357,7 @@ double DelayKernel::Cdf(Duration d) const {
     case Kind::kGamma: {
       if (d <= shift_) return 0.0;
       double p = boost::math::gamma_p(shape_, (d - shift_).seconds() / scale_s_,
-                                      BoostPolicy());
+                                      KernelPolicy());
       return std::isfinite(p) ? p : 1.0;
     }
     case Kind::kExponential:
@@ -377,7 +377,7 @@ double DelayKernel::Cdf(Duration d) const {
     case Kind::kLognormal: {
       if (d <= shift_) return 0.0;
       return boost::math::cdf(
-          boost::math::lognormal_distribution<double, BoostPolicy>(mu_, sigma_),
+          boost::math::lognormal_distribution<double, KernelPolicy>(mu_, sigma_),
           (d - shift_).seconds());
     }
     case Kind::kExGaussian: {
@@ -405,7 +405,7 @@ Duration DelayKernel::Quantile(double p) const {
       return a_ + Duration::Nanos(static_cast<int64_t>(
                       std::llround(p * static_cast<double>((b_ - a_).nanos()))));
     case Kind::kGamma: {
-      double x = boost::math::gamma_p_inv(shape_, p, BoostPolicy());
+      double x = boost::math::gamma_p_inv(shape_, p, KernelPolicy());
       if (!std::isfinite(x)) return Duration::Max();
       return shift_ + Duration::FromSeconds(std::min(scale_s_ * x, 1e9));
     }
@@ -428,7 +428,7 @@ Duration DelayKernel::Quantile(double p) const {
       if (p <= 0) return shift_;
       if (p >= 1) return Duration::Max();
       double x = boost::math::quantile(
-          boost::math::lognormal_distribution<double, BoostPolicy>(mu_, sigma_), p);
+          boost::math::lognormal_distribution<double, KernelPolicy>(mu_, sigma_), p);
       if (!std::isfinite(x)) return Duration::Max();
       return shift_ + Duration::FromSeconds(std::min(x, 1e9));
     }

@@ -3,16 +3,17 @@
 #include <cmath>
 #include <limits>
 
+#include "server/core/internal/normal.h"
+
 namespace tickmark {
 namespace {
 
-constexpr double kInvSqrt2 = 0.70710678118654752440;
-constexpr double kLogSqrt2Pi = 0.91893853320467274178;  // ln sqrt(2 pi)
+using internal::kLogSqrt2Pi;
 // Below this, Phi(t) is taken through the Mills ratio instead of erfc, whose
 // result underflows long before the product with the exponential does.
 constexpr double kTailStart = -5.0;
 
-double Phi(double t) { return 0.5 * std::erfc(-t * kInvSqrt2); }
+double Phi(double t) { return internal::NormalCdf(t); }
 
 // Phi(t) / phi(t) for t <= kTailStart by Laplace's continued fraction
 // 1/(s + 1/(s + 2/(s + 3/(s + ...)))), s = -t, evaluated bottom up; at

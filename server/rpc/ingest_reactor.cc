@@ -36,14 +36,6 @@ constexpr Duration kRefusalPause = Duration::Millis(10);
 // again this much later (the old ticker's fixed period).
 constexpr Duration kRetryTick = Duration::Millis(10);
 
-v1::Ack ErrorAck(uint64_t cseq, const absl::Status& s) {
-  v1::Ack ack;
-  ack.set_client_sequence(cseq);
-  ack.set_code(static_cast<int32_t>(s.code()));
-  ack.set_message(std::string(s.message()));
-  return ack;
-}
-
 // An ack for a record the ledger could not store for lack of space: the
 // client should keep the message and send it again later (see OnAck).
 void RetryableIfStoreFull(v1::Ack* ack) {

@@ -44,15 +44,15 @@ bool SessionRuntime::open() const {
   return open_;
 }
 
-namespace {
-
-Ack ErrorAck(uint64_t cseq, const absl::Status& s) {
+Ack ErrorAck(uint64_t client_sequence, const absl::Status& s) {
   Ack ack;
-  ack.set_client_sequence(cseq);
+  ack.set_client_sequence(client_sequence);
   ack.set_code(static_cast<int32_t>(s.code()));
   ack.set_message(std::string(s.message()));
   return ack;
 }
+
+namespace {
 
 Ack DuplicateAck(uint64_t cseq, uint64_t sequence) {
   Ack ack;

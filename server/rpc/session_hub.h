@@ -55,6 +55,9 @@ struct Limits {
   Duration max_step_length = Duration::Seconds(3600);
 };
 
+// The ack refusing a client's message: the status's code and message.
+v1::Ack ErrorAck(uint64_t client_sequence, const absl::Status& s);
+
 // A live stream the session can end (session closed, token revoked).
 class StreamHandle {
  public:
