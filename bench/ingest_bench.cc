@@ -106,8 +106,14 @@ Result RawSqlite(const std::string& dir, int per_txn, double seconds) {
                           "client_id, client_seq, body, hash) VALUES (?, ?, 'feedback', ?, ?, ?, "
                           "?, ?)",
                           -1, &journal, nullptr) == SQLITE_OK &&
-       sqlite3_prepare_v2(db, "INSERT INTO feedback VALUES (?,?,?,?,?,?,?,?,?,?,?,?)", -1, &typed,
-                          nullptr) == SQLITE_OK;
+       sqlite3_prepare_v2(db,
+                          "INSERT INTO feedback (session_id, seq, client_id, client_seq, trainer, "
+                          "value, input, event_source_ns, arrival_session_ns, event_session_ns, "
+                          "uncertainty_ns, late) VALUES (?,?,?,?,?,?,?,?,?,?,?,?)",
+                          -1, &typed, nullptr) == SQLITE_OK;
+  // Columns named: later migrations add columns with defaults (a positional
+  // insert broke silently when one did and the baseline read 0 rows/s).
+  if (!ok) std::fprintf(stderr, "ingest_bench: raw baseline: %s\n", sqlite3_errmsg(db));
   const std::string body = SampleBody("s-bench", 1);
   const std::string hash(32, '\x5a');
   uint64_t seq = 0;
