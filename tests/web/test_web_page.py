@@ -603,8 +603,12 @@ def test_live_view_resumes_after_its_last_record(web, browser, links):
     wait_for("the marker written while cut", lambda: "after the cut" in text_of(d, "markers"))
     # Every record up to the page's last once: what it received equals what
     # the ledger holds of the kinds it follows.
-    last = int(text_of(d, "c-seq"))
-    received = int(text_of(d, "c-records"))
+    # Both read in one script: the page draws them in the same frame, and the
+    # session keeps writing, so two separate reads could straddle a frame
+    # (on a loaded machine hundreds of records apart).
+    last, received = (int(v) for v in d.execute_script(
+        "return [document.getElementById('c-seq').textContent,"
+        " document.getElementById('c-records').textContent];"))
     with web.db() as db:
         held = db.execute(
             f"SELECT COUNT(*) FROM record WHERE session_id = ? AND seq <= ? AND kind IN "
