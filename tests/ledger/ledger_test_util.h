@@ -101,6 +101,15 @@ inline void ExpectChainVerifies(Ledger* ledger, const std::string& session, uint
   EXPECT_EQ(ledger->CommittedSequence(session), expect_last);
 }
 
+// Appends, waits for the commit and expects it to succeed; the committed
+// records (what the ledger fixtures' AppendSync call).
+inline std::vector<v1::Record> AppendOk(Ledger* ledger, const std::string& session,
+                                        std::vector<v1::Record> records) {
+  Committed c = AppendAndWait(ledger, session, std::move(records));
+  EXPECT_TRUE(c.status.ok()) << c.status.message();
+  return c.records;
+}
+
 // Runs the sqlite3 command-line tool (Debian's sqlite3 package: the outside
 // reader of the ledger file) read-only on `db` with one SQL statement; its
 // stdout and stderr.
@@ -136,11 +145,8 @@ class SqliteLedgerTest : public ::testing::Test {
     ASSERT_TRUE(l.ok()) << l.status().message();
     ledger_ = std::move(*l);
   }
-  // Appends and waits for the commit; the committed records.
   std::vector<v1::Record> AppendSync(const std::string& session, std::vector<v1::Record> records) {
-    Committed c = AppendAndWait(ledger_.get(), session, std::move(records));
-    EXPECT_TRUE(c.status.ok()) << c.status.message();
-    return c.records;
+    return AppendOk(ledger_.get(), session, std::move(records));
   }
   std::string dir_, path_;
   std::unique_ptr<SqliteLedger> ledger_;
