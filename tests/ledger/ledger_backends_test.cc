@@ -29,6 +29,7 @@ namespace {
 
 namespace v1 = tickmark::v1;
 using testing::AppendAndWait;
+using testing::AppendOk;
 using testing::ExpectChainVerifies;
 using testing::FeedbackRecord;
 using testing::Session;
