@@ -187,6 +187,21 @@ class Follower:
         self.thread.join(5)
 
 
+def retry_unavailable(call, seconds=15):
+    """Calls `call` until it stops answering UNAVAILABLE, which tells the caller
+    to retry (docs/conventions.md): while a stalled owner still holds the
+    session's lease row, an instance that must take the lease answers so after
+    its lock timeout, until PostgreSQL ends the stalled transaction."""
+    deadline = time.monotonic() + seconds
+    while True:
+        try:
+            return call()
+        except grpc.RpcError as e:
+            if e.code() != grpc.StatusCode.UNAVAILABLE or time.monotonic() > deadline:
+                raise
+            time.sleep(0.2)
+
+
 def owner_of(pg, db, session):
     return pg.psql(db, f"SELECT owner || ' ' || token FROM session_lease WHERE session_id = '{session}'").split()
 
@@ -290,7 +305,9 @@ def test_failover_and_fencing(pg, tmp_path):
             # takes the lease at once).
             other = next(i for i in inst if i.name not in (f_owner, owner))
             sid_admin = next(a for s, a, _ in sessions if s == fenced_sid)
-            taker = Agent(other.address, token=other.token(fenced_sid, sid_admin, "agent", "taker"),
+            taker_token = retry_unavailable(
+                lambda: other.token(fenced_sid, sid_admin, "agent", "taker"))
+            taker = Agent(other.address, token=taker_token,
                           client_id=f"taker:{fenced_sid}", send_realtime=False, connect_timeout=20)
             clients.append(taker)
             taker.step("take")

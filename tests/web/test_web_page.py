@@ -524,10 +524,11 @@ def test_live_view_shows_the_session(web, browser, shared):
                         metadata=web.md(web.admin_token))
     wait_for("the marker", lambda: "block 2" in text_of(d, "markers"))
     wait_for("credit from feedback to steps", lambda: int(text_of(d, "c-credit")) > 0)
-    rows = wait_for("the clients table", lambda: len(d.find_elements(
-        "css selector", "#clients tbody tr")) >= 2 and d.find_elements("css selector",
-                                                                        "#clients tbody tr"))
-    table = "\n".join(r.text for r in rows)
+    # The page redraws the table as records arrive, so its rows are read in one
+    # script, inside the wait (a row element held across calls can go stale).
+    rows = wait_for("the clients table", lambda: (lambda r: len(r) >= 2 and r)(d.execute_script(
+        "return Array.from(document.querySelectorAll('#clients tbody tr'), r => r.innerText)")))
+    table = "\n".join(rows)
     assert shared["trainer_client"] in table and "web" in table and "rover" in table, table
     assert len(d.find_elements("css selector", "#feed li")) > 0
     for width, height, mobile, name in ((1280, 900, False, "web-live-desktop.png"),
