@@ -11,6 +11,10 @@
 // the typed tables read back with the sqlite3 CLI (the PostgreSQL schema
 // keeps typed tables only where the ledger's reads need them; the rest is the
 // generic journal).
+//
+// Built a second time as ledger_contract_sqlite_test with
+// TICKMARK_LEDGER_SQLITE_ONLY: the SQLite half alone, without libpq, for the
+// sanitizer smoke of ./run test.
 #include <gtest/gtest.h>
 #include <sqlite3.h>
 
@@ -19,10 +23,14 @@
 #include <mutex>
 #include <thread>
 
+#ifndef TICKMARK_LEDGER_SQLITE_ONLY
 #include "server/ledger/postgres/postgres_ledger.h"
+#endif
 #include "server/ledger/sqlite/sqlite_ledger.h"
 #include "tests/ledger/ledger_test_util.h"
+#ifndef TICKMARK_LEDGER_SQLITE_ONLY
 #include "tests/support/pg_server.h"
+#endif
 
 namespace tickmark::ledger {
 namespace {
@@ -33,6 +41,7 @@ using testing::AppendOk;
 using testing::ExpectChainVerifies;
 using testing::FeedbackRecord;
 using testing::Session;
+#ifndef TICKMARK_LEDGER_SQLITE_ONLY
 using tickmark::testing::PgServer;
 
 // One PostgreSQL server for the whole binary, started on first use.
@@ -42,6 +51,7 @@ PgServer* Postgres(std::string* why_not) {
   *why_not = reason;
   return server.get();
 }
+#endif
 
 struct SqliteBackend {
   std::string dir, path;
@@ -72,6 +82,7 @@ struct SqliteBackend {
   }
 };
 
+#ifndef TICKMARK_LEDGER_SQLITE_ONLY
 struct PostgresBackend {
   PgServer* server = nullptr;
   std::string url, db;
@@ -96,6 +107,7 @@ struct PostgresBackend {
     ASSERT_TRUE(error.empty()) << error;
   }
 };
+#endif
 
 template <typename Backend>
 class LedgerBackendTest : public ::testing::Test {
@@ -118,7 +130,11 @@ class LedgerBackendTest : public ::testing::Test {
   std::unique_ptr<Ledger> ledger_;
 };
 
+#ifndef TICKMARK_LEDGER_SQLITE_ONLY
 using Backends = ::testing::Types<SqliteBackend, PostgresBackend>;
+#else
+using Backends = ::testing::Types<SqliteBackend>;
+#endif
 class BackendNames {
  public:
   template <typename T>
@@ -446,6 +462,7 @@ TYPED_TEST(LedgerBackendTest, DerivedAndTimeSetsLieOutsideTheChain) {
 }
 
 // ---------------------------------------------------------------- PostgreSQL only
+#ifndef TICKMARK_LEDGER_SQLITE_ONLY
 
 class PostgresLeaseTest : public ::testing::Test {
  protected:
@@ -529,6 +546,8 @@ TEST_F(PostgresLeaseTest, OneOwnerAtATimeAndAFencedOwnerCannotWrite) {
   ASSERT_TRUE(again.ok());
   EXPECT_FALSE(again->owned);
 }
+
+#endif  // TICKMARK_LEDGER_SQLITE_ONLY
 
 }  // namespace
 }  // namespace tickmark::ledger
