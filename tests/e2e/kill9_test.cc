@@ -32,6 +32,7 @@
 
 #include "gtest/gtest.h"
 #include "tests/e2e/live_stream.h"
+#include "tests/support/hex.h"
 
 extern char** environ;
 
@@ -254,13 +255,7 @@ void ExpectLedgerSound(LedgerReader& db, const std::string& session) {
   EXPECT_EQ(both[0][0], both[0][1]);
 }
 
-std::vector<char> FromHex(const std::string& hex) {
-  std::vector<char> out;
-  for (size_t i = 0; i + 1 < hex.size(); i += 2) {
-    out.push_back(static_cast<char>(std::stoi(hex.substr(i, 2), nullptr, 16)));
-  }
-  return out;
-}
+using tickmark::testing::FromHex;
 
 // The hash chain across the crash and restart (ledger.h, docs/architecture.md §6:
 // hash = SHA-256(previous hash || body), the first from 32 zero bytes),

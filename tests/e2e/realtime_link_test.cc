@@ -83,7 +83,7 @@ const char* PhaseName(Phase p) {
 }
 
 // One event as the client stamped it.
-struct Stamped {
+struct LinkStamp {
   Phase phase;
   int64_t source_ns;  // the simulated clock's reading
   int64_t mono_ns;    // CLOCK_MONOTONIC at that instant: the truth
@@ -135,8 +135,8 @@ TEST(RealtimeLinkTest, RealTimeBeatsTheAsymmetryBoundOnlyWhenBothSidesAreSynchro
   client::AgentClient agent;
   ASSERT_TRUE(agent.Connect(options(agent_token, "dock-rover-agent-1")).ok());
 
-  std::vector<Stamped> feedback_sent;
-  std::vector<Stamped> step_starts;  // step k runs from step_starts[k] to step_starts[k+1]
+  std::vector<LinkStamp> feedback_sent;
+  std::vector<LinkStamp> step_starts;  // step k runs from step_starts[k] to step_starts[k+1]
   uint64_t step_id = 0;
   for (const Phase phase :
        {Phase::kBothSynced, Phase::kClientUnsynced, Phase::kServerUnsynced, Phase::kClientOff}) {
@@ -194,7 +194,7 @@ TEST(RealtimeLinkTest, RealTimeBeatsTheAsymmetryBoundOnlyWhenBothSidesAreSynchro
   std::map<int64_t, const v1::Feedback*> by_source;
   for (const v1::Record& r : feedback) by_source[r.feedback().event_source_ns()] = &r.feedback();
   int64_t worst_realtime_error = 0;
-  for (const Stamped& s : feedback_sent) {
+  for (const LinkStamp& s : feedback_sent) {
     SCOPED_TRACE(::testing::Message() << PhaseName(s.phase) << ", source " << s.source_ns);
     ASSERT_TRUE(by_source.count(s.source_ns));
     const v1::Feedback& f = *by_source[s.source_ns];
@@ -250,8 +250,8 @@ TEST(RealtimeLinkTest, RealTimeBeatsTheAsymmetryBoundOnlyWhenBothSidesAreSynchro
     SCOPED_TRACE(::testing::Message() << "step " << id);
     ASSERT_TRUE(by_id.count(id));
     const v1::Step& st = *by_id[id];
-    const Stamped& begin = step_starts[id - 1];
-    const Stamped& end = step_starts[id];
+    const LinkStamp& begin = step_starts[id - 1];
+    const LinkStamp& end = step_starts[id];
     // A step's route is decided when it arrives, by the phase its end was
     // sent in (its reading is its start's, taken at sending).
     const bool realtime = end.phase == Phase::kBothSynced;

@@ -20,6 +20,7 @@
 #include "gtest/gtest.h"
 #include "server/rpc/server.h"
 #include "tests/e2e/live_stream.h"
+#include "tests/support/hex.h"
 
 extern char** environ;
 
@@ -29,7 +30,7 @@ namespace {
 using Rows = std::vector<std::vector<std::string>>;
 
 constexpr char kTitle[] = "dock rover, pilot 3";  // a comma, to exercise CSV quoting
-constexpr char kTrainer[] = "ava";
+constexpr char kCliTrainer[] = "ava";
 constexpr char kAgent[] = "dock-rover";
 constexpr char kTrainerClient[] = "keys:ava:1";
 constexpr char kAgentClient[] = "rover:1";
@@ -117,13 +118,7 @@ Rows Sqlite(const std::string& db, const std::string& sql) {
   return ParseCsv(out);
 }
 
-std::vector<char> FromHex(const std::string& hex) {
-  std::vector<char> out;
-  for (size_t i = 0; i + 1 < hex.size(); i += 2) {
-    out.push_back(static_cast<char>(std::stoi(hex.substr(i, 2), nullptr, 16)));
-  }
-  return out;
-}
+using tickmark::testing::FromHex;
 
 std::string Upper(std::string s) {
   for (char& c : s) c = static_cast<char>(std::toupper(static_cast<unsigned char>(c)));
@@ -168,7 +163,7 @@ TEST_F(LedgerSqliteCliTest, OutsideReaderSeesWhatWasSent) {
     auto admin = v1::SessionAdmin::NewStub(channel);
     SessionWithToken trainer;
     ASSERT_TRUE(CreateSessionWithToken(admin.get(), operator_token, kTitle, v1::ROLE_TRAINER,
-                                       kTrainer, &trainer)
+                                       kCliTrainer, &trainer)
                     .ok());
     session_id = trainer.session_id;
     std::string agent_token;
@@ -247,7 +242,7 @@ TEST_F(LedgerSqliteCliTest, OutsideReaderSeesWhatWasSent) {
     EXPECT_EQ(fb[i][0], session_id);
     EXPECT_EQ(fb[i][1], kTrainerClient);
     EXPECT_EQ(fb[i][2], std::to_string(i + 1));
-    EXPECT_EQ(fb[i][3], kTrainer);                // the pseudonym from the token
+    EXPECT_EQ(fb[i][3], kCliTrainer);                // the pseudonym from the token
     EXPECT_EQ(std::stod(fb[i][4]), values[i]);   // exact in binary: ±1, 0.5, -0.25
     EXPECT_EQ(fb[i][5], inputs[i]);
     EXPECT_EQ(fb[i][6], std::to_string(feedback_acks[i].sequence()));  // the acked sequence

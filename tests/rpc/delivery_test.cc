@@ -15,7 +15,7 @@
 namespace tickmark::testing {
 namespace {
 
-constexpr int64_t kMs = 1'000'000;
+constexpr int64_t kOneMs = 1'000'000;
 
 class DeliveryTest : public ::testing::Test {
  protected:
@@ -42,9 +42,9 @@ class DeliveryTest : public ::testing::Test {
       ADD_FAILURE() << "agent hello failed";
       return;
     }
-    const int64_t base = a->Now() - 3000 * kMs;
+    const int64_t base = a->Now() - 3000 * kOneMs;
     for (int i = 1; i <= n; ++i) {
-      const int64_t start = base + i * spacing_ms * kMs;
+      const int64_t start = base + i * spacing_ms * kOneMs;
       const auto id = static_cast<uint64_t>(i);
       auto m = StepMsg(id, id, start, 0, i % 5 == 0 ? "wait" : "north");
       m.mutable_step()->set_state(std::string(state_bytes, static_cast<char>('a' + i % 26)));
@@ -67,7 +67,7 @@ class DeliveryTest : public ::testing::Test {
       return;
     }
     for (int i = 1; i <= n; ++i) {
-      const int64_t age = i % 10 == 0 ? 30'000 * kMs : 300 * kMs;
+      const int64_t age = i % 10 == 0 ? 30'000 * kOneMs : 300 * kOneMs;
       auto m = Feedback(static_cast<uint64_t>(i), i % 3 ? 1.0 : -1.0, t->Now() - age);
       m.mutable_feedback()->set_input("key:" + std::string(40, 'g'));
       if (!t->Write(m)) break;

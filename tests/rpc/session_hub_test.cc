@@ -99,7 +99,7 @@ class AckBox {
   std::vector<v1::Ack> acks_;  // GUARDED_BY(mu_)
 };
 
-v1::Record Feedback(uint64_t cseq, int64_t event_ns) {
+v1::Record HubFeedback(uint64_t cseq, int64_t event_ns) {
   v1::Record r;
   r.set_written_session_ns(event_ns);
   v1::Feedback* f = r.mutable_feedback();
@@ -175,7 +175,7 @@ TEST(SessionHubTest, ACommitCallbackOnTheCallersThreadAnswersOnceWithoutDeadlock
   Fixture<FaultLedger> fx;
   fx.ledger().SetFault(Mode::kCallbackOnCaller, Mode::kCallbackOnCaller);
   AckBox box;
-  RunOrAbort([&] { fx.runtime().AppendClientRecord(Feedback(1, 10), box.Callback()); });
+  RunOrAbort([&] { fx.runtime().AppendClientRecord(HubFeedback(1, 10), box.Callback()); });
   ASSERT_TRUE(box.WaitFor(1));
   fx.ledger().Clear();
   ASSERT_TRUE(fx.ledger().Flush().ok());
@@ -190,12 +190,12 @@ TEST(SessionHubTest, AFailedKeyIsReleasedSoTheResendIsStoredOnce) {
     Fixture<FaultLedger> fx;
     fx.ledger().SetFault(mode, mode);
     AckBox failed;
-    RunOrAbort([&] { fx.runtime().AppendClientRecord(Feedback(1, 10), failed.Callback()); });
+    RunOrAbort([&] { fx.runtime().AppendClientRecord(HubFeedback(1, 10), failed.Callback()); });
     ASSERT_TRUE(failed.WaitFor(1));
     EXPECT_NE(failed.acks()[0].code(), 0);
     fx.ledger().Clear();
     AckBox stored;
-    fx.runtime().AppendClientRecord(Feedback(1, 10), stored.Callback());
+    fx.runtime().AppendClientRecord(HubFeedback(1, 10), stored.Callback());
     ASSERT_TRUE(stored.WaitFor(1));
     const v1::Ack ack = stored.acks()[0];
     EXPECT_EQ(ack.code(), 0) << ack.message();
@@ -209,8 +209,8 @@ TEST(SessionHubTest, AFailedKeyIsReleasedSoTheResendIsStoredOnce) {
 TEST(SessionHubTest, ACopySentWhileTheOriginalIsInFlightIsADuplicateWithTheCommittedSequence) {
   Fixture<HoldingLedger> fx;
   AckBox original, copy;
-  fx.runtime().AppendClientRecord(Feedback(7, 10), original.Callback());
-  fx.runtime().AppendClientRecord(Feedback(7, 10), copy.Callback());
+  fx.runtime().AppendClientRecord(HubFeedback(7, 10), original.Callback());
+  fx.runtime().AppendClientRecord(HubFeedback(7, 10), copy.Callback());
   ASSERT_TRUE(fx.ledger().Release(1));
   ASSERT_TRUE(original.WaitFor(1));
   ASSERT_TRUE(copy.WaitFor(1));
@@ -233,7 +233,7 @@ TEST(SessionHubTest, CopiesSentConcurrentlyAreStoredOnceAndAnsweredOnceEach) {
   AckBox box;
   std::vector<std::thread> senders;
   for (int i = 0; i < kCopies; ++i) {
-    senders.emplace_back([&] { fx.runtime().AppendClientRecord(Feedback(3, 10), box.Callback()); });
+    senders.emplace_back([&] { fx.runtime().AppendClientRecord(HubFeedback(3, 10), box.Callback()); });
   }
   for (auto& t : senders) t.join();
   ASSERT_TRUE(fx.ledger().Release(1));
@@ -256,9 +256,9 @@ TEST(SessionHubTest, CopiesSentConcurrentlyAreStoredOnceAndAnsweredOnceEach) {
 TEST(SessionHubTest, AResendOfACommittedRecordIsADuplicateWithItsSequence) {
   Fixture<FaultLedger> fx;
   AckBox first, again;
-  fx.runtime().AppendClientRecord(Feedback(2, 10), first.Callback());
+  fx.runtime().AppendClientRecord(HubFeedback(2, 10), first.Callback());
   ASSERT_TRUE(first.WaitFor(1));
-  fx.runtime().AppendClientRecord(Feedback(2, 10), again.Callback());
+  fx.runtime().AppendClientRecord(HubFeedback(2, 10), again.Callback());
   ASSERT_TRUE(again.WaitFor(1));
   EXPECT_FALSE(first.acks()[0].duplicate());
   EXPECT_TRUE(again.acks()[0].duplicate());
