@@ -17,7 +17,7 @@
 #include "server/core/clock_model.h"
 #include "server/core/time.h"
 
-namespace tickmark {
+namespace tickmark::clock_uncertainty_test {
 namespace {
 
 constexpr int64_t kOpenUtcNs = 1'700'000'000'000'000'000;  // the session's anchor
@@ -337,4 +337,4 @@ TEST(ClockUncertaintyTest, AClockBeyondThePriorIsCoveredFromTheFirstSecondWithFa
 }
 
 }  // namespace
-}  // namespace tickmark
+}  // namespace tickmark::clock_uncertainty_test

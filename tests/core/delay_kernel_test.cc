@@ -12,7 +12,7 @@
 #include <boost/math/distributions/uniform.hpp>
 #include <gtest/gtest.h>
 
-namespace tickmark {
+namespace tickmark::delay_kernel_test {
 namespace {
 
 Duration Secs(double s) { return Duration::FromSeconds(s); }
@@ -203,4 +203,4 @@ TEST(DelayKernelTest, CreditIsDifferenceOfCutCdf) {
 }
 
 }  // namespace
-}  // namespace tickmark
+}  // namespace tickmark::delay_kernel_test

@@ -20,7 +20,7 @@
 #include "server/core/clock_model.h"
 #include "server/core/time.h"
 
-namespace tickmark {
+namespace tickmark::retime_test {
 namespace {
 
 // The session's UTC anchor (November 2023).
@@ -332,4 +332,4 @@ TEST(RetimeTest, OptionsAreDescribedAsJson) {
 }
 
 }  // namespace
-}  // namespace tickmark
+}  // namespace tickmark::retime_test

@@ -8,7 +8,7 @@
 
 #include "gtest/gtest.h"
 
-namespace tickmark {
+namespace tickmark::time_test {
 namespace {
 
 constexpr int64_t kMin = std::numeric_limits<int64_t>::min();
@@ -91,4 +91,4 @@ TEST(SystemMonotonicTest, OneSharedInstanceThatMovesForward) {
 }
 
 }  // namespace
-}  // namespace tickmark
+}  // namespace tickmark::time_test
