@@ -30,9 +30,9 @@
 #include <string>
 #include <vector>
 
+#include "absl/strings/escaping.h"
 #include "gtest/gtest.h"
 #include "tests/e2e/live_stream.h"
-#include "tests/support/hex.h"
 
 extern char** environ;
 
@@ -255,8 +255,6 @@ void ExpectLedgerSound(LedgerReader& db, const std::string& session) {
   EXPECT_EQ(both[0][0], both[0][1]);
 }
 
-using tickmark::testing::FromHex;
-
 // The hash chain across the crash and restart (ledger.h, docs/architecture.md §6:
 // hash = SHA-256(previous hash || body), the first from 32 zero bytes),
 // recomputed with coreutils' sha256sum: one file per record under `scratch`.
@@ -268,16 +266,16 @@ void ExpectChainVerifies(LedgerReader& db, const std::string& session,
   std::filesystem::create_directories(scratch);
   const std::string list = scratch + "/files";
   std::ofstream names(list);
-  std::vector<char> prev(32, '\0');
+  std::string prev(32, '\0');
   for (size_t i = 0; i < chain.size(); ++i) {
     const std::string path = scratch + "/" + chain[i][0];
     std::ofstream out(path, std::ios::binary);
-    const std::vector<char> body = FromHex(chain[i][1]);
+    const std::string body = absl::HexStringToBytes(chain[i][1]);
     out.write(prev.data(), static_cast<std::streamsize>(prev.size()));
     out.write(body.data(), static_cast<std::streamsize>(body.size()));
     ASSERT_TRUE(out.good());
     names << path << '\0';
-    prev = FromHex(chain[i][2]);
+    prev = absl::HexStringToBytes(chain[i][2]);
   }
   names.close();
   // outside hash: coreutils sha256sum (FIPS 180-4 SHA-256)

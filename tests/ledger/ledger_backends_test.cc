@@ -23,12 +23,10 @@
 #include <mutex>
 #include <thread>
 
-#ifndef TICKMARK_LEDGER_SQLITE_ONLY
-#include "server/ledger/postgres/postgres_ledger.h"
-#endif
 #include "server/ledger/sqlite/sqlite_ledger.h"
 #include "tests/ledger/ledger_test_util.h"
 #ifndef TICKMARK_LEDGER_SQLITE_ONLY
+#include "server/ledger/postgres/postgres_ledger.h"
 #include "tests/support/pg_server.h"
 #endif
 
@@ -41,17 +39,6 @@ using testing::AppendOk;
 using testing::ExpectChainVerifies;
 using testing::FeedbackRecord;
 using testing::Session;
-#ifndef TICKMARK_LEDGER_SQLITE_ONLY
-using tickmark::testing::PgServer;
-
-// One PostgreSQL server for the whole binary, started on first use.
-PgServer* Postgres(std::string* why_not) {
-  static std::string reason;
-  static std::unique_ptr<PgServer> server = [] { return PgServer::Start(&reason); }();
-  *why_not = reason;
-  return server.get();
-}
-#endif
 
 struct SqliteBackend {
   std::string dir, path;
@@ -83,6 +70,16 @@ struct SqliteBackend {
 };
 
 #ifndef TICKMARK_LEDGER_SQLITE_ONLY
+using tickmark::testing::PgServer;
+
+// One PostgreSQL server for the whole binary, started on first use.
+PgServer* Postgres(std::string* why_not) {
+  static std::string reason;
+  static std::unique_ptr<PgServer> server = [] { return PgServer::Start(&reason); }();
+  *why_not = reason;
+  return server.get();
+}
+
 struct PostgresBackend {
   PgServer* server = nullptr;
   std::string url, db;

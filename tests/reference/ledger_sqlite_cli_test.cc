@@ -17,10 +17,10 @@
 #include <string>
 #include <vector>
 
+#include "absl/strings/escaping.h"
 #include "gtest/gtest.h"
 #include "server/rpc/server.h"
 #include "tests/e2e/live_stream.h"
-#include "tests/support/hex.h"
 
 extern char** environ;
 
@@ -117,8 +117,6 @@ Rows Sqlite(const std::string& db, const std::string& sql) {
   EXPECT_EQ(code, 0) << "sqlite3 failed on: " << sql;
   return ParseCsv(out);
 }
-
-using tickmark::testing::FromHex;
 
 std::string Upper(std::string s) {
   for (char& c : s) c = static_cast<char>(std::toupper(static_cast<unsigned char>(c)));
@@ -284,18 +282,18 @@ TEST_F(LedgerSqliteCliTest, OutsideReaderSeesWhatWasSent) {
                                 session_id + "' ORDER BY seq");
   ASSERT_GT(chain.size(), values.size() + actions.size());
   std::vector<std::string> args = {"sha256sum"};
-  std::vector<char> prev(32, '\0');
+  std::string prev(32, '\0');
   for (size_t i = 0; i < chain.size(); ++i) {
     ASSERT_EQ(chain[i].size(), 3u);
     ASSERT_EQ(chain[i][0], std::to_string(i + 1)) << "gap or disorder in the sequence";
     const std::string path = dir_ + "/chain-" + std::to_string(i + 1);
     std::ofstream out(path, std::ios::binary);
-    const std::vector<char> body = FromHex(chain[i][1]);
+    const std::string body = absl::HexStringToBytes(chain[i][1]);
     out.write(prev.data(), static_cast<std::streamsize>(prev.size()));
     out.write(body.data(), static_cast<std::streamsize>(body.size()));
     ASSERT_TRUE(out.good());
     args.push_back(path);
-    prev = FromHex(chain[i][2]);
+    prev = absl::HexStringToBytes(chain[i][2]);
   }
   int code = -1;
   // outside hash: coreutils sha256sum (FIPS 180-4 SHA-256)

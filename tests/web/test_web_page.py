@@ -526,9 +526,12 @@ def test_live_view_shows_the_session(web, browser, shared):
     wait_for("credit from feedback to steps", lambda: int(text_of(d, "c-credit")) > 0)
     # The page redraws the table as records arrive, so its rows are read in one
     # script, inside the wait (a row element held across calls can go stale).
-    rows = wait_for("the clients table", lambda: (lambda r: len(r) >= 2 and r)(d.execute_script(
-        "return Array.from(document.querySelectorAll('#clients tbody tr'), r => r.innerText)")))
-    table = "\n".join(rows)
+    def client_rows():
+        rows = d.execute_script(
+            "return Array.from(document.querySelectorAll('#clients tbody tr'), r => r.innerText)")
+        return rows if len(rows) >= 2 else None
+
+    table = "\n".join(wait_for("the clients table", client_rows))
     assert shared["trainer_client"] in table and "web" in table and "rover" in table, table
     assert len(d.find_elements("css selector", "#feed li")) > 0
     for width, height, mobile, name in ((1280, 900, False, "web-live-desktop.png"),
