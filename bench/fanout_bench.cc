@@ -17,6 +17,9 @@
 // a real one would after a while. Clients and server share the machine's two
 // cores. Bounded: about 6 × --seconds (default 2) plus setup. Prints; never
 // asserts.
+#include <grpcpp/generic/async_generic_service.h>
+#include <grpcpp/generic/generic_stub.h>
+#include <grpcpp/grpcpp.h>
 #include <time.h>
 
 #include <algorithm>
@@ -34,10 +37,6 @@
 #include <thread>
 #include <vector>
 
-#include <grpcpp/generic/async_generic_service.h>
-#include <grpcpp/generic/generic_stub.h>
-#include <grpcpp/grpcpp.h>
-
 #include "server/base/log.h"
 #include "server/rpc/server.h"
 #include "tests/e2e/live_stream.h"
@@ -50,12 +49,14 @@ using e2e::Clock;
 using e2e::MonotonicNanos;
 
 struct Config {
-  double seconds = 2.0;         // per phase
+  double seconds = 2.0;  // per phase
   int subscribers = 64;
   int steps_per_second = 200;
-  size_t state_bytes = 1024;    // per step, so a stalled stream fills its window
-  size_t buffer = 256;          // server's per-subscriber live buffer
+  size_t state_bytes = 1024;       // per step, so a stalled stream fills its window
+  size_t buffer = 256;             // server's per-subscriber live buffer
   int feedback_per_second = 1000;  // the target's rate (issue 16)
+  bool per_record = false;         // credit phase: Subscribe (one record a message)
+  bool credit_only = false;        // skip the step fan-out phase (for profiling)
 };
 
 double Percentile(std::vector<int64_t> v, double p) {
@@ -241,33 +242,45 @@ class Bench {
     req.add_kinds(v1::RECORD_KIND_FEEDBACK);
     req.add_kinds(v1::RECORD_KIND_CREDIT);
     auto ctx = e2e::AuthContext(observer, std::chrono::seconds(120));
-    auto reader = live_->Subscribe(ctx.get(), req);
     std::thread sub([&] {
       std::map<uint64_t, uint64_t> cseq_of;  // feedback sequence -> client sequence
-      v1::Record r;
       size_t done = 0;
-      while (done < static_cast<size_t>(total) && reader->Read(&r)) {
-        const int64_t now = MonotonicNanos();
+      auto take = [&](const v1::Record& r, int64_t now) {
         if (r.has_feedback()) {
           cseq_of[r.sequence()] = r.feedback().client_sequence();
         } else if (r.has_credit()) {
           auto it = cseq_of.find(r.credit().feedback_sequence());
-          if (it == cseq_of.end()) continue;  // not the first credit of it
-          if (it->second == 1) {
-            cseq_of.erase(it);
-            continue;
+          if (it == cseq_of.end()) return;  // not the first credit of it
+          if (it->second != 1) {
+            out.push_back(now - send_ns[it->second].load());
+            ++done;
           }
-          out.push_back(now - send_ns[it->second].load());
           cseq_of.erase(it);
-          ++done;
         }
+      };
+      if (config_.per_record) {
+        auto reader = live_->Subscribe(ctx.get(), req);
+        v1::Record r;
+        while (done < static_cast<size_t>(total) && reader->Read(&r)) take(r, MonotonicNanos());
+        ctx->TryCancel();
+        reader->Finish();
+      } else {
+        auto reader = live_->SubscribeBatches(ctx.get(), req);
+        v1::RecordBatch b;
+        while (done < static_cast<size_t>(total) && reader->Read(&b)) {
+          const int64_t now = MonotonicNanos();
+          for (const v1::Record& r : b.records()) take(r, now);
+        }
+        ctx->TryCancel();
+        reader->Finish();
       }
     });
     std::vector<std::atomic<int64_t>> ack_ns(static_cast<size_t>(total + 2));
     e2e::TrainerStream trainer(
         channel_,
         [&ack_ns](const v1::Ack& a) {
-          if (a.client_sequence() < ack_ns.size()) ack_ns[a.client_sequence()].store(MonotonicNanos());
+          if (a.client_sequence() < ack_ns.size())
+            ack_ns[a.client_sequence()].store(MonotonicNanos());
         },
         std::chrono::seconds(120));
     if (!trainer.Hello(trainer_token, "ava-pad", Clock::now() + std::chrono::seconds(10))) {
@@ -304,7 +317,6 @@ class Bench {
     }
     ctx->TryCancel();
     sub.join();
-    reader->Finish();
     trainer.Finish();
     for (size_t i = 2; i < ack_ns.size(); ++i) {
       if (ack_ns[i].load() != 0) acks->push_back(ack_ns[i].load() - send_ns[i].load());
@@ -355,8 +367,8 @@ std::vector<int64_t> PingPong(double seconds) {
   builder.RegisterCallbackGenericService(&echo);
   std::unique_ptr<grpc::Server> server = builder.BuildAndStart();
   if (!server) return out;
-  auto channel = grpc::CreateChannel("127.0.0.1:" + std::to_string(port),
-                                     grpc::InsecureChannelCredentials());
+  auto channel =
+      grpc::CreateChannel("127.0.0.1:" + std::to_string(port), grpc::InsecureChannelCredentials());
   grpc::GenericStub stub(channel);
   grpc::CompletionQueue cq;
   grpc::ClientContext ctx;
@@ -408,14 +420,22 @@ int Main(int argc, char** argv) {
       config.buffer = static_cast<size_t>(std::atol(argv[i] + 9));
     } else if (std::strncmp(argv[i], "--feedback-rate=", 16) == 0) {
       config.feedback_per_second = std::clamp(std::atoi(argv[i] + 16), 1, 5000);
+    } else if (std::strcmp(argv[i], "--credit-only") == 0) {
+      config.credit_only = true;
+    } else if (std::strcmp(argv[i], "--per-record") == 0) {
+      config.per_record = true;
     } else if (std::strcmp(argv[i], "--smoke") == 0) {
       smoke = true;  // what ./run test runs: every phase, briefly; figures mean nothing
     } else {
       std::printf(
-          "fanout_bench [--seconds=S] [--buffer=N] [--feedback-rate=R] [--smoke]\n"
+          "fanout_bench [--seconds=S] [--buffer=N] [--feedback-rate=R] [--per-record]\n"
+          "             [--credit-only] [--smoke]\n"
           "  Step fan-out to 64 subscribers (one stalled or none) and feedback -> first\n"
           "  CreditUpdate at R feedback/s (default 1000) against a bare gRPC ping-pong in the\n"
-          "  same run. Prints targets and met / NOT met; asserts nothing.\n");
+          "  same run. The credit subscriber uses SubscribeBatches, as the libraries do;\n"
+          "  --per-record makes it use Subscribe (one record a message) instead;\n"
+          "  --credit-only skips the step fan-out (to profile the credit path alone).\n"
+          "  Prints targets and met / NOT met; asserts nothing.\n");
       return std::strcmp(argv[i], "--help") == 0 ? 0 : 2;
     }
   }
@@ -450,36 +470,40 @@ int Main(int argc, char** argv) {
                                      grpc::InsecureChannelCredentials());
   Bench bench(channel, operator_token, config);
 
-  std::printf("fanout_bench: in-process tickmarkd on loopback, %d subscribers, %d steps/s of %zu "
-              "state bytes, %.1f s per phase, per-subscriber buffer %zu records\n\n",
-              config.subscribers, config.steps_per_second, config.state_bytes, config.seconds,
-              config.buffer);
+  std::printf(
+      "fanout_bench: in-process tickmarkd on loopback, %d subscribers, %d steps/s of %zu "
+      "state bytes, %.1f s per phase, per-subscriber buffer %zu records\n\n",
+      config.subscribers, config.steps_per_second, config.state_bytes, config.seconds,
+      config.buffer);
   // A, B, A, B: slow drifts of the shared machine fall on both alike.
   std::vector<int64_t> none_ns, stalled_ns;
-  for (int round = 0; round < 2; ++round) {
+  for (int round = 0; round < (config.credit_only ? 0 : 2); ++round) {
     for (bool stall : {false, true}) {
       std::vector<int64_t> v = bench.StepDelivery(stall);
       auto& into = stall ? stalled_ns : none_ns;
       into.insert(into.end(), v.begin(), v.end());
     }
   }
-  const Stats none = Summarise(none_ns);
-  const Stats stalled = Summarise(stalled_ns);
-  std::printf("step delivery latency, subscribers 1..%d (agent send -> subscriber receipt):\n",
-              config.subscribers - 1);
-  PrintRow("A: no subscriber stalled", none);
-  PrintRow("B: subscriber 0 stalled (never reads)", stalled);
-  const double fan_ratio = none.p99_us > 0 ? stalled.p99_us / none.p99_us : 0;
-  std::printf("  p99 B / A = %.2f   target <= 1.5: %s\n\n", fan_ratio,
-              fan_ratio <= 1.5 ? "met" : "NOT met");
+  if (!config.credit_only) {
+    const Stats none = Summarise(none_ns);
+    const Stats stalled = Summarise(stalled_ns);
+    std::printf("step delivery latency, subscribers 1..%d (agent send -> subscriber receipt):\n",
+                config.subscribers - 1);
+    PrintRow("A: no subscriber stalled", none);
+    PrintRow("B: subscriber 0 stalled (never reads)", stalled);
+    const double fan_ratio = none.p99_us > 0 ? stalled.p99_us / none.p99_us : 0;
+    std::printf("  p99 B / A = %.2f   target <= 1.5: %s\n\n", fan_ratio,
+                fan_ratio <= 1.5 ? "met" : "NOT met");
+  }
 
   std::vector<int64_t> acks;
   const Stats credit = Summarise(bench.CreditLatency(&acks));
   const Stats ping = Summarise(PingPong(config.seconds));
   std::printf(
-      "trainer -> subscriber credit update at %d feedback/s vs bare gRPC bidi ping-pong "
-      "(same run):\n",
-      config.feedback_per_second);
+      "trainer -> subscriber credit update at %d feedback/s (%s) vs bare gRPC bidi "
+      "ping-pong (same run):\n",
+      config.feedback_per_second,
+      config.per_record ? "Subscribe, one record a message" : "SubscribeBatches");
   PrintRow("feedback send -> first CreditUpdate received", credit);
   PrintRow("  (its ack to the trainer: one ledger commit)", Summarise(acks));
   PrintRow("bare bidi ping-pong round trip", ping);

@@ -28,8 +28,8 @@ absl::StatusOr<std::unique_ptr<Agent>> Agent::Connect(const Options& options) {
   client::StreamOptions so;
   so.target = options.server;
   so.token = token;
-  so.client_id = options.client_id.empty() ? client::DefaultClientId("agent", "cpp")
-                                           : options.client_id;
+  so.client_id =
+      options.client_id.empty() ? client::DefaultClientId("agent", "cpp") : options.client_id;
   so.source = {v1::SOURCE_KIND_SCRIPT, options.description, "tickmark-agent-cpp 0.1"};
   so.credentials = creds->credentials;
   so.clock = agent->clock_;
@@ -61,9 +61,8 @@ absl::StatusOr<std::unique_ptr<Agent>> Agent::Connect(const Options& options) {
     std::unique_lock<std::mutex> lock(first->mu);
     if (!first->cv.wait_for(lock, options.connect_timeout, [&] { return first->settled; })) {
       first->settled = true;  // later state changes are the stream's business
-      return absl::DeadlineExceededError(
-          Cat("no welcome from tickmarkd at ", options.server, " within ",
-              options.connect_timeout.count(), " ms"));
+      return absl::DeadlineExceededError(Cat("no welcome from tickmarkd at ", options.server,
+                                             " within ", options.connect_timeout.count(), " ms"));
     }
     st = first->status;
   }
@@ -134,6 +133,7 @@ void Subscription::Close() {
 void Subscription::Run() {
   auto stub = v1::Live::NewStub(channel_);
   std::chrono::milliseconds backoff(100);
+  bool batches = true;  // SubscribeBatches (contract 1.1) until the server says it has none
   while (true) {
     v1::SubscribeRequest req;
     grpc::ClientContext ctx;
@@ -150,22 +150,38 @@ void Subscription::Run() {
       ctx.AddMetadata(rpc::kSessionMetadata, session_id_);
       current_ = &ctx;
     }
-    auto reader = stub->Subscribe(&ctx, req);
-    v1::Record r;
-    while (reader->Read(&r)) {
+    // Takes one message's records (under the lock: Next sees them together).
+    auto keep = [this, &backoff](auto begin, auto end) {
       std::lock_guard<std::mutex> lock(mu_);
-      if (r.sequence() <= received_) continue;  // never twice across a resume
-      received_ = r.sequence();
-      queue_.push_back(std::move(r));
+      for (auto it = begin; it != end; ++it) {
+        if (it->sequence() <= received_) continue;  // never twice across a resume
+        received_ = it->sequence();
+        queue_.push_back(std::move(*it));
+      }
       cv_.notify_all();
       backoff = std::chrono::milliseconds(100);
+    };
+    grpc::Status s;
+    if (batches) {
+      auto reader = stub->SubscribeBatches(&ctx, req);
+      v1::RecordBatch b;
+      while (reader->Read(&b)) keep(b.mutable_records()->begin(), b.mutable_records()->end());
+      s = reader->Finish();
+    } else {
+      auto reader = stub->Subscribe(&ctx, req);
+      v1::Record r;
+      while (reader->Read(&r)) keep(&r, &r + 1);
+      s = reader->Finish();
     }
-    grpc::Status s = reader->Finish();
     std::unique_lock<std::mutex> lock(mu_);
     current_ = nullptr;
     if (closing_) break;
     if (s.ok()) {
       break;  // the server ended it: the end of a closed session, or follow=false
+    }
+    if (batches && s.error_code() == grpc::StatusCode::UNIMPLEMENTED) {
+      batches = false;  // a server older than contract 1.1: one record per message
+      continue;
     }
     // Broken or ended by the server: resume. CANCELLED here (Close was not
     // called, see above) comes from the other side — a server shutting down

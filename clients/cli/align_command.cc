@@ -101,20 +101,15 @@ absl::StatusOr<std::vector<Pulse>> ReadSessionPulses(Connection& conn, const std
   req.set_stop_at_end(true);
   req.add_kinds(v1::RECORD_KIND_SESSION_EVENT);
   req.add_kinds(v1::RECORD_KIND_SYNC_PULSE);
-  auto ctx = conn.StreamContext();
-  auto stub = conn.Live();
-  auto reader = stub.Subscribe(ctx.get(), req);
-  v1::Record r;
   int64_t opened_ns = 0;
   std::vector<Pulse> pulses;
-  while (reader->Read(&r)) {
+  grpc::Status s = conn.ReadRecords(req, [&](const v1::Record& r) {
     if (r.has_session_event() && r.session_event().event() == v1::SessionEvent::KIND_OPENED &&
         opened_ns == 0) {
       opened_ns = r.written_session_ns();
     }
     if (r.has_sync_pulse()) pulses.push_back(Pulse{r.sync_pulse(), r.sequence(), 0});
-  }
-  grpc::Status s = reader->Finish();
+  });
   if (!s.ok()) {
     *exit_code = conn.Fail(s);
     return absl::UnknownError("reported");

@@ -60,6 +60,26 @@ v1::SessionAdmin::Stub Connection::Admin() const { return v1::SessionAdmin::Stub
 
 v1::Live::Stub Connection::Live() const { return v1::Live::Stub(channel_); }
 
+grpc::Status Connection::ReadRecords(const v1::SubscribeRequest& req,
+                                     const std::function<void(const v1::Record&)>& each) const {
+  v1::Live::Stub stub(channel_);
+  {
+    auto ctx = StreamContext();
+    auto reader = stub.SubscribeBatches(ctx.get(), req);
+    v1::RecordBatch batch;
+    while (reader->Read(&batch)) {
+      for (const v1::Record& r : batch.records()) each(r);
+    }
+    grpc::Status s = reader->Finish();
+    if (s.error_code() != grpc::StatusCode::UNIMPLEMENTED) return s;
+  }
+  auto ctx = StreamContext();
+  auto reader = stub.Subscribe(ctx.get(), req);
+  v1::Record r;
+  while (reader->Read(&r)) each(r);
+  return reader->Finish();
+}
+
 int Connection::Fail(const grpc::Status& s) const {
   std::cerr << "tickmark: ";
   switch (s.error_code()) {

@@ -8,14 +8,14 @@
 #ifndef TICKMARK_CLIENTS_CLI_CONNECTION_H_
 #define TICKMARK_CLIENTS_CLI_CONNECTION_H_
 
+#include <grpcpp/grpcpp.h>
+
+#include <CLI/CLI.hpp>
 #include <chrono>
 #include <functional>
 #include <memory>
 #include <optional>
 #include <string>
-
-#include <CLI/CLI.hpp>
-#include <grpcpp/grpcpp.h>
 
 #include "clients/common/connection_flags.h"
 #include "server/base/flags.h"
@@ -52,6 +52,11 @@ class Connection {
   std::unique_ptr<grpc::ClientContext> StreamContext() const;
   tickmark::v1::SessionAdmin::Stub Admin() const;
   tickmark::v1::Live::Stub Live() const;
+  // Runs a subscription to its end, calling `each` for every record in
+  // order: SubscribeBatches (several records to a message), or Subscribe on a
+  // server older than contract 1.1 (it answers UNIMPLEMENTED).
+  grpc::Status ReadRecords(const tickmark::v1::SubscribeRequest& req,
+                           const std::function<void(const tickmark::v1::Record&)>& each) const;
 
   // The token the calls carry (for handing on to a helper program, as
   // `tickmark report` does through $TICKMARK_TOKEN).

@@ -131,17 +131,13 @@ int RunCsv(const CommonFlags& common, const ExportFlags& f) {
     req.set_from_sequence(1);
     req.set_stop_at_end(true);
     for (const CsvTable& t : CsvTables()) req.add_kinds(t.kind);
-    auto ctx = conn->StreamContext();
-    auto stub = conn->Live();
-    auto reader = stub.Subscribe(ctx.get(), req);
-    v1::Record r;
-    while (reader->Read(&r)) {
+    grpc::Status s = conn->ReadRecords(req, [&](const v1::Record& r) {
       const CsvTable* t = CsvTableFor(r);
-      if (t == nullptr) continue;
+      if (t == nullptr) return;
       files[t->file] << CsvRecordRow(*t, r);
       ++rows[t->file];
-    }
-    if (grpc::Status s = reader->Finish(); !s.ok()) return conn->Fail(s);
+    });
+    if (!s.ok()) return conn->Fail(s);
   }
   for (auto& [name, out] : files) {
     out.flush();
@@ -207,26 +203,20 @@ int RunExport(const CommonFlags& common, const ExportFlags& f) {
     }
   }
   std::ostream& out = f.out_path.empty() ? std::cout : file;
-  auto ctx = conn->StreamContext();
-  auto stub = conn->Live();
-  auto reader = stub.Subscribe(ctx.get(), req);
-  v1::Record r;
   uint64_t n = 0;
   auto last_report = std::chrono::steady_clock::now();
   // A progress line that rewrites itself only makes sense on a terminal.
   const bool progress = !f.out_path.empty() && isatty(2);
-  while (reader->Read(&r)) {
+  grpc::Status s = conn->ReadRecords(req, [&](const v1::Record& r) {
     out << RecordToJsonLine(r) << "\n";
     ++n;
     if (progress &&
         std::chrono::steady_clock::now() - last_report > std::chrono::milliseconds(200)) {
-      std::cerr << "\rexported " << n << " records (through #" << r.sequence() << ")"
-                << std::flush;
+      std::cerr << "\rexported " << n << " records (through #" << r.sequence() << ")" << std::flush;
       last_report = std::chrono::steady_clock::now();
     }
-  }
+  });
   if (progress) std::cerr << "\r";
-  grpc::Status s = reader->Finish();
   out.flush();
   if (!s.ok()) return conn->Fail(s);
   if (!f.out_path.empty()) std::cerr << "exported " << n << " records to " << f.out_path << "\n";
@@ -259,9 +249,10 @@ void AddExportCommand(CommandTable& table) {
   cmd->add_option("--out", f->out_path,
                   "jsonl: file to write (default: stdout); csv: folder to write (required)")
       ->type_name("PATH");
-  cmd->add_option("--kinds", f->kinds,
-                  "only these kinds, comma-separated: feedback, step, probe, clock_model, "
-                  "marker, client_event, session_event, credit, label, unmatched, kernel, sync_pulse");
+  cmd->add_option(
+      "--kinds", f->kinds,
+      "only these kinds, comma-separated: feedback, step, probe, clock_model, "
+      "marker, client_event, session_event, credit, label, unmatched, kernel, sync_pulse");
   cmd->add_option("--from", f->from, "first sequence number")->check(CLI::NonNegativeNumber);
   cmd->add_flag("--follow", f->follow, "keep following live records until interrupted");
 }

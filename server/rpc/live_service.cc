@@ -95,13 +95,28 @@ grpc::ServerBidiReactor<grpc::ByteBuffer, grpc::ByteBuffer>* LiveService::Act(
   return r.get();
 }
 
-grpc::ServerWriteReactor<tickmark::v1::Record>* LiveService::Subscribe(
-    grpc::CallbackServerContext* ctx, const tickmark::v1::SubscribeRequest* req) {
+namespace {
+
+template <class Reactor>
+Reactor* StartSubscriber(LiveService* service, grpc::CallbackServerContext* ctx,
+                         const tickmark::v1::SubscribeRequest& req) {
   std::string host = PeerHost(ctx->peer());
-  auto r = std::make_shared<SubscribeReactor>(this, ctx, *req);
-  const absl::Status admitted = Admit(this, host);  // before host is moved
+  auto r = std::make_shared<Reactor>(service, ctx, req);
+  const absl::Status admitted = Admit(service, host);  // before host is moved
   r->Start(admitted, std::move(host));
   return r.get();
+}
+
+}  // namespace
+
+grpc::ServerWriteReactor<tickmark::v1::Record>* LiveService::Subscribe(
+    grpc::CallbackServerContext* ctx, const tickmark::v1::SubscribeRequest* req) {
+  return StartSubscriber<SubscribeReactor>(this, ctx, *req);
+}
+
+grpc::ServerWriteReactor<tickmark::v1::RecordBatch>* LiveService::SubscribeBatches(
+    grpc::CallbackServerContext* ctx, const tickmark::v1::SubscribeRequest* req) {
+  return StartSubscriber<BatchSubscribeReactor>(this, ctx, *req);
 }
 
 }  // namespace tickmark::rpc

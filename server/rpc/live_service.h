@@ -5,7 +5,7 @@
 // rate limiter and the counters.
 //
 //   IngestReactor<Side>  (ingest_reactor.h)    Train and Act streams
-//   SubscribeReactor     (subscribe_reactor.h) Subscribe
+//   SubscribeReactor     (subscribe_reactor.h) Subscribe, SubscribeBatches
 //   Ticker               (ticker.h)            probes, hello timeouts
 //   validation.h                               pure field and time checks
 //
@@ -61,9 +61,9 @@ struct ProbePortHooks {
   std::function<uint64_t(uint64_t tag)> drops;
 };
 
-using LiveServiceBase =
-    tickmark::v1::Live::WithRawCallbackMethod_Train<tickmark::v1::Live::WithRawCallbackMethod_Act<
-        tickmark::v1::Live::WithCallbackMethod_Subscribe<tickmark::v1::Live::Service>>>;
+using LiveServiceBase = tickmark::v1::Live::WithRawCallbackMethod_Train<
+    tickmark::v1::Live::WithRawCallbackMethod_Act<tickmark::v1::Live::WithCallbackMethod_Subscribe<
+        tickmark::v1::Live::WithCallbackMethod_SubscribeBatches<tickmark::v1::Live::Service>>>>;
 
 class LiveService final : public LiveServiceBase {
  public:
@@ -155,6 +155,8 @@ class LiveService final : public LiveServiceBase {
       grpc::CallbackServerContext* ctx) override;
   grpc::ServerWriteReactor<tickmark::v1::Record>* Subscribe(
       grpc::CallbackServerContext* ctx, const tickmark::v1::SubscribeRequest* req) override;
+  grpc::ServerWriteReactor<tickmark::v1::RecordBatch>* SubscribeBatches(
+      grpc::CallbackServerContext* ctx, const tickmark::v1::SubscribeRequest* req) override;
 
   // Stops the ticker and the worker pool; call after the gRPC server has
   // shut down.
@@ -202,7 +204,7 @@ class LiveService final : public LiveServiceBase {
   RateLimiter rate_limiter_;
   TokenBucket probe_budget_;  // Options::probe_budget, shared by every stream
   StreamAdmission admission_;
-  WorkPool pool_;  // before ticker_: the ticker posts to strands that run here
+  WorkPool pool_;      // before ticker_: the ticker posts to strands that run here
   WorkPool fit_pool_;  // calibration fits (LiveService::Options::calibration_threads)
   Ticker ticker_;
 };

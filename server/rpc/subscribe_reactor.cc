@@ -8,21 +8,25 @@ namespace tickmark::rpc {
 
 namespace v1 = tickmark::v1;
 
-SubscribeReactor::SubscribeReactor(LiveService* service, grpc::CallbackServerContext* ctx,
-                                   const v1::SubscribeRequest& req)
+template <class Out>
+BasicSubscribeReactor<Out>::BasicSubscribeReactor(LiveService* service,
+                                                  grpc::CallbackServerContext* ctx,
+                                                  const v1::SubscribeRequest& req)
     : service_(service),
       ctx_(ctx),
       req_(req),
       strand_(std::make_shared<Strand>(&service->pool())) {}
 
-void SubscribeReactor::Post(std::function<void(SubscribeReactor&)> fn) {
-  std::shared_ptr<SubscribeReactor> self = weak_from_this().lock();
+template <class Out>
+void BasicSubscribeReactor<Out>::Post(std::function<void(BasicSubscribeReactor&)> fn) {
+  std::shared_ptr<BasicSubscribeReactor> self = this->weak_from_this().lock();
   if (!self) return;
   strand_->Post([self = std::move(self), fn = std::move(fn)] { fn(*self); });
 }
 
-void SubscribeReactor::Start(const absl::Status& admitted, std::string peer_host) {
-  self_ = shared_from_this();
+template <class Out>
+void BasicSubscribeReactor<Out>::Start(const absl::Status& admitted, std::string peer_host) {
+  self_ = this->shared_from_this();
   peer_host_ = std::move(peer_host);
   const auto& md = ctx_->client_metadata();
   if (auto it = md.find("authorization"); it != md.end()) {
@@ -31,15 +35,16 @@ void SubscribeReactor::Start(const absl::Status& admitted, std::string peer_host
   }
   if (!admitted.ok()) {
     finished_ = true;
-    Finish(ToGrpc(admitted));
+    this->Finish(ToGrpc(admitted));
     return;
   }
   admitted_ = true;
   ops::StreamOpened(ops::StreamRole::kSubscriber);
-  Post([](SubscribeReactor& r) { r.Begin(); });
+  Post([](BasicSubscribeReactor& r) { r.Begin(); });
 }
 
-void SubscribeReactor::Begin() {
+template <class Out>
+void BasicSubscribeReactor<Out>::Begin() {
   if (finished_) return;
   auto who = service_->auth()->Authenticate(metadata_secret_);
   if (!who.ok()) return FinishNow(ToGrpc(who.status()));
@@ -96,16 +101,18 @@ void SubscribeReactor::Begin() {
   Pump();
 }
 
-void SubscribeReactor::End(const grpc::Status& status) {
+template <class Out>
+void BasicSubscribeReactor<Out>::End(const grpc::Status& status) {
   if (status.error_code() == grpc::StatusCode::FAILED_PRECONDITION) {
     // Session closing: keep delivering until its "closed" record has gone
     // out (Pump), so a follower sees the whole session.
     return;
   }
-  Post([status](SubscribeReactor& r) { r.FinishNow(status); });
+  Post([status](BasicSubscribeReactor& r) { r.FinishNow(status); });
 }
 
-void SubscribeReactor::OnCommitted(const std::vector<v1::Record>& records) {
+template <class Out>
+void BasicSubscribeReactor<Out>::OnCommitted(const std::vector<v1::Record>& records) {
   {
     std::lock_guard<std::mutex> lock(inbox_mu_);
     if (inbox_.size() + records.size() <= service_->options().subscriber_buffer) {
@@ -120,30 +127,39 @@ void SubscribeReactor::OnCommitted(const std::vector<v1::Record>& records) {
   if (idle_.load() || remote_) PostPump();
 }
 
-void SubscribeReactor::PostPump() {
+template <class Out>
+void BasicSubscribeReactor<Out>::PostPump() {
   if (pump_posted_.exchange(true)) return;
-  Post([](SubscribeReactor& r) {
+  Post([](BasicSubscribeReactor& r) {
     r.pump_posted_.store(false);
     r.Pump();
   });
 }
 
-void SubscribeReactor::OnWriteDone(bool ok) {
-  Post([ok](SubscribeReactor& r) {
+template <class Out>
+void BasicSubscribeReactor<Out>::OnWriteDone(bool ok) {
+  Post([ok](BasicSubscribeReactor& r) {
     r.writing_ = false;
+    if constexpr (kBatches) {
+      r.current_.clear_records();
+      r.batch_bytes_ = 0;
+    }
     if (ok) r.Pump();
   });
 }
 
-void SubscribeReactor::OnCancel() {
-  Post([](SubscribeReactor& r) { r.FinishNow(grpc::Status::CANCELLED); });
+template <class Out>
+void BasicSubscribeReactor<Out>::OnCancel() {
+  Post([](BasicSubscribeReactor& r) { r.FinishNow(grpc::Status::CANCELLED); });
 }
 
-void SubscribeReactor::OnDone() {
-  Post([](SubscribeReactor& r) { r.Cleanup(); });
+template <class Out>
+void BasicSubscribeReactor<Out>::OnDone() {
+  Post([](BasicSubscribeReactor& r) { r.Cleanup(); });
 }
 
-void SubscribeReactor::Cleanup() {
+template <class Out>
+void BasicSubscribeReactor<Out>::Cleanup() {
   if (registered_ && remote_) {
     service_->hub()->Unwatch(req_.session_id(), this);
   } else if (registered_) {
@@ -159,7 +175,8 @@ void SubscribeReactor::Cleanup() {
 
 // Finds the record with sequence next_: from the replay chunk, the live
 // inbox, or a fresh ledger read.
-std::optional<v1::Record> SubscribeReactor::Next() {
+template <class Out>
+std::optional<v1::Record> BasicSubscribeReactor<Out>::Next() {
   while (!replay_.empty() && replay_.front().sequence() < next_) replay_.pop_front();
   if (!replay_.empty() && replay_.front().sequence() == next_) {
     v1::Record r = std::move(replay_.front());
@@ -192,13 +209,24 @@ std::optional<v1::Record> SubscribeReactor::Next() {
   return std::nullopt;
 }
 
-void SubscribeReactor::Pump() {
+template <class Out>
+void BasicSubscribeReactor<Out>::Pump() {
   if (writing_ || finished_ || (!runtime_ && !remote_)) return;
   while (true) {
-    if (next_ > stop_after_) return FinishNow(grpc::Status::OK);
+    if (next_ > stop_after_) {
+      if constexpr (kBatches) {
+        if (current_.records_size() > 0) return Write();
+      }
+      return FinishNow(grpc::Status::OK);
+    }
     std::optional<v1::Record> r = Next();
     if (finished_) return;
     if (!r) {
+      if constexpr (kBatches) {
+        // Nothing more ready: send what was gathered; the next Pump (after
+        // the write) waits for commits or ends the stream.
+        if (current_.records_size() > 0) return Write();
+      }
       if (stop_after_ != kFollow) {
         // Nothing more is coming.
         return FinishNow(grpc::Status::OK);
@@ -216,21 +244,37 @@ void SubscribeReactor::Pump() {
       stop_after_ = r->sequence();
     }
     if (!kinds_.empty() && !kinds_.count(ledger::RecordKindOf(*r))) continue;
-    current_ = std::move(*r);
-    writing_ = true;
-    StartWrite(&current_);
-    return;
+    if constexpr (kBatches) {
+      batch_bytes_ += r->ByteSizeLong();
+      *current_.add_records() = std::move(*r);
+      if (current_.records_size() >= kMaxBatchRecords || batch_bytes_ >= kMaxBatchBytes) {
+        return Write();
+      }
+    } else {
+      current_ = std::move(*r);
+      return Write();
+    }
   }
 }
 
-void SubscribeReactor::FinishNow(const grpc::Status& status) {
+template <class Out>
+void BasicSubscribeReactor<Out>::Write() {
+  writing_ = true;
+  this->StartWrite(&current_);
+}
+
+template <class Out>
+void BasicSubscribeReactor<Out>::FinishNow(const grpc::Status& status) {
   if (finished_) return;
   finished_ = true;
   if (status.error_code() == grpc::StatusCode::UNAVAILABLE) {
     const std::string owner = service_->hub()->OwnerHint(req_.session_id());
     if (!owner.empty()) ctx_->AddTrailingMetadata(kOwnerMetadata, owner);
   }
-  Finish(status);
+  this->Finish(status);
 }
+
+template class BasicSubscribeReactor<v1::Record>;
+template class BasicSubscribeReactor<v1::RecordBatch>;
 
 }  // namespace tickmark::rpc

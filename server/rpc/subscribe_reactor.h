@@ -1,8 +1,13 @@
-// One subscriber (Subscribe): replays the ledger from the requested
-// sequence, then follows live commits with no gap and no duplicate. It keeps
-// a bounded inbox of live records; when that overflows it falls back to
-// reading the ledger, so a stalled subscriber never slows ingest or other
-// subscribers.
+// One subscriber (Subscribe, SubscribeBatches): replays the ledger from the
+// requested sequence, then follows live commits with no gap and no
+// duplicate. It keeps a bounded inbox of live records; when that overflows it
+// falls back to reading the ledger, so a stalled subscriber never slows
+// ingest or other subscribers.
+//
+// Out is what one write carries: a Record (Subscribe) or a RecordBatch
+// (SubscribeBatches), which takes every record ready when the write starts
+// (kMaxBatchRecords, kMaxBatchBytes), so a burst costs one write and one
+// strand hop instead of one per record.
 //
 // Ownership: owns itself (self_) from Start until its OnDone work has run.
 //
@@ -24,6 +29,7 @@
 #include <optional>
 #include <set>
 #include <string>
+#include <type_traits>
 
 #include "server/rpc/live_service.h"
 #include "server/rpc/strand.h"
@@ -31,13 +37,23 @@
 
 namespace tickmark::rpc {
 
-class SubscribeReactor final : public grpc::ServerWriteReactor<tickmark::v1::Record>,
-                               public RecordSink,
-                               public StreamHandle,
-                               public std::enable_shared_from_this<SubscribeReactor> {
+template <class Out>
+class BasicSubscribeReactor final
+    : public grpc::ServerWriteReactor<Out>,
+      public RecordSink,
+      public StreamHandle,
+      public std::enable_shared_from_this<BasicSubscribeReactor<Out>> {
  public:
-  SubscribeReactor(LiveService* service, grpc::CallbackServerContext* ctx,
-                   const tickmark::v1::SubscribeRequest& req);
+  static constexpr bool kBatches = std::is_same_v<Out, tickmark::v1::RecordBatch>;
+  // A batch ends at this many records, or at the record that takes it past
+  // kMaxBatchBytes (a single larger record goes alone): well under gRPC's
+  // default 4 MiB receive limit, and a few hundred records already make the
+  // per-message cost small beside the records' own.
+  static constexpr int kMaxBatchRecords = 256;
+  static constexpr size_t kMaxBatchBytes = size_t{1} << 20;
+
+  BasicSubscribeReactor(LiveService* service, grpc::CallbackServerContext* ctx,
+                        const tickmark::v1::SubscribeRequest& req);
 
   // Call once, from LiveService, with the admission verdict.
   void Start(const absl::Status& admitted, std::string peer_host);
@@ -53,13 +69,14 @@ class SubscribeReactor final : public grpc::ServerWriteReactor<tickmark::v1::Rec
   void OnDone() override;
 
  private:
-  void Post(std::function<void(SubscribeReactor&)> fn);
+  void Post(std::function<void(BasicSubscribeReactor&)> fn);
   void PostPump();
 
   // Strand closures.
   void Begin();
   void Pump();
   std::optional<tickmark::v1::Record> Next();
+  void Write();
   void FinishNow(const grpc::Status& status);
   void Cleanup();
 
@@ -73,7 +90,7 @@ class SubscribeReactor final : public grpc::ServerWriteReactor<tickmark::v1::Rec
   grpc::CallbackServerContext* const ctx_;  // valid until OnDone; used only in Start
   const tickmark::v1::SubscribeRequest req_;
   std::shared_ptr<Strand> strand_;
-  std::shared_ptr<SubscribeReactor> self_;  // keeps this alive until Cleanup
+  std::shared_ptr<BasicSubscribeReactor> self_;  // keeps this alive until Cleanup
 
   // Set in Start, read-only afterwards.
   std::string metadata_secret_;
@@ -92,13 +109,17 @@ class SubscribeReactor final : public grpc::ServerWriteReactor<tickmark::v1::Rec
   bool writing_ = false;
   bool finished_ = false;
   std::deque<tickmark::v1::Record> replay_;  // a chunk read from the ledger
-  tickmark::v1::Record current_;             // the record being written
+  Out current_;                              // the record or batch being written
+  size_t batch_bytes_ = 0;                   // SubscribeBatches: current_'s records' size
 
   std::mutex inbox_mu_;                     // guards inbox_ only; never held while calling out
   std::deque<tickmark::v1::Record> inbox_;  // live records, bounded
   std::atomic<bool> idle_{false};           // caught up and waiting for commits
   std::atomic<bool> pump_posted_{false};    // a Pump from OnCommitted is queued
 };
+
+using SubscribeReactor = BasicSubscribeReactor<tickmark::v1::Record>;
+using BatchSubscribeReactor = BasicSubscribeReactor<tickmark::v1::RecordBatch>;
 
 }  // namespace tickmark::rpc
 
