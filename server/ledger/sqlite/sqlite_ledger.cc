@@ -23,8 +23,6 @@ namespace {
 using tickmark::v1::Record;
 using SteadyClock = std::chrono::steady_clock;
 
-// SQLite's default wal_autocheckpoint (SQLite docs: PRAGMA wal_autocheckpoint).
-constexpr int kAutoCheckpointPages = 1000;
 // Under synchronous=NORMAL and sustained load, the side file is rewritten at
 // least this often (WriteHeadsIfDue); common practice, no source: well under
 // a human's reaction time, and ~20 batches' worth of rewrites saved.
@@ -105,6 +103,9 @@ absl::StatusOr<std::unique_ptr<SqliteLedger>> SqliteLedger::Open(const Options& 
   auto reader = OpenDb(options.path, options.synchronous_full);
   if (!reader.ok()) return damaged(reader.status());
   ledger->reads_ = std::make_unique<ReadConnection>(*reader);
+  auto checkpoints = OpenDb(options.path, options.synchronous_full);
+  if (!checkpoints.ok()) return damaged(checkpoints.status());
+  ledger->checkpointer_ = std::make_unique<Checkpointer>(*checkpoints, *writer);
   if (absl::Status s = ledger->LoadHeads(); !s.ok()) return damaged(s);
   if (is_new) {
     if (replaces_old) {
@@ -212,6 +213,7 @@ void SqliteLedger::Close() {
   }
   work_cv_.notify_all();
   if (writer_.joinable()) writer_.join();
+  checkpointer_.reset();  // before the writer's connection, which makes the last checkpoint
   tables_.reset();  // finalise its statements before closing the connection
   cached_.clear();
   if (reads_) reads_->Close();
@@ -550,7 +552,7 @@ void SqliteLedger::EnterFailing(const absl::Status& cause) {
   // A checkpoint copies WAL pages into the main file and would spend the
   // space the reserve frees; the WAL holds every committed record safely
   // until writes work again.
-  sqlite3_wal_autocheckpoint(writer_db_, 0);
+  checkpointer_->Pause(true);
   sqlite3_db_config(writer_db_, SQLITE_DBCONFIG_NO_CKPT_ON_CLOSE, 1, nullptr);
   reads_->SetCheckpointOnClose(false);
   if (full) reserve_.Release();
@@ -587,7 +589,7 @@ void SqliteLedger::TryRecover() {
       !s.ok()) {
     return again(s);
   }
-  sqlite3_wal_autocheckpoint(writer_db_, kAutoCheckpointPages);
+  checkpointer_->Pause(false);
   sqlite3_db_config(writer_db_, SQLITE_DBCONFIG_NO_CKPT_ON_CLOSE, 0, nullptr);
   reads_->SetCheckpointOnClose(true);
   TM_LOG(kInfo) << "ledger writes resumed after " << failed_for.count()

@@ -49,6 +49,7 @@
 #include <vector>
 
 #include "server/ledger/ledger.h"
+#include "server/ledger/sqlite/checkpointer.h"
 #include "server/ledger/sqlite/heads_file.h"
 #include "server/ledger/sqlite/reserve_file.h"
 
@@ -194,6 +195,7 @@ class SqliteLedger final : public Ledger {
   const Options options_;
   sqlite3* writer_db_;                     // used only on the writer thread (and in Open/Close)
   std::unique_ptr<ReadConnection> reads_;  // the reading side (its own connection)
+  std::unique_ptr<Checkpointer> checkpointer_;  // WAL checkpoints off the writer thread
   HeadsFile heads_file_;                   // writer thread only (after Open)
   ReserveFile reserve_;                    // writer thread only (after Open)
   std::unique_ptr<TypedTables> tables_;    // writer thread only

@@ -1,0 +1,88 @@
+#include "server/ledger/sqlite/checkpointer.h"
+
+#include "server/base/log.h"
+
+namespace tickmark::ledger {
+
+Checkpointer::Checkpointer(sqlite3* db, sqlite3* writer) : db_(db), writer_(writer) {
+  // The writer's connection makes the checkpoint on a clean close; this one
+  // must not (it may close while writes are failing).
+  sqlite3_db_config(db_, SQLITE_DBCONFIG_NO_CKPT_ON_CLOSE, 1, nullptr);
+  // Replaces SQLite's automatic checkpoint, which is a WAL hook too (SQLite
+  // docs: sqlite3_wal_autocheckpoint).
+  sqlite3_wal_hook(writer_, &Checkpointer::Hook, this);
+  thread_ = std::thread([this] { Loop(); });
+}
+
+Checkpointer::~Checkpointer() {
+  TM_LOG(kDebug) << "ledger WAL checkpoints: " << background_runs_.load() << " in the background, "
+                 << inline_runs_.load() << " on the writer thread";
+  sqlite3_wal_hook(writer_, nullptr, nullptr);
+  {
+    std::lock_guard<std::mutex> lock(mu_);
+    stopping_ = true;
+  }
+  cv_.notify_all();
+  if (thread_.joinable()) thread_.join();
+  sqlite3_close(db_);
+}
+
+void Checkpointer::Pause(bool paused) { paused_.store(paused); }
+
+int Checkpointer::Hook(void* self, sqlite3* db, const char* /*name*/, int pages) {
+  static_cast<Checkpointer*>(self)->OnCommit(db, pages);
+  return SQLITE_OK;
+}
+
+void Checkpointer::OnCommit(sqlite3* writer, int pages) {
+  if (pages < last_pages_) generation_.fetch_add(1);  // the WAL started again
+  last_pages_ = pages;
+  if (paused_.load()) return;
+  const bool running = running_.load();
+  const int copied = backfilled_generation_.load() == generation_.load() ? backfilled_.load() : 0;
+  const int uncopied = pages - copied;
+  if (pages >= kBackstopPages ||
+      (pages >= kRestartPages && !running && uncopied <= kInlineFrames)) {
+    // SQLITE_BUSY (the thread started meanwhile) only means: not this time.
+    if (sqlite3_wal_checkpoint_v2(writer, nullptr, SQLITE_CHECKPOINT_PASSIVE, nullptr, nullptr) ==
+        SQLITE_OK) {
+      inline_runs_.fetch_add(1);
+    }
+    return;
+  }
+  if (running || uncopied < kBatchFrames) return;
+  {
+    std::lock_guard<std::mutex> lock(mu_);
+    if (requested_) return;
+    requested_ = true;
+  }
+  cv_.notify_one();
+}
+
+void Checkpointer::Loop() {
+  std::unique_lock<std::mutex> lock(mu_);
+  while (true) {
+    cv_.wait(lock, [this] { return requested_ || stopping_; });
+    if (stopping_) return;
+    requested_ = false;
+    running_.store(true);
+    lock.unlock();
+    int log = 0, copied = 0;
+    const uint64_t generation = generation_.load();
+    const int rc = paused_.load() ? SQLITE_OK
+                                  : sqlite3_wal_checkpoint_v2(
+                                        db_, nullptr, SQLITE_CHECKPOINT_PASSIVE, &log, &copied);
+    if (rc == SQLITE_OK) {
+      backfilled_.store(copied);
+      backfilled_generation_.store(generation);
+      background_runs_.fetch_add(1);
+    } else if (rc != SQLITE_BUSY) {
+      TM_LOG(kWarning) << "ledger WAL checkpoint failed: " << sqlite3_errmsg(db_)
+                       << " (the writer checkpoints inline past " << kBackstopPages << " pages)";
+    }
+    running_.store(false);
+    lock.lock();
+  }
+}
+
+}  // namespace tickmark::ledger
