@@ -35,14 +35,18 @@ int Checkpointer::Hook(void* self, sqlite3* db, const char* /*name*/, int pages)
 }
 
 void Checkpointer::OnCommit(sqlite3* writer, int pages) {
-  if (pages < last_pages_) generation_.fetch_add(1);  // the WAL started again
+  const bool restarted = pages < last_pages_;
+  if (restarted) generation_.fetch_add(1);                    // the WAL started again
+  const int added = restarted ? pages : pages - last_pages_;  // by this commit
   last_pages_ = pages;
   if (paused_.load()) return;
   const bool running = running_.load();
   const int copied = backfilled_generation_.load() == generation_.load() ? backfilled_.load() : 0;
   const int uncopied = pages - copied;
-  if (pages >= kBackstopPages ||
-      (pages >= kRestartPages && !running && uncopied <= kInlineFrames)) {
+  // Left over from before this commit: the copy the writer would make beyond
+  // re-reading what it just wrote.
+  const int behind = uncopied - added;
+  if (pages >= kBackstopPages || (pages >= kRestartPages && !running && behind <= kInlineFrames)) {
     // SQLITE_BUSY (the thread started meanwhile) only means: not this time.
     if (sqlite3_wal_checkpoint_v2(writer, nullptr, SQLITE_CHECKPOINT_PASSIVE, nullptr, nullptr) ==
         SQLITE_OK) {
@@ -50,7 +54,9 @@ void Checkpointer::OnCommit(sqlite3* writer, int pages) {
     }
     return;
   }
-  if (running || uncopied < kBatchFrames) return;
+  // Past kRestartPages the thread runs as often as it can, so that little
+  // is left for the writer.
+  if (running || uncopied < (pages >= kRestartPages ? kInlineFrames : kBatchFrames)) return;
   {
     std::lock_guard<std::mutex> lock(mu_);
     if (requested_) return;

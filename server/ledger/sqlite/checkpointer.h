@@ -40,11 +40,12 @@ class Checkpointer {
   // WAL size (pages, 16 MiB) past which the writer finishes a nearly copied
   // WAL itself ...
   static constexpr int kRestartPages = 4000;
-  // ... when at most this many frames are left to copy (a few ms at the
-  // ~15 µs a page measured here, plus the two syncs a checkpoint makes).
+  // ... when at most this many frames from before its latest commit are left
+  // to copy (a few ms at the ~15 µs a page measured here, plus the two syncs
+  // a checkpoint makes; its own commit's frames are still in the page cache).
   static constexpr int kInlineFrames = 256;
   // WAL size past which the writer checkpoints inline whatever is left.
-  static constexpr int kBackstopPages = 16000;
+  static constexpr int kBackstopPages = 8000;
 
   // Takes `db` (a connection of its own to the ledger, in WAL mode) and
   // starts the thread; installs the WAL hook on `writer`.
