@@ -181,8 +181,9 @@ class SqliteLedger final : public Ledger {
   // The failure state: entered on a storage error, left by TryRecover.
   // Rewrites the side file if commits changed the heads since it was last
   // written and it is due (every batch under synchronous=FULL; else when
-  // `idle` or kHeadsInterval after the last rewrite). Writer thread only.
-  void WriteHeadsIfDue(bool idle);
+  // `force`d (a flush, closing) or kHeadsInterval after the last rewrite).
+  // Writer thread only.
+  void WriteHeadsIfDue(bool force);
   // Runs one statement of fixed text (BEGIN, SAVEPOINT, RELEASE, COMMIT)
   // from a prepared statement kept for the connection. Writer thread only.
   absl::Status ExecCached(const char* sql);
