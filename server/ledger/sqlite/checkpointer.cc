@@ -1,10 +1,16 @@
 #include "server/ledger/sqlite/checkpointer.h"
 
+#include <algorithm>
+
 #include "server/base/log.h"
 
 namespace tickmark::ledger {
 
-Checkpointer::Checkpointer(sqlite3* db, sqlite3* writer) : db_(db), writer_(writer) {
+Checkpointer::Checkpointer(sqlite3* db, sqlite3* writer, int restart_pages, int backstop_pages)
+    : db_(db),
+      writer_(writer),
+      restart_pages_(restart_pages),
+      backstop_pages_(std::max(backstop_pages, restart_pages)) {
   // The writer's connection makes the checkpoint on a clean close; this one
   // must not (it may close while writes are failing).
   sqlite3_db_config(db_, SQLITE_DBCONFIG_NO_CKPT_ON_CLOSE, 1, nullptr);
@@ -46,7 +52,8 @@ void Checkpointer::OnCommit(sqlite3* writer, int pages) {
   // Left over from before this commit: the copy the writer would make beyond
   // re-reading what it just wrote.
   const int behind = uncopied - added;
-  if (pages >= kBackstopPages || (pages >= kRestartPages && !running && behind <= kInlineFrames)) {
+  if (pages >= backstop_pages_ ||
+      (pages >= restart_pages_ && !running && behind <= kInlineFrames)) {
     // SQLITE_BUSY (the thread started meanwhile) only means: not this time.
     if (sqlite3_wal_checkpoint_v2(writer, nullptr, SQLITE_CHECKPOINT_PASSIVE, nullptr, nullptr) ==
         SQLITE_OK) {
@@ -54,9 +61,9 @@ void Checkpointer::OnCommit(sqlite3* writer, int pages) {
     }
     return;
   }
-  // Past kRestartPages the thread runs as often as it can, so that little
+  // Past restart_pages_ the thread runs as often as it can, so that little
   // is left for the writer.
-  if (running || uncopied < (pages >= kRestartPages ? kInlineFrames : kBatchFrames)) return;
+  if (running || uncopied < (pages >= restart_pages_ ? kInlineFrames : kBatchFrames)) return;
   {
     std::lock_guard<std::mutex> lock(mu_);
     if (requested_) return;
@@ -84,7 +91,7 @@ void Checkpointer::Loop() {
       background_runs_.fetch_add(1);
     } else if (rc != SQLITE_BUSY) {
       TM_LOG(kWarning) << "ledger WAL checkpoint failed: " << sqlite3_errmsg(db_)
-                       << " (the writer checkpoints inline past " << kBackstopPages << " pages)";
+                       << " (the writer checkpoints inline past " << backstop_pages_ << " pages)";
     }
     running_.store(false);
     lock.lock();

@@ -10,10 +10,10 @@
 // A WAL starts again from its beginning only when a write transaction begins
 // with every frame copied (SQLite docs: "Write-Ahead Logging", checkpoint
 // starvation), which a checkpoint running beside a busy writer rarely leaves.
-// So once the WAL is past kRestartPages and this thread has copied all but a
+// So once the WAL is past its restart size and this thread has copied all but a
 // few frames, the writer copies those few itself (a short passive checkpoint
 // on its own connection) and its next transaction restarts the WAL. A writer
-// far ahead of this thread (kBackstopPages) checkpoints inline, as SQLite
+// far ahead of this thread (its backstop size) checkpoints inline, as SQLite
 // would, so the WAL stays bounded whatever the load.
 //
 // Thread safety: Hook runs on the writer thread; Pause from the writer
@@ -37,19 +37,23 @@ class Checkpointer {
   // copied (SQLite's default wal_autocheckpoint; SQLite docs: PRAGMA
   // wal_autocheckpoint).
   static constexpr int kBatchFrames = 1000;
-  // WAL size (pages, 16 MiB) past which the writer finishes a nearly copied
+  // WAL size (pages, 64 MiB) past which the writer finishes a nearly copied
   // WAL itself ...
-  static constexpr int kRestartPages = 4000;
+  static constexpr int kDefaultRestartPages = 16000;
   // ... when at most this many frames from before its latest commit are left
-  // to copy (a few ms at the ~15 µs a page measured here, plus the two syncs
-  // a checkpoint makes; its own commit's frames are still in the page cache).
+  // to copy (a few ms at the ~15 µs a page measured here; its own commit's
+  // frames are still in the page cache). That finish also syncs the frames
+  // written since the thread's last pass, so it is the writer's one stall
+  // left (10-30 ms on a busy machine): a large WAL makes it rare (about once
+  // a second at fanout_bench's 30k records/s, once in minutes at human rates).
   static constexpr int kInlineFrames = 256;
   // WAL size past which the writer checkpoints inline whatever is left.
-  static constexpr int kBackstopPages = 8000;
+  static constexpr int kDefaultBackstopPages = 32000;
 
   // Takes `db` (a connection of its own to the ledger, in WAL mode) and
   // starts the thread; installs the WAL hook on `writer`.
-  Checkpointer(sqlite3* db, sqlite3* writer);
+  Checkpointer(sqlite3* db, sqlite3* writer, int restart_pages = kDefaultRestartPages,
+               int backstop_pages = kDefaultBackstopPages);
   // Removes the hook, stops the thread and closes its connection without a
   // checkpoint (the writer's close makes the last one).
   ~Checkpointer();
@@ -65,6 +69,8 @@ class Checkpointer {
 
   sqlite3* const db_;      // this thread's connection
   sqlite3* const writer_;  // the writer's connection (for the hook only)
+  const int restart_pages_;
+  const int backstop_pages_;
   std::atomic<bool> paused_{false};
   std::atomic<bool> running_{false};  // a background checkpoint is in progress
   // Frames copied by the last background run, and the WAL generation it ran

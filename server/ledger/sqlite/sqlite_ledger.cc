@@ -106,7 +106,8 @@ absl::StatusOr<std::unique_ptr<SqliteLedger>> SqliteLedger::Open(const Options& 
   ledger->reads_ = std::make_unique<ReadConnection>(*reader);
   auto checkpoints = OpenDb(options.path, options.synchronous_full);
   if (!checkpoints.ok()) return damaged(checkpoints.status());
-  ledger->checkpointer_ = std::make_unique<Checkpointer>(*checkpoints, *writer);
+  ledger->checkpointer_ = std::make_unique<Checkpointer>(
+      *checkpoints, *writer, options.wal_restart_pages, options.wal_backstop_pages);
   if (absl::Status s = ledger->LoadHeads(); !s.ok()) return damaged(s);
   if (is_new) {
     if (replaces_old) {
@@ -215,7 +216,7 @@ void SqliteLedger::Close() {
   work_cv_.notify_all();
   if (writer_.joinable()) writer_.join();
   checkpointer_.reset();  // before the writer's connection, which makes the last checkpoint
-  tables_.reset();  // finalise its statements before closing the connection
+  tables_.reset();        // finalise its statements before closing the connection
   cached_.clear();
   if (reads_) reads_->Close();
   // A clean close checkpoints the WAL into the main file (unless writes are
@@ -603,10 +604,11 @@ void SqliteLedger::TryRecover() {
 
 absl::Status SqliteLedger::CreateSession(const SessionRow& row) {
   absl::Status s = RunSync([&row](sqlite3* db) {
-    Statement q(db,
-                "INSERT INTO session (id, title, study, state, opened_session_ns, utc_anchor_ns, "
-                "mono_anchor_ns, boot_id, pin_kernels, kind, condition, participants, chain_version) "
-                "VALUES (?, ?, ?, 'open', ?, ?, ?, ?, ?, ?, ?, ?, ?)");
+    Statement q(
+        db,
+        "INSERT INTO session (id, title, study, state, opened_session_ns, utc_anchor_ns, "
+        "mono_anchor_ns, boot_id, pin_kernels, kind, condition, participants, chain_version) "
+        "VALUES (?, ?, ?, 'open', ?, ?, ?, ?, ?, ?, ?, ?, ?)");
     auto participants = JsonStringArray(db, row.participants);
     if (!participants.ok()) return participants.status();
     return q.Bind(row.id)

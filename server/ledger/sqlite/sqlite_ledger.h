@@ -86,6 +86,10 @@ class SqliteLedger final : public Ledger {
     std::chrono::milliseconds retry_max{5'000};
     // Called on the writer thread on each change of WriteHealth().
     std::function<void(const absl::Status&)> on_write_health;
+    // WAL sizes (pages) for the Checkpointer: where the writer finishes a
+    // nearly copied WAL so it starts again, and where it checkpoints inline.
+    int wal_restart_pages = Checkpointer::kDefaultRestartPages;
+    int wal_backstop_pages = Checkpointer::kDefaultBackstopPages;
   };
 
   // Checks, opens (creating if allowed) and migrates the database, starts the
@@ -197,25 +201,25 @@ class SqliteLedger final : public Ledger {
   sqlite3* writer_db_;                     // used only on the writer thread (and in Open/Close)
   std::unique_ptr<ReadConnection> reads_;  // the reading side (its own connection)
   std::unique_ptr<Checkpointer> checkpointer_;  // WAL checkpoints off the writer thread
-  HeadsFile heads_file_;                   // writer thread only (after Open)
-  ReserveFile reserve_;                    // writer thread only (after Open)
-  std::unique_ptr<TypedTables> tables_;    // writer thread only
+  HeadsFile heads_file_;                        // writer thread only (after Open)
+  ReserveFile reserve_;                         // writer thread only (after Open)
+  std::unique_ptr<TypedTables> tables_;         // writer thread only
   std::map<std::string, std::unique_ptr<Statement>> cached_;  // writer thread only (ExecCached)
 
   std::mutex mu_;
-  std::condition_variable work_cv_;                   // signalled when queue_ grows or closing_
-  std::deque<Work> queue_;                            // GUARDED_BY(mu_)
-  SessionHeads assigned_;                             // GUARDED_BY(mu_): last sequence handed out
-  SessionHeads committed_;                            // GUARDED_BY(mu_): last sequence committed
+  std::condition_variable work_cv_;  // signalled when queue_ grows or closing_
+  std::deque<Work> queue_;           // GUARDED_BY(mu_)
+  SessionHeads assigned_;            // GUARDED_BY(mu_): last sequence handed out
+  SessionHeads committed_;           // GUARDED_BY(mu_): last sequence committed
   std::map<std::string, uint32_t, std::less<>> chain_versions_;  // GUARDED_BY(mu_): per session
-  bool closing_ = false;                              // GUARDED_BY(mu_)
-  absl::Status health_;                               // GUARDED_BY(mu_): WriteHealth()
-  std::chrono::steady_clock::time_point next_retry_;  // writer thread only, while failing
-  std::chrono::milliseconds backoff_{0};              // writer thread only, while failing
+  bool closing_ = false;                                         // GUARDED_BY(mu_)
+  absl::Status health_;                                          // GUARDED_BY(mu_): WriteHealth()
+  std::chrono::steady_clock::time_point next_retry_;     // writer thread only, while failing
+  std::chrono::milliseconds backoff_{0};                 // writer thread only, while failing
   std::chrono::steady_clock::time_point failing_since_;  // writer thread only
   bool heads_dirty_ = false;  // writer thread: committed_ changed since the side file was written
   std::chrono::steady_clock::time_point heads_written_at_;  // writer thread only
-  std::thread writer_;                                   // runs WriterLoop
+  std::thread writer_;                                      // runs WriterLoop
 };
 
 }  // namespace tickmark::ledger
