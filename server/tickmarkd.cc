@@ -107,9 +107,13 @@ void AddServerFlags(CLI::App& app, tickmark::rpc::ServerOptions& o, std::string&
   AddDuration(app, "--probe-min-interval-ms", &o.live.probing.min_interval, Duration::Millis, 1,
               3'600'000, "per client: never probe more often than this");
   app.add_option("--probe-budget", o.live.probe_budget,
-                 "probes per second for all clients together; past it only probes at the steady "
-                 "rate go (0: no limit)")
+                 "probes per second for all clients together; past it a client is probed less "
+                 "often, down to one probe per --probe-max-interval-ms (0: no limit)")
       ->check(tickmark::Between(0, 1e6));
+  AddDuration(app, "--probe-max-interval-ms", &o.live.probing.max_interval, Duration::Millis, 10,
+              3'600'000,
+              "per client: probe at least this often, whatever the budget (at least "
+              "--probe-interval-ms)");
   app.add_option("--drift-prior-ppm", o.live.clock.drift_prior_ppm,
                  "assumed bound on a client clock's rate error until its drift is measured "
                  "better (ppm)")
@@ -134,7 +138,9 @@ void AddServerFlags(CLI::App& app, tickmark::rpc::ServerOptions& o, std::string&
               31'536'000, "oldest event time accepted, in seconds before arrival");
   app.add_option_function<std::string>(
          "--default-kernel",
-         [&o](const std::string& v) { o.sessions.default_kernel = *tickmark::DelayKernel::Parse(v); },
+         [&o](const std::string& v) {
+           o.sessions.default_kernel = *tickmark::DelayKernel::Parse(v);
+         },
          "delay kernel of sessions that name none (uniform:MIN,MAX, gamma:SHAPE,SCALE[,SHIFT], "
          "exponential:RATE[,SHIFT]; seconds)")
       ->type_name("KERNEL")
@@ -217,9 +223,10 @@ int main(int argc, char** argv) {
       "times them on one session timeline and keeps everything in a ledger (SQLite, or a "
       "PostgreSQL database several instances share).",
       "tickmarkd");
-  tickmark::ConfigureApp(app, std::string("The operator token (for the tickmark CLI) is written to\n"
-                                          "DATA_DIR/operator.token on first start.\n\n") +
-                                  kSafety);
+  tickmark::ConfigureApp(app,
+                         std::string("The operator token (for the tickmark CLI) is written to\n"
+                                     "DATA_DIR/operator.token on first start.\n\n") +
+                             kSafety);
   tickmark::AddTomlConfig(app,
                           "TOML config file: keys are the long flag names (listen = "
                           "\"0.0.0.0:7461\"); flags given here win");

@@ -7,6 +7,7 @@ namespace tickmark {
 ProbeScheduler::ProbeScheduler(Options o) : options_(o) {
   options_.min_interval = std::max(options_.min_interval, Duration::Zero());
   options_.steady_interval = std::max(options_.steady_interval, options_.min_interval);
+  options_.max_interval = std::max(options_.max_interval, options_.steady_interval);
   options_.burst = std::max(options_.burst, 0);
 }
 
@@ -18,12 +19,17 @@ void ProbeScheduler::Restart(Duration at) {
 }
 
 bool ProbeScheduler::Admit(Duration at, const std::function<bool()>& take_token) {
-  const bool extra = any_sent_ && at < last_sent_ + options_.steady_interval;
-  // A steady probe takes a token too (if there is one), so the budget sees
-  // every probe, but it is never held back: the model needs it.
-  if (take_token() || !extra) return true;
-  due_ = last_sent_ + options_.steady_interval;
+  if (take_token() || !any_sent_) return true;
   pace_ = Pace::kSteady;
+  if (at < last_sent_ + options_.steady_interval) {  // an extra: to the steady slot
+    due_ = last_sent_ + options_.steady_interval;
+    return false;
+  }
+  // A steady probe with the budget spent: later, but the model needs one at
+  // least every max_interval.
+  const Duration latest = last_sent_ + options_.max_interval;
+  if (at >= latest) return true;
+  due_ = std::min(at + options_.steady_interval, latest);
   return false;
 }
 

@@ -12,11 +12,14 @@
 // stored), and at steady_interval otherwise; never closer than
 // min_interval (the per-client cap). A probe sooner than the steady rate is
 // an extra: Admit asks the caller's server-wide budget for it and, refused,
-// puts it off to the steady slot, so the server's total probe rate stays
-// within the budget plus the steady probes (which always go, taking a token
-// when there is one so that they count against the budget too). With
-// adaptive off: a burst of `burst` probes burst_interval apart, then
-// steady_interval.
+// puts it off to the steady slot. A steady probe takes a token too; refused
+// (more clients than the budget covers at the steady rate), it waits a
+// steady interval and asks again, but goes anyway once max_interval has
+// passed since the client's last probe. So the server's total probe rate
+// stays within the budget plus one probe per client per max_interval, and a
+// server with many clients probes each less often instead of spending its
+// cores on probes. With adaptive off: a burst of `burst` probes
+// burst_interval apart, then steady_interval.
 //
 // Pure logic: every time is a Duration since the stream began, given by the
 // caller. Not thread-safe; one per stream, owned by its reactor (or a
@@ -45,6 +48,9 @@ class ProbeScheduler {
     Duration target_scatter = Duration::Micros(500);  // loose above this offset scatter
     double target_drift_ppm = 10;                     // loose above this drift error bound
     Duration min_interval = Duration::Millis(50);     // per-client cap: never closer
+    // A steady probe refused a token waits, but never past this since the
+    // last probe (>= steady_interval).
+    Duration max_interval = Duration::Seconds(5);
   };
 
   // How the next probe was paced.
@@ -58,9 +64,11 @@ class ProbeScheduler {
   void Restart(Duration at);
 
   // A probe is due at `at` (at ≥ due()). True if it may go now. Every probe
-  // calls take_token() once (the server-wide budget); only an extra probe,
-  // one sooner than the steady rate allows, is refused when it returns
-  // false, and then due() moves to the steady slot.
+  // calls take_token() once (the server-wide budget). When it returns false
+  // an extra probe, one sooner than the steady rate allows, is refused and
+  // due() moves to the steady slot; a steady probe is refused too and due()
+  // moves a steady interval on, unless max_interval has passed since the
+  // last probe (then it goes). The first probe always goes.
   bool Admit(Duration at, const std::function<bool()>& take_token);
 
   // A probe went out at `at`; `model` is the client's model as it stands.

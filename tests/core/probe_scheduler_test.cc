@@ -5,6 +5,7 @@
 #include "server/core/probe_scheduler.h"
 
 #include <algorithm>
+#include <cstdio>
 #include <functional>
 #include <vector>
 
@@ -172,8 +173,9 @@ class SharedBudget {
 };
 
 // 50 streams start together, each wanting 20 probes/s, against a budget of
-// 200 probes/s: extras go only while tokens last, steady probes always go,
-// and the total stays within the budget plus the streams' steady rate.
+// 200 probes/s: extras go only while tokens last, every stream is probed at
+// least every max_interval (5 s), and the total stays within the budget plus
+// the streams' steady rate.
 TEST(ProbeSchedulerTest, AServerWideBudgetBoundsTheTotal) {
   constexpr int kStreams = 50;
   SharedBudget budget(200, 200);
@@ -188,9 +190,12 @@ TEST(ProbeSchedulerTest, AServerWideBudgetBoundsTheTotal) {
       if (now < s.due()) continue;
       if (!s.Admit(now, [&] { return budget.TryTake(); })) continue;
       s.Sent(now, Scattered());
-      // Per stream, never closer than the cap, never further than steady.
+      // Per stream, never closer than the cap, never further than max_interval.
       EXPECT_GE(now - last[static_cast<size_t>(i)], Duration::Millis(50));
       EXPECT_LE(now - last[static_cast<size_t>(i)], Duration::Seconds(10));
+      if (last[static_cast<size_t>(i)] >= Duration::Zero()) {
+        EXPECT_LE(now - last[static_cast<size_t>(i)], Duration::Seconds(5));
+      }
       last[static_cast<size_t>(i)] = now;
       ++per_second[static_cast<size_t>(now.nanos() / 1'000'000'000)];
     }
@@ -198,7 +203,7 @@ TEST(ProbeSchedulerTest, AServerWideBudgetBoundsTheTotal) {
   for (size_t second = 1; second < per_second.size(); ++second) {
     // 200 from the budget + at most one steady probe per stream.
     EXPECT_LE(per_second[second], 200 + kStreams) << "second " << second;
-    EXPECT_GE(per_second[second], kStreams - 1) << "second " << second;  // steady ones go
+    EXPECT_GE(per_second[second], kStreams / 5) << "second " << second;  // max_interval holds
   }
   // The first second may spend the saved-up burst as well.
   EXPECT_LE(per_second[0], 200 + 200 + kStreams);
@@ -215,10 +220,57 @@ TEST(ProbeSchedulerTest, ARefusedExtraWaitsForTheSteadySlot) {
   EXPECT_EQ(asked, 1);
   EXPECT_EQ(s.due(), Duration::Seconds(1));
   EXPECT_EQ(s.pace(), Pace::kSteady);
-  // At the steady slot the probe goes whatever the budget says (and takes a
-  // token if there is one).
-  EXPECT_TRUE(s.Admit(Duration::Seconds(1), [&] { return ++asked, false; }));
-  EXPECT_EQ(asked, 2);
+  // At the steady slot it asks again; refused, it waits a steady interval
+  // more, but goes once max_interval (5 s) has passed since the last probe.
+  EXPECT_FALSE(s.Admit(Duration::Seconds(1), [&] { return ++asked, false; }));
+  EXPECT_EQ(s.due(), Duration::Seconds(2));
+  EXPECT_FALSE(s.Admit(Duration::Millis(4500), [&] { return ++asked, false; }));
+  EXPECT_EQ(s.due(), Duration::Seconds(5));
+  EXPECT_TRUE(s.Admit(Duration::Seconds(5), [&] { return ++asked, false; }));
+  EXPECT_EQ(asked, 4);
+}
+
+// 2000 settled clients against a budget of 500 probes/s (the default): the
+// steady rate would be 2000 probes/s; each client is probed less often, never
+// less than once per max_interval, and the total comes down to the budget
+// plus what max_interval forces (2000 / 5 s = 400/s).
+TEST(ProbeSchedulerTest, MoreClientsThanTheBudgetCoversAreProbedLessOften) {
+  constexpr int kStreams = 2000;
+  SharedBudget budget(500, 500);
+  ProbeScheduler::Options o;
+  o.adaptive = false;
+  o.burst = 0;  // settled from the start: steady probes only
+  std::vector<ProbeScheduler> streams(kStreams, ProbeScheduler(o));
+  for (int i = 0; i < kStreams; ++i) {  // spread over the first second
+    streams[static_cast<size_t>(i)].Restart(Duration::Micros(500 * i));
+  }
+  std::vector<Duration> last(kStreams, -Duration::Seconds(100));
+  Duration longest;
+  int total = 0;
+  const Duration end = Duration::Seconds(30);
+  for (Duration now = Duration::Zero(); now < end; now += Duration::Millis(5)) {
+    budget.AdvanceTo(now);
+    for (int i = 0; i < kStreams; ++i) {
+      ProbeScheduler& s = streams[static_cast<size_t>(i)];
+      if (now < s.due()) continue;
+      if (!s.Admit(now, [&] { return budget.TryTake(); })) continue;
+      s.Sent(now, ClockEstimate{});
+      if (last[static_cast<size_t>(i)] >= Duration::Zero()) {
+        longest = std::max(longest, now - last[static_cast<size_t>(i)]);
+      }
+      last[static_cast<size_t>(i)] = now;
+      if (now >= Duration::Seconds(10)) ++total;
+    }
+  }
+  // Per client: at least every 5 s (to the simulation's 5 ms step).
+  EXPECT_LE(longest, Duration::Seconds(5) + Duration::Millis(5));
+  // Over the last 20 s: at most the budget plus the forced probes, far below
+  // the 2000/s the steady rate alone would make.
+  const double per_second = total / 20.0;
+  EXPECT_LE(per_second, 500 + kStreams / 5.0 + 50);
+  EXPECT_GE(per_second, kStreams / 5.0);
+  std::printf("2000 clients, budget 500/s: %.0f probes/s, longest gap %.2f s\n", per_second,
+              longest.seconds());
 }
 
 TEST(ProbeSchedulerTest, PaceNames) {
