@@ -10,6 +10,7 @@
 #include <atomic>
 #include <random>
 #include <set>
+#include <span>
 #include <thread>
 
 #include "server/rpc/subscribe_reactor.h"
@@ -112,47 +113,73 @@ bool IsClosed(const v1::Record& r) {
   return r.has_session_event() && r.session_event().event() == v1::SessionEvent::KIND_CLOSED;
 }
 
-TEST_F(DeliveryTest, KilledAndResumedAtRandomPointsGetsEverySequenceOnceInOrder) {
-  std::thread producer = Produce(/*steps=*/120, /*spacing_ms=*/50, /*state_bytes=*/256,
-                                 /*feedback=*/150);
-  std::mt19937 rng(20261202);  // seeded: the kill points repeat
-  std::uniform_int_distribution<int> records_before_kill(0, 40);
-  std::vector<uint64_t> received;
-  std::set<int> kinds_seen;
-  uint64_t next = 1;
+// The records one message of a subscription carries.
+std::span<const v1::Record> RecordsOf(const v1::Record& r) { return {&r, 1}; }
+const google::protobuf::RepeatedPtrField<v1::Record>& RecordsOf(const v1::RecordBatch& b) {
+  return b.records();
+}
+
+// What a subscriber killed and resumed again and again received.
+struct Resumed {
+  std::vector<uint64_t> sequences;
   int connections = 0;
   bool saw_closed = false;
+};
+
+// Subscribes from the last processed sequence + 1 again and again until the
+// session's "closed" record (at most 60 s). Each call is killed after a
+// seeded-random number of messages, 0 to max_messages (whatever was in
+// flight is lost to it); `each` sees every message read.
+template <class Message, class Open, class Each>
+Resumed KillAndResume(const std::string& session, TestServer& server, const std::string& token,
+                      uint32_t seed, int max_messages, Open open, Each each) {
+  std::mt19937 rng(seed);  // seeded: the kill points repeat
+  std::uniform_int_distribution<int> messages_before_kill(0, max_messages);
+  Resumed out;
+  uint64_t next = 1;
   const auto deadline = std::chrono::steady_clock::now() + std::chrono::seconds(60);
-  while (!saw_closed && std::chrono::steady_clock::now() < deadline) {
-    ++connections;
+  while (!out.saw_closed && std::chrono::steady_clock::now() < deadline) {
+    ++out.connections;
     v1::SubscribeRequest req;
-    req.set_session_id(session_);
+    req.set_session_id(session);
     req.set_from_sequence(next);
-    auto ctx = server_.Context(observer_token_);
-    auto reader = server_.live().Subscribe(ctx.get(), req);
-    const int budget = records_before_kill(rng);  // 0: killed before reading any
-    v1::Record r;
-    for (int i = 0; i < budget && reader->Read(&r); ++i) {
-      received.push_back(r.sequence());
-      kinds_seen.insert(r.body_case());
-      next = r.sequence() + 1;  // the last processed sequence + 1
-      if (IsClosed(r)) {
-        saw_closed = true;
-        break;
+    auto ctx = server.Context(token);
+    auto reader = open(ctx.get(), req);
+    const int budget = messages_before_kill(rng);  // 0: killed before reading any
+    Message m;
+    for (int i = 0; i < budget && !out.saw_closed && reader->Read(&m); ++i) {
+      each(m);
+      for (const v1::Record& r : RecordsOf(m)) {
+        out.sequences.push_back(r.sequence());
+        next = r.sequence() + 1;  // the last processed sequence + 1
+        if (IsClosed(r)) out.saw_closed = true;
       }
     }
-    ctx->TryCancel();  // killed: whatever was in flight is lost to it
-    while (reader->Read(&r)) {
+    ctx->TryCancel();
+    while (reader->Read(&m)) {
     }
     reader->Finish();
   }
+  return out;
+}
+
+TEST_F(DeliveryTest, KilledAndResumedAtRandomPointsGetsEverySequenceOnceInOrder) {
+  std::thread producer = Produce(/*steps=*/120, /*spacing_ms=*/50, /*state_bytes=*/256,
+                                 /*feedback=*/150);
+  std::set<int> kinds_seen;
+  const Resumed got = KillAndResume<v1::Record>(
+      session_, server_, observer_token_, 20261202, /*max_messages=*/40,
+      [this](grpc::ClientContext* ctx, const v1::SubscribeRequest& req) {
+        return server_.live().Subscribe(ctx, req);
+      },
+      [&](const v1::Record& r) { kinds_seen.insert(r.body_case()); });
   producer.join();
-  ASSERT_TRUE(saw_closed) << "the subscriber never reached the session's end";
-  ASSERT_FALSE(received.empty());
-  for (size_t i = 0; i < received.size(); ++i) {
-    ASSERT_EQ(received[i], i + 1) << "after " << connections << " connections";
+  ASSERT_TRUE(got.saw_closed) << "the subscriber never reached the session's end";
+  ASSERT_FALSE(got.sequences.empty());
+  for (size_t i = 0; i < got.sequences.size(); ++i) {
+    ASSERT_EQ(got.sequences[i], i + 1) << "after " << got.connections << " connections";
   }
-  EXPECT_GT(connections, 20);
+  EXPECT_GT(got.connections, 20);
   // Mixed kinds went through the resumes.
   for (int kind : {v1::Record::kStep, v1::Record::kFeedback, v1::Record::kProbe,
                    v1::Record::kClockModel, v1::Record::kCredit, v1::Record::kUnmatched}) {
@@ -198,44 +225,23 @@ TEST_F(DeliveryTest, AStalledSubscriberDelaysNeitherIngestNorAnother) {
 TEST_F(DeliveryTest, BatchesKilledAndResumedGetEverySequenceOnceInOrder) {
   std::thread producer = Produce(/*steps=*/120, /*spacing_ms=*/50, /*state_bytes=*/256,
                                  /*feedback=*/150);
-  std::mt19937 rng(20261203);
-  std::uniform_int_distribution<int> batches_before_kill(0, 6);
-  std::vector<uint64_t> received;
-  uint64_t next = 1;
-  int connections = 0;
   size_t largest = 0;
-  bool saw_closed = false;
-  const auto deadline = std::chrono::steady_clock::now() + std::chrono::seconds(60);
-  while (!saw_closed && std::chrono::steady_clock::now() < deadline) {
-    ++connections;
-    v1::SubscribeRequest req;
-    req.set_session_id(session_);
-    req.set_from_sequence(next);
-    auto ctx = server_.Context(observer_token_);
-    auto reader = server_.live().SubscribeBatches(ctx.get(), req);
-    const int budget = batches_before_kill(rng);
-    v1::RecordBatch b;
-    for (int i = 0; i < budget && !saw_closed && reader->Read(&b); ++i) {
-      ASSERT_GT(b.records_size(), 0) << "an empty batch";
-      ASSERT_LE(b.records_size(), rpc::BatchSubscribeReactor::kMaxBatchRecords);
-      largest = std::max(largest, static_cast<size_t>(b.records_size()));
-      for (const v1::Record& r : b.records()) {
-        received.push_back(r.sequence());
-        next = r.sequence() + 1;
-        if (IsClosed(r)) saw_closed = true;
-      }
-    }
-    ctx->TryCancel();
-    while (reader->Read(&b)) {
-    }
-    reader->Finish();
-  }
+  const Resumed got = KillAndResume<v1::RecordBatch>(
+      session_, server_, observer_token_, 20261203, /*max_messages=*/6,
+      [this](grpc::ClientContext* ctx, const v1::SubscribeRequest& req) {
+        return server_.live().SubscribeBatches(ctx, req);
+      },
+      [&](const v1::RecordBatch& b) {
+        EXPECT_GT(b.records_size(), 0) << "an empty batch";
+        EXPECT_LE(b.records_size(), rpc::BatchSubscribeReactor::kMaxBatchRecords);
+        largest = std::max(largest, static_cast<size_t>(b.records_size()));
+      });
   producer.join();
-  ASSERT_TRUE(saw_closed) << "the subscriber never reached the session's end";
-  for (size_t i = 0; i < received.size(); ++i) {
-    ASSERT_EQ(received[i], i + 1) << "after " << connections << " connections";
+  ASSERT_TRUE(got.saw_closed) << "the subscriber never reached the session's end";
+  for (size_t i = 0; i < got.sequences.size(); ++i) {
+    ASSERT_EQ(got.sequences[i], i + 1) << "after " << got.connections << " connections";
   }
-  EXPECT_GT(connections, 10);
+  EXPECT_GT(got.connections, 10);
   // Resumes replay from the ledger, and credit comes in bursts: batches of
   // more than one record must have happened.
   EXPECT_GT(largest, 1u);
