@@ -256,8 +256,10 @@ class TrainRelay final : public Relay, public std::enable_shared_from_this<Train
   std::unique_ptr<ClockSink> sink_;               // GUARDED_BY(mu_)
 };
 
-// One Subscribe call. Owns itself from Start until OnDone has run.
-class SubscribeCall final : public grpc::ClientReadReactor<v1::Record> {
+// One SubscribeBatches call on the server's own channel (so never an older
+// server): a burst of records (a feedback's credit over many steps) is one
+// message here. Owns itself from Start until OnDone has run.
+class SubscribeCall final : public grpc::ClientReadReactor<v1::RecordBatch> {
  public:
   using OnRecord = std::function<void(const v1::Record&)>;
   using OnEnd = std::function<void(const grpc::Status&)>;
@@ -271,7 +273,7 @@ class SubscribeCall final : public grpc::ClientReadReactor<v1::Record> {
     call->self_ = call;
     call->stub_ = v1::Live::NewStub(context.channel);
     call->ctx_.AddMetadata("authorization", "Bearer " + token);
-    call->stub_->async()->Subscribe(&call->ctx_, &call->request_, call.get());
+    call->stub_->async()->SubscribeBatches(&call->ctx_, &call->request_, call.get());
     call->StartRead(&call->in_);
     call->StartCall();
     return call;
@@ -281,7 +283,7 @@ class SubscribeCall final : public grpc::ClientReadReactor<v1::Record> {
 
   void OnReadDone(bool ok) override {
     if (!ok) return;  // OnDone follows with the status
-    on_record_(in_);
+    for (const v1::Record& r : in_.records()) on_record_(r);
     StartRead(&in_);
   }
 
@@ -307,7 +309,7 @@ class SubscribeCall final : public grpc::ClientReadReactor<v1::Record> {
   const OnEnd on_end_;
   std::unique_ptr<v1::Live::Stub> stub_;
   grpc::ClientContext ctx_;
-  v1::Record in_;
+  v1::RecordBatch in_;
   std::shared_ptr<SubscribeCall> self_;
 };
 

@@ -6,14 +6,14 @@
 //                          replies and calibration messages go up; welcome,
 //                          acks, probes and calibration results come down,
 //                          plus the server's clock model of the page.
-//   LiveRelay   /ws/live   a Subscribe stream (read-only), from the page's
+//   LiveRelay   /ws/live   a SubscribeBatches stream (read-only), from the page's
 //                          last sequence, plus the session's summary.
 //
 // So a page is timed, validated, rate limited, deduplicated and recorded by
 // exactly the code every other client meets; the bridge adds no rule of its
 // own beyond the size of a message and the bounded queue to the page.
 //
-// Never slows ingest: the relay only reads from the Subscribe stream as fast
+// Never slows ingest: the relay only reads from the subscription as fast
 // as gRPC gives records and hands each to the page's socket, whose queue is
 // bounded; a page that falls behind is dropped (it reconnects and resumes
 // from its last sequence), never waited for.
