@@ -82,7 +82,7 @@ void Checkpointer::Loop() {
     lock.unlock();
     int log = 0, copied = 0;
     const uint64_t generation = generation_.load();
-    const int rc = paused_.load() ? SQLITE_OK
+    const int rc = paused_.load() ? SQLITE_BUSY  // asked before the pause: nothing to do
                                   : sqlite3_wal_checkpoint_v2(
                                         db_, nullptr, SQLITE_CHECKPOINT_PASSIVE, &log, &copied);
     if (rc == SQLITE_OK) {

@@ -44,8 +44,9 @@ class Checkpointer {
   // to copy (a few ms at the ~15 µs a page measured here; its own commit's
   // frames are still in the page cache). That finish also syncs the frames
   // written since the thread's last pass, so it is the writer's one stall
-  // left (10-30 ms on a busy machine): a large WAL makes it rare (about once
-  // a second at fanout_bench's 30k records/s, once in minutes at human rates).
+  // left (20-35 ms measured here under fanout_bench's load): a large WAL
+  // makes it rare (about once a second at that bench's 30k records/s, once
+  // in minutes at human rates).
   static constexpr int kInlineFrames = 256;
   // WAL size past which the writer checkpoints inline whatever is left.
   static constexpr int kDefaultBackstopPages = 32000;
