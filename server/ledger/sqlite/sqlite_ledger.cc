@@ -499,9 +499,9 @@ void SqliteLedger::CommitGroups(std::vector<Work>& batch, size_t begin, size_t e
       for (auto& [session, head] : tx_heads) committed_[session] = head;
     }
     // The side file is rewritten by WriteHeadsIfDue: after this batch under
-    // synchronous=FULL, else once the writer has caught up (or every
-    // kHeadsInterval under sustained load). Either way after COMMIT, so it
-    // lags the ledger but never leads it.
+    // synchronous=FULL, else at most every kHeadsInterval (and before a
+    // flush completes). Either way after COMMIT, so it lags the ledger but
+    // never leads it.
     if (!tx_heads.empty()) heads_dirty_ = true;
     WriteHeadsIfDue(/*force=*/false);
   }
