@@ -39,6 +39,7 @@
 #include <thread>
 #include <vector>
 
+#include "bench/proc_stats.h"
 #include "server/base/log.h"
 #include "server/rpc/server.h"
 #include "tests/e2e/live_stream.h"
@@ -60,32 +61,6 @@ rlim_t RaiseFileLimit() {
     getrlimit(RLIMIT_NOFILE, &rl);
   }
   return rl.rlim_cur;
-}
-
-// utime + stime of a process in seconds (/proc/PID/stat fields 14, 15; proc(5)).
-double CpuSeconds(pid_t pid) {
-  std::ifstream in(pid == 0 ? "/proc/self/stat" : "/proc/" + std::to_string(pid) + "/stat");
-  std::string all((std::istreambuf_iterator<char>(in)), std::istreambuf_iterator<char>());
-  const size_t close = all.rfind(')');
-  if (close == std::string::npos) return 0;
-  std::istringstream rest(all.substr(close + 2));
-  std::string field;
-  unsigned long long utime = 0, stime = 0;
-  for (int i = 3; i <= 15 && rest >> field; ++i) {
-    if (i == 14) utime = std::stoull(field);
-    if (i == 15) stime = std::stoull(field);
-  }
-  return static_cast<double>(utime + stime) / static_cast<double>(sysconf(_SC_CLK_TCK));
-}
-
-// A field of /proc/PID/status ("VmRSS", "Threads"), as a number (kB for sizes).
-long StatusField(pid_t pid, const std::string& name) {
-  std::ifstream in(pid == 0 ? "/proc/self/status" : "/proc/" + std::to_string(pid) + "/status");
-  std::string line;
-  while (std::getline(in, line)) {
-    if (line.rfind(name + ":", 0) == 0) return std::atol(line.c_str() + name.size() + 1);
-  }
-  return 0;
 }
 
 double Percentile(std::vector<int64_t> v, double p) {
@@ -343,6 +318,11 @@ struct Row {
 // the server's own CPU over the client's measuring window.
 bool RunPhase(const std::string& self, const std::string& target, const std::string& token, int n,
               double seconds, double rate, Row* row) {
+  // The child's arguments are made before fork: after it, in a process with
+  // other threads, only async-signal-safe calls until exec (fork(2)).
+  const std::string a_target = "--target=" + target, a_token = "--token=" + token,
+                    a_n = "--n=" + std::to_string(n), a_s = "--seconds=" + std::to_string(seconds),
+                    a_r = "--rate=" + std::to_string(rate);
   int out[2];
   if (pipe(out) != 0) return false;
   const pid_t pid = fork();
@@ -351,10 +331,6 @@ bool RunPhase(const std::string& self, const std::string& target, const std::str
     dup2(out[1], 1);
     close(out[0]);
     close(out[1]);
-    const std::string a_target = "--target=" + target, a_token = "--token=" + token,
-                      a_n = "--n=" + std::to_string(n),
-                      a_s = "--seconds=" + std::to_string(seconds),
-                      a_r = "--rate=" + std::to_string(rate);
     execl(self.c_str(), self.c_str(), "--client", a_target.c_str(), a_token.c_str(), a_n.c_str(),
           a_s.c_str(), a_r.c_str(), static_cast<char*>(nullptr));
     _exit(127);
