@@ -318,25 +318,13 @@ struct Row {
 // the server's own CPU over the client's measuring window.
 bool RunPhase(const std::string& self, const std::string& target, const std::string& token, int n,
               double seconds, double rate, Row* row) {
-  // The child's arguments are made before fork: after it, in a process with
-  // other threads, only async-signal-safe calls until exec (fork(2)).
-  const std::string a_target = "--target=" + target, a_token = "--token=" + token,
-                    a_n = "--n=" + std::to_string(n), a_s = "--seconds=" + std::to_string(seconds),
-                    a_r = "--rate=" + std::to_string(rate);
-  int out[2];
-  if (pipe(out) != 0) return false;
-  const pid_t pid = fork();
-  if (pid < 0) return false;
-  if (pid == 0) {
-    dup2(out[1], 1);
-    close(out[0]);
-    close(out[1]);
-    execl(self.c_str(), self.c_str(), "--client", a_target.c_str(), a_token.c_str(), a_n.c_str(),
-          a_s.c_str(), a_r.c_str(), static_cast<char*>(nullptr));
-    _exit(127);
-  }
-  close(out[1]);
-  FILE* in = fdopen(out[0], "r");
+  pid_t pid = 0;
+  FILE* in =
+      StartSelf(self,
+                {"--client", "--target=" + target, "--token=" + token, "--n=" + std::to_string(n),
+                 "--seconds=" + std::to_string(seconds), "--rate=" + std::to_string(rate)},
+                &pid);
+  if (in == nullptr) return false;
   row->n = n;
   char line[512];
   double cpu0 = 0, ccpu0 = 0;

@@ -262,28 +262,15 @@ Result ServerIngest(const std::string& self, const std::string& dir, int streams
       return res;
     }
   }
-  // The child's arguments are made before fork: after it, in a process with
-  // other threads, only async-signal-safe calls until exec (fork(2)).
-  const std::string a_target = "--target=" + target, a_token = "--token=" + session.token,
-                    a_streams = "--streams=" + std::to_string(streams),
-                    a_window = "--window=" + std::to_string(config.window),
-                    a_seconds = "--seconds=" + std::to_string(config.seconds);
-  const char* a_acks = config.ack_batches ? a_seconds.c_str() : "--single-acks";
-  int out[2];
-  if (pipe(out) != 0) return res;
-  const pid_t pid = fork();
-  if (pid < 0) return res;
-  if (pid == 0) {
-    dup2(out[1], 1);
-    close(out[0]);
-    close(out[1]);
-    execl(self.c_str(), self.c_str(), "--client", a_target.c_str(), a_token.c_str(),
-          a_streams.c_str(), a_window.c_str(), a_seconds.c_str(), a_acks,
-          static_cast<char*>(nullptr));
-    _exit(127);
-  }
-  close(out[1]);
-  FILE* in = fdopen(out[0], "r");
+  pid_t pid = 0;
+  FILE* in = StartSelf(
+      self,
+      {"--client", "--target=" + target, "--token=" + session.token,
+       "--streams=" + std::to_string(streams), "--window=" + std::to_string(config.window),
+       "--seconds=" + std::to_string(config.seconds),
+       config.ack_batches ? "--seconds=" + std::to_string(config.seconds) : "--single-acks"},
+      &pid);
+  if (in == nullptr) return res;
   char line[256];
   double cpu0 = 0, ccpu0 = 0;
   while (std::fgets(line, sizeof line, in) != nullptr) {

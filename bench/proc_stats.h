@@ -1,19 +1,50 @@
-// Small readers of /proc for the benches that run their clients in a second
-// process (connections_bench, ingest_bench): a process's CPU time and a line
-// of its status file (proc(5)).
+// For the benches that run their clients in a second process
+// (connections_bench, ingest_bench): starting this program again with its
+// stdout on a pipe, and small readers of /proc (proc(5)) for a process's CPU
+// time and a line of its status file.
 #ifndef TICKMARK_BENCH_PROC_STATS_H_
 #define TICKMARK_BENCH_PROC_STATS_H_
 
 #include <sys/types.h>
 #include <unistd.h>
 
+#include <cstdio>
 #include <cstdlib>
 #include <fstream>
 #include <iterator>
 #include <sstream>
 #include <string>
+#include <vector>
 
 namespace tickmark::bench {
+
+// Starts `self` (this program's path) with `args` in a child process whose
+// stdout is the returned stream (nullptr on failure); its pid in *pid. The
+// argument vector is made before fork: after it, in a process with other
+// threads, only async-signal-safe calls until exec (fork(2)).
+inline FILE* StartSelf(const std::string& self, const std::vector<std::string>& args, pid_t* pid) {
+  std::vector<char*> argv;
+  argv.push_back(const_cast<char*>(self.c_str()));
+  for (const std::string& a : args) argv.push_back(const_cast<char*>(a.c_str()));
+  argv.push_back(nullptr);
+  int out[2];
+  if (pipe(out) != 0) return nullptr;
+  *pid = fork();
+  if (*pid < 0) {
+    close(out[0]);
+    close(out[1]);
+    return nullptr;
+  }
+  if (*pid == 0) {
+    dup2(out[1], 1);
+    close(out[0]);
+    close(out[1]);
+    execv(self.c_str(), argv.data());
+    _exit(127);
+  }
+  close(out[1]);
+  return fdopen(out[0], "r");
+}
 
 // utime + stime of a process in seconds (/proc/PID/stat fields 14, 15;
 // proc(5)); pid 0: this process.
