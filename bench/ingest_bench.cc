@@ -262,14 +262,15 @@ Result ServerIngest(const std::string& self, const std::string& dir, int streams
       return res;
     }
   }
+  std::vector<std::string> args = {"--client",
+                                   "--target=" + target,
+                                   "--token=" + session.token,
+                                   "--streams=" + std::to_string(streams),
+                                   "--window=" + std::to_string(config.window),
+                                   "--seconds=" + std::to_string(config.seconds)};
+  if (!config.ack_batches) args.push_back("--single-acks");
   pid_t pid = 0;
-  FILE* in = StartSelf(
-      self,
-      {"--client", "--target=" + target, "--token=" + session.token,
-       "--streams=" + std::to_string(streams), "--window=" + std::to_string(config.window),
-       "--seconds=" + std::to_string(config.seconds),
-       config.ack_batches ? "--seconds=" + std::to_string(config.seconds) : "--single-acks"},
-      &pid);
+  FILE* in = StartSelf(self, args, &pid);
   if (in == nullptr) return res;
   char line[256];
   double cpu0 = 0, ccpu0 = 0;
@@ -289,6 +290,10 @@ Result ServerIngest(const std::string& self, const std::string& dir, int streams
   std::fclose(in);
   int status = 0;
   waitpid(pid, &status, 0);
+  if (!WIFEXITED(status) || WEXITSTATUS(status) != 0 || res.seconds == 0) {
+    std::fprintf(stderr, "ingest_bench: the client process for %d stream(s) failed (status %d)\n",
+                 streams, status);
+  }
   (*server)->Shutdown(Duration::Seconds(1));
   return res;
 }

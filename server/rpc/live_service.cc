@@ -38,7 +38,6 @@ LiveService::~LiveService() { Stop(); }
 ProbeScheduler::Options LiveService::probe_schedule() const {
   ProbeScheduler::Options o = options_.probing;
   o.steady_interval = options_.probe_interval;
-  o.max_interval = std::max(o.max_interval, o.steady_interval);
   o.burst = options_.probe_burst;
   o.burst_interval = options_.probe_burst_spacing;
   return o;

@@ -158,10 +158,19 @@ TEST_F(LedgerTest, TheWalIsCopiedWhileRunningAndStartsAgain) {
   // 6000 records of >= 6 KB in rows (journal body and marker text): ~36 MB.
   EXPECT_GT(db_bytes, uintmax_t{20} << 20) << "little was copied into the file while open";
   EXPECT_GE(restarts, 2u) << "the WAL did not start again";
+  // The copying was the thread's: each restart needs one finish by the
+  // writer (or a backstop), every other copy is the thread's.
+  const SqliteLedger::WalCheckpoints runs = ledger_->wal_checkpoints();
+  EXPECT_GT(runs.background, runs.writer) << "the writer did the copying";
+  EXPECT_GE(runs.writer, restarts) << "a restart without the writer's finish";
   EXPECT_EQ(testing::Sqlite3Cli(path_, "SELECT count(*) FROM marker"), "6000\n");
   EXPECT_EQ(testing::Sqlite3Cli(path_, "PRAGMA integrity_check"), "ok\n");
-  std::printf("database file %.1f MiB while open; WAL file %.1f MiB; it started again %u times\n",
-              db_bytes / 1048576.0, wal_bytes / 1048576.0, restarts);
+  std::printf(
+      "database file %.1f MiB while open; WAL file %.1f MiB; it started again %u times; "
+      "checkpoints: %llu by the thread, %llu by the writer\n",
+      db_bytes / 1048576.0, wal_bytes / 1048576.0, restarts,
+      static_cast<unsigned long long>(runs.background),
+      static_cast<unsigned long long>(runs.writer));
 }
 
 }  // namespace

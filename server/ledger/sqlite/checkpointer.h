@@ -63,6 +63,11 @@ class Checkpointer {
   // WAL intact and spends no disk space on copies). Writer thread.
   void Pause(bool paused);
 
+  // Checkpoint runs so far: by this thread, and by the writer
+  // (finishing a WAL before it starts again, or past the backstop).
+  uint64_t background_runs() const { return background_runs_.load(); }
+  uint64_t writer_runs() const { return inline_runs_.load(); }
+
  private:
   static int Hook(void* self, sqlite3* db, const char* name, int pages);
   void OnCommit(sqlite3* writer, int pages);
@@ -80,7 +85,7 @@ class Checkpointer {
   std::atomic<uint64_t> backfilled_generation_{0};
   std::atomic<uint64_t> generation_{0};
   int last_pages_ = 0;  // writer thread only: the WAL's size at the last commit
-  std::atomic<uint64_t> background_runs_{0};  // for the log on close
+  std::atomic<uint64_t> background_runs_{0};
   std::atomic<uint64_t> inline_runs_{0};
 
   std::mutex mu_;

@@ -149,6 +149,16 @@ class SqliteLedger final : public Ledger {
   absl::Status WriteHealth() override;
   void Close() override;
 
+  // WAL checkpoints run so far (Checkpointer): by its thread, by the writer.
+  struct WalCheckpoints {
+    uint64_t background = 0, writer = 0;
+  };
+  WalCheckpoints wal_checkpoints() const {
+    return checkpointer_
+               ? WalCheckpoints{checkpointer_->background_runs(), checkpointer_->writer_runs()}
+               : WalCheckpoints{};
+  }
+
   // Where the side file and the reserve file live for a ledger at `path`.
   static std::string HeadsPath(const std::string& path) { return path + ".heads"; }
   static std::string ReservePath(const std::string& path) { return path + ".reserve"; }
