@@ -107,11 +107,11 @@ TEST(DelayKernelFamiliesTest, ExGaussianCdfLimitsAndBranchContinuity) {
 }
 
 TEST(DelayKernelFamiliesTest, TextFormRoundTrips) {
-  struct Case {
+  struct TextCase {
     const char* text;
     DelayKernel::Kind kind;
   };
-  const Case cases[] = {
+  const TextCase cases[] = {
       {"lognormal:-0.5,0.35", DelayKernel::Kind::kLognormal},
       {"lognormal:-0.5,0.35,0.12", DelayKernel::Kind::kLognormal},
       {"lognormal: -0.5 , 0.35 , 0.12 , q=0.99", DelayKernel::Kind::kLognormal},
@@ -120,7 +120,7 @@ TEST(DelayKernelFamiliesTest, TextFormRoundTrips) {
       {"exgauss(mu=0.45s,sigma=0.06s,tau=0.25s,q=0.999)", DelayKernel::Kind::kExGaussian},
       {"lognormal(mu=-0.5,sigma=0.35,shift=0.12s,q=0.999)", DelayKernel::Kind::kLognormal},
   };
-  for (const Case& c : cases) {
+  for (const TextCase& c : cases) {
     std::string error;
     auto k = DelayKernel::Parse(c.text, &error);
     ASSERT_TRUE(k.has_value()) << c.text << ": " << error;

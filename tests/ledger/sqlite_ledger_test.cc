@@ -168,8 +168,8 @@ TEST_F(LedgerTest, TheWalIsCopiedWhileRunningAndStartsAgain) {
   std::printf(
       "database file %.1f MiB while open; WAL file %.1f MiB; it started again %u times; "
       "checkpoints: %llu by the thread, %llu by the writer\n",
-      db_bytes / 1048576.0, wal_bytes / 1048576.0, restarts,
-      static_cast<unsigned long long>(runs.background),
+      static_cast<double>(db_bytes) / 1048576.0, static_cast<double>(wal_bytes) / 1048576.0,
+      restarts, static_cast<unsigned long long>(runs.background),
       static_cast<unsigned long long>(runs.writer));
 }
 
