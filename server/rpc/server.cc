@@ -200,6 +200,8 @@ absl::StatusOr<std::unique_ptr<TickmarkServer>> TickmarkServer::Start(
     lo.accept_lost_records = options.accept_lost_records;
     lo.reserve_bytes = options.ledger_reserve_bytes;
     lo.evidence_files = {s->operator_token_path_};
+    if (options.wal_restart_pages > 0) lo.wal_restart_pages = options.wal_restart_pages;
+    if (options.wal_backstop_pages > 0) lo.wal_backstop_pages = options.wal_backstop_pages;
     auto ledger = ledger::SqliteLedger::Open(lo);
     if (!ledger.ok()) return ledger.status();
     s->ledger_ = std::move(*ledger);

@@ -52,6 +52,11 @@ struct ServerOptions {
   bool accept_lost_records = false;
   // Size of the ledger's reserve file (freed when the disk is full).
   uint64_t ledger_reserve_bytes = 4 << 20;
+  // WAL sizes (pages) at which the SQLite ledger's writer restarts the WAL
+  // and checkpoints inline (SqliteLedger::Options); 0 keeps the defaults.
+  // Benches set them to measure the commit path without its one stall.
+  int wal_restart_pages = 0;
+  int wal_backstop_pages = 0;
   // TLS: both set, or neither (then plaintext, allowed only on loopback
   // unless allow_insecure_remote).
   std::string tls_cert_file;
