@@ -4,13 +4,18 @@
 // ledger's own migrations — and the same two rows per feedback: the record
 // journal and the feedback table; WAL, synchronous=NORMAL, foreign keys on)
 // in transactions of 100 and of 1000 rows. Both are measured in this run, on
-// this machine, so the ratio is what to read, not the absolute numbers.
+// this machine, so the ratio is what to read, not the absolute numbers. A
+// last row carries the same messages over a bare gRPC stream (no tickmark):
+// what the transport alone allows.
 //
 // Every stream pipelines: it keeps up to --window feedback unacknowledged
 // and counts acks (an ack means the record is committed). Clients and the
 // server share the machine's cores, as they would on one host.
 //
 // Prints; never asserts. Runtime is bounded: about --seconds per row.
+#include <grpcpp/generic/async_generic_service.h>
+#include <grpcpp/generic/generic_stub.h>
+#include <grpcpp/grpcpp.h>
 #include <sqlite3.h>
 #include <sys/wait.h>
 #include <unistd.h>
@@ -18,12 +23,14 @@
 #include <algorithm>
 #include <atomic>
 #include <chrono>
+#include <condition_variable>
 #include <cstdio>
 #include <cstdlib>
 #include <cstring>
 #include <filesystem>
 #include <fstream>
 #include <memory>
+#include <mutex>
 #include <string>
 #include <thread>
 #include <vector>
@@ -173,6 +180,22 @@ Result RawSqlite(const std::string& dir, int per_txn, double seconds) {
   return res;
 }
 
+// The client process's measuring protocol: after a short warm-up
+// (connections, first clock probes) prints "PHASE measuring", waits
+// `seconds`, then prints "PHASE done" and "RESULT <acknowledged> <seconds>".
+void MeasureAcked(const std::atomic<uint64_t>& acked, double seconds) {
+  std::this_thread::sleep_for(std::chrono::milliseconds(300));
+  std::printf("PHASE measuring\n");
+  std::fflush(stdout);
+  const uint64_t a0 = acked.load();
+  const auto t0 = Clock::now();
+  std::this_thread::sleep_until(
+      t0 + std::chrono::duration_cast<Clock::duration>(std::chrono::duration<double>(seconds)));
+  const uint64_t rows = acked.load() - a0;
+  std::printf("PHASE done\nRESULT %llu %.6f\n", static_cast<unsigned long long>(rows), Since(t0));
+  std::fflush(stdout);
+}
+
 // The client process (this program started again with --client): `streams`
 // trainer streams to `target`, each on its own connection, pipelining up to
 // the window. Prints "PHASE measuring", then after the measuring time
@@ -212,22 +235,199 @@ int ClientMain(const std::string& target, const std::string& token, int streams,
       }
     });
   }
-  // Measure after a short warm-up (connections, first clock probes).
-  std::this_thread::sleep_for(std::chrono::milliseconds(300));
-  std::printf("PHASE measuring\n");
-  std::fflush(stdout);
-  const uint64_t a0 = acked.load();
-  const auto t0 = Clock::now();
-  std::this_thread::sleep_until(t0 + std::chrono::duration_cast<Clock::duration>(
-                                         std::chrono::duration<double>(config.seconds)));
-  const uint64_t rows = acked.load() - a0;
-  const double seconds = Since(t0);
-  std::printf("PHASE done\nRESULT %llu %.6f\n", static_cast<unsigned long long>(rows), seconds);
-  std::fflush(stdout);
+  MeasureAcked(acked, config.seconds);
   stop = true;
   for (auto& stream : open) stream->Cancel();  // wakes a sender blocked in Write
   for (auto& t : senders) t.join();
   return 0;
+}
+
+// Runs the client process (this program with `args`) and reads its result
+// into *res: acknowledged rows, the measuring time, and both processes' CPU
+// over it.
+void RunClient(const std::string& self, const std::vector<std::string>& args, Result* res) {
+  pid_t pid = 0;
+  FILE* in = StartSelf(self, args, &pid);
+  if (in == nullptr) return;
+  char line[256];
+  double cpu0 = 0, ccpu0 = 0;
+  while (std::fgets(line, sizeof line, in) != nullptr) {
+    if (std::strncmp(line, "PHASE measuring", 15) == 0) {
+      cpu0 = CpuSeconds(0);
+      ccpu0 = CpuSeconds(pid);
+    } else if (std::strncmp(line, "PHASE done", 10) == 0) {
+      res->cpu_seconds = CpuSeconds(0) - cpu0;
+      res->client_cpu_seconds = CpuSeconds(pid) - ccpu0;
+    } else if (std::strncmp(line, "RESULT ", 7) == 0) {
+      unsigned long long rows = 0;
+      std::sscanf(line + 7, "%llu %lf", &rows, &res->seconds);
+      res->rows = rows;
+    }
+  }
+  std::fclose(in);
+  int status = 0;
+  waitpid(pid, &status, 0);
+  if (!WIFEXITED(status) || WEXITSTATUS(status) != 0 || res->seconds == 0) {
+    std::fprintf(stderr, "ingest_bench: the client process for \"%s\" failed (status %d)\n",
+                 res->what.c_str(), status);
+  }
+}
+
+// The transport alone: a bare gRPC bidi stream (callback API, generic
+// service, nothing of tickmark) that carries the same serialised feedback
+// message one way and, back, the count received so far whenever no reply is
+// being written (acks batched, as tickmarkd does when asked). What one
+// message costs gRPC and the kernel on this machine, without the ledger.
+class BareIngestService final : public grpc::CallbackGenericService {
+ public:
+  grpc::ServerGenericBidiReactor* CreateReactor(grpc::GenericCallbackServerContext*) override {
+    class Reactor final : public grpc::ServerGenericBidiReactor {
+     public:
+      Reactor() { StartRead(&in_); }
+      void OnReadDone(bool ok) override {
+        std::lock_guard<std::mutex> lock(mu_);
+        if (!ok) {
+          reads_done_ = true;
+          if (!writing_) FinishOnce(grpc::Status::OK);
+          return;
+        }
+        ++count_;
+        if (writing_) {
+          pending_ = true;
+        } else {
+          WriteCount();
+        }
+        StartRead(&in_);
+      }
+      void OnWriteDone(bool ok) override {
+        std::lock_guard<std::mutex> lock(mu_);
+        writing_ = false;
+        if (!ok) return FinishOnce(grpc::Status::CANCELLED);
+        if (pending_) {
+          pending_ = false;
+          WriteCount();
+        } else if (reads_done_) {
+          FinishOnce(grpc::Status::OK);
+        }
+      }
+      void OnDone() override { delete this; }
+
+     private:
+      void WriteCount() {  // under mu_
+        grpc::Slice slice(&count_, sizeof count_);
+        out_ = grpc::ByteBuffer(&slice, 1);
+        writing_ = true;
+        StartWrite(&out_);
+      }
+      void FinishOnce(const grpc::Status& status) {  // under mu_
+        if (finished_) return;
+        finished_ = true;
+        Finish(status);
+      }
+      std::mutex mu_;
+      grpc::ByteBuffer in_, out_;
+      uint64_t count_ = 0;
+      bool writing_ = false, pending_ = false, reads_done_ = false, finished_ = false;
+    };
+    return new Reactor;
+  }
+};
+
+// The client side of the bare stream: keeps up to `window` messages
+// unacknowledged, like the trainer streams.
+class BareIngestClient final : public grpc::ClientBidiReactor<grpc::ByteBuffer, grpc::ByteBuffer> {
+ public:
+  BareIngestClient(grpc::GenericStub* stub, size_t window, std::atomic<uint64_t>* acked)
+      : window_(window), acked_(acked) {
+    const std::string bytes = e2e::Feedback(1, 1.0).SerializeAsString();
+    grpc::Slice slice(bytes);
+    request_ = grpc::ByteBuffer(&slice, 1);
+    stub->PrepareBidiStreamingCall(&context_, "/tickmark.bench.Bare/Ingest", grpc::StubOptions(),
+                                   this);
+    StartRead(&reply_);
+    {
+      std::lock_guard<std::mutex> lock(mu_);
+      MaybeWrite();
+    }
+    StartCall();
+  }
+  void OnWriteDone(bool ok) override {
+    std::lock_guard<std::mutex> lock(mu_);
+    writing_ = false;
+    if (ok) MaybeWrite();
+  }
+  void OnReadDone(bool ok) override {
+    if (!ok) return;
+    std::vector<grpc::Slice> slices;
+    uint64_t count = 0;
+    if (reply_.Dump(&slices).ok() && !slices.empty() && slices[0].size() == sizeof count) {
+      std::memcpy(&count, slices[0].begin(), sizeof count);
+    }
+    StartRead(&reply_);
+    std::lock_guard<std::mutex> lock(mu_);
+    if (count > acked_local_) {
+      acked_->fetch_add(count - acked_local_, std::memory_order_relaxed);
+      acked_local_ = count;
+    }
+    MaybeWrite();
+  }
+  void OnDone(const grpc::Status&) override {
+    std::lock_guard<std::mutex> lock(mu_);
+    done_ = true;
+    cv_.notify_all();
+  }
+  void Stop() {
+    context_.TryCancel();
+    std::unique_lock<std::mutex> lock(mu_);
+    cv_.wait(lock, [this] { return done_; });
+  }
+
+ private:
+  void MaybeWrite() {  // under mu_
+    if (writing_ || sent_ - acked_local_ >= window_) return;
+    writing_ = true;
+    ++sent_;
+    StartWrite(&request_);
+  }
+  const size_t window_;
+  std::atomic<uint64_t>* acked_;
+  grpc::ClientContext context_;
+  grpc::ByteBuffer request_, reply_;
+  std::mutex mu_;
+  std::condition_variable cv_;
+  uint64_t sent_ = 0, acked_local_ = 0;
+  bool writing_ = false, done_ = false;
+};
+
+int BareClientMain(const std::string& target, const Config& config) {
+  std::atomic<uint64_t> acked{0};
+  grpc::GenericStub stub(grpc::CreateChannel(target, grpc::InsecureChannelCredentials()));
+  BareIngestClient client(&stub, config.window, &acked);
+  MeasureAcked(acked, config.seconds);
+  client.Stop();
+  return 0;
+}
+
+Result BareIngest(const std::string& self, const Config& config) {
+  Result res;
+  res.what = "bare gRPC stream, no tickmark (window " + std::to_string(config.window) + ")";
+  BareIngestService service;
+  grpc::ServerBuilder builder;
+  int port = 0;
+  builder.AddListeningPort("127.0.0.1:0", grpc::InsecureServerCredentials(), &port);
+  builder.RegisterCallbackGenericService(&service);
+  std::unique_ptr<grpc::Server> server = builder.BuildAndStart();
+  if (!server) {
+    std::fprintf(stderr, "ingest_bench: the bare gRPC server did not start\n");
+    return res;
+  }
+  RunClient(
+      self,
+      {"--client", "--bare", "--target=127.0.0.1:" + std::to_string(port),
+       "--window=" + std::to_string(config.window), "--seconds=" + std::to_string(config.seconds)},
+      &res);
+  server->Shutdown(std::chrono::system_clock::now() + std::chrono::seconds(1));
+  return res;
 }
 
 // tickmarkd in this process; its trainer streams in a second process (this
@@ -269,31 +469,7 @@ Result ServerIngest(const std::string& self, const std::string& dir, int streams
                                    "--window=" + std::to_string(config.window),
                                    "--seconds=" + std::to_string(config.seconds)};
   if (!config.ack_batches) args.push_back("--single-acks");
-  pid_t pid = 0;
-  FILE* in = StartSelf(self, args, &pid);
-  if (in == nullptr) return res;
-  char line[256];
-  double cpu0 = 0, ccpu0 = 0;
-  while (std::fgets(line, sizeof line, in) != nullptr) {
-    if (std::strncmp(line, "PHASE measuring", 15) == 0) {
-      cpu0 = CpuSeconds(0);
-      ccpu0 = CpuSeconds(pid);
-    } else if (std::strncmp(line, "PHASE done", 10) == 0) {
-      res.cpu_seconds = CpuSeconds(0) - cpu0;
-      res.client_cpu_seconds = CpuSeconds(pid) - ccpu0;
-    } else if (std::strncmp(line, "RESULT ", 7) == 0) {
-      unsigned long long rows = 0;
-      std::sscanf(line + 7, "%llu %lf", &rows, &res.seconds);
-      res.rows = rows;
-    }
-  }
-  std::fclose(in);
-  int status = 0;
-  waitpid(pid, &status, 0);
-  if (!WIFEXITED(status) || WEXITSTATUS(status) != 0 || res.seconds == 0) {
-    std::fprintf(stderr, "ingest_bench: the client process for %d stream(s) failed (status %d)\n",
-                 streams, status);
-  }
+  RunClient(self, args, &res);
   (*server)->Shutdown(Duration::Seconds(1));
   return res;
 }
@@ -303,8 +479,9 @@ void Usage() {
       "ingest_bench [--seconds=S] [--streams=1,4] [--window=N] [--single-acks]\n"
       "  Durable feedback ingest through tickmarkd's trainer streams vs raw SQLite\n"
       "  inserts of the same rows; the streams run in a second process (this program\n"
-      "  with --client), so tickmarkd's CPU is measured alone. Prints a table;\n"
-      "  asserts nothing.\n");
+      "  with --client), so tickmarkd's CPU is measured alone. A last row sends the\n"
+      "  same messages over a bare gRPC stream (the transport's own bound). Prints a\n"
+      "  table; asserts nothing.\n");
 }
 
 }  // namespace
@@ -313,12 +490,14 @@ void Usage() {
 int main(int argc, char** argv) {
   using namespace tickmark::bench;
   Config config;
-  bool client = false;
+  bool client = false, bare_client = false;
   std::string target, token;
   for (int i = 1; i < argc; ++i) {
     const std::string a = argv[i];
     if (a == "--client") {
       client = true;  // the client process (started by this program itself)
+    } else if (a == "--bare") {
+      bare_client = true;  // ... of the bare gRPC row
     } else if (a.rfind("--target=", 0) == 0) {
       target = a.substr(9);
     } else if (a.rfind("--token=", 0) == 0) {
@@ -348,6 +527,7 @@ int main(int argc, char** argv) {
     return 2;
   }
   tickmark::SetLogLevel(tickmark::LogLevel::kWarning);
+  if (client && bare_client) return BareClientMain(target, config);
   if (client) return ClientMain(target, token, config.streams.front(), config);
   std::error_code self_error;
   const std::string self = std::filesystem::read_symlink("/proc/self/exe", self_error).string();
@@ -364,6 +544,7 @@ int main(int argc, char** argv) {
   results.push_back(RawSqlite(dir, 100, config.seconds));
   results.push_back(RawSqlite(dir, 1000, config.seconds));
   for (int n : config.streams) results.push_back(ServerIngest(self, dir, n, config));
+  results.push_back(BareIngest(self, config));
 
   const double base100 = results[0].rate();
   const double base1000 = results[1].rate();
@@ -394,7 +575,8 @@ int main(int argc, char** argv) {
   const Result* one = nullptr;
   const Result* most = nullptr;
   int most_streams = 1;
-  for (size_t i = 2; i < results.size(); ++i) {
+  const Result& bare = results.back();
+  for (size_t i = 2; i < 2 + config.streams.size(); ++i) {
     const int n = config.streams[i - 2];
     if (n == 1) one = &results[i];
     if (n > most_streams) {
@@ -403,15 +585,16 @@ int main(int argc, char** argv) {
     }
   }
   std::printf(
-      "\nprofile (December 2026; DEVELOPERS.md, Performance): tickmarkd alone takes ~1.3\n"
-      "cores and ~65-70 µs of CPU per acknowledged feedback on one stream, its client ~17 µs,\n"
-      "a raw row ~7 µs. perf over the same row (server and client then in one process):\n"
+      "\nprofile (December 2026; DEVELOPERS.md, Performance): tickmarkd alone takes ~1.3-1.4\n"
+      "cores and ~55-70 µs of CPU per acknowledged feedback on one stream, its client ~14-17\n"
+      "µs, a raw row ~4-7 µs. perf over the same row (server and client then in one process):\n"
       "kernel ~35%% (loopback TCP sendmsg/recvmsg, futex wake-ups between the gRPC, strand\n"
       "and writer threads), libc ~18%% (malloc/free of messages), SQLite ~17%% (small\n"
       "transactions: each group commit rewrites the b-tree pages it touched, ~2.5x the raw\n"
-      "cost per row), tickmark ~9%%, gRPC ~8%%, SHA-256 chain ~4%%, protobuf ~4%%. One gRPC\n"
-      "message per feedback each way and three thread hops cost far more than the rows, so\n"
-      "on two cores the 0.5 target is out of reach: the CPU ceiling below is the bound.\n");
+      "cost per row), tickmark ~9%%, gRPC ~8%%, SHA-256 chain ~4%%, protobuf ~4%%. The bare\n"
+      "gRPC row is the transport's share: one message per feedback each way costs both\n"
+      "processes together more than a raw row costs SQLite, so on two cores the 0.5 target\n"
+      "is out of reach for any server of one message per feedback, tickmarkd or not.\n");
   std::printf("\ntargets (ratios against raw SQLite measured in this run):\n");
   if (one != nullptr && raw > 0) {
     const double r = one->rate() / raw;
@@ -428,6 +611,23 @@ int main(int argc, char** argv) {
           "  (its trainer stream costs the client %.1f µs more per feedback; a raw row %.1f µs)\n",
           cores, one->cpu_us_per_row(), ceiling, ceiling / raw, one->client_cpu_us_per_row(),
           results[1].cpu_us_per_row());
+    }
+  }
+  // The transport's own bound: what gRPC and the kernel charge both
+  // processes per message with nothing of tickmark, on all the cores.
+  if (bare.rows > 0 && raw > 0) {
+    const double cores = std::thread::hardware_concurrency();
+    const double both = bare.cpu_us_per_row() + bare.client_cpu_us_per_row();
+    const double bound = both > 0 ? cores * 1e6 / both : 0;
+    std::printf(
+        "  transport alone (bare gRPC row): %.0f/s = %.3f x raw; it costs %.1f µs (server)\n"
+        "  + %.1f µs (client) per message, so on %.0f cores no gRPC ingest of one message per\n"
+        "  feedback passes %.0f/s = %.3f x raw here%s\n",
+        bare.rate(), bare.rate() / raw, bare.cpu_us_per_row(), bare.client_cpu_us_per_row(), cores,
+        bound, bound / raw, bound / raw < 0.5 ? " (below the target: out of reach)" : "");
+    if (one != nullptr && one->cpu_us_per_row() > 0) {
+      std::printf("  tickmarkd's cost above the transport: %.1f µs per feedback on the server\n",
+                  one->cpu_us_per_row() - bare.cpu_us_per_row());
     }
   }
   if (one != nullptr && most != nullptr && one->rate() > 0) {
