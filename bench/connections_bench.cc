@@ -30,8 +30,6 @@
 #include <cstdio>
 #include <cstdlib>
 #include <cstring>
-#include <filesystem>
-#include <fstream>
 #include <memory>
 #include <mutex>
 #include <sstream>
@@ -39,6 +37,7 @@
 #include <thread>
 #include <vector>
 
+#include "bench/bench_server.h"
 #include "bench/proc_stats.h"
 #include "server/base/log.h"
 #include "server/rpc/server.h"
@@ -406,39 +405,18 @@ int Main(int argc, char** argv) {
 
   tickmark::SetLogLevel(tickmark::LogLevel::kWarning);
   const rlim_t files = RaiseFileLimit();
-  std::string tmpl =
-      (std::filesystem::temp_directory_path() / "tickmark-connections-XXXXXX").string();
-  if (mkdtemp(tmpl.data()) == nullptr) return 1;
-  const std::string dir = tmpl;
-
   rpc::ServerOptions options;
-  options.listen = "127.0.0.1:0";
-  options.data_dir = dir;
   // Every connection comes from this host: no caps on stream counts. The
   // rate limits stay on per stream (2/s is far below them); the per-token
   // bucket is off because all connections share one token here.
   options.live.max_streams = 0;
   options.live.max_streams_per_peer = 0;
   options.live.feedback_rate = 0;
-  auto server = rpc::TickmarkServer::Start(options);
-  if (!server.ok()) {
-    std::fprintf(stderr, "connections_bench: %s\n", std::string(server.status().message()).c_str());
-    return 1;
-  }
-  target = "127.0.0.1:" + std::to_string((*server)->port());
-  std::string operator_token;
-  std::getline(std::ifstream((*server)->operator_token_path()), operator_token);
+  auto server = BenchServer::Start("connections_bench", options);
+  if (!server) return 1;
+  target = server->target();
   e2e::SessionWithToken session;
-  {
-    auto admin =
-        v1::SessionAdmin::NewStub(grpc::CreateChannel(target, grpc::InsecureChannelCredentials()));
-    grpc::Status s = e2e::CreateSessionWithToken(admin.get(), operator_token, "connections bench",
-                                                 v1::ROLE_TRAINER, "ava", &session);
-    if (!s.ok()) {
-      std::fprintf(stderr, "connections_bench: %s\n", s.error_message().c_str());
-      return 1;
-    }
-  }
+  if (!server->CreateSession("connections bench", v1::ROLE_TRAINER, "ava", &session)) return 1;
   char self[4096];
   const ssize_t len = readlink("/proc/self/exe", self, sizeof self - 1);
   if (len <= 0) return 1;
@@ -516,9 +494,6 @@ int Main(int argc, char** argv) {
       "offered 20k feedback/s plus probes is more than they carry, so acks queue for seconds\n"
       "and the p99 target is out of reach here. Thread count stays flat: no thread per\n"
       "connection.\n");
-  (*server)->Shutdown(Duration::Seconds(2));
-  std::error_code ec;
-  std::filesystem::remove_all(dir, ec);
   return 0;
 }
 

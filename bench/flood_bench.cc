@@ -12,13 +12,12 @@
 #include <cstdio>
 #include <cstdlib>
 #include <cstring>
-#include <filesystem>
-#include <fstream>
 #include <memory>
 #include <string>
 #include <thread>
 #include <vector>
 
+#include "bench/bench_server.h"
 #include "server/base/log.h"
 #include "server/rpc/server.h"
 #include "tests/e2e/live_stream.h"
@@ -54,40 +53,21 @@ std::string IssueTrainer(v1::SessionAdmin::Stub* admin, const std::string& sessi
   return s.ok() ? resp.secret() : "";
 }
 
-Phase Run(const std::string& dir, bool flood, bool limits, double seconds) {
+Phase Run(bool flood, bool limits, double seconds) {
   Phase out;
-  rpc::ServerOptions options;
-  options.listen = "127.0.0.1:0";
-  options.data_dir = dir;
-  if (!limits) {
-    options.live.feedback_rate = 0;
-    options.live.step_rate = 0;
-  }
-  auto server = rpc::TickmarkServer::Start(options);
-  if (!server.ok()) {
-    std::fprintf(stderr, "flood_bench: %s\n", std::string(server.status().message()).c_str());
-    return out;
-  }
-  const std::string target = "127.0.0.1:" + std::to_string((*server)->port());
-  std::string operator_token;
-  std::getline(std::ifstream((*server)->operator_token_path()), operator_token);
-  auto admin =
-      v1::SessionAdmin::NewStub(grpc::CreateChannel(target, grpc::InsecureChannelCredentials()));
+  auto server = BenchServer::Start(
+      "flood_bench", limits ? rpc::ServerOptions() : BenchServer::WithoutRateLimits());
+  if (!server) return out;
   e2e::SessionWithToken session;
-  if (!e2e::CreateSessionWithToken(admin.get(), operator_token, "flood bench", v1::ROLE_TRAINER,
-                                   "calm", &session)
-           .ok()) {
-    std::fprintf(stderr, "flood_bench: cannot create a session\n");
-    return out;
-  }
+  if (!server->CreateSession("flood bench", v1::ROLE_TRAINER, "calm", &session)) return out;
   const std::string flood_token =
-      IssueTrainer(admin.get(), session.session_id, session.admin_secret, "flood");
+      IssueTrainer(server->admin(), session.session_id, session.admin_secret, "flood");
 
   // Separate connections, as two trainers on two machines would have.
   auto channel = [&](int i) {
     grpc::ChannelArguments args;
     args.SetInt("tickmark.bench.stream", i);
-    return grpc::CreateCustomChannel(target, grpc::InsecureChannelCredentials(), args);
+    return grpc::CreateCustomChannel(server->target(), grpc::InsecureChannelCredentials(), args);
   };
   std::atomic<uint64_t> flood_ok{0}, flood_limited{0};
   e2e::TrainerStream calm(channel(0));
@@ -139,7 +119,6 @@ Phase Run(const std::string& dir, bool flood, bool limits, double seconds) {
   if (flood_thread.joinable()) flood_thread.join();
   calm.Finish();
   flooder.Finish();
-  (*server)->Shutdown(Duration::Seconds(1));
   out.flood_ok = flood_ok.load();
   out.flood_limited = flood_limited.load();
   out.ok = !out.latency_ms.empty();
@@ -162,12 +141,9 @@ int main(int argc, char** argv) {
   }
   if (!(seconds > 0 && seconds < 600)) seconds = 3;
   tickmark::SetLogLevel(tickmark::LogLevel::kWarning);
-  std::string tmpl = (std::filesystem::temp_directory_path() / "tickmark-flood-XXXXXX").string();
-  const std::string dir = mkdtemp(tmpl.data());
-  const Phase quiet = Run(dir + "/quiet", false, true, seconds);
-  const Phase loud = Run(dir + "/flood", true, true, seconds);
-  const Phase open = Run(dir + "/flood-nolimit", true, false, seconds);
-  std::filesystem::remove_all(dir);
+  const Phase quiet = Run(false, true, seconds);
+  const Phase loud = Run(true, true, seconds);
+  const Phase open = Run(true, false, seconds);
 
   std::printf(
       "flood_bench: a well-behaved trainer (1 feedback / 20 ms, waits for each ack)\n"

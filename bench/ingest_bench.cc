@@ -28,13 +28,13 @@
 #include <cstdlib>
 #include <cstring>
 #include <filesystem>
-#include <fstream>
 #include <memory>
 #include <mutex>
 #include <string>
 #include <thread>
 #include <vector>
 
+#include "bench/bench_server.h"
 #include "bench/proc_stats.h"
 #include "server/base/log.h"
 #include "server/ledger/sqlite/migrations.h"
@@ -432,45 +432,22 @@ Result BareIngest(const std::string& self, const Config& config) {
 
 // tickmarkd in this process; its trainer streams in a second process (this
 // program with --client), so each side's CPU is measured on its own.
-Result ServerIngest(const std::string& self, const std::string& dir, int streams,
-                    const Config& config) {
+Result ServerIngest(const std::string& self, int streams, const Config& config) {
   Result res;
   res.what = "tickmarkd, " + std::to_string(streams) + " trainer stream" +
              (streams > 1 ? "s" : "") + " (window " + std::to_string(config.window) + ")";
-  rpc::ServerOptions options;
-  options.listen = "127.0.0.1:0";
-  options.data_dir = dir + "/server-" + std::to_string(streams);
-  // Measures raw durable ingest: no rate limits (the defaults are for humans).
-  options.live.feedback_rate = 0;
-  options.live.step_rate = 0;
-  auto server = rpc::TickmarkServer::Start(options);
-  if (!server.ok()) {
-    std::fprintf(stderr, "ingest_bench: %s\n", std::string(server.status().message()).c_str());
-    return res;
-  }
-  const std::string target = "127.0.0.1:" + std::to_string((*server)->port());
-  std::string operator_token;
-  std::getline(std::ifstream((*server)->operator_token_path()), operator_token);
+  auto server = BenchServer::Start("ingest_bench", BenchServer::WithoutRateLimits());
+  if (!server) return res;
   e2e::SessionWithToken session;
-  {
-    auto admin =
-        v1::SessionAdmin::NewStub(grpc::CreateChannel(target, grpc::InsecureChannelCredentials()));
-    grpc::Status s = e2e::CreateSessionWithToken(admin.get(), operator_token, "ingest bench",
-                                                 v1::ROLE_TRAINER, "ava", &session);
-    if (!s.ok()) {
-      std::fprintf(stderr, "ingest_bench: %s\n", s.error_message().c_str());
-      return res;
-    }
-  }
+  if (!server->CreateSession("ingest bench", v1::ROLE_TRAINER, "ava", &session)) return res;
   std::vector<std::string> args = {"--client",
-                                   "--target=" + target,
+                                   "--target=" + server->target(),
                                    "--token=" + session.token,
                                    "--streams=" + std::to_string(streams),
                                    "--window=" + std::to_string(config.window),
                                    "--seconds=" + std::to_string(config.seconds)};
   if (!config.ack_batches) args.push_back("--single-acks");
   RunClient(self, args, &res);
-  (*server)->Shutdown(Duration::Seconds(1));
   return res;
 }
 
@@ -543,7 +520,7 @@ int main(int argc, char** argv) {
   std::vector<Result> results;
   results.push_back(RawSqlite(dir, 100, config.seconds));
   results.push_back(RawSqlite(dir, 1000, config.seconds));
-  for (int n : config.streams) results.push_back(ServerIngest(self, dir, n, config));
+  for (int n : config.streams) results.push_back(ServerIngest(self, n, config));
   results.push_back(BareIngest(self, config));
 
   const double base100 = results[0].rate();
