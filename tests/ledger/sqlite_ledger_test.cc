@@ -158,11 +158,15 @@ TEST_F(LedgerTest, TheWalIsCopiedWhileRunningAndStartsAgain) {
   // 6000 records of >= 6 KB in rows (journal body and marker text): ~36 MB.
   EXPECT_GT(db_bytes, uintmax_t{20} << 20) << "little was copied into the file while open";
   EXPECT_GE(restarts, 2u) << "the WAL did not start again";
-  // The copying was the thread's: each restart needs one finish by the
-  // writer (or a backstop), every other copy is the thread's.
+  // The copying was the thread's. Each restart follows a checkpoint that
+  // copied the whole WAL: mostly the writer's short finish, sometimes the
+  // thread's own pass when it caught up between two commits (the next write
+  // then starts the WAL again; SQLite docs: "Write-Ahead Logging",
+  // checkpoint starvation). So the restarts are bounded by all the runs, not
+  // by the writer's alone.
   const SqliteLedger::WalCheckpoints runs = ledger_->wal_checkpoints();
   EXPECT_GT(runs.background, runs.writer) << "the writer did the copying";
-  EXPECT_GE(runs.writer, restarts) << "a restart without the writer's finish";
+  EXPECT_GE(runs.background + runs.writer, restarts) << "a restart without a checkpoint";
   EXPECT_EQ(testing::Sqlite3Cli(path_, "SELECT count(*) FROM marker"), "6000\n");
   EXPECT_EQ(testing::Sqlite3Cli(path_, "PRAGMA integrity_check"), "ok\n");
   std::printf(
