@@ -21,8 +21,9 @@ Checkpointer::Checkpointer(sqlite3* db, sqlite3* writer, int restart_pages, int 
 }
 
 Checkpointer::~Checkpointer() {
-  TM_LOG(kDebug) << "ledger WAL checkpoints: " << background_runs_.load() << " in the background, "
-                 << inline_runs_.load() << " on the writer thread";
+  TM_LOG(kDebug) << "ledger WAL checkpoints: " << background_runs_.load() << " in the background ("
+                 << background_frames_.load() << " frames), " << inline_runs_.load()
+                 << " on the writer thread (" << inline_frames_.load() << " frames)";
   sqlite3_wal_hook(writer_, nullptr, nullptr);
   {
     std::lock_guard<std::mutex> lock(mu_);
@@ -47,7 +48,11 @@ void Checkpointer::OnCommit(sqlite3* writer, int pages) {
   last_pages_ = pages;
   if (paused_.load()) return;
   const bool running = running_.load();
-  const int copied = backfilled_generation_.load() == generation_.load() ? backfilled_.load() : 0;
+  int copied = 0;
+  {
+    std::lock_guard<std::mutex> lock(mu_);
+    if (copied_generation_ == generation_.load()) copied = copied_;
+  }
   const int uncopied = pages - copied;
   // Left over from before this commit: the copy the writer would make beyond
   // re-reading what it just wrote.
@@ -55,9 +60,12 @@ void Checkpointer::OnCommit(sqlite3* writer, int pages) {
   if (pages >= backstop_pages_ ||
       (pages >= restart_pages_ && !running && behind <= kInlineFrames)) {
     // SQLITE_BUSY (the thread started meanwhile) only means: not this time.
-    if (sqlite3_wal_checkpoint_v2(writer, nullptr, SQLITE_CHECKPOINT_PASSIVE, nullptr, nullptr) ==
+    int total = 0;
+    if (sqlite3_wal_checkpoint_v2(writer, nullptr, SQLITE_CHECKPOINT_PASSIVE, nullptr, &total) ==
         SQLITE_OK) {
       inline_runs_.fetch_add(1);
+      std::lock_guard<std::mutex> lock(mu_);
+      Copied(generation_.load(), total, &inline_frames_);
     }
     return;
   }
@@ -86,16 +94,23 @@ void Checkpointer::Loop() {
                                   : sqlite3_wal_checkpoint_v2(
                                         db_, nullptr, SQLITE_CHECKPOINT_PASSIVE, &log, &copied);
     if (rc == SQLITE_OK) {
-      backfilled_.store(copied);
-      backfilled_generation_.store(generation);
       background_runs_.fetch_add(1);
     } else if (rc != SQLITE_BUSY) {
       TM_LOG(kWarning) << "ledger WAL checkpoint failed: " << sqlite3_errmsg(db_)
                        << " (the writer checkpoints inline past " << backstop_pages_ << " pages)";
     }
-    running_.store(false);
     lock.lock();
+    if (rc == SQLITE_OK) Copied(generation, copied, &background_frames_);
+    running_.store(false);
   }
+}
+
+void Checkpointer::Copied(uint64_t generation, int total, std::atomic<uint64_t>* frames) {
+  if (generation < copied_generation_) return;  // that WAL has started again since
+  const int before = generation == copied_generation_ ? copied_ : 0;
+  if (total > before) frames->fetch_add(static_cast<uint64_t>(total - before));
+  copied_generation_ = generation;
+  copied_ = std::max(before, total);
 }
 
 }  // namespace tickmark::ledger

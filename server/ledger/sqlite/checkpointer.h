@@ -63,15 +63,21 @@ class Checkpointer {
   // WAL intact and spends no disk space on copies). Writer thread.
   void Pause(bool paused);
 
-  // Checkpoint runs so far: by this thread, and by the writer
-  // (finishing a WAL before it starts again, or past the backstop).
+  // Checkpoint runs so far, and the WAL frames each run copied, summed: by
+  // this thread, and by the writer (finishing a WAL before it starts again,
+  // or past the backstop).
   uint64_t background_runs() const { return background_runs_.load(); }
   uint64_t writer_runs() const { return inline_runs_.load(); }
+  uint64_t background_frames() const { return background_frames_.load(); }
+  uint64_t writer_frames() const { return inline_frames_.load(); }
 
  private:
   static int Hook(void* self, sqlite3* db, const char* name, int pages);
   void OnCommit(sqlite3* writer, int pages);
   void Loop();
+  // A run on either side left `total` frames of WAL `generation` copied
+  // (sqlite3_wal_checkpoint_v2's pnCkpt): adds its share to `frames`.
+  void Copied(uint64_t generation, int total, std::atomic<uint64_t>* frames);  // under mu_
 
   sqlite3* const db_;      // this thread's connection
   sqlite3* const writer_;  // the writer's connection (for the hook only)
@@ -79,19 +85,22 @@ class Checkpointer {
   const int backstop_pages_;
   std::atomic<bool> paused_{false};
   std::atomic<bool> running_{false};  // a background checkpoint is in progress
-  // Frames copied by the last background run, and the WAL generation it ran
-  // in (the writer counts a generation each time the WAL starts again).
-  std::atomic<int> backfilled_{0};
-  std::atomic<uint64_t> backfilled_generation_{0};
+  // The WAL's generation: the writer counts one each time it starts again.
   std::atomic<uint64_t> generation_{0};
   int last_pages_ = 0;  // writer thread only: the WAL's size at the last commit
   std::atomic<uint64_t> background_runs_{0};
   std::atomic<uint64_t> inline_runs_{0};
+  std::atomic<uint64_t> background_frames_{0};
+  std::atomic<uint64_t> inline_frames_{0};
 
   std::mutex mu_;
   std::condition_variable cv_;
   bool requested_ = false;  // GUARDED_BY(mu_)
   bool stopping_ = false;   // GUARDED_BY(mu_)
+  // Frames of the WAL known to be copied by the latest run on either side,
+  // and that WAL's generation.
+  int copied_ = 0;                  // GUARDED_BY(mu_)
+  uint64_t copied_generation_ = 0;  // GUARDED_BY(mu_)
   std::thread thread_;
 };
 

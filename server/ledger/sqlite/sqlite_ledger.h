@@ -149,13 +149,16 @@ class SqliteLedger final : public Ledger {
   absl::Status WriteHealth() override;
   void Close() override;
 
-  // WAL checkpoints run so far (Checkpointer): by its thread, by the writer.
+  // WAL checkpoints run so far (Checkpointer), and the frames they copied:
+  // by its thread, by the writer.
   struct WalCheckpoints {
     uint64_t background = 0, writer = 0;
+    uint64_t background_frames = 0, writer_frames = 0;
   };
   WalCheckpoints wal_checkpoints() const {
     return checkpointer_
-               ? WalCheckpoints{checkpointer_->background_runs(), checkpointer_->writer_runs()}
+               ? WalCheckpoints{checkpointer_->background_runs(), checkpointer_->writer_runs(),
+                                checkpointer_->background_frames(), checkpointer_->writer_frames()}
                : WalCheckpoints{};
   }
 
