@@ -1,10 +1,12 @@
 // For the benches that measure tickmarkd over gRPC (connections_bench,
 // fanout_bench, flood_bench, ingest_bench): one in-process server on
 // loopback over a ledger in a temporary folder of its own, its operator
-// token, a channel and an admin stub, and a session with one token.
+// token, a channel and an admin stub, and a session with one token; and a
+// bare gRPC server for their transport-only baselines.
 #ifndef TICKMARK_BENCH_BENCH_SERVER_H_
 #define TICKMARK_BENCH_BENCH_SERVER_H_
 
+#include <grpcpp/generic/async_generic_service.h>
 #include <grpcpp/grpcpp.h>
 #include <stdlib.h>
 
@@ -91,6 +93,17 @@ class BenchServer {
   std::shared_ptr<grpc::Channel> channel_;
   std::unique_ptr<v1::SessionAdmin::Stub> admin_;
 };
+
+// A bare gRPC server on 127.0.0.1 (any port, written to *port) for a
+// generic callback service: the benches' transport-only baselines, with
+// nothing of tickmark in them. nullptr when it does not start.
+inline std::unique_ptr<grpc::Server> StartBareServer(grpc::CallbackGenericService* service,
+                                                     int* port) {
+  grpc::ServerBuilder builder;
+  builder.AddListeningPort("127.0.0.1:0", grpc::InsecureServerCredentials(), port);
+  builder.RegisterCallbackGenericService(service);
+  return builder.BuildAndStart();
+}
 
 }  // namespace tickmark::bench
 

@@ -362,11 +362,8 @@ class EchoService final : public grpc::CallbackGenericService {
 std::vector<int64_t> PingPong(double seconds) {
   std::vector<int64_t> out;
   EchoService echo;
-  grpc::ServerBuilder builder;
   int port = 0;
-  builder.AddListeningPort("127.0.0.1:0", grpc::InsecureServerCredentials(), &port);
-  builder.RegisterCallbackGenericService(&echo);
-  std::unique_ptr<grpc::Server> server = builder.BuildAndStart();
+  std::unique_ptr<grpc::Server> server = StartBareServer(&echo, &port);
   if (!server) return out;
   auto channel =
       grpc::CreateChannel("127.0.0.1:" + std::to_string(port), grpc::InsecureChannelCredentials());

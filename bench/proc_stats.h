@@ -19,18 +19,23 @@
 namespace tickmark::bench {
 
 // Starts `self` (this program's path) with `args` in a child process whose
-// stdout is the returned stream (nullptr on failure); its pid in *pid. The
-// argument vector is made before fork: after it, in a process with other
-// threads, only async-signal-safe calls until exec (fork(2)).
+// stdout is the returned stream (nullptr on failure, the reason on stderr);
+// its pid in *pid. The argument vector is made before fork: after it, in a
+// process with other threads, only async-signal-safe calls until exec
+// (fork(2)).
 inline FILE* StartSelf(const std::string& self, const std::vector<std::string>& args, pid_t* pid) {
   std::vector<char*> argv;
   argv.push_back(const_cast<char*>(self.c_str()));
   for (const std::string& a : args) argv.push_back(const_cast<char*>(a.c_str()));
   argv.push_back(nullptr);
   int out[2];
-  if (pipe(out) != 0) return nullptr;
+  if (pipe(out) != 0) {
+    std::perror("cannot start the client process (pipe)");
+    return nullptr;
+  }
   *pid = fork();
   if (*pid < 0) {
+    std::perror("cannot start the client process (fork)");
     close(out[0]);
     close(out[1]);
     return nullptr;
